@@ -1,0 +1,22 @@
+"""bayesdid: Bayesian triple difference (DDD) and difference in differences (DiD) for policies
+adopted by one or a few jurisdictions, with partial pooling across many comparison jurisdictions.
+
+Typical use::
+
+    from bayesdid import load_study, analyse, write_run
+    an = analyse(load_study("study.toml"))
+    print(an.effects["effect"])
+    write_run(an, "runs/first")
+"""
+
+__version__ = "0.1.0"
+
+from .errors import (BayesDidError, DataRoleError, DiagnosticsWarning, FewAdoptersWarning,  # noqa: E402
+                     StudyError)
+from .study import Study, load_study, make_study  # noqa: E402
+from .cells import Cells, collapse  # noqa: E402
+from .run import Analysis, analyse, write_run  # noqa: E402
+
+__all__ = ["__version__", "BayesDidError", "DataRoleError", "DiagnosticsWarning", "FewAdoptersWarning",
+           "StudyError", "Study", "load_study", "make_study", "Cells", "collapse", "Analysis", "analyse",
+           "write_run"]

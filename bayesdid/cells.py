@@ -1,0 +1,180 @@
+"""Exact collapse of the rows to per-cell sufficient statistics.
+
+A cell is (jurisdiction, group, period); for a DiD the group axis has length one. For a Gaussian
+outcome the rows enter the likelihood only through, per cell, the count ``n``, the sum ``sum_y`` and
+the sum of squares ``sum_y2``; the within-cell sum of squared deviations ``ss`` is computed in two
+passes (mean first) so that it does not lose digits when cells are large.
+
+Needs only numpy and pandas.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+import pandas as pd
+
+from .data import check_roles, period_levels
+from .study import Study
+
+__all__ = ["Cells", "collapse", "collapse_frame"]
+
+
+@dataclass(frozen=True, eq=False)
+class Cells:
+    """Per-cell sufficient statistics on the model scale, with the design around them.
+
+    Arrays have shape (jurisdiction, group, period). ``start[j]`` is the index of the first treated
+    period of jurisdiction j, or ``len(periods)`` for a jurisdiction that never adopts.
+    """
+
+    jurisdictions: tuple[str, ...]
+    groups: tuple[str, ...]
+    periods: tuple
+    design: str
+    target: int  # index of the target group (0 for DiD)
+    start: np.ndarray
+    n: np.ndarray
+    sum_y: np.ndarray
+    sum_y2: np.ndarray
+    ss: np.ndarray
+    rows: int
+    log_outcome: bool = False
+    outcome_sd: float = 1.0
+    outcome_mean: float = 0.0
+    weight: np.ndarray | None = None  # per (jurisdiction, period); 0 drops a jurisdiction-period
+    extra: dict = field(default_factory=dict)
+
+    # ---- shape and design -------------------------------------------------------------------
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.n.shape
+
+    @property
+    def n_cells(self) -> int:
+        return int((self.n > 0).sum())
+
+    @property
+    def adopters(self) -> np.ndarray:
+        return np.flatnonzero(self.start < len(self.periods))
+
+    @property
+    def comparisons(self) -> np.ndarray:
+        return np.flatnonzero(self.start >= len(self.periods))
+
+    @property
+    def reference(self) -> int | None:
+        return None if self.design == "DiD" else 1 - self.target
+
+    @property
+    def treated(self) -> np.ndarray:
+        """D[j, g, t] = 1 for adopter j, target group g and t at or after j's start."""
+        J, G, T = self.shape
+        post = np.arange(T)[None, :] >= self.start[:, None]
+        d = np.zeros((J, G, T), dtype=bool)
+        d[:, self.target, :] = post
+        return d
+
+    @property
+    def mean(self) -> np.ndarray:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.n > 0, self.sum_y / np.where(self.n > 0, self.n, 1), np.nan)
+
+    def jt_weight(self) -> np.ndarray:
+        J, _, T = self.shape
+        return np.ones((J, T)) if self.weight is None else self.weight
+
+    def with_starts(self, start: np.ndarray) -> "Cells":
+        """The same cells with another assignment of start periods (placebos)."""
+        return replace(self, start=np.asarray(start, dtype=int))
+
+    def with_weight(self, weight: np.ndarray) -> "Cells":
+        return replace(self, weight=np.asarray(weight, dtype=float))
+
+    def describe(self) -> dict:
+        return {
+            "rows": int(self.rows),
+            "cells": self.n_cells,
+            "jurisdictions": len(self.jurisdictions),
+            "adopters": [self.jurisdictions[j] for j in self.adopters],
+            "starts": {self.jurisdictions[j]: _plain(self.periods[self.start[j]]) for j in self.adopters},
+            "periods": len(self.periods),
+            "groups": list(self.groups),
+            "design": self.design,
+        }
+
+
+def _plain(v):
+    return v.item() if hasattr(v, "item") else v
+
+
+def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
+    """Collapse a frame whose roles have been checked (see :func:`bayesdid.data.check_roles`)."""
+    cols = study.columns
+    levels = period_levels(study, frame)
+    period_index = {str(v): i for i, v in enumerate(levels)}
+    jur_labels = sorted(pd.unique(frame[cols.jurisdiction]).tolist())
+    jur_index = {v: i for i, v in enumerate(jur_labels)}
+    if cols.group is None:
+        groups = ("all",)
+        g_code = np.zeros(len(frame), dtype=np.int64)
+        target = 0
+    else:
+        glev = sorted(pd.unique(frame[cols.group]).tolist())
+        target_label = str(study.policy.target_group)
+        groups = tuple([g for g in glev if g != target_label] + [target_label])  # reference first
+        g_code = frame[cols.group].map({g: i for i, g in enumerate(groups)}).to_numpy(dtype=np.int64)
+        target = 1
+    j_code = frame[cols.jurisdiction].map(jur_index).to_numpy(dtype=np.int64)
+    p_str = frame[cols.period].astype(str) if not pd.api.types.is_string_dtype(frame[cols.period]) \
+        else frame[cols.period]
+    t_code = p_str.map(period_index).to_numpy(dtype=np.int64)
+
+    J, G, T = len(jur_labels), len(groups), len(levels)
+    y = frame[cols.outcome].to_numpy(dtype=float)
+    if study.model.log_outcome:
+        y = np.log(y)
+    idx = (j_code * G + g_code) * T + t_code
+    size = J * G * T
+    n = np.bincount(idx, minlength=size).astype(float)
+    s1 = np.bincount(idx, weights=y, minlength=size)
+    s2 = np.bincount(idx, weights=y * y, minlength=size)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m = np.where(n > 0, s1 / np.where(n > 0, n, 1), 0.0)
+    dev = y - m[idx]
+    ss = np.bincount(idx, weights=dev * dev, minlength=size)
+
+    start = np.full(J, T, dtype=int)
+    for a, s in study.policy.adopters:
+        start[jur_index[a]] = period_index[str(s)]
+    sd = float(np.std(y)) if len(y) > 1 else 1.0
+    return Cells(
+        jurisdictions=tuple(jur_labels), groups=groups, periods=tuple(_plain(v) for v in levels),
+        design=study.design, target=target, start=start,
+        n=n.reshape(J, G, T), sum_y=s1.reshape(J, G, T), sum_y2=s2.reshape(J, G, T), ss=ss.reshape(J, G, T),
+        rows=len(frame), log_outcome=study.model.log_outcome,
+        outcome_sd=sd if sd > 0 else 1.0, outcome_mean=float(np.mean(y)),
+    )
+
+
+def collapse(study: Study, frame: pd.DataFrame) -> Cells:
+    """Check the roles of ``frame`` and collapse it to cells.
+
+    Raises
+    ------
+    DataRoleError
+        From the role checks, and when an adopter has no observed target-group cell in its pre- or
+        post-period (nothing to estimate from).
+    """
+    from .errors import DataRoleError
+
+    checked = check_roles(study, frame)
+    cells = collapse_frame(study, checked)
+    for j in cells.adopters:
+        tgt = cells.n[j, cells.target]
+        s = cells.start[j]
+        if tgt[:s].sum() == 0 or tgt[s:].sum() == 0:
+            raise DataRoleError(f"adopter '{cells.jurisdictions[j]}' has no rows in the target group "
+                                "before or after its start; it cannot inform the effect.")
+    return cells

@@ -1,0 +1,146 @@
+"""The ``bayesdid`` command line. Thin: it parses, calls the library and prints.
+
+Exit codes: 0 success (a warning when diagnostics fail), 2 bad input (one paragraph naming what is
+wrong and how to fix it; nothing written), 3 diagnostics failed under ``--strict``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import sys
+import textwrap
+from pathlib import Path
+
+from .errors import BayesDidError
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_BAD_INPUT, EXIT_DIAGNOSTICS = 0, 2, 3
+
+
+def _say(msg: str) -> None:
+    print(f"bayesdid: {msg}", file=sys.stderr, flush=True)
+
+
+def _overrides(study, args):
+    changes = {}
+    for key in ("draws", "chains", "seed", "tune"):
+        v = getattr(args, key, None)
+        if v is not None:
+            changes[key] = v
+    if changes:
+        study = study.replace(sampler=changes)
+    return study
+
+
+def _add_sampling(p):
+    p.add_argument("--draws", type=int, help="draws per chain (overrides the study file)")
+    p.add_argument("--tune", type=int, help="tuning steps per chain (overrides the study file)")
+    p.add_argument("--chains", type=int, help="number of chains (overrides the study file)")
+    p.add_argument("--seed", type=int, help="random seed (overrides the study file)")
+    p.add_argument("--strict", action="store_true", help="exit 3 when sampler diagnostics fail")
+    p.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    p.add_argument("--quiet", action="store_true", help="no progress display")
+
+
+def _fit_and_write(study, out, args, argv):
+    from .report.words import headline
+    from .run import analyse, write_run
+    from .sample import warn_if_bad
+
+    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say)
+    path = write_run(an, out, replace=args.replace, argv=argv)
+    summary = json.loads((path / "summary.json").read_text())
+    print(headline(summary))
+    print(f"results in {path}")
+    diag = an.fit.diagnostics
+    if not diag["ok"]:
+        _say("WARNING: " + diag["advice"])
+        warn_if_bad(diag)
+        if args.strict:
+            return EXIT_DIAGNOSTICS
+    return EXIT_OK
+
+
+def cmd_fit(args, argv):
+    from .study import load_study
+
+    study = _overrides(load_study(args.study), args)
+    return _fit_and_write(study, args.out, args, argv)
+
+
+def case_dir(name: str) -> Path:
+    root = Path(__file__).resolve().parent.parent / "case_files"
+    return root / name
+
+
+def cmd_demo(args, argv):
+    from .study import load_study
+
+    d = case_dir(args.case)
+    gen = d.parent / "make_cases.py"
+    if not (d / "study.toml").is_file() or not load_study(d / "study.toml").table.exists():
+        if not gen.is_file():
+            raise BayesDidError(f"demo case '{args.case}' not found under {d.parent}; known cases are in "
+                                "case_files/.")
+        import importlib.util
+
+        spec = importlib.util.spec_from_file_location("bayesdid_cases", gen)
+        mod = importlib.util.module_from_spec(spec)
+        spec.loader.exec_module(mod)
+        if args.case not in mod.CASES:
+            raise BayesDidError(f"unknown demo case '{args.case}'; choose one of {sorted(mod.CASES)}.")
+        mod.make(args.case)
+    study = _overrides(load_study(d / "study.toml"), args)
+    _say(f"demo case '{args.case}': {study.title} (invented data)")
+    return _fit_and_write(study, args.out, args, argv)
+
+
+def cmd_bench(args, argv):
+    from . import bench
+
+    result = bench.run(args.name, quick=args.quick)
+    print(json.dumps(result))
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="bayesdid",
+        description="Bayesian DDD / DiD for a policy adopted by a few jurisdictions.",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=textwrap.dedent("""\
+            exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict"""))
+    sub = p.add_subparsers(dest="command", required=True)
+    f = sub.add_parser("fit", help="fit a study and write a run folder")
+    f.add_argument("study", help="study file (TOML)")
+    f.add_argument("--out", required=True, help="run folder to create")
+    _add_sampling(f)
+    f.set_defaults(func=cmd_fit)
+    d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case")
+    d.add_argument("--out", default="runs/demo", help="run folder to create (default runs/demo)")
+    d.add_argument("--case", default="copay_cap", help="demo case under case_files/ (default copay_cap)")
+    _add_sampling(d)
+    d.set_defaults(func=cmd_demo)
+    b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
+    b.add_argument("name", help="benchmark name: collapse")
+    b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
+    b.set_defaults(func=cmd_bench)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args, ["bayesdid", *argv])
+    except BayesDidError as exc:
+        print("bayesdid: error: " + textwrap.fill(str(exc), width=100, subsequent_indent="  "), file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

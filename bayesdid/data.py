@@ -1,0 +1,168 @@
+"""Reading the table and checking that its columns fit their roles.
+
+Only this module and :mod:`bayesdid.cells` see rows; everything downstream works on cells.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import DataRoleError
+from .study import Study
+
+__all__ = ["read_table", "file_sha256", "check_roles", "period_levels"]
+
+
+def file_sha256(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def read_table(path: str | Path) -> pd.DataFrame:
+    """Read a CSV or Parquet table.
+
+    Raises
+    ------
+    DataRoleError
+        If the file is missing, of another kind, unreadable or empty.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise DataRoleError(f"table '{path}' does not exist; fix 'data.table' in the study file "
+                            "(a path relative to the study file).")
+    suffix = path.suffix.lower()
+    try:
+        if suffix in (".parquet", ".pq"):
+            frame = pd.read_parquet(path)
+        elif suffix in (".csv", ".txt") or path.name.lower().endswith(".csv.gz"):
+            frame = pd.read_csv(path)
+        else:
+            raise DataRoleError(f"table '{path}': unknown file kind '{suffix}'; use .csv or .parquet.")
+    except DataRoleError:
+        raise
+    except pd.errors.EmptyDataError:
+        raise DataRoleError(f"table '{path}' is empty: it has no header and no rows.") from None
+    except Exception as exc:  # pragma: no cover - depends on the parser's message
+        raise DataRoleError(f"table '{path}' could not be read ({type(exc).__name__}: {exc}).") from None
+    if len(frame) == 0:
+        raise DataRoleError(f"table '{path}' has no rows; the study needs at least one row per "
+                            "jurisdiction, group and period.")
+    return frame
+
+
+def _sortable(values: np.ndarray) -> list:
+    try:
+        return sorted(values.tolist())
+    except TypeError:
+        return sorted(values.tolist(), key=str)
+
+
+def period_levels(study: Study, frame: pd.DataFrame) -> list:
+    """The period labels in time order: ``data.period_order`` if given, else sorted values."""
+    col = study.columns.period
+    present = pd.unique(frame[col])
+    if study.period_order is not None:
+        order = list(study.period_order)
+        as_str = {str(v) for v in order}
+        missing = [v for v in present.tolist() if str(v) not in as_str]
+        if missing:
+            raise DataRoleError(f"column '{col}' has period(s) {missing[:5]} that 'data.period_order' does "
+                                "not list; add them to period_order in time order.")
+        lookup = {str(v): v for v in present.tolist()}
+        return [lookup[str(v)] for v in order if str(v) in lookup]
+    return _sortable(present)
+
+
+def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
+    """Check the table against the study's column roles; return only the used columns.
+
+    Raises
+    ------
+    DataRoleError
+        Naming the column, the offending value(s) and the fix.
+    """
+    cols = study.columns
+    if len(frame) == 0:
+        raise DataRoleError("the table has no rows; the study needs rows for every jurisdiction and period.")
+    missing_cols = [c for c in cols.used() if c not in frame.columns]
+    if missing_cols:
+        raise DataRoleError(
+            f"column(s) {missing_cols} named in the study are not in the table; it has "
+            f"{list(frame.columns)[:20]}. Fix the names under [data] or the table's header.")
+    out = frame[cols.used()].copy()
+
+    for role in ("jurisdiction", "period", "group"):
+        c = getattr(cols, role)
+        if c is None:
+            continue
+        nmiss = int(out[c].isna().sum())
+        if nmiss:
+            raise DataRoleError(f"column '{c}' ({role}) has {nmiss} missing value(s); every row needs a "
+                                f"{role}. Drop or fill those rows.")
+    y = out[cols.outcome]
+    if not pd.api.types.is_numeric_dtype(y) or pd.api.types.is_bool_dtype(y):
+        bad = y[pd.to_numeric(y, errors="coerce").isna() & y.notna()].head(3).tolist()
+        raise DataRoleError(f"outcome column '{cols.outcome}' is not numeric (values such as {bad}); "
+                            "give numbers, with a dot as decimal separator.")
+    yv = y.to_numpy(dtype=float, na_value=np.nan)
+    nmiss = int(np.isnan(yv).sum())
+    if nmiss:
+        raise DataRoleError(f"outcome column '{cols.outcome}' has {nmiss} missing value(s); drop those "
+                            "rows or fill them before the analysis.")
+    if not np.isfinite(yv).all():
+        raise DataRoleError(f"outcome column '{cols.outcome}' has {int((~np.isfinite(yv)).sum())} infinite "
+                            "value(s); replace them with finite numbers or drop the rows.")
+    if study.model.log_outcome and (yv <= 0).any():
+        nbad = int((yv <= 0).sum())
+        raise DataRoleError(f"outcome column '{cols.outcome}' has {nbad} value(s) at or below zero (smallest "
+                            f"{yv.min():g}), but model.log_outcome = true needs positive values. Set "
+                            "log_outcome = false, or shift or drop those rows by a rule stated in your protocol.")
+    out[cols.outcome] = yv
+
+    # Jurisdictions, adopters and their starts.
+    jur = out[cols.jurisdiction].astype(str)
+    out[cols.jurisdiction] = jur
+    known = set(pd.unique(jur).tolist())
+    unknown = [a for a, _ in study.policy.adopters if a not in known]
+    if unknown:
+        raise DataRoleError(f"adopter(s) {unknown} in 'policy.adopters' are not values of column "
+                            f"'{cols.jurisdiction}' (it has e.g. {sorted(known)[:6]}). Fix the names.")
+    if len(known) - len(study.policy.adopters) < 1:
+        raise DataRoleError(f"no comparison jurisdiction: every value of '{cols.jurisdiction}' is an adopter. "
+                            "The design needs jurisdictions that never adopt.")
+    levels = period_levels(study, out)
+    if len(levels) < 2:
+        raise DataRoleError(f"column '{cols.period}' has a single period ({levels}); the design needs "
+                            "periods before and after the start.")
+    as_str = [str(v) for v in levels]
+    for a, start in study.policy.adopters:
+        if str(start) not in as_str:
+            raise DataRoleError(
+                f"the start of adopter '{a}' ({start!r}, 'policy.adopters') is not a period of column "
+                f"'{cols.period}', which runs {levels[0]!r} .. {levels[-1]!r}. Give the first treated period.")
+        if as_str.index(str(start)) == 0:
+            raise DataRoleError(
+                f"adopter '{a}' starts in the first period ({start!r}): there is no pre-period to compare "
+                "with. Add earlier periods or drop this adopter.")
+
+    if cols.group is not None:
+        grp = out[cols.group].astype(str)
+        out[cols.group] = grp
+        glev = sorted(pd.unique(grp).tolist())
+        if len(glev) < 2:
+            raise DataRoleError(f"column '{cols.group}' has a single level ({glev}); a DDD needs the target "
+                                "group and a reference group. Remove 'data.group' for a DiD.")
+        if len(glev) > 2:
+            raise DataRoleError(f"column '{cols.group}' has {len(glev)} levels ({glev[:6]}); a DDD here takes "
+                                "exactly two (target and reference). Recode the column or filter the rows.")
+        if str(study.policy.target_group) not in glev:
+            raise DataRoleError(f"target group '{study.policy.target_group}' ('policy.target_group') is not a "
+                                f"level of column '{cols.group}' (levels {glev}).")
+    return out

@@ -1,0 +1,230 @@
+"""Shared hierarchical terms, prior scales and the model-building entry point.
+
+Notation (DESIGN.md): cells c = (j, g, t),
+
+    eta[j,g,t] = b[j,g] + s[j,t] + h[g,t] + e[j,g,t] + tau[j] * D[j,g,t]
+
+with b[j,g] = mu[g] + sigma_b * z_b[j,g] (non-centred), s[j,t] = a[t] + (pooled jurisdiction
+shock), h[g,t] the target group's own period effects (zero for the reference group and the first
+period), e the structural gap noise on the target group with sd sigma_gap, and
+tau[j] = tau + sigma_tau * z_tau[j] over adopters.
+
+Every prior scale is a ``pm.Data`` container named ``prior_<name>`` so that a sweep over priors
+reuses one compiled model (``compiled.with_data(prior_effect=...)``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+
+import numpy as np
+import pymc as pm
+import pytensor.tensor as pt
+
+from ..cells import Cells
+from ..study import PRIOR_NAMES, PriorScales
+
+__all__ = ["default_scales", "resolve_scales", "ModelSpec", "build_model", "design_data",
+           "hierarchical_mean"]
+
+#: Default prior scales as multiples of the outcome's pooled standard deviation (model scale).
+DEFAULT_MULTIPLES = {
+    "intercept": 5.0,
+    "baseline_spread": 2.0,
+    "period": 1.0,
+    "group_period": 1.0,
+    "shock_spread": 0.5,
+    "gap_noise": 0.5,
+    "effect": 1.0,
+    "adopter_spread": 0.2,
+    "residual": 2.0,
+    "covariate": 2.5,
+    "dispersion": 1.0,
+}
+
+
+def default_scales(cells: Cells) -> dict[str, float]:
+    """Weakly informative prior scales scaled to the outcome's pooled sd (model scale)."""
+    sd = float(cells.outcome_sd)
+    return {k: m * sd for k, m in DEFAULT_MULTIPLES.items()}
+
+
+def resolve_scales(cells: Cells, priors: PriorScales) -> dict[str, dict]:
+    """Scales used in the fit, with where each came from ('data-scaled' or 'study')."""
+    base = default_scales(cells)
+    out = {}
+    for name in PRIOR_NAMES:
+        given = getattr(priors, name)
+        out[name] = {"scale": float(given) if given is not None else base[name],
+                     "source": "study" if given is not None else "data-scaled",
+                     "meaning": PRIOR_NAMES[name]}
+    return out
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Everything that fixes a model's structure (and so its compiled form)."""
+
+    family: str
+    design: str
+    J: int
+    G: int
+    T: int
+    A: int
+    centred: bool = False
+
+    def key(self) -> tuple:
+        return dataclasses.astuple(self)
+
+
+def design_data(cells: Cells) -> dict[str, np.ndarray]:
+    """The assignment arrays that placebos change: D and the adopter index of each jurisdiction."""
+    J, G, T = cells.shape
+    adopters = cells.adopters
+    treat = cells.treated.astype(float)
+    by_adopter = np.zeros((len(adopters), J, G, T))
+    for a, j in enumerate(adopters):
+        by_adopter[a, j] = treat[j]
+    return {"treat_by_adopter": by_adopter}
+
+
+ADOPTER_CENTRED = [False]
+
+
+def zero_sum_basis(T: int) -> np.ndarray:
+    """Orthonormal (T, T-1) basis of the vectors that sum to zero.
+
+    Period effects are h = Q r with r ~ Normal(0, s^2 I), so h ~ Normal(0, s^2 (I - 11'/T)): an
+    exchangeable prior over periods, identified against the baselines (which then carry the mean
+    level over time) without the ridge that pinning one period to zero creates.
+    """
+    M = np.eye(T) - 1.0 / T
+    u, _, _ = np.linalg.svd(M)
+    return u[:, : T - 1]
+
+
+def baseline_centred(cells: Cells) -> bool:
+    """Choose the parameterisation of the baselines b[j,g] from how much the data say about them.
+
+    Non-centred terms sample well when the data say little about each member (prior dominates);
+    when every baseline is pinned down by many periods of well-filled cells, the non-centred form
+    makes a narrow ridge between the group mean and the z's and the centred form samples better.
+    The rule compares T * (between-jurisdiction variance of the baselines) with the variance of a
+    jurisdiction-group's cell means over time, both read off the cell means (common practice; the
+    choice is recorded in summary.json and changes no posterior, only the sampler's path).
+    """
+    mean = cells.mean
+    with np.errstate(invalid="ignore"):
+        per_jg = np.nanmean(mean, axis=2)
+        between = np.nanmean(np.nanvar(per_jg, axis=0))
+        within = np.nanmean(np.nanvar(mean, axis=2))
+    T = cells.shape[2]
+    if not np.isfinite(between) or not np.isfinite(within) or within <= 0:
+        return True
+    return bool(T * between / within > 2.0)
+
+
+class _LazyScales(dict):
+    """Creates the ``prior_<name>`` data container the first time a term asks for it, so that a
+    model holds only the scales it uses (nutpie's ``with_data`` rejects unknown names)."""
+
+    def __init__(self, scales):
+        super().__init__()
+        self._scales = scales
+
+    def __missing__(self, key):
+        v = pm.Data(f"prior_{key}", float(self._scales[key]))
+        self[key] = v
+        return v
+
+
+def hierarchical_mean(cells: Cells, scales: dict[str, float]):
+    """Add the shared terms to the current model; return (m, extras).
+
+    ``m`` is the (J, G, T) mean without the jurisdiction-period shock and the gap noise (both are
+    integrated out exactly in the Gaussian family, or added as non-centred terms by the others).
+    """
+    J, G, T = cells.shape
+    A = len(cells.adopters)
+    S = _LazyScales(scales)
+    loc = pm.Data("outcome_location", float(cells.outcome_mean))
+    dd = design_data(cells)
+    treat = pm.Data("treat_by_adopter", dd["treat_by_adopter"],
+                    dims=("adopter", "jurisdiction", "group", "period"))
+    lift = zero_sum_basis(T)
+
+    mu = pm.Normal("mu_group", loc, S["intercept"], dims=("group",))
+    sigma_b = pm.HalfNormal("sigma_baseline", S["baseline_spread"])
+    if baseline_centred(cells):
+        b = pm.Normal("baseline", mu[None, :], sigma_b, dims=("jurisdiction", "group"))
+    else:
+        z_b = pm.Normal("z_baseline", 0.0, 1.0, dims=("jurisdiction", "group"))
+        b = pm.Deterministic("baseline", mu[None, :] + sigma_b * z_b, dims=("jurisdiction", "group"))
+
+    a_raw = pm.Normal("period_raw", 0.0, S["period"], shape=(T - 1,))
+    a = pt.dot(lift, a_raw)
+    pm.Deterministic("period_effect", a, dims=("period",))
+    m = b[:, :, None] + a[None, None, :]
+    if G == 2:
+        h_raw = pm.Normal("group_period_raw", 0.0, S["group_period"], shape=(T - 1,))
+        h = pt.dot(lift, h_raw)
+        pm.Deterministic("group_period_effect", h, dims=("period",))
+        hg = pt.stack([pt.zeros((T,)), h])  # reference group first, target second
+        m = m + hg[None, :, :]
+
+    tau = pm.Normal("tau", 0.0, S["effect"])
+    if A > 1:
+        sigma_tau = pm.HalfNormal("sigma_tau", S["adopter_spread"])
+        if ADOPTER_CENTRED[0]:
+            tau_a = pm.Normal("tau_adopter", tau, sigma_tau, dims=("adopter",))
+        else:
+            z_tau = pm.Normal("z_tau", 0.0, 1.0, dims=("adopter",))
+            tau_a = pm.Deterministic("tau_adopter", tau + sigma_tau * z_tau, dims=("adopter",))
+    else:
+        tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
+    m = m + pt.tensordot(tau_a, treat, axes=1)
+    return m, S
+
+
+def coords_of(cells: Cells) -> dict[str, list]:
+    return {
+        "jurisdiction": list(cells.jurisdictions),
+        "group": list(cells.groups),
+        "period": [str(p) for p in cells.periods],
+        "adopter": [cells.jurisdictions[j] for j in cells.adopters],
+    }
+
+
+def model_spec(cells: Cells, family: str = "gaussian") -> ModelSpec:
+    J, G, T = cells.shape
+    return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
+                     centred=baseline_centred(cells))
+
+
+def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian") -> tuple[pm.Model, ModelSpec]:
+    """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
+    spec = model_spec(cells, family)
+    if family == "gaussian":
+        from .gaussian import build_gaussian
+
+        return build_gaussian(cells, scales, coords_of(cells)), spec
+    raise NotImplementedError(f"family '{family}' is not built yet")
+
+
+def mean_from_draws(fit) -> np.ndarray:
+    """Posterior draws of m[j,g,t] (the cell mean without shock and gap noise): shape (S, J, G, T).
+
+    The numpy twin of :func:`hierarchical_mean`; tests check it against PyMC's own evaluation.
+    """
+    cells = fit.cells
+    J, G, T = cells.shape
+    b = fit.draws("baseline")  # (S, J, G)
+    a = fit.draws("period_effect")  # (S, T)
+    m = b[..., None] + a[:, None, None, :]
+    if G == 2:
+        h = fit.draws("group_period_effect")
+        m[:, :, cells.target, :] += h[:, None, :]
+    tau_a = fit.draws("tau_adopter")  # (S, A)
+    m += np.tensordot(tau_a, design_data(cells)["treat_by_adopter"], axes=1)
+    return m

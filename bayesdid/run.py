@@ -1,0 +1,231 @@
+"""The end-to-end path: study + table -> cells -> model -> posterior -> effects -> run folder.
+
+A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, sample_stats,
+observed_data, constant_data), ``summary.json`` and ``manifest.json``. It is written into a
+temporary sibling folder and renamed into place at the end, so a failure leaves nothing
+half-written, and an existing folder is never overwritten unless asked.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import shutil
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from . import __version__
+from .cells import Cells, collapse
+from .crosscheck import least_squares_estimate
+from .data import file_sha256, read_table
+from .effects import compute_effects
+from .errors import BayesDidError, FewAdoptersWarning
+from .model.terms import resolve_scales
+from .sample import Fit, fit_cells
+from .study import Study, study_to_dict
+
+__all__ = ["Analysis", "prepare", "analyse", "write_run", "versions", "atomic_folder", "dump_json"]
+
+
+def versions() -> dict:
+    import arviz
+    import nutpie
+    import pandas
+    import pymc
+    import pytensor
+
+    return {"python": platform.python_version(), "bayesdid": __version__, "pymc": pymc.__version__,
+            "pytensor": pytensor.__version__, "nutpie": nutpie.__version__, "arviz": arviz.__version__,
+            "numpy": np.__version__, "pandas": pandas.__version__, "xarray": xr.__version__}
+
+
+@dataclass
+class Analysis:
+    """Results of one fit, ready to be written or read by checks and the report."""
+
+    study: Study
+    cells: Cells
+    fit: Fit
+    effects: dict
+    least_squares: dict
+    priors: dict
+    timing: dict
+    data_sha256: str | None = None
+    notes: list = field(default_factory=list)
+
+    def summary(self) -> dict:
+        e = self.effects
+        out = {
+            "title": self.study.title,
+            "effect": e["effect"].summary,
+            "per_adopter": e["per_adopter"],
+            "least_squares": self.least_squares,
+            "diagnostics": {k: v for k, v in self.fit.diagnostics.items()},
+            "data": self.cells.describe(),
+            "priors": self.priors,
+            "timing": self.timing,
+            "model": {"family": self.study.model.family, "log_outcome": self.study.model.log_outcome,
+                      "design": self.cells.design,
+                      "likelihood": "exact on cells (jurisdiction-period shock and gap noise integrated out)"},
+            "notes": self.notes,
+        }
+        if "effect_percent" in e:
+            out["effect_percent"] = e["effect_percent"].summary
+        for k in ("effect_natural",):
+            if k in e:
+                out[k] = e[k].summary
+        return out
+
+
+def prepare(study: Study) -> tuple[Cells, str, float]:
+    """Read the table and collapse it; returns (cells, data SHA-256, collapse seconds)."""
+    frame = read_table(study.table)
+    digest = file_sha256(study.table)
+    t0 = time.perf_counter()
+    cells = collapse(study, frame)
+    return cells, digest, time.perf_counter() - t0
+
+
+def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None) -> Analysis:
+    """Fit the study and compute its effects and least-squares point estimate."""
+    say = log or (lambda msg: None)
+    digest, collapse_s = None, 0.0
+    if cells is None:
+        say(f"reading {study.table.name} and collapsing to cells")
+        cells, digest, collapse_s = prepare(study)
+    d = cells.describe()
+    say(f"{d['rows']:,} rows -> {d['cells']:,} cells ({d['jurisdictions']} jurisdictions, "
+        f"{d['periods']} periods, {len(d['adopters'])} adopter(s), {d['design']})")
+    priors = resolve_scales(cells, study.priors)
+    scales = {k: v["scale"] for k, v in priors.items()}
+    say("compiling the model (once per model shape) and sampling")
+    fit = fit_cells(cells, scales, study.sampler, family=study.model.family, progress=progress)
+    effects = compute_effects(fit, study.decision.threshold)
+    ls = least_squares_estimate(cells)
+    notes = []
+    if len(cells.adopters) <= 2:
+        notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
+                     "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
+    timing = {"collapse_s": collapse_s, **fit.timing}
+    return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
+                    timing=timing, data_sha256=digest, notes=notes)
+
+
+def _tree_for_file(an: Analysis) -> xr.DataTree:
+    """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
+    from .model.gaussian import pointwise_loglik
+
+    fit = an.fit
+    cells = an.cells
+    post = fit.posterior
+    coords = {"jurisdiction": list(cells.jurisdictions), "group": list(cells.groups),
+              "period": [str(p) for p in cells.periods]}
+    ll = pointwise_loglik(fit)
+    C, D = post.sizes["chain"], post.sizes["draw"]
+    ll_da = xr.DataArray(ll.reshape(C, D, *ll.shape[1:]), dims=("chain", "draw", "jurisdiction", "period"),
+                         coords={"chain": post["chain"], "draw": post["draw"],
+                                 "jurisdiction": coords["jurisdiction"], "period": coords["period"]})
+    mean = cells.mean
+    observed = xr.Dataset({"cell_mean": (("jurisdiction", "group", "period"), mean)}, coords=coords)
+    const = xr.Dataset({
+        "n": (("jurisdiction", "group", "period"), cells.n),
+        "sum_y": (("jurisdiction", "group", "period"), cells.sum_y),
+        "sum_y2": (("jurisdiction", "group", "period"), cells.sum_y2),
+        "treated": (("jurisdiction", "group", "period"), cells.treated.astype(np.int8)),
+        "start_index": (("jurisdiction",), cells.start),
+    }, coords=coords)
+    stats = fit.tree["sample_stats"].to_dataset()
+    keep = [v for v in stats.data_vars if stats[v].dtype != object]
+    groups = {
+        "posterior": post,
+        "log_likelihood": xr.Dataset({"cells": ll_da}),
+        "sample_stats": stats[keep],
+        "observed_data": observed,
+        "constant_data": const,
+    }
+    for name, ds in groups.items():
+        ds.attrs = {k: (json.dumps(v) if not isinstance(v, (str, int, float)) else v) for k, v in ds.attrs.items()}
+    return xr.DataTree.from_dict(groups)
+
+
+def dump_json(obj, path: Path) -> None:
+    def default(o):
+        if isinstance(o, (np.integer,)):
+            return int(o)
+        if isinstance(o, (np.floating,)):
+            return float(o)
+        if isinstance(o, np.ndarray):
+            return o.tolist()
+        if isinstance(o, Path):
+            return str(o)
+        return str(o)
+
+    path.write_text(json.dumps(obj, indent=2, default=default, allow_nan=True) + "\n", encoding="utf-8")
+
+
+class atomic_folder:
+    """Write into a temporary sibling folder; rename it to ``target`` only on success.
+
+    An existing non-empty ``target`` is refused unless ``replace`` is true; then it is swapped out
+    only after the new folder is complete.
+    """
+
+    def __init__(self, target: str | Path, *, replace: bool = False):
+        self.target = Path(target)
+        self.replace = replace
+
+    def __enter__(self) -> Path:
+        t = self.target
+        if t.exists() and (not t.is_dir() or any(t.iterdir())) and not self.replace:
+            raise BayesDidError(f"output folder '{t}' already exists and is not empty; choose another --out "
+                                "or pass --replace to swap it for the new results.")
+        t.parent.mkdir(parents=True, exist_ok=True)
+        self.tmp = Path(tempfile.mkdtemp(prefix=f".{t.name}.partial-", dir=t.parent))
+        return self.tmp
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None:
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            return False
+        t = self.target
+        if t.exists():
+            old = t.with_name(f".{t.name}.old-{os.getpid()}")
+            os.replace(t, old)
+            os.replace(self.tmp, t)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(self.tmp, t)
+        return False
+
+
+def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None) -> Path:
+    """Write posterior.nc, summary.json and manifest.json into ``out`` atomically."""
+    with atomic_folder(out, replace=replace) as tmp:
+        t0 = time.perf_counter()
+        tree = _tree_for_file(an)
+        tree.to_netcdf(tmp / "posterior.nc", engine="h5netcdf")
+        summary = an.summary()
+        summary["timing"]["write_s"] = time.perf_counter() - t0
+        dump_json(summary, tmp / "summary.json")
+        manifest = {
+            "bayesdid": __version__,
+            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "versions": versions(),
+            "seed": an.study.sampler.seed,
+            "sampler": {"name": "nutpie (NUTS)", "chains": an.study.sampler.chains,
+                        "draws": an.study.sampler.draws, "tune": an.study.sampler.tune},
+            "data_sha256": an.data_sha256,
+            "table": str(an.study.table),
+            "study": study_to_dict(an.study),
+            "command": list(argv) if argv is not None else sys.argv,
+            "files": ["posterior.nc", "summary.json", "manifest.json"],
+        }
+        dump_json(manifest, tmp / "manifest.json")
+    return Path(out)

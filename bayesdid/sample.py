@@ -1,0 +1,184 @@
+"""The only caller of the sampler: compile once per model structure, sample, diagnose.
+
+Compiled models are cached per process by their :class:`~bayesdid.model.ModelSpec`; a new data set or
+new prior scales of the same structure re-sample through ``compiled.with_data(...)`` without a
+recompile. :data:`COMPILES` counts real compiles (tests assert on it).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import xarray as xr
+
+from .cells import Cells
+from .errors import DiagnosticsWarning
+from .model.terms import build_model, design_data, model_spec
+from .study import SamplerSettings
+
+__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "THRESHOLDS", "clear_cache"]
+
+#: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
+THRESHOLDS = {"rhat_max": 1.01, "ess_bulk_min": 400, "ess_tail_min": 400, "divergences": 0}
+
+COMPILES = {"count": 0}
+#: NUTS target acceptance rate; above nutpie's 0.8 default to keep divergences away from the
+#: variance parameters of few-member hierarchies (a handful of adopters).
+TARGET_ACCEPT = 0.9
+_CACHE: dict[tuple, tuple] = {}
+
+
+def clear_cache() -> None:
+    _CACHE.clear()
+
+
+@dataclass
+class Fit:
+    """A posterior with what produced it."""
+
+    cells: Cells
+    tree: "xr.DataTree"
+    spec: object
+    scales: dict
+    settings: SamplerSettings
+    timing: dict = field(default_factory=dict)
+    diagnostics: dict = field(default_factory=dict)
+
+    @property
+    def posterior(self) -> xr.Dataset:
+        return self.tree["posterior"].to_dataset()
+
+    def draws(self, name: str) -> np.ndarray:
+        """Draws of a variable with chain and draw stacked first: shape (S, ...)."""
+        da = self.posterior[name]
+        return da.stack(sample=("chain", "draw")).transpose("sample", ...).to_numpy()
+
+
+def _data_updates(cells: Cells, scales: dict, family: str) -> dict:
+    upd = {f"prior_{k}": np.asarray(float(v)) for k, v in scales.items()}
+    upd["outcome_location"] = np.asarray(float(cells.outcome_mean))
+    upd.update(design_data(cells))
+    if family == "gaussian":
+        from .model.gaussian import cell_arrays
+
+        upd.update(cell_arrays(cells))
+    else:  # pragma: no cover - other families register their arrays
+        from .model import families
+
+        upd.update(families.data_arrays(cells, family))
+    return upd
+
+
+def _compiled_for(cells: Cells, scales: dict, family: str):
+    import nutpie
+
+    spec = model_spec(cells, family)
+    key = spec.key()
+    if key in _CACHE:
+        compiled, names = _CACHE[key]
+        upd = {k: v for k, v in _data_updates(cells, scales, family).items() if k in names}
+        return compiled.with_data(**upd), spec, 0.0
+    model, spec = build_model(cells, scales, family)
+    t0 = time.perf_counter()
+    compiled = nutpie.compile_pymc_model(model)
+    dt = time.perf_counter() - t0
+    COMPILES["count"] += 1
+    _CACHE[key] = (compiled, set(model.named_vars))
+    return compiled, spec, dt
+
+
+def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: str = "gaussian",
+              progress: bool = False) -> Fit:
+    """Sample the posterior of the model of ``family`` on ``cells``.
+
+    Parameters
+    ----------
+    cells : Cells
+        The collapsed data.
+    scales : dict
+        Prior scale per name (see :data:`bayesdid.study.PRIOR_NAMES`).
+    settings : SamplerSettings
+        Chains, draws, tune and seed. The same seed gives the same draws.
+    progress : bool
+        Show nutpie's progress display.
+    """
+    import nutpie
+
+    compiled, spec, compile_s = _compiled_for(cells, scales, family)
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        tree = nutpie.sample(compiled, draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                             cores=min(settings.chains, 2), seed=settings.seed, progress_bar=progress,
+                             save_warmup=False, target_accept=TARGET_ACCEPT)
+    sample_s = time.perf_counter() - t0
+    fit = Fit(cells=cells, tree=tree, spec=spec, scales=dict(scales), settings=settings,
+              timing={"compile_s": compile_s, "sample_s": sample_s})
+    fit.diagnostics = diagnose(tree)
+    return fit
+
+
+def diagnose(tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float = THRESHOLDS["ess_bulk_min"],
+             var_names=None) -> dict:
+    """Convergence diagnostics over the sampled parameters, judged against Vehtari et al. (2021).
+
+    Returns a dict with ``rhat_max``, ``ess_bulk_min``, ``ess_tail_min``, ``divergences``, ``ok``,
+    the thresholds, the worst parameters and a plain ``advice`` when not ok.
+    """
+    import arviz as az
+
+    post = tree["posterior"].to_dataset()
+    names = var_names or list(post.data_vars)
+    sub = post[names]
+    chains = post.sizes.get("chain", 1)
+    rh = az.rhat(sub) if chains > 1 else None
+    eb = az.ess(sub, method="bulk")
+    et = az.ess(sub, method="tail")
+
+    def worst(ds, fn):
+        vals = {}
+        for v in ds.data_vars:
+            arr = np.asarray(ds[v]).ravel()
+            arr = arr[np.isfinite(arr)]
+            if arr.size:
+                vals[v] = float(fn(arr))
+        return vals
+
+    rvals = worst(rh, np.max) if rh is not None else {}
+    bvals = worst(eb, np.min)
+    tvals = worst(et, np.min)
+    stats = tree["sample_stats"].to_dataset()
+    div = int(np.asarray(stats["diverging"]).sum()) if "diverging" in stats else 0
+    out = {
+        "rhat_max": max(rvals.values()) if rvals else float("nan"),
+        "ess_bulk_min": min(bvals.values()) if bvals else float("nan"),
+        "ess_tail_min": min(tvals.values()) if tvals else float("nan"),
+        "divergences": div,
+        "thresholds": {"rhat_max": rhat_max, "ess_bulk_min": ess_min, "ess_tail_min": ess_min,
+                       "divergences": 0, "source": "Vehtari et al. (2021), Bayesian Analysis 16(2)"},
+    }
+    problems = []
+    if rvals and out["rhat_max"] >= rhat_max:
+        problems.append(f"R-hat {out['rhat_max']:.3f} >= {rhat_max} (worst: {max(rvals, key=rvals.get)})")
+    if chains < 2:
+        problems.append("one chain only: R-hat cannot be computed; run at least 2 chains")
+    if out["ess_bulk_min"] < ess_min:
+        problems.append(f"bulk ESS {out['ess_bulk_min']:.0f} < {ess_min} (worst: {min(bvals, key=bvals.get)})")
+    if out["ess_tail_min"] < ess_min:
+        problems.append(f"tail ESS {out['ess_tail_min']:.0f} < {ess_min} (worst: {min(tvals, key=tvals.get)})")
+    if div > 0:
+        problems.append(f"{div} divergent transition(s)")
+    out["ok"] = not problems
+    out["problems"] = problems
+    out["advice"] = ("" if not problems else
+                     "; ".join(problems) + ". Run more draws (--draws) or chains (--chains), and read the "
+                     "posterior as unreliable until these pass.")
+    return out
+
+
+def warn_if_bad(diagnostics: dict) -> None:
+    if not diagnostics.get("ok", True):
+        warnings.warn("sampler diagnostics fail: " + diagnostics["advice"], DiagnosticsWarning, stacklevel=2)

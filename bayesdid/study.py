@@ -1,0 +1,378 @@
+"""The study: what to analyse and how, validated once at the boundary.
+
+A study is written as a TOML file (see README.md, "The study file") or built in Python with
+:func:`make_study`. Either way it becomes a frozen :class:`Study`; every error names the key at
+fault (for example ``policy.adopters``), the expected form and the value found.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+from .errors import StudyError
+
+__all__ = [
+    "Columns",
+    "Policy",
+    "ModelOptions",
+    "PriorScales",
+    "SamplerSettings",
+    "Decision",
+    "Study",
+    "load_study",
+    "make_study",
+    "study_to_dict",
+    "PRIOR_NAMES",
+    "FAMILIES",
+]
+
+FAMILIES = ("gaussian", "binomial", "poisson", "negbinomial")
+
+#: Names of the prior scales and what each one governs (all in outcome units on the model scale).
+PRIOR_NAMES = {
+    "intercept": "sd of the normal prior on each group's mean level",
+    "baseline_spread": "scale of the half-normal prior on the spread of jurisdiction-group baselines",
+    "period": "sd of the normal prior on common period effects",
+    "group_period": "sd of the normal prior on the target group's own period effects",
+    "shock_spread": "scale of the half-normal prior on jurisdiction-period shocks shared by groups",
+    "gap_noise": "scale of the half-normal prior on sigma_gap, the structural noise of the group gap",
+    "effect": "sd of the normal prior on tau, the average effect of the policy",
+    "adopter_spread": "scale of the half-normal prior on the spread of effects across adopters",
+    "residual": "scale of the half-normal prior on each group's residual sd",
+    "covariate": "sd of the normal prior on each (centred) covariate coefficient",
+    "dispersion": "scale of the half-normal prior on 1/sqrt(phi) of the over-dispersed count family",
+}
+
+
+def _where(key: str, value: Any, expected: str, fix: str = "") -> StudyError:
+    msg = f"study key '{key}': expected {expected}, found {value!r}."
+    if fix:
+        msg += f" {fix}"
+    return StudyError(msg)
+
+
+def _check_keys(section: Mapping[str, Any], allowed: set[str], where: str) -> None:
+    unknown = sorted(set(section) - allowed)
+    if unknown:
+        raise StudyError(
+            f"unknown key(s) {unknown} in [{where}]; allowed keys are {sorted(allowed)}. "
+            "Check the spelling or remove them."
+        )
+
+
+def _get_str(d: Mapping[str, Any], key: str, where: str, *, required: bool = True) -> str | None:
+    if key not in d or d[key] is None:
+        if required:
+            raise StudyError(f"study key '{where}.{key}' is missing; give the column or value as text.")
+        return None
+    v = d[key]
+    if not isinstance(v, str) or not v.strip():
+        raise _where(f"{where}.{key}", v, "a non-empty string")
+    return v
+
+
+def _get_int(d, key, where, default, *, minimum=None):
+    v = d.get(key, default)
+    if isinstance(v, bool) or not isinstance(v, int):
+        raise _where(f"{where}.{key}", v, "an integer")
+    if minimum is not None and v < minimum:
+        raise _where(f"{where}.{key}", v, f"an integer of at least {minimum}")
+    return v
+
+
+def _get_float(d, key, where, default, *, positive=False, allow_none=True):
+    v = d.get(key, default)
+    if v is None and allow_none:
+        return None
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        raise _where(f"{where}.{key}", v, "a finite number")
+    if positive and v <= 0:
+        raise _where(f"{where}.{key}", v, "a positive number")
+    return float(v)
+
+
+def _get_bool(d, key, where, default):
+    v = d.get(key, default)
+    if not isinstance(v, bool):
+        raise _where(f"{where}.{key}", v, "true or false")
+    return v
+
+
+@dataclass(frozen=True)
+class Columns:
+    """Roles of the table's columns. ``group`` is None for a plain difference in differences."""
+
+    outcome: str
+    jurisdiction: str
+    period: str
+    group: str | None = None
+    unit: str | None = None
+    exposure: str | None = None
+    trials: str | None = None
+
+    def used(self) -> list[str]:
+        return [c for c in dataclasses.astuple(self) if c is not None]
+
+
+@dataclass(frozen=True)
+class Policy:
+    """The policy: which group it targets and when each adopter first applies it.
+
+    ``adopters`` is a tuple of (jurisdiction label, first treated period label) pairs, in the order
+    given. Start periods may differ (staggered adoption).
+    """
+
+    adopters: tuple[tuple[str, Any], ...]
+    target_group: str | None = None
+
+    @property
+    def starts(self) -> dict[str, Any]:
+        return dict(self.adopters)
+
+
+@dataclass(frozen=True)
+class ModelOptions:
+    family: str = "gaussian"
+    log_outcome: bool = False
+    covariates: str | None = None
+    missing: str = "error"  # or "drop"
+
+
+@dataclass(frozen=True)
+class PriorScales:
+    """Prior scales in outcome units on the model scale. None means: scaled to the data."""
+
+    intercept: float | None = None
+    baseline_spread: float | None = None
+    period: float | None = None
+    group_period: float | None = None
+    shock_spread: float | None = None
+    gap_noise: float | None = None
+    effect: float | None = None
+    adopter_spread: float | None = None
+    residual: float | None = None
+    covariate: float | None = None
+    dispersion: float | None = None
+
+
+@dataclass(frozen=True)
+class SamplerSettings:
+    chains: int = 2
+    draws: int = 1000
+    tune: int = 1000
+    seed: int = 20261202
+
+
+@dataclass(frozen=True)
+class Decision:
+    """A decision threshold on the headline effect.
+
+    For an outcome on the log scale the threshold is a relative change (``-0.05`` = a 5% cut);
+    otherwise it is in outcome units on the model scale. A negative threshold asks
+    P(effect < threshold), a positive one P(effect > threshold).
+    """
+
+    threshold: float | None = None
+
+
+@dataclass(frozen=True)
+class Study:
+    """A validated study. Build with :func:`load_study` or :func:`make_study`."""
+
+    table: Path
+    columns: Columns
+    policy: Policy
+    model: ModelOptions = field(default_factory=ModelOptions)
+    priors: PriorScales = field(default_factory=PriorScales)
+    sampler: SamplerSettings = field(default_factory=SamplerSettings)
+    decision: Decision = field(default_factory=Decision)
+    title: str = "bayesdid study"
+    period_order: tuple | None = None
+    placebo_lag: int | None = None
+
+    @property
+    def design(self) -> str:
+        return "DiD" if self.columns.group is None else "DDD"
+
+    def replace(self, **changes) -> "Study":
+        """A copy with some top-level fields replaced; nested settings take dicts or dataclasses."""
+        cur = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+        for k, v in changes.items():
+            if k not in cur:
+                raise StudyError(f"unknown study field '{k}'; allowed: {sorted(cur)}")
+            if isinstance(v, Mapping) and dataclasses.is_dataclass(cur[k]):
+                v = dataclasses.replace(cur[k], **v)
+            cur[k] = v
+        return _validated(Study(**cur))
+
+
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks"}
+_DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
+              "period_order"}
+
+
+def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
+    _check_keys(raw, _TOP_KEYS, "top level")
+    data = raw.get("data")
+    if not isinstance(data, Mapping):
+        raise StudyError("the study needs a [data] section naming the table and the column roles.")
+    _check_keys(data, _DATA_KEYS, "data")
+    table = _get_str(data, "table", "data")
+    path = Path(table)
+    if not path.is_absolute():
+        path = (base_dir / path).resolve()
+    cols = Columns(
+        outcome=_get_str(data, "outcome", "data"),
+        jurisdiction=_get_str(data, "jurisdiction", "data"),
+        period=_get_str(data, "period", "data"),
+        group=_get_str(data, "group", "data", required=False),
+        unit=_get_str(data, "unit", "data", required=False),
+        exposure=_get_str(data, "exposure", "data", required=False),
+        trials=_get_str(data, "trials", "data", required=False),
+    )
+    order = data.get("period_order")
+    if order is not None and (not isinstance(order, list) or not order):
+        raise _where("data.period_order", order, "a non-empty list of period labels in time order")
+
+    pol = raw.get("policy")
+    if not isinstance(pol, Mapping):
+        raise StudyError("the study needs a [policy] section with 'adopters' (and 'target_group' for DDD).")
+    _check_keys(pol, {"adopters", "target_group"}, "policy")
+    adopters = pol.get("adopters")
+    if not isinstance(adopters, Mapping) or not adopters:
+        raise _where("policy.adopters", adopters,
+                     "a table of adopting jurisdiction = first treated period, e.g. {\"Norvale\" = 7}")
+    policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
+                    target_group=_get_str(pol, "target_group", "policy", required=False))
+
+    m = raw.get("model", {})
+    _check_keys(m, {"family", "log_outcome", "covariates", "missing"}, "model")
+    model = ModelOptions(
+        family=m.get("family", "gaussian"),
+        log_outcome=_get_bool(m, "log_outcome", "model", False),
+        covariates=_get_str(m, "covariates", "model", required=False),
+        missing=m.get("missing", "error"),
+    )
+    p = raw.get("priors", {})
+    _check_keys(p, set(PRIOR_NAMES), "priors")
+    priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
+    s = raw.get("sampler", {})
+    _check_keys(s, {"chains", "draws", "tune", "seed"}, "sampler")
+    sampler = SamplerSettings(
+        chains=_get_int(s, "chains", "sampler", 2, minimum=1),
+        draws=_get_int(s, "draws", "sampler", 1000, minimum=10),
+        tune=_get_int(s, "tune", "sampler", 1000, minimum=10),
+        seed=_get_int(s, "seed", "sampler", 20261202, minimum=0),
+    )
+    d = raw.get("decision", {})
+    _check_keys(d, {"threshold"}, "decision")
+    decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
+    c = raw.get("checks", {})
+    _check_keys(c, {"placebo_lag"}, "checks")
+    lag = c.get("placebo_lag")
+    if lag is not None:
+        lag = _get_int(c, "placebo_lag", "checks", None, minimum=1)
+    title = raw.get("title", "bayesdid study")
+    if not isinstance(title, str):
+        raise _where("title", title, "a string")
+    return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
+                            sampler=sampler, decision=decision, title=title,
+                            period_order=tuple(order) if order else None, placebo_lag=lag))
+
+
+def _validated(study: Study) -> Study:
+    """Cross-field checks that do not need the table."""
+    if study.model.family not in FAMILIES:
+        raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
+    if study.model.missing not in ("error", "drop"):
+        raise _where("model.missing", study.model.missing, "'error' or 'drop'")
+    if study.model.log_outcome and study.model.family != "gaussian":
+        raise _where("model.log_outcome", True, "false for non-gaussian families",
+                     "Binomial and count families already use a logit or log link.")
+    if study.columns.group is not None and study.policy.target_group is None:
+        raise StudyError("study key 'policy.target_group' is missing: with a group column "
+                         f"('{study.columns.group}') the study is a DDD and must name the target group level.")
+    if study.columns.group is None and study.policy.target_group is not None:
+        raise StudyError("study key 'policy.target_group' is set but 'data.group' is not: name the group "
+                         "column for a DDD, or drop target_group for a DiD.")
+    if study.model.family == "poisson" or study.model.family == "negbinomial":
+        if study.columns.exposure is None:
+            raise StudyError(f"family '{study.model.family}' needs 'data.exposure' (person-time per row); "
+                             "add a column of ones if every row counts one unit.")
+    if study.columns.trials is not None and study.model.family != "binomial":
+        raise _where("data.trials", study.columns.trials, "no trials column unless model.family = 'binomial'")
+    names = [a for a, _ in study.policy.adopters]
+    if len(set(names)) != len(names):
+        raise _where("policy.adopters", names, "each adopter once")
+    for a, start in study.policy.adopters:
+        if isinstance(start, bool) or not isinstance(start, (int, str, float)):
+            raise _where(f"policy.adopters.{a}", start, "a period label (number or text)")
+    return study
+
+
+def load_study(path: str | Path) -> Study:
+    """Read and validate a study file (TOML).
+
+    Raises
+    ------
+    StudyError
+        If the file is missing, not valid TOML, or any key is wrong.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise StudyError(f"study file '{path}' does not exist; give the path to a .toml study file.")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyError(f"study file '{path}' is not valid TOML: {exc}. Fix the line it names.") from None
+    return _parse(raw, path.parent.resolve())
+
+
+def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
+               log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
+               trials=None, unit=None, priors=None, chains=2, draws=1000, tune=1000, seed=20261202,
+               threshold=None, title="bayesdid study", period_order=None, placebo_lag=None) -> Study:
+    """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
+    raw: dict[str, Any] = {
+        "title": title,
+        "data": {k: v for k, v in dict(table=str(table), outcome=outcome, jurisdiction=jurisdiction,
+                                         period=period, group=group, unit=unit, exposure=exposure,
+                                         trials=trials, period_order=period_order).items() if v is not None},
+        "policy": {k: v for k, v in dict(adopters=dict(adopters), target_group=target_group).items()
+                   if v is not None},
+        "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
+                                        missing=missing).items() if v is not None},
+        "priors": dict(priors or {}),
+        "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
+        "decision": {} if threshold is None else {"threshold": threshold},
+        "checks": {} if placebo_lag is None else {"placebo_lag": placebo_lag},
+    }
+    return _parse(raw, Path.cwd())
+
+
+def study_to_dict(study: Study) -> dict[str, Any]:
+    """The study as run, in the layout of the study file (for manifests and sweeps)."""
+    c = study.columns
+    data = {k: v for k, v in dataclasses.asdict(c).items() if v is not None}
+    data["table"] = str(study.table)
+    if study.period_order:
+        data["period_order"] = list(study.period_order)
+    out: dict[str, Any] = {
+        "title": study.title,
+        "data": data,
+        "policy": {"adopters": dict(study.policy.adopters)},
+        "model": {k: v for k, v in dataclasses.asdict(study.model).items() if v is not None},
+        "priors": {k: v for k, v in dataclasses.asdict(study.priors).items() if v is not None},
+        "sampler": dataclasses.asdict(study.sampler),
+        "decision": {k: v for k, v in dataclasses.asdict(study.decision).items() if v is not None},
+    }
+    if study.policy.target_group is not None:
+        out["policy"]["target_group"] = study.policy.target_group
+    if study.placebo_lag is not None:
+        out["checks"] = {"placebo_lag": study.placebo_lag}
+    return out
