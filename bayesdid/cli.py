@@ -47,9 +47,10 @@ def _add_sampling(p):
 
 def _fit_and_write(study, out, args, argv):
     from .report.words import headline
-    from .run import analyse, write_run
+    from .run import analyse, atomic_folder, write_run
     from .sample import warn_if_bad
 
+    atomic_folder(out, replace=args.replace).check()
     an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say)
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["summarize", "hdi", "Effect", "att_weights", "compute_effects", "beyond_text"]
+__all__ = ["summarize", "hdi", "Effect", "att_weights", "compute_effects", "beyond_text", "percent_change"]
 
 
 def hdi(x: np.ndarray, prob: float = 0.9) -> tuple[float, float]:
@@ -93,6 +93,11 @@ class Effect:
         return "\n".join(lines)
 
 
+def percent_change(b):
+    """Relative change implied by a difference b on the log scale: exp(b) - 1."""
+    return np.expm1(b)
+
+
 def att_weights(cells) -> np.ndarray:
     """w_j: treated target-group rows of adopter j over all treated target-group rows."""
     treated_rows = (cells.n * cells.treated).sum(axis=(1, 2))[cells.adopters]
@@ -113,7 +118,7 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     out = {"effect": Effect("ATT", "difference in log outcome" if log else "difference in outcome",
                             "model", att, thr_model)}
     if log:
-        out["effect_percent"] = Effect("ATT", "percent change, exp(ATT) - 1", "percent", np.expm1(att), threshold)
+        out["effect_percent"] = Effect("ATT", "percent change, exp(ATT) - 1", "percent", percent_change(att), threshold)
     per = []
     for a, j in enumerate(cells.adopters):
         e = Effect(cells.jurisdictions[j], "difference in log outcome" if log else "difference in outcome",
@@ -122,7 +127,7 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
                "weight": float(w[a]), **e.summary}
         if log:
             row["percent"] = Effect(cells.jurisdictions[j], "percent change", "percent",
-                                    np.expm1(tau_a[:, a]), threshold).summary
+                                    percent_change(tau_a[:, a]), threshold).summary
         per.append(row)
     out["per_adopter"] = per
     return out

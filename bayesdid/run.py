@@ -181,11 +181,16 @@ class atomic_folder:
         self.target = Path(target)
         self.replace = replace
 
-    def __enter__(self) -> Path:
+    def check(self) -> None:
+        """Raise before any work when the target may not be written."""
         t = self.target
         if t.exists() and (not t.is_dir() or any(t.iterdir())) and not self.replace:
             raise BayesDidError(f"output folder '{t}' already exists and is not empty; choose another --out "
                                 "or pass --replace to swap it for the new results.")
+
+    def __enter__(self) -> Path:
+        t = self.target
+        self.check()
         t.parent.mkdir(parents=True, exist_ok=True)
         self.tmp = Path(tempfile.mkdtemp(prefix=f".{t.name}.partial-", dir=t.parent))
         return self.tmp

@@ -103,6 +103,11 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.M
         sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
         if cells.design == "DDD":
             sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
+            # Adopters' own jurisdiction-period shocks are not shrunk toward the comparisons'
+            # (their reference group identifies them, as the triple difference intends): they
+            # get the wide period-effect prior. The target group's gap noise stays pooled.
+            ia = S["is_adopter"][:, None]
+            sigma_shock = ia * S["period"] + (1.0 - ia) * sigma_shock
             m_r, sig_r = m[:, cells.reference, :], sigma[cells.reference]
         else:
             sigma_shock = pt.as_tensor(0.0)
@@ -133,7 +138,8 @@ def pointwise_loglik(fit, m: np.ndarray | None = None) -> np.ndarray:
     if cells.design == "DDD":
         r = cells.reference
         m_r, sig_r = m[:, :, r, :], sigma[:, r][:, None, None]
-        ss = fit.draws("sigma_shock")[:, None, None]
+        ia = (cells.start < cells.shape[2]).astype(float)[None, :, None]
+        ss = ia * fit.scales["period"] + (1.0 - ia) * fit.draws("sigma_shock")[:, None, None]
     else:
         m_r, sig_r, ss = np.zeros((S, 1, 1)), np.ones((S, 1, 1)), np.zeros((S, 1, 1))
     q = cells.target

@@ -86,7 +86,7 @@ def design_data(cells: Cells) -> dict[str, np.ndarray]:
     by_adopter = np.zeros((len(adopters), J, G, T))
     for a, j in enumerate(adopters):
         by_adopter[a, j] = treat[j]
-    return {"treat_by_adopter": by_adopter}
+    return {"treat_by_adopter": by_adopter, "is_adopter": (cells.start < T).astype(float)}
 
 
 ADOPTER_CENTRED = [False]
@@ -156,11 +156,17 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float]):
 
     mu = pm.Normal("mu_group", loc, S["intercept"], dims=("group",))
     sigma_b = pm.HalfNormal("sigma_baseline", S["baseline_spread"])
+    # Comparison jurisdictions' baselines are pooled; adopters' baselines get the wide intercept
+    # prior instead, so that an adopter whose level differs from the comparisons (selection into
+    # the policy often goes with level) is never shrunk toward them, which would leak the level
+    # difference into the effect. `is_adopter` is data, so placebos reassign it without a recompile.
+    is_adopter = pm.Data("is_adopter", (cells.start < T).astype(float), dims=("jurisdiction",))
+    scale_j = (is_adopter * S["intercept"] + (1.0 - is_adopter) * sigma_b)[:, None]
     if baseline_centred(cells):
-        b = pm.Normal("baseline", mu[None, :], sigma_b, dims=("jurisdiction", "group"))
+        b = pm.Normal("baseline", mu[None, :], scale_j, dims=("jurisdiction", "group"))
     else:
         z_b = pm.Normal("z_baseline", 0.0, 1.0, dims=("jurisdiction", "group"))
-        b = pm.Deterministic("baseline", mu[None, :] + sigma_b * z_b, dims=("jurisdiction", "group"))
+        b = pm.Deterministic("baseline", mu[None, :] + scale_j * z_b, dims=("jurisdiction", "group"))
 
     a_raw = pm.Normal("period_raw", 0.0, S["period"], shape=(T - 1,))
     a = pt.dot(lift, a_raw)
@@ -184,6 +190,7 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float]):
     else:
         tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
     m = m + pt.tensordot(tau_a, treat, axes=1)
+    S["is_adopter"] = is_adopter
     return m, S
 
 

@@ -1,0 +1,42 @@
+"""Shared fixtures. Compiled models are cached per process by bayesdid.sample, so fixtures that fit
+the same model structure re-sample without a recompile; keep draws small."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from bayesdid import make_study
+from bayesdid.cells import collapse
+from bayesdid.simulate import Scenario, simulate
+
+warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz_stats")
+
+
+def sim_study(tmp_path_factory, sc: Scenario, seed: int, name: str, **kw):
+    """Simulate, write the table, return (study, cells, frame, truth)."""
+    frame, truth = simulate(sc, seed)
+    d = tmp_path_factory.mktemp(name)
+    path = d / "table.csv"
+    frame.to_csv(path, index=False)
+    ddd = sc.groups == 2
+    study = make_study(table=path, outcome="y", jurisdiction="region", period="period",
+                       group="group" if ddd else None, target_group="target" if ddd else None,
+                       adopters=truth["starts"], **kw)
+    return study, collapse(study, frame), frame, truth
+
+
+@pytest.fixture(scope="session")
+def organ_donations() -> pd.DataFrame:
+    """causaldata package, data set organ_donations (Kessler and Roth 2014)."""
+    from causaldata import organ_donations as od
+
+    return od.load_pandas().data.copy()
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(12345)
