@@ -84,17 +84,22 @@ class Browser:
         self.ws.send(json.dumps({"id": mid, "method": method, "params": params}))
         t0 = time.monotonic()
         while time.monotonic() - t0 < self.timeout:
-            msg = json.loads(self.ws.recv())
+            msg = self._pump()
             if msg.get("id") == mid:
                 if "error" in msg:
                     raise RuntimeError(f"{method}: {msg['error']}")
                 return msg.get("result", {})
-            if "method" in msg:
-                self.events.append(msg)
-                if msg["method"] == "Page.javascriptDialogOpening":  # never leave a dialog blocking the page
-                    self.ws.send(json.dumps({"id": next(self._ids), "method": "Page.handleJavaScriptDialog",
-                                             "params": {"accept": True}}))
         raise TimeoutError(method)
+
+    def _pump(self) -> dict:
+        """Read one message; record events; dismiss any dialog so it cannot block the page."""
+        msg = json.loads(self.ws.recv())
+        if "method" in msg:
+            self.events.append(msg)
+            if msg["method"] == "Page.javascriptDialogOpening":
+                self.ws.send(json.dumps({"id": next(self._ids), "method": "Page.handleJavaScriptDialog",
+                                         "params": {"accept": True}}))
+        return msg
 
     def wait_for(self, method: str, since: int = 0) -> dict:
         """The first event ``method`` recorded at index ``since`` or later (reading more if needed)."""
@@ -103,9 +108,7 @@ class Browser:
             for e in self.events[since:]:
                 if e["method"] == method:
                     return e
-            msg = json.loads(self.ws.recv())
-            if "method" in msg:
-                self.events.append(msg)
+            self._pump()
         raise TimeoutError(method)
 
     def open(self, path: Path) -> None:

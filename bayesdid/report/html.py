@@ -299,11 +299,10 @@ def _event_time_section(run: RunFolder) -> str:
         lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
         if k and m and lo and hi:
             d = df.sort_values(k)
-            out.append(_img(plots.band_figure(
-                [{"label": "effect", "x": d[k].to_numpy(float), "mid": d[m].to_numpy(float),
-                  "lower": d[lo].to_numpy(float), "upper": d[hi].to_numpy(float)}],
+            out.append(_img(plots.event_time_figure(
+                d[k].to_numpy(float), d[m].to_numpy(float), d[lo].to_numpy(float), d[hi].to_numpy(float),
                 xlabel="event time k (periods since the policy started; k = -1 is the reference)",
-                ylabel="effect (model scale)", vline=-0.5, vline_label="policy starts"),
+                ylabel="effect (model scale)"),
                 "Effects by event time with intervals"))
             out.append('<p class="caption">Effect at each event time with its interval. Leads (k &lt; -1) '
                        'should sit near zero if the groups were on parallel paths before the policy.</p>')
@@ -340,7 +339,7 @@ def _pretrend_section(run: RunFolder) -> str:
                                "observed": part[ob].to_numpy(float), "lower": part[lo].to_numpy(float),
                                "upper": part[hi].to_numpy(float),
                                "mid": part[mid].to_numpy(float) if mid else None})
-            out.append(_img(plots.band_figure(series, xlabel=f"{x.replace('_', ' ')} (before the policy)",
+            out.append(_img(plots.band_figure(series, xlabel=f"{x.replace('_', ' ')}",
                                               ylabel="target minus reference gap (model scale)",
                                               xticks=labels),
                             "Observed group gap of the adopters against the posterior predictive band"))
@@ -651,7 +650,7 @@ h3 { font-size: 16px; margin: 20px 0 6px; }
 nav ol { columns: 2; font-size: 14px; color: var(--muted); }
 nav a { color: var(--pass); }
 figure { margin: 10px 0 4px; }
-figure img { max-width: 100%; height: auto; display: block; }
+figure img { width: 100%; max-width: 780px; height: auto; display: block; }
 .caption { color: var(--muted); font-size: 13px; margin-top: 2px; }
 table { border-collapse: collapse; margin: 8px 0 12px; font-size: 14px; width: 100%; }
 table.compact { width: auto; }

@@ -20,7 +20,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-__all__ = ["PALETTE", "svg_of", "effect_figure", "interval_figure", "band_figure", "comparison_figure"]
+__all__ = ["PALETTE", "svg_of", "effect_figure", "interval_figure", "event_time_figure", "band_figure", "comparison_figure"]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
 #: readings, plum for flags, slate for reference lines, a pale blue for bands.
@@ -131,37 +131,65 @@ def interval_figure(labels: list[str], mid: list[float], lower: list[float], upp
         return svg_of(fig)
 
 
-def band_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list | None = None,
-                vline: float | None = None, vline_label: str = "") -> str:
-    """Lines of observed values over a shaded band, one panel row of series.
-
-    Each series: {"label", "x", "observed", "lower", "upper", "mid"} (``lower``/``upper``/``mid``
-    optional). Used for the event-time effects (points with intervals) and the pre-trend band.
-    """
+def event_time_figure(k, mid, lower, upper, *, xlabel: str, ylabel: str) -> str:
+    """Effect at each event time k as a point with its interval; the policy start marked between -1 and 0."""
     with plt.rc_context(_RC):
-        fig, ax = _fig(7.0, 3.6)
-        shades = [PALETTE["posterior"], PALETTE["alternative"], PALETTE["flag"], PALETTE["reference"]]
-        for i, s in enumerate(series):
-            c = shades[i % len(shades)]
-            x = np.asarray(s["x"], dtype=float)
-            if s.get("lower") is not None and s.get("upper") is not None:
-                ax.fill_between(x, s["lower"], s["upper"], color=c, alpha=0.18, lw=0,
-                                label=f"{s['label']}: predictive band" if s.get("observed") is not None
-                                else f"{s['label']}: interval")
-            if s.get("mid") is not None:
-                ax.plot(x, s["mid"], color=c, lw=1.2, ls="--")
-            if s.get("observed") is not None:
-                ax.plot(x, s["observed"], color=c, lw=2, marker="o", ms=4, label=f"{s['label']}: observed")
-            elif s.get("mid") is not None:
-                ax.plot(x, s["mid"], color=c, lw=0, marker="o", ms=5, label=f"{s['label']}: estimate")
+        fig, ax = _fig(7.0, 3.4)
+        k = np.asarray(k, dtype=float)
+        mid, lower, upper = (np.asarray(v, dtype=float) for v in (mid, lower, upper))
+        lead = k < 0
+        for sel, c, m, lab in ((lead, PALETTE["reference"], "o", "before the policy (leads)"),
+                               (~lead, PALETTE["posterior"], "o", "after the policy starts")):
+            if sel.any():
+                ax.errorbar(k[sel], mid[sel], yerr=[mid[sel] - lower[sel], upper[sel] - mid[sel]], fmt=m, color=c,
+                            ms=6, lw=2, capsize=0, label=lab)
         ax.axhline(0, color=PALETTE["reference"], lw=1)
-        if vline is not None:
-            ax.axvline(vline, color=PALETTE["threshold"], lw=1.5, ls="--", label=vline_label or None)
-        if xticks is not None:
-            ax.set_xticks(np.arange(len(xticks)), [str(t) for t in xticks], rotation=45, ha="right")
+        ax.axvline(-0.5, color=PALETTE["threshold"], lw=1.5, ls="--", label="policy starts")
+        ax.set_xticks(k)
         ax.set_xlabel(xlabel)
         ax.set_ylabel(ylabel)
-        ax.legend(frameon=False, fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        from matplotlib.lines import Line2D
+
+        handles = [Line2D([], [], color=PALETTE["reference"], marker="o", lw=2),
+                   Line2D([], [], color=PALETTE["posterior"], marker="o", lw=2),
+                   Line2D([], [], color=PALETTE["threshold"], lw=1.5, ls="--")]
+        ax.legend(handles, ["before the policy (leads)", "after the policy starts", "policy starts"], frameon=False,
+                  fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        return svg_of(fig)
+
+
+def band_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list | None = None) -> str:
+    """Observed path over a shaded predictive band, one panel per series (shared axes).
+
+    Each series: {"label", "x", "observed", "lower", "upper", "mid" (optional)}.
+    """
+    n = max(1, len(series))
+    cols = min(n, 3)
+    rows = int(np.ceil(n / cols))
+    with plt.rc_context(_RC):
+        fig, axes = plt.subplots(rows, cols, figsize=(7.0, 2.9 * rows + 0.4), sharex=True, sharey=True,
+                                 layout="constrained", squeeze=False)
+        for i, ax in enumerate(axes.ravel()):
+            if i >= n:
+                ax.set_visible(False)
+                continue
+            s = series[i]
+            x = np.asarray(s["x"], dtype=float)
+            ax.grid(True, color=PALETTE["grid"], linewidth=0.8)
+            ax.set_axisbelow(True)
+            ax.fill_between(x, s["lower"], s["upper"], color=PALETTE["band"], lw=0, label="predictive band")
+            if s.get("mid") is not None:
+                ax.plot(x, s["mid"], color=PALETTE["posterior"], lw=1.2, ls="--", label="predicted")
+            ax.plot(x, s["observed"], color=PALETTE["alternative"], lw=2, marker="o", ms=4, label="observed")
+            ax.axhline(0, color=PALETTE["reference"], lw=1)
+            ax.set_title(s["label"], fontsize=10)
+            if xticks is not None:
+                ax.set_xticks(np.arange(len(xticks)), [str(t) for t in xticks], rotation=45, ha="right",
+                              fontsize=8)
+        fig.supxlabel(xlabel, fontsize=10)
+        fig.supylabel(ylabel, fontsize=10)
+        handles, labels = axes.ravel()[0].get_legend_handles_labels()
+        fig.legend(handles, labels, frameon=False, fontsize=8.5, loc="outside upper center", ncols=len(labels))
         return svg_of(fig)
 
 
