@@ -131,6 +131,8 @@ def _optional_steps(study, path):
             _say(f"{name}: done")
         except BayesDidError as exc:
             _say(f"{name}: not run ({exc}); the report marks it as absent")
+        except Exception as exc:  # noqa: BLE001 - a failing optional step must not cost the user the report
+            _say(f"{name}: not run, it failed with {type(exc).__name__}: {exc}; the report marks it as absent")
     _write_report_step(study, path)
 
 

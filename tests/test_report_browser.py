@@ -10,6 +10,7 @@ chromium first), in which case a missing browser fails the test.
 
 from __future__ import annotations
 
+import base64
 import json
 import os
 from pathlib import Path
@@ -83,6 +84,7 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
         b.open(page)
         facts = b.evaluate(PAGE_FACTS)
         b.screenshot(tmp_path / "xss.png")
+        pdf = base64.b64decode(b.send("Page.printToPDF", printBackground=True)["data"])
         assert b.dialogs() == []
         assert b.errors() == []
         assert _network(b, page) == []
@@ -91,6 +93,7 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
     assert facts["scripts"] == 0 and not facts["pwned"]
     assert len(facts["images"]) == 6 and all(w > 0 for w, _, _ in facts["images"])
     assert facts["headings"] == [h for _, h in HEADINGS]
+    assert pdf[:5] == b"%PDF-" and pdf.count(b"/Type /Page") - pdf.count(b"/Type /Pages") >= 3  # prints
 
 
 def test_the_detectors_see_a_script_a_console_error_and_a_fetch(tmp_path):

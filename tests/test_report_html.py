@@ -108,3 +108,16 @@ def test_a_broken_checks_table_is_reported_not_fatal(tmp_path):
     sections = dict(re.findall(r'<section id="([\w-]+)">(.*?)</section>', text, flags=re.S))
     assert "the event-time table (checks/event_time.csv" in sections["event-time"]
     assert "leads are near zero" in sections["event-time"]  # the status from checks.json still shows
+
+
+def test_did_run_reads_as_difference_in_differences(tmp_path):
+    run = write_fake_run(tmp_path / "did", checks=False, sweep=False)
+    s = json.loads((run / "summary.json").read_text())
+    s["data"].update(groups=["all"], design="DiD")
+    s["model"]["design"] = "DiD"
+    (run / "summary.json").write_text(json.dumps(s))
+    text = render_report(run)
+    sections = dict(re.findall(r'<section id="([\w-]+)">(.*?)</section>', text, flags=re.S))
+    assert "difference in differences (DiD)" in sections["assumptions"]
+    assert "triple difference" not in sections["assumptions"]
+    assert "Bayesian DiD analysis" in text

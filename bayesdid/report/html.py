@@ -226,8 +226,9 @@ def _effect_section(run: RunFolder) -> str:
     draws = run.effect_draws()
     if draws is not None and draws.size > 1:
         shown = np.expm1(draws) if pct else draws  # display scale: percent = exp(ATT) - 1 (effects.py)
-        xlabel = "change in the outcome (%), target group in adopting jurisdictions" if pct else \
-            "change in the outcome (outcome units), target group in adopting jurisdictions"
+        who = "target group in adopting jurisdictions" if s["data"].get("design") == "DDD" else \
+            "adopting jurisdictions"
+        xlabel = f"change in the outcome (%), {who}" if pct else f"change in the outcome (outcome units), {who}"
         out.append(_img(plots.effect_figure(shown, interval=tuple(e["eti_90"]), threshold=e.get("threshold"),
                                             scale=100.0 if pct else 1.0, xlabel=xlabel, median=e["median"]),
                         "Posterior distribution of the effect with its 90% interval and the decision threshold"))
@@ -665,6 +666,7 @@ td { word-break: break-word; }
 .note { color: var(--muted); font-size: 14px; }
 .caution { border: 1px solid var(--line); padding: 10px 14px; }
 code { font-size: 13px; background: #f1f2f4; padding: 1px 4px; word-break: break-word; }
+@page { margin: 16mm 14mm; }
 @media print {
   body { font-size: 11pt; }
   main { max-width: none; padding: 0; }
