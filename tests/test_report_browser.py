@@ -29,6 +29,10 @@ if CHROMIUM is None:
                            "run `apt-get install -y chromium`")
     pytest.skip("chromium not installed (apt-get install -y chromium)", allow_module_level=True)
 
+#: Where the full-page screenshots are kept for inspection (runs/ is not tracked by git).
+SCREENS = Path(os.environ.get("BAYESDID_SCREENSHOTS", Path(__file__).resolve().parent.parent / "runs" / "screens"))
+SCREENS.mkdir(parents=True, exist_ok=True)
+
 PAGE_FACTS = """(() => ({
   images: [...document.images].map(i => [i.naturalWidth, i.naturalHeight, i.complete]),
   headings: [...document.querySelectorAll('h2')].map(h => h.textContent),
@@ -54,14 +58,14 @@ def demo_run(tmp_path_factory):
     return out
 
 
-def test_demo_report_in_chromium(demo_run, tmp_path_factory, capsys):
+def test_demo_report_in_chromium(demo_run, capsys):
     page = demo_run / "report.html"
     assert page.is_file(), "bayesdid demo must end with the report"
     summary = json.loads((demo_run / "summary.json").read_text())
     with Browser(CHROMIUM) as b:
         b.open(page)
         facts = b.evaluate(PAGE_FACTS)
-        shot = b.screenshot(tmp_path_factory.mktemp("screens") / "demo_report.png")
+        shot = b.screenshot(SCREENS / "demo_report.png")
         assert b.errors() == []
         assert _network(b, page) == []
         assert b.dialogs() == []
@@ -83,7 +87,7 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
     with Browser(CHROMIUM) as b:
         b.open(page)
         facts = b.evaluate(PAGE_FACTS)
-        b.screenshot(tmp_path / "xss.png")
+        b.screenshot(SCREENS / "script_name_report.png")
         pdf = base64.b64decode(b.send("Page.printToPDF", printBackground=True)["data"])
         assert b.dialogs() == []
         assert b.errors() == []

@@ -491,9 +491,13 @@ def _crosscheck_section(run: RunFolder) -> str:
     labels[2] += f"\n({pnote('p_cr1')}" + (f", s.e. {ls['se_cr1']:.3g})" if "se_cr1" in ls else ")")
     labels[3] += f"\n({pnote('p_wild')})"
     labels[4] += f"\n({pnote('p_permutation')}; point estimate only)"
+    if not any(k in ls for k in ("se_cr1", "p_cr1", "ci_cr1_95", "p_wild", "ci_wild_95", "p_permutation")):
+        labels, mid, lower, upper = (v[:3] for v in (labels, mid, lower, upper))
+        labels[2] = "least squares\n(point estimate; inference not in this run)"
     P, A = plots.PALETTE["posterior"], plots.PALETTE["alternative"]
+    n = len(labels)
     fig = plots.interval_figure(
-        labels, mid, lower, upper, colors=[P, P, A, A, A], markers=["o", "o", "s", "s", "s"],
+        labels, mid, lower, upper, colors=[P, P, A, A, A][:n], markers=["o", "o", "s", "s", "s"][:n],
         xlabel="effect on the model scale" + (" (difference in log outcome)" if _is_percent(s) else
                                               " (outcome units)"),
         legend=[("posterior median with interval", P, "o"), ("least-squares estimate with 95% interval", A, "s")])
