@@ -121,3 +121,13 @@ def test_did_run_reads_as_difference_in_differences(tmp_path):
     assert "difference in differences (DiD)" in sections["assumptions"]
     assert "triple difference" not in sections["assumptions"]
     assert "Bayesian DiD analysis" in text
+
+
+def test_a_checks_file_without_a_section_says_which_section_is_missing(tmp_path):
+    run = write_fake_run(tmp_path / "run", sweep=False)
+    cj = json.loads((run / "checks" / "checks.json").read_text())
+    del cj["placebo_space"]
+    (run / "checks" / "checks.json").write_text(json.dumps(cj))
+    sections = dict(re.findall(r'<section id="([\w-]+)">(.*?)</section>', render_report(run), flags=re.S))
+    assert "checks/checks.json has no &#x27;placebo_space&#x27; section" in sections["placebo"]
+    assert "no effect at the fake start" in sections["placebo"]  # the placebo in time is still shown

@@ -288,10 +288,18 @@ def _check_status(run: RunFolder, name: str) -> tuple[dict | None, str]:
     return sec, "\n".join(bits)
 
 
+def _why_no_check(run: RunFolder, name: str) -> str:
+    if run.checks is None:
+        return "the checks have not been run for this folder: there is no checks/checks.json"
+    if run.checks.get("status") == "unreadable":
+        return run.checks.get("reason", "checks/checks.json cannot be read")
+    return f"checks/checks.json has no '{name}' section"
+
+
 def _event_time_section(run: RunFolder) -> str:
     sec, head = _check_status(run, "event_time")
     if sec is None:
-        return _absent("event-time effects (the checks have not been run for this folder).", CHECKS_COMMAND)
+        return _absent(f"event-time effects ({_why_no_check(run, 'event_time')}).", CHECKS_COMMAND)
     out = [head]
     df = run.table("event_time")
     if df is not None:
@@ -316,7 +324,8 @@ def _event_time_section(run: RunFolder) -> str:
 def _pretrend_section(run: RunFolder) -> str:
     sec, head = _check_status(run, "pretrend")
     if sec is None:
-        return _absent("the posterior predictive pre-trend check (the checks have not been run).", CHECKS_COMMAND)
+        return _absent(f"the posterior predictive pre-trend check ({_why_no_check(run, 'pretrend')}).",
+                       CHECKS_COMMAND)
     out = [head]
     df = run.table("pretrend")
     if df is not None:
@@ -357,7 +366,7 @@ def _pretrend_section(run: RunFolder) -> str:
 def _comparison_section(run: RunFolder) -> str:
     sec, head = _check_status(run, "comparison")
     if sec is None:
-        return _absent("the check of the comparison jurisdictions (the checks have not been run).",
+        return _absent(f"the check of the comparison jurisdictions ({_why_no_check(run, 'comparison')}).",
                        CHECKS_COMMAND)
     out = [head]
     df = run.table("comparison")
@@ -393,7 +402,7 @@ def _placebo_section(run: RunFolder) -> str:
         out.append(f"<h3>{esc(title)}</h3>")
         sec, head = _check_status(run, name)
         out.append(head if sec is not None else
-                   _absent(f"the {name.replace('_', ' ')} check (the checks have not been run).", CHECKS_COMMAND))
+                   _absent(f"the {name.replace('_', ' ')} check ({_why_no_check(run, name)}).", CHECKS_COMMAND))
     return "\n".join(out)
 
 
