@@ -45,7 +45,7 @@ def _add_sampling(p):
     p.add_argument("--quiet", action="store_true", help="no progress display")
 
 
-def _fit_and_write(study, out, args, argv):
+def _fit_and_write(study, out, args, argv, then=None):
     from .report.words import headline
     from .run import analyse, atomic_folder, write_run
     from .sample import warn_if_bad
@@ -56,6 +56,8 @@ def _fit_and_write(study, out, args, argv):
     summary = json.loads((path / "summary.json").read_text())
     print(headline(summary))
     print(f"results in {path}")
+    if then is not None:
+        then(study, path)
     diag = an.fit.diagnostics
     if not diag["ok"]:
         _say("WARNING: " + diag["advice"])
@@ -96,7 +98,57 @@ def cmd_demo(args, argv):
         mod.make(args.case)
     study = _overrides(load_study(d / "study.toml"), args)
     _say(f"demo case '{args.case}': {study.title} (invented data)")
-    return _fit_and_write(study, args.out, args, argv)
+    return _fit_and_write(study, args.out, args, argv, then=_write_report_step)
+
+
+# --- report and analyze ------------------------------------------------------------------------
+
+#: Steps `bayesdid analyze` runs after the fit when their modules exist: (name, module, function).
+#: Each function is called as fn(study, run_dir) and writes its results inside run_dir (the checks
+#: into run_dir/checks, a sweep verdict into run_dir/sweep); the report reads them from there.
+ANALYZE_STEPS = [
+    ("checks", "bayesdid.checks", "run_checks"),
+    ("sensitivity sweep", "bayesdid.sweep", "run_sensitivity"),
+]
+
+
+def _write_report_step(study, path):
+    from .report.html import write_report
+
+    print(f"report in {write_report(path)}")
+
+
+def _optional_steps(study, path):
+    import importlib
+
+    for name, mod, fn in ANALYZE_STEPS:
+        try:
+            func = getattr(importlib.import_module(mod), fn)
+        except (ImportError, AttributeError):
+            _say(f"{name}: not available in this version of bayesdid; the report marks it as absent")
+            continue
+        try:
+            func(study, path)
+            _say(f"{name}: done")
+        except BayesDidError as exc:
+            _say(f"{name}: not run ({exc}); the report marks it as absent")
+        except Exception as exc:  # noqa: BLE001 - a failing optional step must not cost the user the report
+            _say(f"{name}: not run, it failed with {type(exc).__name__}: {exc}; the report marks it as absent")
+    _write_report_step(study, path)
+
+
+def cmd_analyze(args, argv):
+    from .study import load_study
+
+    study = _overrides(load_study(args.study), args)
+    return _fit_and_write(study, args.out, args, argv, then=_optional_steps)
+
+
+def cmd_report(args, argv):
+    from .report.html import write_report
+
+    print(f"report in {write_report(args.run_dir)}")
+    return EXIT_OK
 
 
 def cmd_bench(args, argv):
@@ -120,11 +172,19 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
     f.set_defaults(func=cmd_fit)
-    d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case")
+    d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case, then write its report")
     d.add_argument("--out", default="runs/demo", help="run folder to create (default runs/demo)")
     d.add_argument("--case", default="copay_cap", help="demo case under case_files/ (default copay_cap)")
     _add_sampling(d)
     d.set_defaults(func=cmd_demo)
+    a = sub.add_parser("analyze", help="fit, run the checks and sensitivity steps available, and write the report")
+    a.add_argument("study", help="study file (TOML)")
+    a.add_argument("--out", required=True, help="run folder to create")
+    _add_sampling(a)
+    a.set_defaults(func=cmd_analyze)
+    r = sub.add_parser("report", help="write RUN_DIR/report.html, a single-file HTML report of a run folder")
+    r.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
+    r.set_defaults(func=cmd_report)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")

@@ -12,6 +12,7 @@ __all__ = [
     "StudyError",
     "DataRoleError",
     "SweepError",
+    "ReportError",
     "BayesDidWarning",
     "FewAdoptersWarning",
     "DiagnosticsWarning",
@@ -33,6 +34,10 @@ class DataRoleError(BayesDidError, ValueError):
 
 class SweepError(BayesDidError, ValueError):
     """The sweep file is malformed or a variant cannot be built."""
+
+
+class ReportError(BayesDidError, ValueError):
+    """A run folder cannot be reported: it is missing or lacks the files a fit writes."""
 
 
 class BayesDidWarning(UserWarning):

@@ -1,0 +1,763 @@
+"""The single-file HTML report of a run folder.
+
+``write_report(run_dir)`` reads the files a run leaves behind and writes ``run_dir/report.html``:
+one self-contained page (inline CSS, figures as ``data:`` SVG images, no script, no external
+fetch; a Content-Security-Policy forbids both) that prints to PDF. It computes no statistics: every
+number comes from the run folder.
+
+Inputs (each optional part that is absent gets a section saying so and naming the command that
+produces it; no section disappears):
+
+* ``summary.json`` (required) and ``manifest.json`` (written by ``bayesdid fit``);
+* ``posterior.nc`` (ArviZ DataTree): draws of the effect, for the density figure only;
+* ``checks/checks.json`` with sections ``event_time``, ``pretrend``, ``placebo_time``,
+  ``comparison``, ``placebo_space`` (each with ``status`` and ``reason``) and CSV tables beside it;
+* ``summary.json["sensitivity"]`` (power-scaling) and ``sweep/verdict.json`` (variant intervals).
+
+Every string that comes from the data or the study file is HTML-escaped.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import ReportError
+from . import plots
+from .words import evidence, headline
+
+__all__ = ["SECTIONS", "HEADINGS", "RunFolder", "render_report", "write_report"]
+
+#: (anchor id, heading) of every section, in page order. Each is always present.
+SECTIONS = [
+    ("effect", "The effect of the policy"),
+    ("event-time", "Effects by event time"),
+    ("pretrend", "Pre-trend check"),
+    ("comparison", "Comparison jurisdictions"),
+    ("placebo", "Placebo checks"),
+    ("sensitivity", "Prior and specification sensitivity"),
+    ("cross-check", "Least-squares cross-check"),
+    ("data", "The data"),
+    ("priors", "Priors used"),
+    ("diagnostics", "Sampler diagnostics"),
+    ("assumptions", "Assumptions and cautions"),
+    ("provenance", "How this report was made"),
+]
+
+#: Every heading on the page, the headline first.
+HEADINGS = [("headline", "What happened"), *SECTIONS]
+
+CHECKS_COMMAND = "bayesdid checks STUDY.toml --out RUN_DIR/checks (or bayesdid analyze STUDY.toml --out RUN_DIR)"
+SWEEP_COMMAND = "bayesdid sweep SWEEP.toml --out RUN_DIR/sweep (or bayesdid analyze STUDY.toml --out RUN_DIR)"
+FIT_COMMAND = "bayesdid fit STUDY.toml --out RUN_DIR"
+
+
+def esc(v) -> str:
+    """HTML-escape any value's text (quotes too, so it is safe inside attributes)."""
+    return html.escape(str(v), quote=True)
+
+
+# ----------------------------------------------------------------------------------------- reading
+
+
+class RunFolder:
+    """The files of one run folder, read once. Missing optional parts are ``None``."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        if not self.path.is_dir():
+            raise ReportError(f"run folder '{self.path}' does not exist; create it with `{FIT_COMMAND}` and "
+                              "pass that folder to `bayesdid report`.")
+        sp = self.path / "summary.json"
+        if not sp.is_file():
+            raise ReportError(f"run folder '{self.path}' has no summary.json; it is not the output of a fit. "
+                              f"Run `{FIT_COMMAND}` and report that folder.")
+        try:
+            self.summary = json.loads(sp.read_text(encoding="utf-8"))
+        except json.JSONDecodeError as exc:
+            raise ReportError(f"'{sp}' is not valid JSON ({exc.msg} at line {exc.lineno}); rerun the fit "
+                              "to rewrite it.") from None
+        for key in ("effect", "data", "diagnostics"):
+            if key not in self.summary:
+                raise ReportError(f"'{sp}' lacks the '{key}' entry a fit writes; rerun `{FIT_COMMAND}`.")
+        self.manifest = self._json("manifest.json")
+        self.checks = self._json("checks/checks.json")
+        self.verdict = self._json("sweep/verdict.json")
+
+    def _json(self, rel: str):
+        p = self.path / rel
+        if not p.is_file():
+            return None
+        try:
+            return json.loads(p.read_text(encoding="utf-8"))
+        except json.JSONDecodeError:
+            return {"status": "unreadable", "reason": f"{rel} is not valid JSON"}
+
+    def table(self, section: str):
+        """The CSV table of a checks section: named in checks.json, or checks/<section>*.csv."""
+        import pandas as pd
+
+        d = self.path / "checks"
+        if not d.is_dir():
+            return None
+        info = (self.checks or {}).get(section) or {}
+        names = [info.get(k) for k in ("table", "csv", "file") if isinstance(info.get(k), str)]
+        cands = [d / n for n in names] + [d / f"{section}.csv"] + sorted(d.glob(f"{section}*.csv"))
+        for p in cands:
+            if p.is_file():
+                try:
+                    return pd.read_csv(p)
+                except Exception:  # noqa: BLE001 - a bad table is reported, not fatal
+                    return None
+        return None
+
+    def effect_draws(self):
+        """Posterior draws of the headline effect on the model scale, or None.
+
+        Reads ``att`` from the posterior when the fit stored it; otherwise combines ``tau_adopter``
+        with the ATT weights that summary.json records per adopter (the same definition as
+        :func:`bayesdid.effects.compute_effects`); with one adopter this is ``tau``.
+        """
+        p = self.path / "posterior.nc"
+        if not p.is_file():
+            return None
+        try:
+            import xarray as xr
+
+            with xr.open_datatree(p, engine="h5netcdf") as tree:
+                post = tree["posterior"].to_dataset()
+                if "att" in post:
+                    return post["att"].values.reshape(-1)
+                if "tau_adopter" in post:
+                    ta = post["tau_adopter"]
+                    names = [str(a) for a in ta["adopter"].values]
+                    w = {str(r["adopter"]): float(r["weight"]) for r in self.summary.get("per_adopter", [])}
+                    if set(names) <= set(w):
+                        arr = ta.transpose("chain", "draw", "adopter").values.reshape(-1, len(names))
+                        return arr @ np.array([w[n] for n in names])
+                if "tau" in post:
+                    return post["tau"].values.reshape(-1)
+        except Exception:  # noqa: BLE001 - the figure says why it is missing
+            return None
+        return None
+
+
+# ----------------------------------------------------------------------------------------- pieces
+
+
+def _img(svg: str, alt: str) -> str:
+    data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
+    return f'<figure><img src="data:image/svg+xml;base64,{data}" alt="{esc(alt)}"></figure>'
+
+
+def _absent(what: str, command: str) -> str:
+    return (f'<p class="absent"><strong>Not available in this run folder:</strong> {esc(what)} '
+            f'Produce it with <code>{esc(command)}</code>.</p>')
+
+
+def _table(header: list[str], rows: list[list], cls: str = "") -> str:
+    h = "".join(f"<th>{esc(c)}</th>" for c in header)
+    body = "".join("<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else esc(c)}</td>" for c in r) + "</tr>"
+                   for r in rows)
+    return f'<table class="{cls}"><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>'
+
+
+class _Raw(str):
+    """Markup built here from escaped parts (not re-escaped in a table cell)."""
+
+
+def _badge(status: str) -> _Raw:
+    s = str(status).lower()
+    cls = {"ok": "pass", "pass": "pass", "flag": "fail", "fail": "fail"}.get(s, "na")
+    return _Raw(f'<span class="badge {cls}">{esc(status)}</span>')
+
+
+def _num(v, digits: int = 3) -> str:
+    if v is None:
+        return "—"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, (int, np.integer)):
+        return f"{int(v):,}"
+    if isinstance(v, (float, np.floating)):
+        if not math.isfinite(v):
+            return "—"
+        return f"{v:.{digits}g}" if abs(v) < 1e5 else f"{v:,.0f}"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_num(x, digits) for x in v) + "]"
+    return str(v)
+
+
+def _pct(v) -> str:
+    return "—" if v is None else f"{v * 100:+.1f}%"
+
+
+def _col(df, *names, contains: tuple[str, ...] = ()):
+    cols = {c.lower(): c for c in df.columns}
+    for n in names:
+        if n in cols:
+            return cols[n]
+    for part in contains:
+        for lc, c in cols.items():
+            if part in lc:
+                return c
+    return None
+
+
+def _is_percent(summary) -> bool:
+    return "effect_percent" in summary
+
+
+# ----------------------------------------------------------------------------------------- sections
+
+
+def _effect_section(run: RunFolder) -> str:
+    s = run.summary
+    pct = _is_percent(s)
+    e = s["effect_percent"] if pct else s["effect"]
+    out = []
+    draws = run.effect_draws()
+    if draws is not None and draws.size > 1:
+        shown = np.expm1(draws) if pct else draws  # display scale: percent = exp(ATT) - 1 (effects.py)
+        who = "target group in adopting jurisdictions" if s["data"].get("design") == "DDD" else \
+            "adopting jurisdictions"
+        xlabel = f"change in the outcome (%), {who}" if pct else f"change in the outcome (outcome units), {who}"
+        out.append(_img(plots.effect_figure(shown, interval=tuple(e["eti_90"]), threshold=e.get("threshold"),
+                                            scale=100.0 if pct else 1.0, xlabel=xlabel, median=e["median"]),
+                        "Posterior distribution of the effect with its 90% interval and the decision threshold"))
+        out.append('<p class="caption">Posterior distribution of the average effect on the treated (ATT). '
+                   'Shaded: 90% equal-tailed interval. Solid line: no effect. Dashed: the decision threshold '
+                   'from the study file.</p>')
+    else:
+        out.append(_absent("posterior draws of the effect (posterior.nc is missing or unreadable), so the "
+                           "density figure cannot be drawn; the numbers below come from summary.json.",
+                           FIT_COMMAND))
+    fmt = _pct if pct else (lambda v: _num(v, 3))
+    rows = [["most likely (median)", fmt(e["median"])], ["mean", fmt(e["mean"])],
+            ["90% interval (equal-tailed)", f"{fmt(e['eti_90'][0])} to {fmt(e['eti_90'][1])}"],
+            ["95% interval (equal-tailed)", f"{fmt(e['eti_95'][0])} to {fmt(e['eti_95'][1])}"],
+            ["90% highest-density interval", f"{fmt(e['hdi_90'][0])} to {fmt(e['hdi_90'][1])}"],
+            ["probability of an increase", f"{e['prob_gt_0']:.1%}"],
+            ["probability of a reduction", f"{e['prob_lt_0']:.1%}"]]
+    if e.get("prob_beyond_threshold") is not None:
+        t = e["threshold"]
+        rows.append([f"probability of {'a reduction' if t < 0 else 'an increase'} beyond the threshold "
+                     f"({fmt(t)})", f"{e['prob_beyond_threshold']:.1%}"])
+    out.append(f"<h3>Average effect ({esc(e.get('measure', ''))})</h3>")
+    out.append(_table(["quantity", "value"], rows))
+    per = s.get("per_adopter") or []
+    if per:
+        prow = []
+        for r in per:
+            q = r.get("percent", r) if pct else r
+            prow.append([r["adopter"], r.get("start", ""), _num(r.get("weight"), 3), fmt(q["median"]),
+                         f"{fmt(q['eti_90'][0])} to {fmt(q['eti_90'][1])}", f"{q['prob_lt_0']:.1%}"])
+        out.append("<h3>Each adopting jurisdiction</h3>")
+        out.append(_table(["jurisdiction", "first treated period", "weight in the average", "most likely",
+                           "90% interval", "probability of a reduction"], prow))
+    nat = s.get("effect_natural")
+    if isinstance(nat, dict) and "median" in nat:
+        out.append(f"<h3>On the natural scale ({esc(nat.get('measure', ''))})</h3>")
+        out.append(_table(["most likely", "90% interval", "probability above zero"],
+                          [[_num(nat["median"]), f"{_num(nat['eti_90'][0])} to {_num(nat['eti_90'][1])}",
+                            f"{nat.get('prob_gt_0', float('nan')):.1%}"]]))
+    return "\n".join(out)
+
+
+def _check_status(run: RunFolder, name: str) -> tuple[dict | None, str]:
+    sec = (run.checks or {}).get(name)
+    if not isinstance(sec, dict):
+        return None, ""
+    bits = [f"<p>Status: {_badge(sec.get('status', 'unknown'))} {esc(sec.get('reason', ''))}</p>"]
+    extra = []
+    for k, v in sec.items():
+        if k in ("status", "reason", "table", "csv", "file") or isinstance(v, dict):
+            continue
+        if isinstance(v, list) and v and isinstance(v[0], dict):
+            continue
+        extra.append([k.replace("_", " "), _num(v)])
+    if extra:
+        bits.append(_table(["item", "value"], extra, "compact"))
+    return sec, "\n".join(bits)
+
+
+def _why_no_check(run: RunFolder, name: str) -> str:
+    if run.checks is None:
+        return "the checks have not been run for this folder: there is no checks/checks.json"
+    if run.checks.get("status") == "unreadable":
+        return run.checks.get("reason", "checks/checks.json cannot be read")
+    return f"checks/checks.json has no '{name}' section"
+
+
+def _event_time_section(run: RunFolder) -> str:
+    sec, head = _check_status(run, "event_time")
+    if sec is None:
+        return _absent(f"event-time effects ({_why_no_check(run, 'event_time')}).", CHECKS_COMMAND)
+    out = [head]
+    df = run.table("event_time")
+    if df is not None:
+        k = _col(df, "event_time", "k")
+        m = _col(df, "mean", "median", "estimate")
+        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
+        if k and m and lo and hi:
+            d = df.sort_values(k)
+            out.append(_img(plots.event_time_figure(
+                d[k].to_numpy(float), d[m].to_numpy(float), d[lo].to_numpy(float), d[hi].to_numpy(float),
+                xlabel="event time k (periods since the policy started; k = -1 is the reference)",
+                ylabel="effect (model scale)"),
+                "Effects by event time with intervals"))
+            out.append('<p class="caption">Effect at each event time with its interval. Leads (k &lt; -1) '
+                       'should sit near zero if the groups were on parallel paths before the policy.</p>')
+            return "\n".join(out)
+    out.append(_absent("the event-time table (checks/event_time.csv with event_time or k, and mean, lower, "
+                       "upper columns).", CHECKS_COMMAND))
+    return "\n".join(out)
+
+
+def _pretrend_section(run: RunFolder) -> str:
+    sec, head = _check_status(run, "pretrend")
+    if sec is None:
+        return _absent(f"the posterior predictive pre-trend check ({_why_no_check(run, 'pretrend')}).",
+                       CHECKS_COMMAND)
+    out = [head]
+    df = run.table("pretrend")
+    if df is not None:
+        x = _col(df, "period", "event_time", "k", "t")
+        ob = _col(df, "observed", "gap", "obs", contains=("observed",))
+        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
+        mid = _col(df, "predicted", "median", "mean", contains=("pred",))
+        who = _col(df, "adopter", "jurisdiction")
+        if x and ob and lo and hi:
+            labels = list(dict.fromkeys(df[x].tolist()))
+            import pandas as pd
+
+            numeric = pd.api.types.is_numeric_dtype(df[x])
+            if numeric:
+                labels = sorted(labels)
+            pos = {v: i for i, v in enumerate(labels)}
+            series = []
+            for name, part in (df.groupby(who, sort=True) if who else [("adopters", df)]):
+                part = part.assign(_x=part[x].map(pos)).sort_values("_x")
+                series.append({"label": str(name), "x": part["_x"].to_numpy(float),
+                               "observed": part[ob].to_numpy(float), "lower": part[lo].to_numpy(float),
+                               "upper": part[hi].to_numpy(float),
+                               "mid": part[mid].to_numpy(float) if mid else None})
+            out.append(_img(plots.band_figure(series, xlabel=f"{x.replace('_', ' ')}",
+                                              ylabel="target minus reference gap (model scale)",
+                                              xticks=labels),
+                            "Observed group gap of the adopters against the posterior predictive band"))
+            out.append('<p class="caption">Observed target-minus-reference gap of each adopting jurisdiction '
+                       'before the policy, against the band the model predicts from the comparison '
+                       'jurisdictions. An observed path leaving the band suggests the groups were not on '
+                       'parallel paths.</p>')
+            return "\n".join(out)
+    out.append(_absent("the pre-trend band table (checks/pretrend.csv with period, observed, lower, upper "
+                       "columns).", CHECKS_COMMAND))
+    return "\n".join(out)
+
+
+def _comparison_section(run: RunFolder) -> str:
+    sec, head = _check_status(run, "comparison")
+    if sec is None:
+        return _absent(f"the check of the comparison jurisdictions ({_why_no_check(run, 'comparison')}).",
+                       CHECKS_COMMAND)
+    out = [head]
+    df = run.table("comparison")
+    if df is not None:
+        nm = _col(df, "jurisdiction", "region", "name")
+        m = _col(df, "mean", "median", "change", "estimate")
+        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
+        fl = _col(df, "flagged", "flag", "outlier")
+        if nm and m:
+            flagged = df[fl].astype(str).str.lower().isin(["true", "1", "yes"]).tolist() if fl else \
+                [False] * len(df)
+            offenders = set(map(str, sec.get("offenders") or []))
+            flagged = [f or str(n) in offenders for f, n in zip(flagged, df[nm])]
+            out.append(_img(plots.comparison_figure(
+                [str(v) for v in df[nm]], df[m].to_numpy(float),
+                df[lo].to_numpy(float) if lo else None, df[hi].to_numpy(float) if hi else None, flagged,
+                xlabel="change in the group gap, before to after the policy start (model scale)"),
+                "Change in each comparison jurisdiction's group gap, flagged ones marked"))
+            out.append('<p class="caption">Each comparison jurisdiction never adopted, so its gap should '
+                       'barely change. Plum diamonds are flagged as unusual.</p>')
+            if any(flagged):
+                out.append("<p>Flagged: " + ", ".join(esc(n) for n, f in zip(df[nm], flagged) if f) + "</p>")
+            return "\n".join(out)
+    out.append(_absent("the comparison table (checks/comparison.csv with jurisdiction, mean, lower, upper, "
+                       "flagged columns).", CHECKS_COMMAND))
+    return "\n".join(out)
+
+
+def _placebo_section(run: RunFolder) -> str:
+    out = []
+    for name, title in (("placebo_time", "Placebo in time (a fake start before the real one)"),
+                        ("placebo_space", "Placebo in space (each comparison jurisdiction as a fake adopter)")):
+        out.append(f"<h3>{esc(title)}</h3>")
+        sec, head = _check_status(run, name)
+        out.append(head if sec is not None else
+                   _absent(f"the {name.replace('_', ' ')} check ({_why_no_check(run, name)}).", CHECKS_COMMAND))
+    return "\n".join(out)
+
+
+def _variant_rows(run: RunFolder):
+    """(label, mid, lower, upper) per sensitivity variant from sweep/verdict.json, tolerant of layout."""
+    v = run.verdict
+    if v is None:
+        return None
+    rows = v.get("rows") or v.get("variants") or v.get("table") if isinstance(v, dict) else v
+    if not isinstance(rows, list):
+        return None
+    out = []
+    for r in rows:
+        if not isinstance(r, dict):
+            continue
+        label = next((r[k] for k in ("label", "variant", "name", "id") if k in r), "variant")
+        mid = next((r[k] for k in ("median", "mean", "estimate") if isinstance(r.get(k), (int, float))), None)
+        iv = next((r[k] for k in ("eti_90", "interval", "ci") if isinstance(r.get(k), list)), None)
+        lo = iv[0] if iv else r.get("lower", r.get("eti_90_lower"))
+        hi = iv[1] if iv else r.get("upper", r.get("eti_90_upper"))
+        if mid is None and lo is None:
+            continue
+        out.append((str(label), mid, lo, hi))
+    return out
+
+
+def _sensitivity_section(run: RunFolder) -> str:
+    out = []
+    sens = run.summary.get("sensitivity")
+    out.append("<h3>Power-scaling sensitivity of the priors and the likelihood</h3>")
+    if isinstance(sens, dict) and sens:
+        rows = []
+        items = sens.get("parameters", sens)
+        if isinstance(items, dict):
+            for par, val in items.items():
+                if isinstance(val, dict):
+                    rows.append([par] + [_num(val.get(k)) for k in ("prior", "likelihood")] +
+                                [val.get("diagnosis", val.get("verdict", ""))])
+        elif isinstance(items, list):
+            for val in items:
+                if isinstance(val, dict):
+                    rows.append([val.get("parameter", val.get("name", ""))] +
+                                [_num(val.get(k)) for k in ("prior", "likelihood")] +
+                                [val.get("diagnosis", val.get("verdict", ""))])
+        if rows:
+            out.append(_table(["parameter", "prior sensitivity", "likelihood sensitivity", "diagnosis"], rows))
+        else:
+            out.append(f"<pre>{esc(json.dumps(sens, indent=1, default=str)[:4000])}</pre>")
+    else:
+        out.append(_absent("power-scaling sensitivity (summary.json has no 'sensitivity' entry).", FIT_COMMAND))
+    out.append("<h3>Effect interval per prior and specification variant</h3>")
+    rows = _variant_rows(run)
+    if rows:
+        f = 100.0 if isinstance(run.verdict, dict) and run.verdict.get("scale") == "percent" else 1.0
+        nan = float("nan")
+        out.append(_img(plots.interval_figure(
+            [r[0] for r in rows], [nan if r[1] is None else r[1] * f for r in rows],
+            [nan if r[2] is None else r[2] * f for r in rows], [nan if r[3] is None else r[3] * f for r in rows],
+            xlabel="effect: median and 90% interval" + (" (%)" if f == 100.0 else " (model scale)")),
+            "Effect interval per sensitivity variant"))
+        if isinstance(run.verdict, dict) and run.verdict.get("verdict"):
+            out.append(f"<p>Verdict: {esc(run.verdict['verdict'])}</p>")
+    else:
+        out.append(_absent("a sweep of prior and specification variants (sweep/verdict.json).", SWEEP_COMMAND))
+    return "\n".join(out)
+
+
+_LS_LABELS = [("estimate", "least-squares DDD/DiD coefficient"), ("se_classical", "classical s.e."),
+              ("se_hc1", "heteroskedasticity-robust s.e. (HC1)"), ("se_cr1", "cluster-robust s.e. (CR1)"),
+              ("p_cr1", "p-value, CR1"), ("ci_cr1_95", "95% interval, CR1"),
+              ("p_wild", "p-value, wild cluster bootstrap"), ("ci_wild_95", "95% interval, wild cluster bootstrap"),
+              ("p_permutation", "p-value, placebo-in-space permutation"), ("clusters", "clusters (jurisdictions)"),
+              ("treated_clusters", "treated clusters"), ("cells", "cells"), ("regressors", "regressors"),
+              ("method", "method")]
+
+
+def _crosscheck_section(run: RunFolder) -> str:
+    s = run.summary
+    ls = s.get("least_squares") or {}
+    if "estimate" not in ls:
+        return _absent("the least-squares cross-check (summary.json has no least_squares estimate).", FIT_COMMAND)
+    e = s["effect"]
+    nan = float("nan")
+    labels = ["posterior, 90% interval", "posterior, 95% interval", "least squares, CR1",
+              "least squares, wild cluster bootstrap", "least squares, permutation"]
+    mid = [e["median"], e["median"], ls["estimate"], ls["estimate"], ls["estimate"]]
+    ci_cr1 = ls.get("ci_cr1_95")
+    ci_w = ls.get("ci_wild_95")
+    lower = [e["eti_90"][0], e["eti_95"][0], ci_cr1[0] if ci_cr1 else nan, ci_w[0] if ci_w else nan, nan]
+    upper = [e["eti_90"][1], e["eti_95"][1], ci_cr1[1] if ci_cr1 else nan, ci_w[1] if ci_w else nan, nan]
+
+    def pnote(key):
+        return f"p = {ls[key]:.3f}" if isinstance(ls.get(key), (int, float)) else "not computed"
+
+    labels[2] += f"\n({pnote('p_cr1')}" + (f", s.e. {ls['se_cr1']:.3g})" if "se_cr1" in ls else ")")
+    labels[3] += f"\n({pnote('p_wild')})"
+    labels[4] += f"\n({pnote('p_permutation')}; point estimate only)"
+    if not any(k in ls for k in ("se_cr1", "p_cr1", "ci_cr1_95", "p_wild", "ci_wild_95", "p_permutation")):
+        labels, mid, lower, upper = (v[:3] for v in (labels, mid, lower, upper))
+        labels[2] = "least squares\n(point estimate; inference not in this run)"
+    P, A = plots.PALETTE["posterior"], plots.PALETTE["alternative"]
+    n = len(labels)
+    fig = plots.interval_figure(
+        labels, mid, lower, upper, colors=[P, P, A, A, A][:n], markers=["o", "o", "s", "s", "s"][:n],
+        xlabel="effect on the model scale" + (" (difference in log outcome)" if _is_percent(s) else
+                                              " (outcome units)"),
+        legend=[("posterior median with interval", P, "o"), ("least-squares estimate with 95% interval", A, "s")])
+    out = [_img(fig, "Posterior interval against the least-squares estimate and its three kinds of inference"),
+           '<p class="caption">The Bayesian posterior against the least-squares fixed-effects estimate on the '
+           'same cells, with cluster-robust (CR1), wild cluster bootstrap and permutation inference. A bar is '
+           'missing where that interval is not in the run folder.</p>']
+    rows = [[lab, _num(ls[k], 4)] for k, lab in _LS_LABELS if k in ls]
+    out.append(_table(["quantity", "value"], rows))
+    missing = [lab for k, lab in _LS_LABELS[:10] if k not in ls and k != "ci_cr1_95"]
+    if missing:
+        out.append(_absent("parts of the cross-check: " + "; ".join(missing) + ".", FIT_COMMAND +
+                           " (with the full cross-check)"))
+    if ls.get("advice"):
+        out.append(f'<p class="note">{esc(ls["advice"])}</p>')
+    return "\n".join(out)
+
+
+def _data_section(run: RunFolder) -> str:
+    d = run.summary["data"]
+    cols = ((run.manifest or {}).get("study") or {}).get("data") or {}
+    rows = [["rows in the table", _num(d.get("rows"))], ["cells (jurisdiction × group × period)", _num(d.get("cells"))],
+            ["jurisdictions", _num(d.get("jurisdictions"))], ["periods", _num(d.get("periods"))],
+            ["groups (reference first, target last)", ", ".join(map(str, d.get("groups", [])))],
+            ["design", d.get("design", "")], ["adopting jurisdictions", _num(len(d.get("adopters", [])))]]
+    for role in ("outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials"):
+        if cols.get(role):
+            rows.append([f"{role} column", cols[role]])
+    m = run.summary.get("model") or {}
+    if m:
+        rows.append(["model", f"{m.get('family', '')}{', log outcome' if m.get('log_outcome') else ''}; "
+                              f"{m.get('likelihood', '')}"])
+    out = [_table(["item", "value"], rows)]
+    starts = d.get("starts") or {}
+    if starts:
+        out.append("<h3>Adopters and their first treated period</h3>")
+        out.append(_table(["adopting jurisdiction", "first treated period"], [[k, v] for k, v in starts.items()]))
+    for n in run.summary.get("notes") or []:
+        out.append(f'<p class="note">{esc(n)}</p>')
+    return "\n".join(out)
+
+
+def _priors_section(run: RunFolder) -> str:
+    pr = run.summary.get("priors") or {}
+    if not pr:
+        return _absent("the prior scales (summary.json has no 'priors' entry).", FIT_COMMAND)
+    rows = [[k, _num(v.get("scale"), 4), v.get("source", ""), v.get("meaning", "")] for k, v in pr.items()
+            if isinstance(v, dict)]
+    return ('<p>Default scales are set from the data (for example from the outcome\'s pooled standard '
+            'deviation) and can be changed in the study file\'s [priors] section.</p>' +
+            _table(["prior", "scale", "source", "meaning"], rows))
+
+
+def _diagnostics_section(run: RunFolder) -> str:
+    dg = run.summary.get("diagnostics") or {}
+    th = dg.get("thresholds") or {}
+    rows = []
+    spec = [("rhat_max", "largest R-hat", "below", lambda v, t: v < t),
+            ("ess_bulk_min", "smallest bulk ESS", "at least", lambda v, t: v >= t),
+            ("ess_tail_min", "smallest tail ESS", "at least", lambda v, t: v >= t),
+            ("divergences", "divergent transitions", "at most", lambda v, t: v <= t)]
+    for key, label, word, ok in spec:
+        if key in dg and key in th and dg[key] is not None:
+            rows.append([label, _num(dg[key], 4), f"{word} {_num(th[key])}",
+                         _badge("pass" if ok(dg[key], th[key]) else "fail")])
+    out = []
+    if rows:
+        out.append(_table(["measure", "value", "threshold", "result"], rows))
+    else:
+        out.append(_absent("sampler diagnostics.", FIT_COMMAND))
+    if th.get("source"):
+        out.append(f'<p class="caption">Thresholds: {esc(th["source"])}.</p>')
+    overall = "pass" if dg.get("ok") else "fail"
+    out.append(f"<p>Overall: {_badge(overall)} {esc(dg.get('advice', '')) if not dg.get('ok') else ''}</p>")
+    return "\n".join(out)
+
+
+_ASSUMPTIONS = """
+<p>The estimate is a {design}: it compares how the {gap} changed in the adopting jurisdictions with how it
+changed in the comparison jurisdictions over the same periods. It is a causal effect only if these hold:</p>
+<ul>
+<li><strong>Parallel paths.</strong> Without the policy, the {gap} in the adopting jurisdictions would have moved
+like the comparison jurisdictions'. The event-time leads, the pre-trend check and the placebo in time test this
+before the policy; nothing can test it afterwards.</li>
+<li><strong>No other change at the same time.</strong> Another policy or shock that hit the {target} in the
+adopting jurisdictions when the policy started would be counted as the policy's effect.</li>
+<li><strong>No spill-over.</strong> The policy did not change outcomes in the comparison jurisdictions{ref}.</li>
+<li><strong>Stable make-up.</strong> The people counted in each group did not change because of the policy (for
+example by moving or by being reclassified).</li>
+<li><strong>The model's assumptions.</strong> Normal noise on the {scale} scale, partial pooling of jurisdictions,
+and the priors listed above. The sensitivity section shows how much the answer depends on the priors.</li>
+</ul>
+<p><strong>What would break it:</strong> a pre-policy gap that was already moving in the adopters, a flagged
+comparison jurisdiction that drives the result, a placebo that finds an "effect" where there is none, a result
+that flips under reasonable priors, or failed sampler diagnostics. With only {n_ad} adopting jurisdiction(s) the
+result rests on few places: one unusual adopter can move it, and cluster-robust least-squares errors are not
+reliable (Conley and Taber 2011; MacKinnon and Webb 2017).</p>
+<p class="caution"><strong>This report supports, and does not replace, review by qualified people.</strong> Read
+it together with knowledge of how the policy was put in place, the quality of the data, and the rules and
+guidance that apply where you are. Probabilities here are conditional on the model and the data as given.</p>
+"""
+
+
+def _assumptions_section(run: RunFolder) -> str:
+    d = run.summary["data"]
+    ddd = d.get("design") == "DDD"
+    groups = d.get("groups") or []
+    target = esc(groups[-1]) if ddd and groups else "outcome"
+    gap = f"gap between the target group ({target}) and the reference group" if ddd else "outcome"
+    return _ASSUMPTIONS.format(
+        design="triple difference (DDD)" if ddd else "difference in differences (DiD)", gap=gap,
+        target=f"target group ({target})" if ddd else "people covered",
+        ref=" nor in the reference group of the adopting jurisdictions" if ddd else "",
+        scale="log" if (run.summary.get("model") or {}).get("log_outcome") else "outcome",
+        n_ad=esc(len(d.get("adopters", []))))
+
+
+def _provenance_section(run: RunFolder) -> str:
+    m = run.manifest or {}
+    rows = [["run folder", str(run.path)]]
+    if m:
+        rows += [["created", m.get("created", "")], ["seed", str(m.get("seed", ""))],
+                 ["sampler", ", ".join(f"{k} {v}" for k, v in (m.get("sampler") or {}).items())],
+                 ["data table", m.get("table", "")], ["data SHA-256", m.get("data_sha256", "")],
+                 ["command", " ".join(map(str, m.get("command") or []))],
+                 ["versions", ", ".join(f"{k} {v}" for k, v in (m.get("versions") or {}).items())]]
+    t = run.summary.get("timing") or {}
+    if t:
+        rows.append(["timing (seconds)", ", ".join(f"{k.removesuffix('_s')} {v:.1f}" for k, v in t.items()
+                                                   if isinstance(v, (int, float)))])
+    files = sorted(str(p.relative_to(run.path)) for p in run.path.rglob("*") if p.is_file()
+                   and p.name != "report.html")
+    rows.append(["files read from", ", ".join(files)])
+    out = [_table(["item", "value"], rows)]
+    if not m:
+        out.append(_absent("the manifest (versions, seed, data hash).", FIT_COMMAND))
+    return "\n".join(out)
+
+
+_CSS = """
+:root { --ink:#1d232a; --muted:#5d6670; --line:#d5dae0; --pass:#1f5f8b; --fail:#8e2f6f; --na:#5d6670;
+        --warn-bg:#f7eee2; --warn:#8a4f0c; }
+* { box-sizing: border-box; }
+body { font: 15px/1.5 "DejaVu Sans", "Liberation Sans", Arial, sans-serif; color: var(--ink); margin: 0;
+       background: #fff; }
+main { max-width: 980px; margin: 0 auto; padding: 28px 32px 60px; }
+h1 { font-size: 26px; margin: 0 0 4px; }
+h2 { font-size: 20px; margin: 34px 0 10px; padding-top: 10px; border-top: 2px solid var(--line); }
+h3 { font-size: 16px; margin: 20px 0 6px; }
+.sub { color: var(--muted); margin: 0 0 16px; }
+.headline { font-size: 18px; line-height: 1.55; padding: 14px 18px; border-left: 6px solid var(--pass);
+            background: #eef4f9; margin: 12px 0; }
+.headline.unreliable { border-color: var(--fail); background: #f6ecf2; }
+.headline.null { border-color: var(--na); background: #f1f2f4; }
+nav ol { columns: 2; font-size: 14px; color: var(--muted); }
+nav a { color: var(--pass); }
+figure { margin: 10px 0 4px; }
+figure img { width: 100%; max-width: 780px; height: auto; display: block; }
+.caption { color: var(--muted); font-size: 13px; margin-top: 2px; }
+table { border-collapse: collapse; margin: 8px 0 12px; font-size: 14px; width: 100%; }
+table.compact { width: auto; }
+th, td { text-align: left; padding: 4px 10px 4px 0; border-bottom: 1px solid var(--line); vertical-align: top; }
+th { color: var(--muted); font-weight: 600; }
+td { word-break: break-word; }
+.badge { display: inline-block; padding: 0 8px; border-radius: 9px; font-size: 13px; font-weight: 700;
+         color: #fff; background: var(--na); }
+.badge.pass { background: var(--pass); }
+.badge.fail { background: var(--fail); }
+.absent { background: var(--warn-bg); color: var(--warn); padding: 8px 12px; border-radius: 4px; }
+.note { color: var(--muted); font-size: 14px; }
+.caution { border: 1px solid var(--line); padding: 10px 14px; }
+code { font-size: 13px; background: #f1f2f4; padding: 1px 4px; word-break: break-word; }
+@page { margin: 16mm 14mm; }
+@media print {
+  body { font-size: 11pt; }
+  main { max-width: none; padding: 0; }
+  nav { display: none; }
+  h2 { break-after: avoid; }
+  figure, table, .headline { break-inside: avoid; }
+  .headline, .badge, .absent { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+}
+"""
+
+_SECTION_FUNCS = {
+    "effect": _effect_section, "event-time": _event_time_section, "pretrend": _pretrend_section,
+    "comparison": _comparison_section, "placebo": _placebo_section, "sensitivity": _sensitivity_section,
+    "cross-check": _crosscheck_section, "data": _data_section, "priors": _priors_section,
+    "diagnostics": _diagnostics_section, "assumptions": _assumptions_section, "provenance": _provenance_section,
+}
+
+
+def render_report(run_dir: str | Path) -> str:
+    """The report of ``run_dir`` as HTML text (see the module docstring for what it reads)."""
+    run = RunFolder(run_dir)
+    s = run.summary
+    cols = ((run.manifest or {}).get("study") or {}).get("data") or {}
+    outcome = cols.get("outcome")
+    text = headline(s, outcome=f"the outcome ({outcome})" if outcome else None)
+    reading = evidence(s)
+    title = s.get("title") or "bayesdid run"
+    parts = []
+    for anchor, heading in SECTIONS:
+        try:
+            body = _SECTION_FUNCS[anchor](run)
+        except Exception as exc:  # noqa: BLE001 - a section that cannot be drawn says why, never vanishes
+            body = (f'<p class="absent"><strong>This section could not be drawn</strong> from the files in the '
+                    f'run folder: {esc(type(exc).__name__)}: {esc(exc)}</p>')
+        parts.append(f'<section id="{anchor}"><h2>{esc(heading)}</h2>\n{body}\n</section>')
+    toc = "".join(f'<li><a href="#{a}">{esc(h)}</a></li>' for a, h in SECTIONS)
+    design = s["data"].get("design", "")
+    return f"""<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta http-equiv="Content-Security-Policy" content="default-src 'none'; img-src data:; style-src 'unsafe-inline'">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>{esc(title)} — bayesdid report</title>
+<style>{_CSS}</style>
+</head>
+<body>
+<main>
+<h1>{esc(title)}</h1>
+<p class="sub">Bayesian {esc(design)} analysis by bayesdid · {esc((run.manifest or {}).get('created', ''))}</p>
+<section id="headline"><h2>What happened</h2>
+<p class="headline {reading}">{esc(text)}</p>
+</section>
+<nav><ol>{toc}</ol></nav>
+{chr(10).join(parts)}
+</main>
+</body>
+</html>
+"""
+
+
+def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
+    """Write the report to ``out`` (default ``run_dir/report.html``) atomically; returns its path.
+
+    Raises
+    ------
+    ReportError
+        The run folder is missing, or lacks a readable summary.json; nothing is written.
+    """
+    text = render_report(run_dir)
+    target = Path(out) if out is not None else Path(run_dir) / "report.html"
+    fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html.partial", dir=target.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return target
