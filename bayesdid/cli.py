@@ -50,7 +50,8 @@ def _fit_and_write(study, out, args, argv):
     from .run import analyse, write_run
     from .sample import warn_if_bad
 
-    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say)
+    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
+                 full_cross_check=not getattr(args, "no_cross_check", False))
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())
     print(headline(summary))
@@ -118,6 +119,9 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("study", help="study file (TOML)")
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
+    f.add_argument("--no-cross-check", action="store_true",
+                   help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
+                        "wild cluster bootstrap and the placebo permutation")
     f.set_defaults(func=cmd_fit)
     d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case")
     d.add_argument("--out", default="runs/demo", help="run folder to create (default runs/demo)")
