@@ -129,7 +129,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_sampling(d)
     d.set_defaults(func=cmd_demo)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse")
+    b.add_argument("name", help="benchmark name: collapse, crosscheck")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     b.set_defaults(func=cmd_bench)
     return p

@@ -59,7 +59,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import linalg, stats
 from threadpoolctl import threadpool_limits
 
 from .cells import Cells
@@ -213,9 +213,12 @@ def _design(cells: Cells) -> _Design:
     n = cells.n.ravel()[keep].astype(float)
     F, _ = _fixed_effects(jj, gg, tt, J, G, T, cells.target)
     Fs = F * np.sqrt(n)[:, None]
-    u, s, _ = np.linalg.svd(Fs, full_matrices=False)
-    tol = s.max() * max(Fs.shape) * np.finfo(float).eps if s.size else 0.0
-    r = int((s > tol).sum())
+    # rank-revealing QR: the first r columns of Q span the weighted fixed-effect space
+    q, rr, _ = linalg.qr(Fs, mode="economic", pivoting=True)
+    diag = np.abs(np.diag(rr))
+    tol = diag.max() * max(Fs.shape) * np.finfo(float).eps * 10 if diag.size else 0.0
+    r = int((diag > tol).sum())
+    u = q
     cj = np.unique(jj)
     code = np.full(J, -1)
     code[cj] = np.arange(len(cj))
@@ -375,7 +378,8 @@ class _Wild:
         if des.K:
             self.cz_d = (c["xt"] * n[:, None]).T @ self.dt
 
-    def tstar(self, beta0: float) -> tuple[float, np.ndarray]:
+    def _parts(self, beta0: float):
+        """(G, Km) at beta0; both are affine in beta0 (the restricted residuals are)."""
         des, f = self.des, self.f
         c = _partialled(des)
         n = des.n
@@ -390,12 +394,21 @@ class _Wild:
         G = des.cluster_sum(g)  # (C, q)
         alpha = G @ self.a
         H = des.cluster_sum(des.U * (n * ebar / np.sqrt(n))[:, None])  # (C, r)
-        Cm = self.Om @ H.T
-        Km = np.diag(alpha) - Cm - self.Bm @ f.Ainv @ G.T
+        Km = np.diag(alpha) - self.Om @ H.T - self.Bm @ f.Ainv @ G.T
+        return alpha, Km
+
+    def tstar(self, beta0: float) -> tuple[float, np.ndarray]:
+        """The CR1 t statistic of the data and the bootstrap t* (B,) under beta = beta0."""
+        if not hasattr(self, "_affine"):
+            a0, k0 = self._parts(0.0)
+            a1, k1 = self._parts(1.0)
+            self._affine = (a0, a1 - a0, k0, k1 - k0)
+        a0, da, k0, dk = self._affine
+        alpha, Km = a0 + beta0 * da, k0 + beta0 * dk
         num = alpha @ self.V
         with np.errstate(divide="ignore", invalid="ignore"):
             ts = num / np.sqrt(self.factor * ((Km @ self.V) ** 2).sum(0))
-        t = (f.beta - beta0) / self.se
+        t = (self.f.beta - beta0) / self.se
         return t, ts
 
     def pvalue(self, beta0: float) -> float:
@@ -469,7 +482,8 @@ def _assignments(des: _Design, limit: int, seed: int):
 def _placebo(des: _Design, beta: float, limit: int, seed: int) -> dict:
     cells = des.cells
     plan, count, sampled = _assignments(des, limit, seed)
-    Dm = np.column_stack([des.treat_vector(s) for _, s, _ in plan])
+    S = np.column_stack([s for _, s, _ in plan])  # (J, P) starts of each assignment
+    Dm = ((des.gg == cells.target)[:, None] & (des.tt[:, None] >= S[des.jj, :])).astype(float)
     Dt = des.resid(Dm)
     c = _partialled(des)
     n = des.n
