@@ -269,6 +269,11 @@ def _partialled(des: _Design):
     return des.cache
 
 
+def _raw_sxx(des: _Design) -> np.ndarray:
+    """Per-cell sums of x x' (within part plus the cell-mean part)."""
+    return des.sxx_w + des.n[:, None, None] * des.xbar[:, :, None] * des.xbar[:, None, :]
+
+
 def _fit(des: _Design, d: np.ndarray) -> _Fit:
     c = _partialled(des)
     dt = des.resid(d)
@@ -283,6 +288,14 @@ def _fit(des: _Design, d: np.ndarray) -> _Fit:
         raise BayesDidError("the treatment indicator is absorbed by the fixed effects (no adopter has target-group "
                             "cells both before and after its start next to comparison cells); the least-squares "
                             "estimate is not identified.")
+    if des.K:
+        # scaled by the raw second moments, a (near) zero eigenvalue means a covariate is collinear
+        raw = np.sqrt(np.r_[scale, np.maximum(np.einsum("ckk->k", _raw_sxx(des)), 1e-300)])
+        collinear = np.linalg.eigvalsh(A / np.outer(raw, raw)).min() < 1e-9
+    if des.K and collinear:
+        raise BayesDidError(f"the covariates {list(des.covariates)} are collinear with each other, the treatment or "
+                            "the fixed effects (for example a covariate constant within jurisdiction-periods); "
+                            "drop or combine them in model.covariates.")
     coef = np.linalg.solve(A, rhs)
     theta = coef[1:]
     rbar = c["yt"] - Wt @ coef
@@ -650,7 +663,7 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
         wild = _Wild(des, f, V, se, err["factor_cr1"])
         lo, hi = wild.interval(level)
         out["p_wild"] = wild.pvalue(0.0)
-        out[f"ci_wild_{pct}"] = [lo if lo is not None else -math.inf, hi if hi is not None else math.inf]
+        out[f"ci_wild_{pct}"] = [lo, hi]  # None marks a side that is unbounded
         out["wild"] = {
             "weights": weights, "weights_text": WEIGHT_KINDS[weights], "draws": int(V.shape[1]),
             "enumerated": enumerated, "seed": seed,
@@ -658,7 +671,8 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
                       "p-value P(|t*| >= |t|); interval by inverting the test over beta0 with the same weights",
         }
         if lo is None or hi is None:
-            out["wild"]["note"] = "the interval is unbounded on at least one side (common with one treated cluster)"
+            out["wild"]["note"] = ("the interval is unbounded on at least one side (given as null; common with one "
+                                   "treated cluster)")
     perm = _placebo(des, f.beta, placebos, seed)
     out["p_permutation"] = perm["p_value"]
     out["permutation"] = perm

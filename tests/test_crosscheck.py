@@ -320,3 +320,12 @@ def test_not_applicable_result_keeps_the_keys():
     out = cross_check_not_applicable("no comparison cells")
     assert ISSUE_KEYS <= set(out) and out["estimate"] is None
     assert out["advice"] == "not applicable: no comparison cells"
+
+
+def test_collinear_covariate_is_named():
+    frame, truth, x = scenario_rows(J=5, T=4, ddd=False, K=1, seed=3)
+    # a covariate equal to the period index is absorbed by the period effects
+    xp = frame["period"].to_numpy(float)[:, None]
+    cells = cells_from_rows(frame, truth["starts"], ddd=False, x=xp - xp.mean(), names=["month_index"])
+    with pytest.raises(BayesDidError, match=r"covariates \['month_index'\] are collinear"):
+        cross_check(cells, full=False)

@@ -19,6 +19,7 @@ multithreaded BLAS was measured many times slower for both under load).
 
 from __future__ import annotations
 
+import math
 import statistics
 import time
 
@@ -31,8 +32,8 @@ def _rows(n_rows: int, seed: int):
     from ..simulate import Scenario, simulate
 
     J, T, G = 40, 12, 2
-    sc = Scenario(jurisdictions=J, periods=T, groups=G, starts={0: 6, 1: 8}, rows_per_cell=n_rows / (J * G * T),
-                  tau=-0.05, gap_sd=0.05, fixed_cells=True)
+    sc = Scenario(jurisdictions=J, periods=T, groups=G, starts={0: 6, 1: 8},
+                  rows_per_cell=math.ceil(n_rows / (J * G * T)), tau=-0.05, gap_sd=0.05, fixed_cells=True)
     return simulate(sc, seed)
 
 
