@@ -229,21 +229,30 @@ def _design(cells: Cells) -> _Design:
                   columns=F.shape[1], bounds=bounds)
     cov = cells.extra.get("covariates") if cells.extra else None
     if cov:
+        missing = [k for k in ("names", "sx", "sxx", "sxy") if k not in cov]
+        if missing:
+            raise BayesDidError(f"cells.extra['covariates'] lacks {missing}; the cross-check needs "
+                                f"{ {k: v for k, v in COVARIATE_KEYS.items() if k != 'moment4'} }.")
         names = tuple(cov["names"])
         K = len(names)
-        m = len(n)
-        sx = np.asarray(cov["sx"], dtype=float).reshape(-1, K)[keep]
-        sxx = np.asarray(cov["sxx"], dtype=float).reshape(-1, K, K)[keep]
-        sxy = np.asarray(cov["sxy"], dtype=float).reshape(-1, K)[keep]
+        P = K + 2
+        want = {"sx": (J, G, T, K), "sxx": (J, G, T, K, K), "sxy": (J, G, T, K), "moment4": (J, G, T, P, P, P, P)}
+        arrays = {}
+        for key, shape in want.items():
+            if cov.get(key) is None:
+                continue
+            arr = np.asarray(cov[key], dtype=float)
+            if arr.shape != shape:
+                raise BayesDidError(f"cells.extra['covariates']['{key}'] has shape {arr.shape}; expected {shape} "
+                                    f"for {K} covariate(s) {list(names)} on {J} x {G} x {T} cells.")
+            arrays[key] = arr.reshape(J * G * T, *shape[3:])[keep]
+        sx, sxx, sxy = arrays["sx"], arrays["sxx"], arrays["sxy"]
         sy = cells.sum_y.ravel()[keep]
         des.covariates = names
         des.xbar = sx / n[:, None]
         des.sxx_w = sxx - sx[:, :, None] * sx[:, None, :] / n[:, None, None]
         des.sxy_w = sxy - sx * (sy / n)[:, None]
-        if cov.get("moment4") is not None:
-            P = K + 2
-            des.moment4 = np.asarray(cov["moment4"], dtype=float).reshape(-1, P, P, P, P)[keep]
-        assert des.xbar.shape == (m, K)
+        des.moment4 = arrays.get("moment4")
     return des
 
 

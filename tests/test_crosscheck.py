@@ -329,3 +329,15 @@ def test_collinear_covariate_is_named():
     cells = cells_from_rows(frame, truth["starts"], ddd=False, x=xp - xp.mean(), names=["month_index"])
     with pytest.raises(BayesDidError, match=r"covariates \['month_index'\] are collinear"):
         cross_check(cells, full=False)
+
+
+def test_malformed_covariate_statistics_are_named():
+    frame, truth, x = scenario_rows(J=5, T=4, ddd=False, K=2, seed=3)
+    cells = cells_from_rows(frame, truth["starts"], ddd=False, x=x, moment4=False)
+    cov = cells.extra["covariates"]
+    cov["sxy"] = cov["sxy"][..., :1]
+    with pytest.raises(BayesDidError, match=r"\['sxy'\] has shape \(5, 1, 4, 1\); expected \(5, 1, 4, 2\)"):
+        cross_check(cells, full=False)
+    del cov["sxy"]
+    with pytest.raises(BayesDidError, match=r"lacks \['sxy'\]"):
+        cross_check(cells, full=False)
