@@ -15,7 +15,6 @@ rate 0.07, restricted wild bootstrap rejection rate 0.00, over 200 replications.
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 from scipy import stats
 

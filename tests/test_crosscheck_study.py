@@ -47,7 +47,8 @@ def test_section_is_read_and_round_trips(tmp_path):
 @pytest.mark.parametrize("extra, match", [
     ("[crosscheck]\nreps = 9\n", r"unknown key\(s\) \['reps'\] in \[crosscheck\]; allowed keys are "
                                  r"\['draws', 'placebos', 'seed', 'weights'\]"),
-    ("[crosscheck]\nweights = \"mammen\"\n", r"study key 'crosscheck.weights': expected one of \['webb', 'rademacher'\]"),
+    ("[crosscheck]\nweights = \"mammen\"\n",
+     r"study key 'crosscheck.weights': expected one of \['webb', 'rademacher'\]"),
     ("[crosscheck]\ndraws = 5\n", r"study key 'crosscheck.draws': expected an integer of at least 19, found 5"),
     ("[crosscheck]\nseed = -1\n", r"study key 'crosscheck.seed': expected an integer of at least 0"),
     ("[crosscheck]\ndraws = 99.5\n", r"study key 'crosscheck.draws': expected an integer"),
