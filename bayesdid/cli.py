@@ -51,7 +51,8 @@ def _fit_and_write(study, out, args, argv, then=None):
     from .sample import warn_if_bad
 
     atomic_folder(out, replace=args.replace).check()
-    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say)
+    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
+                 full_cross_check=not getattr(args, "no_cross_check", False))
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())
     print(headline(summary))
@@ -171,6 +172,9 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("study", help="study file (TOML)")
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
+    f.add_argument("--no-cross-check", action="store_true",
+                   help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
+                        "wild cluster bootstrap and the placebo permutation")
     f.set_defaults(func=cmd_fit)
     d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case, then write its report")
     d.add_argument("--out", default="runs/demo", help="run folder to create (default runs/demo)")
@@ -186,7 +190,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
     r.set_defaults(func=cmd_report)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse")
+    b.add_argument("name", help="benchmark name: collapse, crosscheck")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     b.set_defaults(func=cmd_bench)
     return p

@@ -23,7 +23,7 @@ import xarray as xr
 
 from . import __version__
 from .cells import Cells, collapse
-from .crosscheck import least_squares_estimate
+from .crosscheck import cross_check, cross_check_not_applicable
 from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, FewAdoptersWarning
@@ -93,8 +93,13 @@ def prepare(study: Study) -> tuple[Cells, str, float]:
     return cells, digest, time.perf_counter() - t0
 
 
-def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None) -> Analysis:
-    """Fit the study and compute its effects and least-squares point estimate."""
+def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None,
+            full_cross_check: bool = True) -> Analysis:
+    """Fit the study and compute its effects and the least-squares cross-check.
+
+    ``full_cross_check=False`` (``bayesdid fit --no-cross-check``) keeps the least-squares estimate
+    and its classical, HC1 and CR1 errors but skips the wild bootstrap and the permutation.
+    """
     say = log or (lambda msg: None)
     digest, collapse_s = None, 0.0
     if cells is None:
@@ -108,12 +113,20 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     say("compiling the model (once per model shape) and sampling")
     fit = fit_cells(cells, scales, study.sampler, family=study.model.family, progress=progress)
     effects = compute_effects(fit, study.decision.threshold)
-    ls = least_squares_estimate(cells)
+    say("least-squares cross-check" + ("" if full_cross_check else " (estimate and standard errors only)"))
+    t0 = time.perf_counter()
+    x = study.crosscheck
+    try:
+        ls = cross_check(cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
+                         full=full_cross_check)
+    except BayesDidError as exc:  # the posterior stands; the cross-check says why it cannot run
+        ls = cross_check_not_applicable(str(exc))
+    crosscheck_s = time.perf_counter() - t0
     notes = []
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
-    timing = {"collapse_s": collapse_s, **fit.timing}
+    timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s}
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
                     timing=timing, data_sha256=digest, notes=notes)
 

@@ -23,6 +23,7 @@ __all__ = [
     "PriorScales",
     "SamplerSettings",
     "Decision",
+    "CrossCheckSettings",
     "Study",
     "load_study",
     "make_study",
@@ -180,6 +181,25 @@ class Decision:
     threshold: float | None = None
 
 
+CROSSCHECK_WEIGHTS = ("webb", "rademacher")
+
+
+@dataclass(frozen=True)
+class CrossCheckSettings:
+    """The least-squares cross-check's resampling (study-file section ``[crosscheck]``).
+
+    ``seed`` seeds the wild cluster bootstrap weights (and the placebo assignments when they must
+    be sampled); ``draws`` is the number of bootstrap weight vectors (all of them are enumerated when
+    there are no more); ``weights`` is ``"webb"`` (six-point) or ``"rademacher"``; ``placebos`` is the
+    largest number of placebo-in-space assignments, beyond which they are sampled.
+    """
+
+    seed: int = 20261202
+    draws: int = 999
+    weights: str = "webb"
+    placebos: int = 999
+
+
 @dataclass(frozen=True)
 class Study:
     """A validated study. Build with :func:`load_study` or :func:`make_study`."""
@@ -191,6 +211,7 @@ class Study:
     priors: PriorScales = field(default_factory=PriorScales)
     sampler: SamplerSettings = field(default_factory=SamplerSettings)
     decision: Decision = field(default_factory=Decision)
+    crosscheck: CrossCheckSettings = field(default_factory=CrossCheckSettings)
     title: str = "bayesdid study"
     period_order: tuple | None = None
     placebo_lag: int | None = None
@@ -211,7 +232,7 @@ class Study:
         return _validated(Study(**cur))
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
               "period_order"}
 
@@ -272,6 +293,19 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     d = raw.get("decision", {})
     _check_keys(d, {"threshold"}, "decision")
     decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
+    x = raw.get("crosscheck", {})
+    if not isinstance(x, Mapping):
+        raise _where("crosscheck", x, "a [crosscheck] section with keys seed, draws, weights, placebos")
+    _check_keys(x, {"seed", "draws", "weights", "placebos"}, "crosscheck")
+    weights = x.get("weights", "webb")
+    if weights not in CROSSCHECK_WEIGHTS:
+        raise _where("crosscheck.weights", weights, f"one of {list(CROSSCHECK_WEIGHTS)}")
+    crosscheck = CrossCheckSettings(
+        seed=_get_int(x, "seed", "crosscheck", 20261202, minimum=0),
+        draws=_get_int(x, "draws", "crosscheck", 999, minimum=19),
+        weights=weights,
+        placebos=_get_int(x, "placebos", "crosscheck", 999, minimum=1),
+    )
     c = raw.get("checks", {})
     _check_keys(c, {"placebo_lag"}, "checks")
     lag = c.get("placebo_lag")
@@ -281,12 +315,19 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     if not isinstance(title, str):
         raise _where("title", title, "a string")
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
-                            sampler=sampler, decision=decision, title=title,
+                            sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
                             period_order=tuple(order) if order else None, placebo_lag=lag))
 
 
 def _validated(study: Study) -> Study:
     """Cross-field checks that do not need the table."""
+    x = study.crosscheck
+    if x.weights not in CROSSCHECK_WEIGHTS:
+        raise _where("crosscheck.weights", x.weights, f"one of {list(CROSSCHECK_WEIGHTS)}")
+    for key, low in (("seed", 0), ("draws", 19), ("placebos", 1)):
+        v = getattr(x, key)
+        if isinstance(v, bool) or not isinstance(v, int) or v < low:
+            raise _where(f"crosscheck.{key}", v, f"an integer of at least {low}")
     if study.model.family not in FAMILIES:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
@@ -336,7 +377,8 @@ def load_study(path: str | Path) -> Study:
 def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
                log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
                trials=None, unit=None, priors=None, chains=2, draws=1000, tune=1000, seed=20261202,
-               threshold=None, title="bayesdid study", period_order=None, placebo_lag=None) -> Study:
+               threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
+               crosscheck=None) -> Study:
     """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
     raw: dict[str, Any] = {
         "title": title,
@@ -351,6 +393,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},
         "checks": {} if placebo_lag is None else {"placebo_lag": placebo_lag},
+        "crosscheck": dict(crosscheck or {}),
     }
     return _parse(raw, Path.cwd())
 
@@ -370,6 +413,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         "priors": {k: v for k, v in dataclasses.asdict(study.priors).items() if v is not None},
         "sampler": dataclasses.asdict(study.sampler),
         "decision": {k: v for k, v in dataclasses.asdict(study.decision).items() if v is not None},
+        "crosscheck": dataclasses.asdict(study.crosscheck),
     }
     if study.policy.target_group is not None:
         out["policy"]["target_group"] = study.policy.target_group

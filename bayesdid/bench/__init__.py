@@ -13,6 +13,7 @@ __all__ = ["REGISTRY", "run"]
 
 REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
+    "crosscheck": ("bayesdid.bench.crosscheck", "bench_crosscheck"),
 }
 
 
