@@ -135,9 +135,14 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
     from .model.gaussian import pointwise_loglik
 
+    from .effects import att_weights
+
     fit = an.fit
     cells = an.cells
-    post = fit.posterior
+    post = fit.posterior.copy()
+    w = xr.DataArray(att_weights(cells), dims=("adopter",), coords={"adopter": post["adopter"]})
+    post["att"] = (post["tau_adopter"] * w).sum("adopter")
+    post["att"].attrs = {"meaning": "ATT = sum_j w_j tau_adopter[j], w_j = share of treated target-group rows"}
     coords = {"jurisdiction": list(cells.jurisdictions), "group": list(cells.groups),
               "period": [str(p) for p in cells.periods]}
     ll = pointwise_loglik(fit)

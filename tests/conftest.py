@@ -16,9 +16,9 @@ from bayesdid.simulate import Scenario, simulate
 warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz_stats")
 
 
-def sim_study(tmp_path_factory, sc: Scenario, seed: int, name: str, **kw):
+def sim_study(tmp_path_factory, sc: Scenario, data_seed: int, name: str, **kw):
     """Simulate, write the table, return (study, cells, frame, truth)."""
-    frame, truth = simulate(sc, seed)
+    frame, truth = simulate(sc, data_seed)
     d = tmp_path_factory.mktemp(name)
     path = d / "table.csv"
     frame.to_csv(path, index=False)
