@@ -27,7 +27,7 @@ def demo_run(tmp_path_factory):
 def test_demo_writes_complete_run_folder(demo_run, capsys):
     code, out = demo_run
     assert code == 0
-    assert sorted(p.name for p in out.iterdir()) == ["manifest.json", "posterior.nc", "summary.json"]
+    assert sorted(p.name for p in out.iterdir()) == ["manifest.json", "posterior.nc", "report.html", "summary.json"]
     s = json.loads((out / "summary.json").read_text())
     for key in ("mean", "median", "sd", "eti_90", "eti_95", "hdi_90", "prob_gt_0", "prob_lt_0",
                 "prob_beyond_threshold"):
