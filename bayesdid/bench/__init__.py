@@ -13,6 +13,7 @@ __all__ = ["REGISTRY", "run"]
 
 REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
+    "families": ("bayesdid.bench.families", "bench_families"),
 }
 
 
