@@ -126,7 +126,10 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
         coords = {**coords, "covariate": list(cov["names"])}
     with pm.Model(coords=coords) as model:
         m, S = hierarchical_mean(cells, scales)
-        d = {k: pm.Data(k, arr[k]) for k in RECORD_KEYS}
+        # only the arrays this family reads: nutpie's with_data rejects names the graph does not use
+        keys = ("rec_size", "rec_w") + (("rec_first", "rec_ycell", "rec_cellid") if family == "negbinomial" else ())
+        used = ("rec_cell", "rec_jt", "rec_tgt") + (("rec_x",) if K else ()) + keys
+        d = {k: pm.Data(k, arr[k]) for k in used}
         obs = pm.Data("rec_y", arr["rec_y"])
         sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
         z_gap = pm.Normal("z_gap", 0.0, 1.0, dims=("jurisdiction", "period"))
@@ -146,7 +149,6 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
             phi = pm.Deterministic("phi", 1.0 / pt.sqr(disp))
             params.append(phi)
         n_cells = J * G * T
-        keys = ("rec_size", "rec_w", "rec_first", "rec_ycell", "rec_cellid")
 
         def logp(value, eta, *rest):
             phi_ = rest[0] if family == "negbinomial" else None
