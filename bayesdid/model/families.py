@@ -8,7 +8,9 @@ with ``m`` from :func:`bayesdid.model.terms.hierarchical_mean` (baselines, perio
 group period effects, tau[j] D[j,g,t]). Unlike the Gaussian family, the shock ``s`` and the gap
 noise ``e`` cannot be integrated out in closed form; they are non-centred latent fields,
 
-    s[j,t] = sigma_shock * z_shock[j,t]   (DDD only; a DiD has no within-jurisdiction contrast),
+    s[j,t] = sigma_s[j] * z_shock[j,t]    (DDD only; a DiD has no within-jurisdiction contrast;
+                                           sigma_s = sigma_shock for comparisons, the period scale
+                                           for adopters, whose reference group identifies them),
     e[j,t] = sigma_gap * z_gap[j,t],       z ~ Normal(0, 1).
 
 The gap noise is what the effect is judged against, and it gives every treated cell over-dispersion
@@ -138,7 +140,13 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
         if cells.design == "DDD":
             sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
             z_shock = pm.Normal("z_shock", 0.0, 1.0, dims=("jurisdiction", "period"))
-            shock = pm.Deterministic("shock", sigma_shock * z_shock, dims=("jurisdiction", "period"))
+            # As in the Gaussian family: adopters' own shocks are identified by their reference group
+            # and are not shrunk toward the comparisons' (wide period-effect scale); comparisons pool.
+            ia = S.get("is_adopter")
+            if ia is None:  # shared terms without the adopter indicator as data
+                ia = pt.as_tensor((cells.start < T).astype(float))
+            scale_j = ia * S["period"] + (1.0 - ia) * sigma_shock
+            shock = pm.Deterministic("shock", scale_j[:, None] * z_shock, dims=("jurisdiction", "period"))
             eta = eta + pt.reshape(shock, (-1,))[d["rec_jt"]]
         if K:
             theta = pm.Normal("theta", 0.0, S["covariate"], dims=("covariate",))
