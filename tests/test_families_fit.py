@@ -104,9 +104,10 @@ def test_rate_ratio_recovered_and_natural_estimands_direct(poisson_recovery):
 
 def test_poisson_exposure_matches_statsmodels_glm():
     """statsmodels GLM (Poisson, offset log exposure) on the same records: jurisdiction x group,
-    period and target x period dummies, the three covariates and the treatment. The Bayesian model
-    equals that GLM when the shock, the gap noise and the adopter spread are switched off (prior
-    scales 1e-3) and the other priors are vague; then the posterior mean of tau must agree with the
+    period, target x period and adopter x period dummies, the three covariates and the treatment.
+    The Bayesian model equals that GLM when the comparisons' shocks, the gap noise and the adopter
+    spread are switched off (prior scales 1e-3) and the other priors are vague (the adopters' own
+    shocks take the vague period scale, hence their dummies); then the posterior mean of tau must agree with the
     MLE within Monte Carlo error: 4 MCSE (MCSE = posterior sd / sqrt(bulk ESS)) plus 0.05 posterior
     sd for the O(1/n) gap between a posterior mean and an MLE."""
     import arviz as az
@@ -132,6 +133,8 @@ def test_poisson_exposure_matches_statsmodels_glm():
     for tt in range(1, T):
         cols[f"t{tt}"] = (t == tt).astype(float)
         cols[f"tgt_t{tt}"] = ((t == tt) & (g == cells.target)).astype(float)
+        for ja in cells.adopters:  # adopters' own shocks are free in the model (wide prior): FE here
+            cols[f"adopter{ja}_t{tt}"] = ((j == ja) & (t == tt)).astype(float)
     for k in range(rec["x"].shape[1]):
         cols[f"x{k}"] = rec["x"][:, k]
     cols["D"] = cells.treated.ravel()[c].astype(float)
