@@ -157,13 +157,115 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
     for a, s in study.policy.adopters:
         start[jur_index[a]] = period_index[str(s)]
     sd = float(np.std(y)) if len(y) > 1 else 1.0
-    return Cells(
+    cells = Cells(
         jurisdictions=tuple(jur_labels), groups=groups, periods=tuple(_plain(v) for v in levels),
         design=study.design, target=target, start=start,
         n=n.reshape(J, G, T), sum_y=s1.reshape(J, G, T), sum_y2=s2.reshape(J, G, T), ss=ss.reshape(J, G, T),
         rows=len(frame), log_outcome=study.model.log_outcome,
         outcome_sd=sd if sd > 0 else 1.0, outcome_mean=float(np.mean(y)),
     )
+    if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
+        return cells
+    return attach_family(study, frame, cells, idx, y)
+
+
+def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarray, y: np.ndarray) -> Cells:
+    """Family and covariate statistics on top of the Gaussian sums (``y`` on the model scale).
+
+    * gaussian with covariates: ``extra["covariates"]`` holds ``names`` (K), ``sx`` (J,G,T,K),
+      ``sxx`` (J,G,T,K,K), ``sxy`` (J,G,T,K), the within-cell ``wxx``, ``wxy`` and the centring
+      ``means`` (K), all of the centred covariates (see :mod:`bayesdid.model.covariates`).
+    * binomial: ``n`` = trials and ``sum_y`` = successes per cell; poisson and negbinomial: ``n`` =
+      exposure and ``sum_y`` = events per cell. The likelihood reads ``extra["records"]``: one record
+      per non-empty cell and covariate pattern (``cell`` flat index, ``y``, ``size`` = trials or
+      exposure, ``x`` (R, K) centred pattern). With a continuous covariate there is no exact
+      per-pattern collapse: one record per row (the row-level likelihood), with a
+      :class:`~bayesdid.errors.RowLevelFallbackWarning`.
+
+    ``extra["likelihood"]`` says in words which of these the fit uses.
+    """
+    import warnings
+
+    from .errors import RowLevelFallbackWarning
+    from .model.covariates import cell_sums, check_identified, design_matrix
+
+    fam = study.model.family
+    cols = study.columns
+    J, G, T = cells.shape
+    size = J * G * T
+    extra = {"family": fam}
+    if frame.attrs.get("dropped_rows"):
+        extra["dropped_rows"] = dict(frame.attrs["dropped_rows"])
+    cov = design_matrix(study.model.covariates, frame) if study.model.covariates else None
+    if fam == "gaussian":
+        if cov is not None:
+            sums = cell_sums(cov["X"], y, idx, size, cells.n.ravel())
+            check_identified(cells, sums, cov["names"])
+            K = len(cov["names"])
+            extra["covariates"] = {
+                "names": cov["names"], "means": cov["means"], "discrete": cov["discrete"],
+                "sx": sums["sx"].reshape(J, G, T, K), "sxx": sums["sxx"].reshape(J, G, T, K, K),
+                "sxy": sums["sxy"].reshape(J, G, T, K), "wxx": sums["wxx"].reshape(J, G, T, K, K),
+                "wxy": sums["wxy"].reshape(J, G, T, K)}
+        extra["likelihood"] = ("exact on cells (jurisdiction-period shock and gap noise integrated out"
+                               + ("; covariates through per-cell sums of x, xx' and xy)" if cov else ")"))
+        return replace(cells, extra=extra)
+
+    yr = frame[cols.outcome].to_numpy(dtype=float)
+    if fam == "binomial":
+        sz = frame[cols.trials].to_numpy(dtype=float) if cols.trials else np.ones(len(frame))
+    else:
+        sz = frame[cols.exposure].to_numpy(dtype=float)
+    n = np.bincount(idx, weights=sz, minlength=size)
+    sum_y = np.bincount(idx, weights=yr, minlength=size)
+    new = replace(cells, n=n.reshape(J, G, T), sum_y=sum_y.reshape(J, G, T))
+    K = 0 if cov is None else len(cov["names"])
+    if cov is not None:
+        sums = cell_sums(cov["X"], yr, idx, size, np.bincount(idx, minlength=size).astype(float))
+        check_identified(new, sums, cov["names"])
+        extra["covariates"] = {"names": cov["names"], "means": cov["means"], "discrete": cov["discrete"]}
+    if cov is not None and not cov["discrete"]:
+        msg = (f"covariates '{study.model.covariates}' include a continuous column (more than "
+               f"{_max_levels()} distinct values), so family '{fam}' cannot be collapsed exactly per cell and "
+               f"covariate pattern; the likelihood is evaluated on the {len(frame):,} rows (exact, slower).")
+        warnings.warn(msg, RowLevelFallbackWarning, stacklevel=3)
+        rec = {"cell": idx.astype(np.int64), "y": yr, "size": sz, "x": cov["X"]}
+        extra["likelihood"] = "row-level (continuous covariate: no exact collapse); " + msg
+        extra["fallback"] = msg
+    elif cov is not None:
+        X = cov["X"]
+        codes = np.zeros(len(frame), dtype=np.int64)
+        for k in range(K):
+            _, inv = np.unique(X[:, k], return_inverse=True)
+            codes = codes * (int(inv.max()) + 1) + inv
+        _, pat = np.unique(codes, return_inverse=True)
+        key = idx.astype(np.int64) * (int(pat.max()) + 1) + pat
+        uk, first, inv = np.unique(key, return_index=True, return_inverse=True)
+        rec = {"cell": idx[first].astype(np.int64), "y": np.bincount(inv, weights=yr),
+               "size": np.bincount(inv, weights=sz), "x": X[first]}
+        extra["likelihood"] = (f"exact on {len(uk):,} records (cell x covariate pattern), "
+                               "jurisdiction-period shock and gap noise as non-centred latent terms")
+    else:
+        cell_ids = np.flatnonzero(n > 0)
+        rec = {"cell": cell_ids.astype(np.int64), "y": sum_y[cell_ids], "size": n[cell_ids],
+               "x": np.zeros((len(cell_ids), 0))}
+        extra["likelihood"] = ("exact on cells (successes and trials per cell)" if fam == "binomial" else
+                               "exact on cells (events and exposure per cell)") + \
+            ", jurisdiction-period shock and gap noise as non-centred latent terms"
+    extra["records"] = rec
+    Y, N = float(yr.sum()), float(sz.sum())
+    if fam == "binomial":
+        p = min(max(Y / N, 0.5 / N), 1 - 0.5 / N)
+        loc = float(np.log(p / (1 - p)))
+    else:
+        loc = float(np.log(max(Y, 0.5) / N))
+    return replace(new, extra=extra, outcome_mean=loc, outcome_sd=1.0)
+
+
+def _max_levels() -> int:
+    from .model.covariates import DISCRETE_MAX_LEVELS
+
+    return DISCRETE_MAX_LEVELS
 
 
 def collapse(study: Study, frame: pd.DataFrame) -> Cells:

@@ -14,7 +14,7 @@ import pandas as pd
 from .errors import DataRoleError
 from .study import Study
 
-__all__ = ["read_table", "file_sha256", "check_roles", "period_levels"]
+__all__ = ["read_table", "file_sha256", "check_roles", "period_levels", "check_family_inputs"]
 
 
 def file_sha256(path: str | Path) -> str:
@@ -91,12 +91,15 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     cols = study.columns
     if len(frame) == 0:
         raise DataRoleError("the table has no rows; the study needs rows for every jurisdiction and period.")
-    missing_cols = [c for c in cols.used() if c not in frame.columns]
+    from .model.covariates import required_columns
+
+    used = cols.used() + [c for c in required_columns(study.model.covariates) if c not in cols.used()]
+    missing_cols = [c for c in used if c not in frame.columns]
     if missing_cols:
         raise DataRoleError(
             f"column(s) {missing_cols} named in the study are not in the table; it has "
-            f"{list(frame.columns)[:20]}. Fix the names under [data] or the table's header.")
-    out = frame[cols.used()].copy()
+            f"{list(frame.columns)[:20]}. Fix the names under [data] or [model] covariates, or the table's header.")
+    out = frame[used].copy()
 
     for role in ("jurisdiction", "period", "group"):
         c = getattr(cols, role)
@@ -165,4 +168,108 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
         if str(study.policy.target_group) not in glev:
             raise DataRoleError(f"target group '{study.policy.target_group}' ('policy.target_group') is not a "
                                 f"level of column '{cols.group}' (levels {glev}).")
+    return check_family_inputs(study, out)
+
+
+def _rows_text(mask: np.ndarray, limit: int = 5) -> str:
+    rows = np.flatnonzero(mask)
+    shown = ", ".join(str(int(r) + 2) for r in rows[:limit])  # +2: header line and 1-based lines
+    return f"{rows.size} row(s) (table lines {shown}{', ...' if rows.size > limit else ''})"
+
+
+def _numeric(out: pd.DataFrame, col: str, role: str) -> np.ndarray:
+    v = out[col]
+    if not pd.api.types.is_numeric_dtype(v) or pd.api.types.is_bool_dtype(v):
+        conv = pd.to_numeric(v, errors="coerce")
+        bad = v[conv.isna() & v.notna()].head(3).tolist()
+        if bad:
+            raise DataRoleError(f"{role} column '{col}' is not numeric (values such as {bad}); give numbers.")
+        v = conv
+    return v.to_numpy(dtype=float, na_value=np.nan)
+
+
+def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
+    """Checks that depend on the outcome family, the exposure and trials columns and the covariates.
+
+    Binomial: a 0/1 outcome, or whole-number successes with a trials column and successes <= trials.
+    Poisson and negbinomial: whole-number, non-negative counts. Exposure: present, finite and
+    positive. Covariates: no missing values, unless ``model.missing = "drop"``, which drops those
+    rows and records their count in ``out.attrs["dropped_rows"]``.
+
+    Raises
+    ------
+    DataRoleError
+        Naming the column, how many rows and which table lines are at fault, and the fix.
+    """
+    cols, fam = study.columns, study.model.family
+    y = out[cols.outcome].to_numpy(dtype=float)
+    if fam == "binomial" and cols.trials is None:
+        bad = (y != 0) & (y != 1)
+        if bad.any():
+            raise DataRoleError(
+                f"outcome column '{cols.outcome}' must be 0 or 1 for family 'binomial' without a trials column; "
+                f"{_rows_text(bad)} hold other values (e.g. {sorted(set(y[bad].tolist()))[:3]}). Recode it to 0/1, "
+                "or give aggregated data with successes in the outcome and 'data.trials' naming the trials column.")
+    if fam in ("binomial", "poisson", "negbinomial") and not (fam == "binomial" and cols.trials is None):
+        what = "successes" if fam == "binomial" else "counts"
+        neg = y < 0
+        if neg.any():
+            raise DataRoleError(f"outcome column '{cols.outcome}' holds {what} for family '{fam}' but "
+                                f"{_rows_text(neg)} are negative (smallest {y.min():g}). Counts cannot be negative; "
+                                "fix or drop those rows.")
+        frac = y != np.round(y)
+        if frac.any():
+            raise DataRoleError(f"outcome column '{cols.outcome}' holds {what} for family '{fam}' but "
+                                f"{_rows_text(frac)} are not whole numbers (e.g. {y[frac][0]:g}). Give whole "
+                                "numbers, or use family 'gaussian' for a continuous outcome.")
+    if fam == "binomial" and cols.trials is not None:
+        tr = _numeric(out, cols.trials, "trials")
+        miss = ~np.isfinite(tr)
+        if miss.any():
+            raise DataRoleError(f"trials column '{cols.trials}' has {_rows_text(miss)} missing or infinite; every "
+                                "row needs its number of trials. Fill or drop those rows.")
+        if (tr != np.round(tr)).any() or (tr < 1).any():
+            bad = (tr != np.round(tr)) | (tr < 1)
+            raise DataRoleError(f"trials column '{cols.trials}' must hold whole numbers of at least 1; "
+                                f"{_rows_text(bad)} do not (e.g. {tr[bad][0]:g}).")
+        below = tr < y
+        if below.any():
+            i = int(np.flatnonzero(below)[0])
+            raise DataRoleError(f"trials column '{cols.trials}' is below the successes in '{cols.outcome}' in "
+                                f"{_rows_text(below)} (first: {y[i]:g} successes of {tr[i]:g} trials). "
+                                "Successes cannot exceed trials; check which column is which.")
+        out[cols.trials] = tr
+    if fam in ("poisson", "negbinomial") and cols.exposure is not None:
+        ex = _numeric(out, cols.exposure, "exposure")
+        miss = ~np.isfinite(ex)
+        if miss.any():
+            raise DataRoleError(f"exposure column '{cols.exposure}' has {_rows_text(miss)} missing or infinite; "
+                                "every row needs its person-time. Fill or drop those rows.")
+        nonpos = ex <= 0
+        if nonpos.any():
+            raise DataRoleError(f"exposure column '{cols.exposure}' must be positive (person-time); "
+                                f"{_rows_text(nonpos)} are zero or negative (smallest {ex.min():g}). "
+                                "Drop rows with no person-time, or fix the values.")
+        out[cols.exposure] = ex
+
+    from .model.covariates import required_columns
+
+    covs = required_columns(study.model.covariates)
+    if covs:
+        na = {c: int(out[c].isna().sum()) for c in covs}
+        na = {c: k for c, k in na.items() if k}
+        if na:
+            mask = out[covs].isna().any(axis=1).to_numpy()
+            if study.model.missing != "drop":
+                col, k = next(iter(na.items()))
+                raise DataRoleError(
+                    f"covariate column '{col}' has {k} missing value(s) ({_rows_text(out[col].isna().to_numpy())})"
+                    + (f"; other covariates with missing values: {dict(list(na.items())[1:])}" if len(na) > 1 else "")
+                    + ". Fill them, or set model.missing = \"drop\" to drop the rows with a missing covariate "
+                      "(the count is reported).")
+            out = out.loc[~mask].copy()
+            out.attrs["dropped_rows"] = {"count": int(mask.sum()), "by_column": na,
+                                         "reason": "missing covariate value (model.missing = 'drop')"}
+            if len(out) == 0:
+                raise DataRoleError("every row has a missing covariate value; model.missing = 'drop' leaves no rows.")
     return out

@@ -18,7 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["summarize", "hdi", "Effect", "att_weights", "compute_effects", "beyond_text", "percent_change"]
+__all__ = ["summarize", "hdi", "Effect", "att_weights", "compute_effects", "beyond_text", "percent_change",
+           "NaturalEffects", "natural_effects", "counterfactual_means"]
 
 
 def hdi(x: np.ndarray, prob: float = 0.9) -> tuple[float, float]:
@@ -87,8 +88,13 @@ class Effect:
 
         lines = [f"{self.name} ({self.measure}): mean {f(s['mean'])}, 90% interval {f(s['eti_90'][0])} to "
                  f"{f(s['eti_90'][1])}",
-                 f"  probability the effect is positive: {s['prob_gt_0']:.0%}; negative: {s['prob_lt_0']:.0%}"]
-        if s["prob_beyond_threshold"] is not None:
+                 (f"  probability the ratio is above 1: {s['prob_gt_1']:.0%}; below 1: {s['prob_lt_1']:.0%}"
+                  if "prob_gt_1" in s else
+                  f"  probability the effect is positive: {s['prob_gt_0']:.0%}; negative: {s['prob_lt_0']:.0%}")]
+        if s["prob_beyond_threshold"] is not None and self.scale == "ratio":
+            lines.append(f"  probability the ratio is {'below' if s['threshold'] < 1 else 'above'} "
+                         f"{s['threshold']:g}: {s['prob_beyond_threshold']:.0%}")
+        elif s["prob_beyond_threshold"] is not None:
             lines.append(f"  probability of {beyond_text(s['threshold'], pct)}: {s['prob_beyond_threshold']:.0%}")
         return "\n".join(lines)
 
@@ -113,19 +119,20 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     tau_a = fit.draws("tau_adopter")  # (S, A)
     w = att_weights(cells)
     att = tau_a @ w
-    log = cells.log_outcome
+    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
+    log = cells.log_outcome or family != "gaussian"
     thr_model = (np.log1p(threshold) if (log and threshold is not None) else threshold)
-    out = {"effect": Effect("ATT", "difference in log outcome" if log else "difference in outcome",
-                            "model", att, thr_model)}
-    if log:
+    measure = MODEL_MEASURES.get(family) or ("difference in log outcome" if log else "difference in outcome")
+    out = {"effect": Effect("ATT", measure, "model", att, thr_model)}
+    if cells.log_outcome:
         out["effect_percent"] = Effect("ATT", "percent change, exp(ATT) - 1", "percent", percent_change(att), threshold)
+    out["effect_natural"] = natural_effects(fit, threshold, att=att)
     per = []
     for a, j in enumerate(cells.adopters):
-        e = Effect(cells.jurisdictions[j], "difference in log outcome" if log else "difference in outcome",
-                   "model", tau_a[:, a], thr_model)
+        e = Effect(cells.jurisdictions[j], measure, "model", tau_a[:, a], thr_model)
         row = {"adopter": cells.jurisdictions[j], "start": _plain(cells.periods[cells.start[j]]),
                "weight": float(w[a]), **e.summary}
-        if log:
+        if cells.log_outcome:
             row["percent"] = Effect(cells.jurisdictions[j], "percent change", "percent",
                                     percent_change(tau_a[:, a]), threshold).summary
         per.append(row)
@@ -135,3 +142,111 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
 
 def _plain(v):
     return v.item() if hasattr(v, "item") else v
+
+
+#: What tau measures on the model (link) scale of each non-Gaussian family.
+MODEL_MEASURES = {
+    "binomial": "difference in log odds (log odds ratio), conditional on cell and covariates",
+    "poisson": "difference in log rate (log rate ratio), conditional on cell and covariates",
+    "negbinomial": "difference in log rate (log rate ratio), conditional on cell and covariates",
+}
+
+
+class NaturalEffects(list):
+    """Effects on the scale people read, a list of :class:`Effect` each naming its ``measure``.
+
+    ``summary`` (what summary.json holds under ``effect_natural``) is the list of their summaries.
+    """
+
+    @property
+    def summary(self) -> list[dict]:
+        return [e.summary for e in self]
+
+    def __str__(self) -> str:
+        return "\n".join(str(e) for e in self)
+
+
+def _ratio_effect(name, measure, draws, threshold):
+    """A ratio (no effect = 1): probabilities are stated against 1, the threshold as 1 + t."""
+    e = Effect(name, measure, "ratio", draws, None)
+    s = e.summary
+    s.pop("prob_gt_0"), s.pop("prob_lt_0")
+    s["no_effect"] = 1.0
+    s["prob_gt_1"] = float(np.mean(draws > 1.0))
+    s["prob_lt_1"] = float(np.mean(draws < 1.0))
+    if threshold is not None:
+        r = 1.0 + threshold
+        s["threshold"] = r
+        s["prob_beyond_threshold"] = float(np.mean(draws < r) if threshold < 0 else np.mean(draws > r))
+    return e
+
+
+def _difference_effect(name, measure, draws):
+    e = Effect(name, measure, "natural", draws, None)
+    e.summary["no_effect"] = 0.0
+    return e
+
+
+def counterfactual_means(fit) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Predicted means of the treated target-group records with and without the policy.
+
+    Returns ``(with_policy, without, weight)``: (S, R_treated) probabilities (binomial) or rates per
+    unit of exposure (counts) from the linear predictor eta_r with and without tau[j] D[j,g,t]
+    (shock, gap noise and covariates at their posterior draws), and each record's weight: its trials
+    or exposure times the jurisdiction-period weight.
+    """
+    from .model.families import data_arrays, inverse_link, record_eta_draws
+    from .model.terms import mean_from_draws
+
+    cells = fit.cells
+    family = fit.spec.family
+    d = data_arrays(cells, family)
+    treated = cells.treated.ravel()[d["rec_cell"]]
+    m = mean_from_draws(fit)
+    eta1 = record_eta_draws(fit, m)[:, treated]
+    eta0 = record_eta_draws(fit, m, without_policy=True)[:, treated]
+    w = (d["rec_size"] * d["rec_w"])[treated]
+    return inverse_link(family, eta1), inverse_link(family, eta0), w
+
+
+def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | None = None) -> NaturalEffects:
+    """Natural-scale estimands from counterfactual predictions over the treated cells.
+
+    With ``p1_r``, ``p0_r`` the predicted means of treated record r with and without the policy and
+    ``N_r`` its trials or exposure (see :func:`counterfactual_means`), per draw:
+
+    * binomial: risk difference (percentage points) ``100 * sum_r N_r (p1_r - p0_r) / sum_r N_r``
+      and risk ratio ``sum_r N_r p1_r / sum_r N_r p0_r``;
+    * poisson, negbinomial: rate ratio ``sum_r N_r p1_r / sum_r N_r p0_r``, rate difference per
+      1,000 units of exposure ``1000 * sum_r N_r (p1_r - p0_r) / sum_r N_r``, events averted per
+      1,000 units ``-`` that, and events averted in total ``sum_r N_r (p0_r - p1_r)``;
+    * gaussian with a log outcome: percent change ``exp(ATT) - 1``; on the identity scale the
+      natural scale is the model scale, the ATT in outcome units.
+
+    For ratios and percent changes a decision threshold is a relative change (``-0.05``: a ratio
+    below 0.95); difference measures carry no threshold (it is stated on the ratio).
+    """
+    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
+    cells = fit.cells
+    if family == "gaussian":
+        if att is None:
+            att = fit.draws("tau_adopter") @ att_weights(cells)
+        if cells.log_outcome:
+            return NaturalEffects([Effect("ATT", "percent change, exp(ATT) - 1", "percent", np.expm1(att),
+                                          threshold)])
+        return NaturalEffects([Effect("ATT", "difference in outcome (natural scale = model scale)", "model",
+                                      att, threshold)])
+    p1, p0, w = counterfactual_means(fit)
+    W = w.sum()
+    m1, m0 = p1 @ w / W, p0 @ w / W
+    if family == "binomial":
+        return NaturalEffects([
+            _difference_effect("ATT", "risk difference, percentage points", 100.0 * (m1 - m0)),
+            _ratio_effect("ATT", "risk ratio", m1 / m0, threshold),
+        ])
+    return NaturalEffects([
+        _ratio_effect("ATT", "rate ratio", m1 / m0, threshold),
+        _difference_effect("ATT", "rate difference per 1,000 units of exposure", 1000.0 * (m1 - m0)),
+        _difference_effect("ATT", "events averted per 1,000 units of exposure", 1000.0 * (m0 - m1)),
+        _difference_effect("ATT", "events averted in the treated cells (total)", W * (m0 - m1)),
+    ])

@@ -73,7 +73,12 @@ class Analysis:
             "timing": self.timing,
             "model": {"family": self.study.model.family, "log_outcome": self.study.model.log_outcome,
                       "design": self.cells.design,
-                      "likelihood": "exact on cells (jurisdiction-period shock and gap noise integrated out)"},
+                      "likelihood": self.cells.extra.get(
+                          "likelihood", "exact on cells (jurisdiction-period shock and gap noise integrated out)"),
+                      **({"covariates": {"formula": self.study.model.covariates,
+                                         "columns": list(self.cells.extra["covariates"]["names"]),
+                                         "centred_at": [float(v) for v in self.cells.extra["covariates"]["means"]]}}
+                         if "covariates" in self.cells.extra else {})},
             "notes": self.notes,
         }
         if "effect_percent" in e:
@@ -126,6 +131,14 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
+    if cells.extra.get("fallback"):
+        notes.append(cells.extra["fallback"])
+        say("WARNING: " + cells.extra["fallback"])
+    if cells.extra.get("dropped_rows"):
+        dr = cells.extra["dropped_rows"]
+        notes.append(f"{dr['count']} row(s) dropped for a missing covariate value (model.missing = 'drop'); "
+                     f"missing by column: {dr['by_column']}.")
+        say(notes[-1])
     timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s}
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
                     timing=timing, data_sha256=digest, notes=notes)
@@ -133,7 +146,7 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
-    from .model.gaussian import pointwise_loglik
+    from .model.families import pointwise_loglik
 
     from .effects import att_weights
 

@@ -73,7 +73,77 @@ def make_copay_cap(out: Path = HERE / "copay_cap", seed: int = 20261202) -> dict
     return truth
 
 
-CASES = {"copay_cap": make_copay_cap}
+NURSE_STUDY = """\
+# Invented scenario: in two of twenty-four regions of the fictional Republic of Valmora, a free
+# after-hours nurse advice line opened for enrollees aged 65 and over (the target group); younger
+# adult enrollees (the reference group) could not use it. Outcome: emergency department visits per
+# region, quarter, age band, sex and risk band, with enrollee-quarters as exposure, so effects read
+# as rate ratios and visits averted per 1,000 enrollee-quarters. Sex and a three-level risk band
+# adjust for who is enrolled in each region and quarter.
+title = "Valmora nurse advice line and emergency visits of older enrollees"
+
+[data]
+table = "visits.csv"
+outcome = "ed_visits"
+jurisdiction = "region"
+period = "quarter"
+group = "age_band"
+exposure = "enrolled_quarters"
+
+[policy]
+target_group = "65+"
+adopters = {{ "Norvale" = "{s1}", "Kestrel Bay" = "{s2}" }}
+
+[model]
+family = "poisson"
+covariates = "C(sex) + C(risk_band)"
+
+[sampler]
+chains = 2
+draws = 1000
+tune = 1000
+seed = 5151
+
+[decision]
+threshold = -0.10   # a rate cut of more than 10% is what the health board called worth the cost
+"""
+
+
+def make_nurse_line(out: Path = HERE / "nurse_line", seed: int = 20261203) -> dict:
+    from bayesdid.simulate_families import CountScenario, simulate_family
+
+    names = region_names(24)
+    sc = CountScenario(family="poisson", jurisdictions=24, periods=8, groups=2, starts={0: 4, 1: 5},
+                       rows_per_cell=150, tau=-0.18, level=(-2.2, -1.5), baseline_sd=0.25, period_sd=0.06,
+                       shock_sd=0.05, group_period_sd=0.03, gap_sd=0.04, theta=(0.15, 0.45, 1.0),
+                       exposure=(0.25, 1.0))
+    frame, truth = simulate_family(sc, seed, names=names)
+    quarters = QUARTERS[:8]
+    frame["quarter"] = np.asarray(quarters, dtype=object)[frame["period"].to_numpy() - 1]
+    frame["age_band"] = np.where(frame["group"] == "target", "65+", "18-64")
+    frame = frame.rename(columns={"y": "ed_visits", "exposure": "enrolled_quarters", "risk": "risk_band"})
+    # The health board publishes counts per region, quarter, age band, sex and risk band: aggregate the
+    # enrollee rows (the exact collapse makes this the same likelihood as the enrollee-level table).
+    keys = ["region", "quarter", "age_band", "sex", "risk_band"]
+    frame = frame.groupby(keys, as_index=False, sort=True)[["enrolled_quarters", "ed_visits"]].sum()
+    frame["enrolled_quarters"] = frame["enrolled_quarters"].round(2)
+    frame["ed_visits"] = frame["ed_visits"].astype(int)
+    frame = frame[keys + ["enrolled_quarters", "ed_visits"]]
+    out.mkdir(parents=True, exist_ok=True)
+    frame.to_csv(out / "visits.csv", index=False)
+    starts = {k: quarters[v - 1] for k, v in truth["starts"].items()}
+    (out / "study.toml").write_text(NURSE_STUDY.format(s1=starts["Norvale"], s2=starts["Kestrel Bay"]))
+    truth = {"effect_log_rate": truth["tau"], "rate_ratio_treated_cells": truth["rate_ratio"],
+             "rate_difference_per_1000_treated_cells": truth["rate_difference_per_1000"],
+             "starts": starts, "rows": truth["rows"], "seed": seed,
+             "note": "values the generator used (table aggregated per region, quarter, age band, sex and "
+                     "risk band; exposure rounded to 2 decimals); "
+                     "the demo fit should recover them"}
+    (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n")
+    return truth
+
+
+CASES = {"copay_cap": make_copay_cap, "nurse_line": make_nurse_line}
 
 
 def make(name: str) -> dict:

@@ -69,6 +69,27 @@ def jt_loglik(d, *, m_r, m_q, sigma_r, sigma_q, sigma_shock, sigma_gap, xp=NP):
 
 DATA_KEYS = ("ybar_r", "p_r", "inv_n_r", "nm1_r", "logn_r", "ss_r",
              "p_q", "inv_n_q", "nm1_q", "logn_q", "ss_q", "w")
+#: Per (jurisdiction, period) covariate arrays of each side: cell means of the centred covariates
+#: (J, T, K), within-cell cross-products Wxx (J, T, K, K) and Wxy (J, T, K).
+COV_KEYS = ("xbar_r", "wxx_r", "wxy_r", "xbar_q", "wxx_q", "wxy_q")
+
+
+def covariate_adjusted(d: dict, theta, ybar_q=None) -> dict:
+    """The arrays of :func:`jt_loglik` for ``u = y - x~' theta`` instead of ``y`` (exact).
+
+    Per cell ``ubar = ybar - xbar' theta`` and ``SS_u = SS_y - 2 theta' Wxy + theta' Wxx theta``
+    (see :mod:`bayesdid.model.covariates`). ``theta`` is (K,) or, for draws, (S, 1, 1, K): it
+    broadcasts against the (J, T, K) arrays. Works on numpy and PyTensor alike.
+    """
+    out = dict(d)
+    if ybar_q is not None:
+        out["ybar_q"] = ybar_q
+    th_col, th_row = theta[..., :, None], theta[..., None, :]
+    for tag in ("r", "q"):
+        out[f"ybar_{tag}"] = out[f"ybar_{tag}"] - (d[f"xbar_{tag}"] * theta).sum(axis=-1)
+        out[f"ss_{tag}"] = (d[f"ss_{tag}"] - 2.0 * (d[f"wxy_{tag}"] * theta).sum(axis=-1)
+                            + (d[f"wxx_{tag}"] * th_col * th_row).sum(axis=(-1, -2)))
+    return out
 
 
 def cell_arrays(cells: Cells) -> dict[str, np.ndarray]:
@@ -88,16 +109,42 @@ def cell_arrays(cells: Cells) -> dict[str, np.ndarray]:
     else:
         z = np.zeros_like(out["p_q"])
         out.update({"ybar_r": z, "p_r": z, "inv_n_r": z + 1.0, "nm1_r": z, "logn_r": z, "ss_r": z})
+    cov = cells.extra.get("covariates")
+    if cov is not None and "sx" in cov:
+        safe = np.maximum(cells.n, 1.0)[..., None]
+
+        def cside(g, tag):
+            return {f"xbar_{tag}": cov["sx"][:, g] / safe[:, g], f"wxx_{tag}": cov["wxx"][:, g],
+                    f"wxy_{tag}": cov["wxy"][:, g]}
+
+        out.update(cside(cells.target, "q"))
+        if cells.design == "DDD":
+            out.update(cside(cells.reference, "r"))
+        else:
+            out.update({k.replace("_q", "_r"): np.zeros_like(v) for k, v in cside(cells.target, "q").items()})
     return out
+
+
+def n_covariates(cells: Cells) -> int:
+    cov = cells.extra.get("covariates")
+    return 0 if cov is None else len(cov["names"])
 
 
 def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.Model:
     J, G, T = cells.shape
     arr = cell_arrays(cells)
+    K = n_covariates(cells)
+    keys = DATA_KEYS
+    if K:
+        coords = {**coords, "covariate": list(cells.extra["covariates"]["names"])}
     with pm.Model(coords=coords) as model:
         m, S = hierarchical_mean(cells, scales)
         dims = ("jurisdiction", "period")
-        d = [pm.Data(k, arr[k], dims=dims) for k in DATA_KEYS]
+        d = [pm.Data(k, arr[k], dims=dims) for k in keys]
+        extra = [pm.Normal("theta", 0.0, S["covariate"], dims=("covariate",))] if K else []
+        # (J, T, K[, K]) covariate arrays enter the density through the closure, not as parameters
+        # of the (J, T) observed variable (their extra dims are not batch dims).
+        cov_data = {k: pm.Data(k, arr[k]) for k in COV_KEYS} if K else {}
         obs = pm.Data("ybar_q", arr["ybar_q"], dims=dims)
         sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",))
         sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
@@ -114,13 +161,16 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.M
             m_r, sig_r = pt.zeros((J, T)), pt.as_tensor(1.0)
         m_q, sig_q = m[:, cells.target, :], sigma[cells.target]
 
-        def logp(value, m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *data):
-            dd = dict(zip(DATA_KEYS, data))
+        def logp(value, m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *rest):
+            data = rest[len(extra):]
+            dd = dict(zip(keys, data))
             dd["ybar_q"] = value
+            if K:
+                dd = covariate_adjusted({**dd, **cov_data}, rest[0])
             return jt_loglik(dd, m_r=m_r, m_q=m_q, sigma_r=sig_r, sigma_q=sig_q,
                              sigma_shock=sigma_shock, sigma_gap=sigma_gap, xp=PT)
 
-        pm.CustomDist("cells", m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *d,
+        pm.CustomDist("cells", m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *extra, *d,
                       logp=logp, observed=obs, dims=dims)
     return model
 
@@ -143,5 +193,7 @@ def pointwise_loglik(fit, m: np.ndarray | None = None) -> np.ndarray:
     else:
         m_r, sig_r, ss = np.zeros((S, 1, 1)), np.ones((S, 1, 1)), np.zeros((S, 1, 1))
     q = cells.target
+    if n_covariates(cells):
+        arr = covariate_adjusted(arr, fit.draws("theta")[:, None, None, :])
     return jt_loglik(arr, m_r=m_r, m_q=m[:, :, q, :], sigma_r=sig_r, sigma_q=sigma[:, q][:, None, None],
                      sigma_shock=ss, sigma_gap=sg, xp=NP)

@@ -73,6 +73,7 @@ class ModelSpec:
     T: int
     A: int
     centred: bool = False
+    K: int = 0  # covariate columns (theta's length)
 
     def key(self) -> tuple:
         return dataclasses.astuple(self)
@@ -205,8 +206,9 @@ def coords_of(cells: Cells) -> dict[str, list]:
 
 def model_spec(cells: Cells, family: str = "gaussian") -> ModelSpec:
     J, G, T = cells.shape
+    cov = cells.extra.get("covariates")
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                     centred=baseline_centred(cells))
+                     centred=baseline_centred(cells), K=0 if cov is None else len(cov["names"]))
 
 
 def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian") -> tuple[pm.Model, ModelSpec]:
@@ -216,6 +218,10 @@ def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian"
         from .gaussian import build_gaussian
 
         return build_gaussian(cells, scales, coords_of(cells)), spec
+    from .families import FAMILY_BUILDERS, build_family
+
+    if family in FAMILY_BUILDERS:
+        return build_family(cells, scales, coords_of(cells), family), spec
     raise NotImplementedError(f"family '{family}' is not built yet")
 
 
