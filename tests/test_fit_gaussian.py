@@ -14,7 +14,7 @@ from bayesdid.model.gaussian import pointwise_loglik
 from bayesdid.model.terms import build_model
 from bayesdid.simulate import Scenario
 
-from .conftest import sim_study
+from conftest import sim_study
 
 pytestmark = pytest.mark.slow
 
