@@ -91,11 +91,12 @@ def cell_arrays(cells: Cells) -> dict[str, np.ndarray]:
     return out
 
 
-def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.Model:
+def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, **terms) -> pm.Model:
+    """The Gaussian model; ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean`."""
     J, G, T = cells.shape
     arr = cell_arrays(cells)
     with pm.Model(coords=coords) as model:
-        m, S = hierarchical_mean(cells, scales)
+        m, S = hierarchical_mean(cells, scales, **terms)
         dims = ("jurisdiction", "period")
         d = [pm.Data(k, arr[k], dims=dims) for k in DATA_KEYS]
         obs = pm.Data("ybar_q", arr["ybar_q"], dims=dims)
