@@ -13,6 +13,7 @@ __all__ = ["REGISTRY", "run"]
 
 REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
+    "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
 }
 
 
