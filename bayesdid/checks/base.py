@@ -57,16 +57,18 @@ def earliest_start(cells: Cells) -> int:
 
 
 def pre_weight(cells: Cells) -> np.ndarray:
-    """Likelihood weights that keep only the periods before the earliest start (all jurisdictions).
+    """Likelihood weights that keep only policy-free data: each adopter's periods from its start on
+    get weight 0; comparison jurisdictions (never treated) keep every period.
 
-    Choice: rather than cutting the table, every jurisdiction-period at or after the earliest start
-    gets weight 0, so the pre-policy fit keeps the shape of the main model and re-samples its
-    compiled form with new data (no recompile). The post-period parameters are then informed by
-    their priors only and are not read.
+    Choice (one of the two the issue allows): rather than cutting the table at the earliest start,
+    the treated jurisdiction-periods are dropped with weight 0. The fit keeps the main model's
+    shape (its compiled form re-samples with new data, no recompile) and the common period effects
+    stay identified by the comparison jurisdictions in every period; the effect parameters have no
+    data left and are not read.
     """
-    J, _, T = cells.shape
     w = cells.jt_weight().copy()
-    w[:, earliest_start(cells):] = 0.0
+    for j in cells.adopters:
+        w[j, cells.start[j]:] = 0.0
     return w
 
 

@@ -1,8 +1,8 @@
 """Placebo checks: a fake start in time, and comparison jurisdictions as fake adopters in space.
 
 Placebo in time. Each adopter's start moves L periods earlier (``[checks] placebo_lag``, default
-half the pre-period, floor, at least 1) and the model is fitted on the periods before the earliest
-real start only (weight 0 after it). The fake effect is the ATT of the fake treated cells that stay
+half the pre-period before the earliest start, floor, at least 1) and the model is fitted on
+pre-policy data only (each adopter's periods from its real start on get weight 0). The fake effect is the ATT of the fake treated cells that stay
 in the likelihood, att = sum_a w_a tau[a] (w: their rows' share). Status "flag" when its 90%
 equal-tailed interval excludes 0 (P(fake > 0) below 0.05 or above 0.95).
 Table ``placebo_time.csv``: ``lag``, ``fake_start`` (label of the earliest fake start), ``mean``,
@@ -58,7 +58,7 @@ def placebo_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *,
     pc = cells.with_starts(fake).with_weight(pre_weight(cells))
     w = effect_weights(pc)
     if w.sum() == 0:
-        return not_applicable(TIME, "no fake treated target-group cell falls before the earliest real start.", thr)
+        return not_applicable(TIME, "no fake treated target-group cell falls before the real start.", thr)
     fit = fit_cells(pc, scales, reseed(settings, 11),
                     family=family)
     att = fit.draws("tau_adopter") @ w

@@ -1,8 +1,9 @@
 """Posterior predictive pre-trend check of the adopters' target-minus-reference gap.
 
-Fit: the main model on pre-policy data only: every jurisdiction-period at or after the earliest
-start gets likelihood weight 0 (see :func:`bayesdid.checks.base.pre_weight`), which re-samples the
-main model's compiled form.
+Fit: the main model on pre-policy data only: each adopter's jurisdiction-periods from its own start
+on get likelihood weight 0 (see :func:`bayesdid.checks.base.pre_weight`; comparison jurisdictions are
+never treated and keep all periods), which re-samples the main model's compiled form. Each
+adopter's path runs over its own pre-periods (t < start_j).
 
 Replicated data, per posterior draw (numpy; the Gaussian model integrates the shock s and the gap
 noise e out, so they are drawn back here), for adopter j and pre-period t:
@@ -92,19 +93,19 @@ def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, fam
     """Posterior predictive check of the adopters' pre-period gap path (see module docstring)."""
     thr = {"p_low": P_LOW, "p_high": P_HIGH, "statistics": ["slope", "max_deviation"],
            "rule": "flag when a posterior predictive p-value is below 0.05 or above 0.95",
-           "fit": "pre-policy periods only (weight 0 at and after the earliest start)"}
+           "fit": "policy-free data only (each adopter's periods from its start on get weight 0)"}
     t0 = earliest_start(cells)
     both = cells.n[:, cells.target, :] > 0
     if cells.design == "DDD":
         both = both & (cells.n[:, cells.reference, :] > 0)
     paths = {}
     for j in cells.adopters:
-        per = np.flatnonzero(both[j, :t0])
+        per = np.flatnonzero(both[j, :cells.start[j]])
         if len(per) >= MIN_PRE:
             paths[int(j)] = per
     if not paths:
         return not_applicable(NAME, f"no adopter has {MIN_PRE} or more observed pre-periods (target and "
-                              f"reference cells) before the earliest start; a slope needs at least {MIN_PRE}.", thr)
+                              f"reference cells) before its start; a slope needs at least {MIN_PRE}.", thr)
     fit = fit or fit_pre_policy(cells, scales, settings, family=family)
     rng = np.random.default_rng(settings.seed + 7 if seed is None else seed)
     w_all = effect_weights(cells)
@@ -157,7 +158,7 @@ def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, fam
                 offenders.append({"adopter": row["adopter"], "statistic": stat, "p_value": p})
     flag = any("adopter" not in o for o in offenders)
     details = {"p_value_slope": p_slope, "p_value_max_deviation": p_dev, "observed_slope": float(so.mean()),
-               "per_adopter": per_adopter, "pre_periods_before": plain(cells.periods[t0]),
+               "per_adopter": per_adopter, "earliest_start": plain(cells.periods[t0]),
                "diagnostics_ok": fit.diagnostics["ok"]}
     txt = f"posterior predictive p-values: slope of the gap {p_slope:.3f}, largest deviation {p_dev:.3f}"
     if flag:
