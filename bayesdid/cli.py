@@ -121,6 +121,11 @@ def cmd_checks(args, argv):
     for r in report.results.values():
         print(r)
     print(f"checks in {path}")
+    bad = [n for n, r in report.results.items() if r.details.get("diagnostics_ok") is False]
+    if bad:
+        _say("WARNING: sampler diagnostics fail in the fits of: " + ", ".join(bad) + "; run more draws (--draws).")
+        if args.strict:
+            return EXIT_DIAGNOSTICS
     return EXIT_OK
 
 

@@ -37,7 +37,7 @@ def bench_placebo(*, quick: bool = False, fresh: int | None = None) -> dict:
     cells = collapse(study, frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, study.priors).items()}
     settings = SamplerSettings(chains=2, draws=300 if quick else 500, tune=300 if quick else 500, seed=5)
-    n_fresh = fresh or (1 if quick else 3)
+    n_fresh = fresh or (1 if quick else 2)
 
     clear_cache()
     c0 = COMPILES["count"]
