@@ -204,9 +204,6 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
     A = len(cells.adopters)
     S = _LazyScales(scales)
     loc = pm.Data("outcome_location", float(cells.outcome_mean))
-    dd = design_data(cells)
-    treat = pm.Data("treat_by_adopter", dd["treat_by_adopter"],
-                    dims=("adopter", "jurisdiction", "group", "period"))
     lift = zero_sum_basis(T)
 
     mu = pm.Normal("mu_group", loc, S["intercept"], dims=("group",))
@@ -241,6 +238,8 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         return m + pt.tensordot(beta, E, axes=1), S
     if effects != "att":
         raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
+    treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
+                    dims=("adopter", "jurisdiction", "group", "period"))
     tau = pm.Normal("tau", 0.0, S["effect"])
     if A > 1:
         sigma_tau = pm.HalfNormal("sigma_tau", S["adopter_spread"])
