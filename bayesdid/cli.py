@@ -160,6 +160,29 @@ def cmd_bench(args, argv):
     return EXIT_OK
 
 
+def cmd_checks(args, argv):
+    from .checks import run_checks, write_checks
+    from .study import load_study
+
+    study = _overrides(load_study(args.study), args)
+    out = Path(args.out)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())) and not args.replace:
+        raise BayesDidError(f"output folder '{out}' already exists and is not empty; choose another --out "
+                            "or pass --replace to swap it for the new results.")
+    report = run_checks(study, only=args.only, tolerance=args.lead_tolerance, pooled=args.pool_event_times,
+                        log=None if args.quiet else _say)
+    path = write_checks(report, args.out, replace=True, argv=argv)
+    for r in report.results.values():
+        print(r)
+    print(f"checks in {path}")
+    bad = [n for n, r in report.results.items() if r.details.get("diagnostics_ok") is False]
+    if bad:
+        _say("WARNING: sampler diagnostics fail in the fits of: " + ", ".join(bad) + "; run more draws (--draws).")
+        if args.strict:
+            return EXIT_DIAGNOSTICS
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="bayesdid",
@@ -189,6 +212,14 @@ def build_parser() -> argparse.ArgumentParser:
     r = sub.add_parser("report", help="write RUN_DIR/report.html, a single-file HTML report of a run folder")
     r.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
     r.set_defaults(func=cmd_report)
+    c = sub.add_parser("checks", help="event time, pre-trend and placebo checks; writes checks.json and CSV tables")
+    c.add_argument("study", help="study file (TOML)")
+    c.add_argument("--out", required=True, help="checks folder to create")
+    c.add_argument("--only", help="run one check: event_time, pretrend, placebo_time, comparison, placebo_space")
+    c.add_argument("--lead-tolerance", type=float, help="leads within +-this (model scale) count as no pre-trend")
+    c.add_argument("--pool-event-times", action="store_true", help="partially pool event-time effects to zero")
+    _add_sampling(c)
+    c.set_defaults(func=cmd_checks)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")

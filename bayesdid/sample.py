@@ -57,10 +57,10 @@ class Fit:
         return da.stack(sample=("chain", "draw")).transpose("sample", ...).to_numpy()
 
 
-def _data_updates(cells: Cells, scales: dict, family: str) -> dict:
+def _data_updates(cells: Cells, scales: dict, family: str, event_times: tuple = ()) -> dict:
     upd = {f"prior_{k}": np.asarray(float(v)) for k, v in scales.items()}
     upd["outcome_location"] = np.asarray(float(cells.outcome_mean))
-    upd.update(design_data(cells))
+    upd.update(design_data(cells, event_times))
     if family == "gaussian":
         from .model.gaussian import cell_arrays
 
@@ -72,16 +72,17 @@ def _data_updates(cells: Cells, scales: dict, family: str) -> dict:
     return upd
 
 
-def _compiled_for(cells: Cells, scales: dict, family: str):
+def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
     import nutpie
 
-    spec = model_spec(cells, family)
+    terms = terms or {}
+    spec = model_spec(cells, family, **terms)
     key = spec.key()
     if key in _CACHE:
         compiled, names = _CACHE[key]
-        upd = {k: v for k, v in _data_updates(cells, scales, family).items() if k in names}
+        upd = {k: v for k, v in _data_updates(cells, scales, family, spec.event_times).items() if k in names}
         return compiled.with_data(**upd), spec, 0.0
-    model, spec = build_model(cells, scales, family)
+    model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
     compiled = nutpie.compile_pymc_model(model)
     dt = time.perf_counter() - t0
@@ -91,7 +92,8 @@ def _compiled_for(cells: Cells, scales: dict, family: str):
 
 
 def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: str = "gaussian",
-              progress: bool = False) -> Fit:
+              progress: bool = False, effects: str = "att", event_times: tuple | None = None,
+              event_pooled: bool = False) -> Fit:
     """Sample the posterior of the model of ``family`` on ``cells``.
 
     Parameters
@@ -104,10 +106,15 @@ def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: 
         Chains, draws, tune and seed. The same seed gives the same draws.
     progress : bool
         Show nutpie's progress display.
+    effects, event_times, event_pooled
+        The treatment terms (see :func:`bayesdid.model.terms.hierarchical_mean`); the default is the
+        per-adopter effect. ``effects="event_time"`` fits one effect per event time.
     """
     import nutpie
 
-    compiled, spec, compile_s = _compiled_for(cells, scales, family)
+    terms = {} if effects == "att" else {"effects": effects, "event_times": event_times,
+                                         "event_pooled": event_pooled}
+    compiled, spec, compile_s = _compiled_for(cells, scales, family, terms)
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)

@@ -15,6 +15,7 @@ REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
     "crosscheck": ("bayesdid.bench.crosscheck", "bench_crosscheck"),
     "families": ("bayesdid.bench.families", "bench_families"),
+    "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
 }
 
 

@@ -130,7 +130,8 @@ def n_covariates(cells: Cells) -> int:
     return 0 if cov is None else len(cov["names"])
 
 
-def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.Model:
+def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, **terms) -> pm.Model:
+    """The Gaussian model; ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean`."""
     J, G, T = cells.shape
     arr = cell_arrays(cells)
     K = n_covariates(cells)
@@ -138,7 +139,7 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict) -> pm.M
     if K:
         coords = {**coords, "covariate": list(cells.extra["covariates"]["names"])}
     with pm.Model(coords=coords) as model:
-        m, S = hierarchical_mean(cells, scales)
+        m, S = hierarchical_mean(cells, scales, **terms)
         dims = ("jurisdiction", "period")
         d = [pm.Data(k, arr[k], dims=dims) for k in keys]
         extra = [pm.Normal("theta", 0.0, S["covariate"], dims=("covariate",))] if K else []

@@ -26,7 +26,11 @@ from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
 
 __all__ = ["default_scales", "resolve_scales", "ModelSpec", "build_model", "design_data",
-           "hierarchical_mean"]
+           "hierarchical_mean", "event_times_of", "event_time_data", "EFFECTS"]
+
+#: The ways the policy enters the mean: one effect per adopter ("att", the default) or one effect per
+#: event time k = t - start_j shared by the adopters ("event_time", reference k = -1).
+EFFECTS = ("att", "event_time")
 
 #: Default prior scales as multiples of the outcome's pooled standard deviation (model scale).
 DEFAULT_MULTIPLES = {
@@ -74,20 +78,58 @@ class ModelSpec:
     A: int
     centred: bool = False
     K: int = 0  # covariate columns (theta's length)
+    effects: str = "att"
+    event_times: tuple = ()
+    event_pooled: bool = False
 
     def key(self) -> tuple:
         return dataclasses.astuple(self)
 
 
-def design_data(cells: Cells) -> dict[str, np.ndarray]:
-    """The assignment arrays that placebos change: D and the adopter index of each jurisdiction."""
+def design_data(cells: Cells, event_times: tuple | None = None) -> dict[str, np.ndarray]:
+    """The assignment arrays that placebos change: D and the adopter index of each jurisdiction.
+
+    With ``event_times`` also ``event_by_k`` (K, J, G, T), see :func:`event_time_data`.
+    """
     J, G, T = cells.shape
     adopters = cells.adopters
     treat = cells.treated.astype(float)
     by_adopter = np.zeros((len(adopters), J, G, T))
     for a, j in enumerate(adopters):
         by_adopter[a, j] = treat[j]
-    return {"treat_by_adopter": by_adopter, "is_adopter": (cells.start < T).astype(float)}
+    out = {"treat_by_adopter": by_adopter, "is_adopter": (cells.start < T).astype(float)}
+    if event_times:
+        out["event_by_k"] = event_time_data(cells, event_times)
+    return out
+
+
+def event_times_of(cells: Cells) -> tuple[int, ...]:
+    """Event times k = t - start_j observed in the adopters' target-group cells, without k = -1.
+
+    The leads and lags are bounded by the data: k runs from the earliest observed pre-period of any
+    adopter to its latest observed period; k = -1 (the last period before the start) is the
+    reference and has no parameter.
+    """
+    T = cells.shape[2]
+    ks = set()
+    for j in cells.adopters:
+        obs = np.flatnonzero(cells.n[j, cells.target] > 0)
+        ks.update(int(t - cells.start[j]) for t in obs)
+    ks.discard(-1)
+    return tuple(sorted(k for k in ks if -T < k < T))
+
+
+def event_time_data(cells: Cells, event_times: tuple) -> np.ndarray:
+    """E[k, j, g, t] = 1 when adopter j's target-group cell at period t has event time t - start_j = k."""
+    J, G, T = cells.shape
+    ks = {k: i for i, k in enumerate(event_times)}
+    out = np.zeros((len(event_times), J, G, T))
+    for j in cells.adopters:
+        for t in range(T):
+            i = ks.get(int(t - cells.start[j]))
+            if i is not None:
+                out[i, j, cells.target, t] = 1.0
+    return out
 
 
 ADOPTER_CENTRED = [False]
@@ -140,19 +182,29 @@ class _LazyScales(dict):
         return v
 
 
-def hierarchical_mean(cells: Cells, scales: dict[str, float]):
+def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = "att",
+                      event_times: tuple | None = None, event_pooled: bool = False):
     """Add the shared terms to the current model; return (m, extras).
 
     ``m`` is the (J, G, T) mean without the jurisdiction-period shock and the gap noise (both are
     integrated out exactly in the Gaussian family, or added as non-centred terms by the others).
+
+    Parameters
+    ----------
+    effects : {"att", "event_time"}
+        "att" (default): ``tau[j] * D[j,g,t]``. "event_time": ``beta[k] * E[k,j,g,t]`` summed over
+        the event times k = t - start_j of the adopters' target-group cells, with
+        ``beta[k] ~ Normal(0, prior_effect)`` for every k except the reference k = -1 (beta = 0), or,
+        with ``event_pooled``, ``beta[k] = sigma_event * z[k]``, ``sigma_event ~ HalfNormal(prior_effect)``
+        (partial pooling of the path towards zero). The assignment E is the data container
+        ``event_by_k`` (dims event_time, jurisdiction, group, period).
+    event_times : tuple of int
+        The k with a parameter (default :func:`event_times_of`).
     """
     J, G, T = cells.shape
     A = len(cells.adopters)
     S = _LazyScales(scales)
     loc = pm.Data("outcome_location", float(cells.outcome_mean))
-    dd = design_data(cells)
-    treat = pm.Data("treat_by_adopter", dd["treat_by_adopter"],
-                    dims=("adopter", "jurisdiction", "group", "period"))
     lift = zero_sum_basis(T)
 
     mu = pm.Normal("mu_group", loc, S["intercept"], dims=("group",))
@@ -162,6 +214,7 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float]):
     # the policy often goes with level) is never shrunk toward them, which would leak the level
     # difference into the effect. `is_adopter` is data, so placebos reassign it without a recompile.
     is_adopter = pm.Data("is_adopter", (cells.start < T).astype(float), dims=("jurisdiction",))
+    S["is_adopter"] = is_adopter
     scale_j = (is_adopter * S["intercept"] + (1.0 - is_adopter) * sigma_b)[:, None]
     if baseline_centred(cells):
         b = pm.Normal("baseline", mu[None, :], scale_j, dims=("jurisdiction", "group"))
@@ -180,6 +233,21 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float]):
         hg = pt.stack([pt.zeros((T,)), h])  # reference group first, target second
         m = m + hg[None, :, :]
 
+    if effects == "event_time":
+        ks = tuple(event_times) if event_times is not None else event_times_of(cells)
+        E = pm.Data("event_by_k", event_time_data(cells, ks),
+                    dims=("event_time", "jurisdiction", "group", "period"))
+        if event_pooled:
+            sig = pm.HalfNormal("sigma_event", S["effect"])
+            z = pm.Normal("z_event", 0.0, 1.0, dims=("event_time",))
+            beta = pm.Deterministic("event_effect", sig * z, dims=("event_time",))
+        else:
+            beta = pm.Normal("event_effect", 0.0, S["effect"], dims=("event_time",))
+        return m + pt.tensordot(beta, E, axes=1), S
+    if effects != "att":
+        raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
+    treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
+                    dims=("adopter", "jurisdiction", "group", "period"))
     tau = pm.Normal("tau", 0.0, S["effect"])
     if A > 1:
         sigma_tau = pm.HalfNormal("sigma_tau", S["adopter_spread"])
@@ -191,33 +259,46 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float]):
     else:
         tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
     m = m + pt.tensordot(tau_a, treat, axes=1)
-    S["is_adopter"] = is_adopter
     return m, S
 
 
-def coords_of(cells: Cells) -> dict[str, list]:
-    return {
+def coords_of(cells: Cells, event_times: tuple = ()) -> dict[str, list]:
+    out = {
         "jurisdiction": list(cells.jurisdictions),
         "group": list(cells.groups),
         "period": [str(p) for p in cells.periods],
         "adopter": [cells.jurisdictions[j] for j in cells.adopters],
     }
+    if event_times:
+        out["event_time"] = [int(k) for k in event_times]
+    return out
 
 
-def model_spec(cells: Cells, family: str = "gaussian") -> ModelSpec:
+def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", event_times: tuple | None = None,
+               event_pooled: bool = False) -> ModelSpec:
+    """The structure of the model; ``effects="event_time"`` fixes the event times in the key."""
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
+    if effects == "event_time":
+        ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
+        return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
+                         centred=baseline_centred(cells), effects="event_time", event_times=ks,
+                         event_pooled=bool(event_pooled),
+                         K=0 if cov is None else len(cov["names"]))
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
                      centred=baseline_centred(cells), K=0 if cov is None else len(cov["names"]))
 
 
-def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian") -> tuple[pm.Model, ModelSpec]:
+def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
+                event_times: tuple | None = None, event_pooled: bool = False) -> tuple[pm.Model, ModelSpec]:
     """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
-    spec = model_spec(cells, family)
+    spec = model_spec(cells, family, effects=effects, event_times=event_times, event_pooled=event_pooled)
+    terms = {} if spec.effects == "att" else {"effects": "event_time", "event_times": spec.event_times,
+                                              "event_pooled": spec.event_pooled}
     if family == "gaussian":
         from .gaussian import build_gaussian
 
-        return build_gaussian(cells, scales, coords_of(cells)), spec
+        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), **terms), spec
     from .families import FAMILY_BUILDERS, build_family
 
     if family in FAMILY_BUILDERS:
@@ -238,6 +319,11 @@ def mean_from_draws(fit) -> np.ndarray:
     if G == 2:
         h = fit.draws("group_period_effect")
         m[:, :, cells.target, :] += h[:, None, :]
+    spec = getattr(fit, "spec", None)
+    if getattr(spec, "effects", "att") == "event_time":
+        beta = fit.draws("event_effect")  # (S, K)
+        m += np.tensordot(beta, event_time_data(cells, spec.event_times), axes=1)
+        return m
     tau_a = fit.draws("tau_adopter")  # (S, A)
     m += np.tensordot(tau_a, design_data(cells)["treat_by_adopter"], axes=1)
     return m
