@@ -209,7 +209,8 @@ def _fake_fit(model, cells, family, rng):
     logp = model.compile_fn(model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars,
                             on_unused_input="ignore", point_fn=True)(point)
     spec = model_spec(cells, family)
-    fake = SimpleNamespace(cells=cells, spec=spec, draws=lambda n: np.asarray(vals[n])[None, ...])
+    scales = {n[len("prior_"):]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
+    fake = SimpleNamespace(cells=cells, spec=spec, scales=scales, draws=lambda n: np.asarray(vals[n])[None, ...])
     return fake, float(logp)
 
 
