@@ -108,7 +108,7 @@ def cmd_demo(args, argv):
 #: Each function is called as fn(study, run_dir) and writes its results inside run_dir (the checks
 #: into run_dir/checks, a sweep verdict into run_dir/sweep); the report reads them from there.
 ANALYZE_STEPS = [
-    ("checks", "bayesdid.checks", "run_checks"),
+    ("checks", "bayesdid.checks.runner", "checks_into_run"),
     ("sensitivity sweep", "bayesdid.sweep", "run_sensitivity"),
 ]
 

@@ -136,3 +136,10 @@ def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False,
                             "files": ["checks.json", *files]}
         dump_json(body, tmp / "checks.json")
     return Path(out)
+
+
+def checks_into_run(study: Study, run_dir: str | Path, log=None) -> Path:
+    """Run every check for ``study`` and write them into ``run_dir/checks`` (for `bayesdid analyze`,
+    whose report reads them from there)."""
+    report = run_checks(study, log=log)
+    return write_checks(report, Path(run_dir) / "checks")
