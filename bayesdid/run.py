@@ -1,6 +1,6 @@
 """The end-to-end path: study + table -> cells -> model -> posterior -> effects -> run folder.
 
-A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, sample_stats,
+A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, log_prior, sample_stats,
 observed_data, constant_data), ``summary.json`` and ``manifest.json``. It is written into a
 temporary sibling folder and renamed into place at the end, so a failure leaves nothing
 half-written, and an existing folder is never overwritten unless asked.
@@ -59,6 +59,7 @@ class Analysis:
     timing: dict
     data_sha256: str | None = None
     notes: list = field(default_factory=list)
+    sensitivity: dict | None = None
 
     def summary(self) -> dict:
         e = self.effects
@@ -76,6 +77,8 @@ class Analysis:
                       "likelihood": "exact on cells (jurisdiction-period shock and gap noise integrated out)"},
             "notes": self.notes,
         }
+        if self.sensitivity is not None:
+            out["sensitivity"] = self.sensitivity
         if "effect_percent" in e:
             out["effect_percent"] = e["effect_percent"].summary
         for k in ("effect_natural",):
@@ -113,14 +116,19 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
-    timing = {"collapse_s": collapse_s, **fit.timing}
+    from .sensitivity import power_scaling
+
+    t0 = time.perf_counter()
+    sens = power_scaling(fit)
+    timing = {"collapse_s": collapse_s, **fit.timing, "sensitivity_s": time.perf_counter() - t0}
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
-                    timing=timing, data_sha256=digest, notes=notes)
+                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens)
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
     from .model.gaussian import pointwise_loglik
+    from .sensitivity import log_prior_dataset
 
     fit = an.fit
     cells = an.cells
@@ -146,6 +154,7 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
     groups = {
         "posterior": post,
         "log_likelihood": xr.Dataset({"cells": ll_da}),
+        "log_prior": log_prior_dataset(fit),
         "sample_stats": stats[keep],
         "observed_data": observed,
         "constant_data": const,
