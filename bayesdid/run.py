@@ -96,8 +96,13 @@ def prepare(study: Study) -> tuple[Cells, str, float]:
     return cells, digest, time.perf_counter() - t0
 
 
-def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None) -> Analysis:
-    """Fit the study and compute its effects and least-squares point estimate."""
+def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None,
+            least_squares: dict | None = None) -> Analysis:
+    """Fit the study and compute its effects and least-squares point estimate.
+
+    ``least_squares`` may pass a cross-check already computed on the same cells (a sweep over
+    priors reuses one); by default it is computed here.
+    """
     say = log or (lambda msg: None)
     digest, collapse_s = None, 0.0
     if cells is None:
@@ -111,7 +116,7 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     say("compiling the model (once per model shape) and sampling")
     fit = fit_cells(cells, scales, study.sampler, family=study.model.family, progress=progress)
     effects = compute_effects(fit, study.decision.threshold)
-    ls = least_squares_estimate(cells)
+    ls = least_squares_estimate(cells) if least_squares is None else least_squares
     notes = []
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
