@@ -67,6 +67,7 @@ import shutil
 import sys
 import time
 import tomllib
+import uuid
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping
@@ -603,6 +604,15 @@ def _alive(pid: int) -> bool:
 
 
 # ---- executors ---------------------------------------------------------------------------------
+def _result_or_failure(future, task: dict) -> dict:
+    """The worker's record, or a failure record when the worker itself died (killed, out of memory)."""
+    try:
+        return future.result()
+    except Exception as exc:
+        return {"id": task["id"], "label": task["label"], "pid": "lost", "status": "failed", "compiles": 0,
+                "error": f"the worker running this variant stopped: {type(exc).__name__}: {exc}"}
+
+
 def _serial(tasks: list[dict], workers: int, cluster):
     for t in tasks:
         yield run_variant(t)
@@ -614,9 +624,9 @@ def _pool(tasks: list[dict], workers: int, cluster):
 
     # spawn: a clean interpreter per worker (no forked numba/LLVM state); each worker compiles once
     with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn")) as ex:
-        futs = [ex.submit(run_variant, t) for t in tasks]
+        futs = {ex.submit(run_variant, t): t for t in tasks}
         for f in as_completed(futs):
-            yield f.result()
+            yield _result_or_failure(f, futs[f])
 
 
 def _dask(tasks: list[dict], workers: int, cluster):
@@ -634,9 +644,11 @@ def _dask(tasks: list[dict], workers: int, cluster):
             raise SweepError(f"cannot reach the Dask scheduler at --cluster '{cluster}': {exc}. Start one "
                              "(dask scheduler) or use --cluster local.") from None
     try:
-        futs = [client.submit(run_variant, t, pure=False, key=f"bayesdid-variant-{t['id']}") for t in tasks]
-        for f in as_completed(futs):
-            yield f.result()
+        token = uuid.uuid4().hex[:8]  # a fresh key per run: a scheduler never hands back an old result
+        futs = {client.submit(run_variant, t, pure=False, key=f"bayesdid-variant-{t['id']}-{token}"): t
+                for t in tasks}
+        for f in as_completed(list(futs)):
+            yield _result_or_failure(f, futs[f])
     finally:
         client.close()
         if local is not None:

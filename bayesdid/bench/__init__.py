@@ -13,6 +13,7 @@ __all__ = ["REGISTRY", "run"]
 
 REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
+    "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
 }
 
 
