@@ -293,3 +293,18 @@ def test_case_file_sweep_validates():
     assert len(plan.variants) == 9 and labels[0] == "base" and "spending in levels" in labels
     assert plan.base.sampler.draws == 500
     assert any(v.overrides.get("drop") == ["Ambermoor", "Bellcrest"] for v in plan.variants)
+
+
+def test_broken_variant_folder_is_redone(serial_run, tmp_path):
+    import shutil
+
+    plan, out, _, _, _ = serial_run
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    victim = plan.variants[3].id
+    (copy / "variants" / victim / "summary.json").write_text('{"effect": ')  # truncated by a crash
+    assert not variant_is_complete(copy / "variants" / victim, victim)
+    rep = run_sweep(plan, copy, executor="serial")
+    assert rep["ran"] == [victim] and len(rep["skipped"]) == len(plan.variants) - 1
+    assert variant_is_complete(copy / "variants" / victim, victim)
+    _same_rows(out, copy)
