@@ -17,7 +17,7 @@ from .errors import BayesDidError
 
 __all__ = ["main"]
 
-EXIT_OK, EXIT_BAD_INPUT, EXIT_DIAGNOSTICS = 0, 2, 3
+EXIT_OK, EXIT_BAD_INPUT, EXIT_DIAGNOSTICS, EXIT_VARIANTS_FAILED = 0, 2, 3, 4
 
 
 def _say(msg: str) -> None:
@@ -183,13 +183,40 @@ def cmd_checks(args, argv):
     return EXIT_OK
 
 
+def cmd_sweep(args, argv):
+    from .sweep import load_sweep, run_sweep
+
+    if args.cluster and args.serial:
+        raise BayesDidError("--serial and --cluster exclude each other: --serial runs every variant in this "
+                            "process, --cluster sends them to Dask. Give one of them.")
+    executor = "serial" if args.serial else ("dask" if args.cluster else "pool")
+    plan = load_sweep(args.sweep)
+    rep = run_sweep(plan, args.out, executor=executor, workers=args.workers, cluster=args.cluster,
+                    progress=not args.quiet, log=None if args.quiet else _say)
+    v = rep["verdict"]
+    done = sum(r["status"] == "done" for r in rep["rows"])
+    print(f"{done} of {len(rep['rows'])} variant(s) done ({len(rep['ran'])} run now, {len(rep['skipped'])} "
+          f"already done, {len(rep['failed'])} failed); results in {args.out}")
+    if v.get("status") == "ok":
+        held = "; ".join(f"{c['check']}: {'holds' if c['holds'] else 'breaks in ' + str(len(c['breaks']))}"
+                         for c in v["checks"] if c["holds"] is not None)
+        print(f"verdict: {held}" + (f"; moves most: {v['moves_most']['label']} "
+                                    f"({v['moves_most']['shift_sd']:.2f} base sd)" if v.get("moves_most") else ""))
+    if rep["failed"]:
+        _say(f"{len(rep['failed'])} variant(s) failed; their errors are in {args.out}/manifest.json. "
+             "Rerun the same command to retry them (finished variants are kept).")
+        return EXIT_VARIANTS_FAILED
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="bayesdid",
         description="Bayesian DDD / DiD for a policy adopted by a few jurisdictions.",
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=textwrap.dedent("""\
-            exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict"""))
+            exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
+            4 some sweep variants failed (recorded; rerun to retry)"""))
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
     f.add_argument("study", help="study file (TOML)")
@@ -220,6 +247,15 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--pool-event-times", action="store_true", help="partially pool event-time effects to zero")
     _add_sampling(c)
     c.set_defaults(func=cmd_checks)
+    w = sub.add_parser("sweep", help="run a batch of variants of a study (priors, comparison sets, options)")
+    w.add_argument("sweep", help="sweep file (TOML) naming the base study and its variants")
+    w.add_argument("--out", required=True, help="results folder (reused on a rerun: finished variants are kept)")
+    w.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2)")
+    w.add_argument("--cluster", help="run on Dask: a scheduler address (tcp://host:8786) or 'local' for a "
+                                     "LocalCluster on 127.0.0.1")
+    w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
+    w.add_argument("--quiet", action="store_true", help="no progress display")
+    w.set_defaults(func=cmd_sweep)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")

@@ -1,6 +1,6 @@
 """The end-to-end path: study + table -> cells -> model -> posterior -> effects -> run folder.
 
-A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, sample_stats,
+A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, log_prior, sample_stats,
 observed_data, constant_data), ``summary.json`` and ``manifest.json``. It is written into a
 temporary sibling folder and renamed into place at the end, so a failure leaves nothing
 half-written, and an existing folder is never overwritten unless asked.
@@ -59,6 +59,7 @@ class Analysis:
     timing: dict
     data_sha256: str | None = None
     notes: list = field(default_factory=list)
+    sensitivity: dict | None = None
 
     def summary(self) -> dict:
         e = self.effects
@@ -81,6 +82,8 @@ class Analysis:
                          if "covariates" in self.cells.extra else {})},
             "notes": self.notes,
         }
+        if self.sensitivity is not None:
+            out["sensitivity"] = self.sensitivity
         if "effect_percent" in e:
             out["effect_percent"] = e["effect_percent"].summary
         for k in ("effect_natural",):
@@ -99,11 +102,13 @@ def prepare(study: Study) -> tuple[Cells, str, float]:
 
 
 def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None,
-            full_cross_check: bool = True) -> Analysis:
+            full_cross_check: bool = True, least_squares: dict | None = None) -> Analysis:
     """Fit the study and compute its effects and the least-squares cross-check.
 
     ``full_cross_check=False`` (``bayesdid fit --no-cross-check``) keeps the least-squares estimate
     and its classical, HC1 and CR1 errors but skips the wild bootstrap and the permutation.
+    ``least_squares`` may pass a cross-check already computed on the same cells (a sweep over
+    priors reuses one); by default it is computed here.
     """
     say = log or (lambda msg: None)
     digest, collapse_s = None, 0.0
@@ -118,11 +123,12 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     say("compiling the model (once per model shape) and sampling")
     fit = fit_cells(cells, scales, study.sampler, family=study.model.family, progress=progress)
     effects = compute_effects(fit, study.decision.threshold)
-    say("least-squares cross-check" + ("" if full_cross_check else " (estimate and standard errors only)"))
+    if least_squares is None:
+        say("least-squares cross-check" + ("" if full_cross_check else " (estimate and standard errors only)"))
     t0 = time.perf_counter()
     x = study.crosscheck
     try:
-        ls = cross_check(cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
+        ls = least_squares if least_squares is not None else cross_check(cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
                          full=full_cross_check)
     except BayesDidError as exc:  # the posterior stands; the cross-check says why it cannot run
         ls = cross_check_not_applicable(str(exc))
@@ -139,9 +145,14 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         notes.append(f"{dr['count']} row(s) dropped for a missing covariate value (model.missing = 'drop'); "
                      f"missing by column: {dr['by_column']}.")
         say(notes[-1])
-    timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s}
+    from .sensitivity import power_scaling
+
+    t0 = time.perf_counter()
+    sens = power_scaling(fit)
+    timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s,
+              "sensitivity_s": time.perf_counter() - t0}
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
-                    timing=timing, data_sha256=digest, notes=notes)
+                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens)
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
@@ -149,6 +160,7 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
     from .model.families import pointwise_loglik
 
     from .effects import att_weights
+    from .sensitivity import log_prior_dataset
 
     fit = an.fit
     cells = an.cells
@@ -177,6 +189,7 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
     groups = {
         "posterior": post,
         "log_likelihood": xr.Dataset({"cells": ll_da}),
+        "log_prior": log_prior_dataset(fit),
         "sample_stats": stats[keep],
         "observed_data": observed,
         "constant_data": const,

@@ -79,15 +79,21 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
     spec = model_spec(cells, family, **terms)
     key = spec.key()
     if key in _CACHE:
-        compiled, names = _CACHE[key]
+        compiled, names, model = _CACHE[key]
         upd = {k: v for k, v in _data_updates(cells, scales, family, spec.event_times).items() if k in names}
+        # nutpie's with_data swaps the data of logp and of the draws; the initial-point function is
+        # PyMC's and reads the model's own data containers (HalfNormal priors start at their scale,
+        # the group means at the outcome's location). Set them too, so that a fit does not depend on
+        # which variant happened to compile this structure in this process.
+        for k, v in upd.items():
+            model[k].set_value(np.asarray(v, dtype=model[k].dtype))
         return compiled.with_data(**upd), spec, 0.0
     model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
     compiled = nutpie.compile_pymc_model(model)
     dt = time.perf_counter() - t0
     COMPILES["count"] += 1
-    _CACHE[key] = (compiled, set(model.named_vars))
+    _CACHE[key] = (compiled, set(model.named_vars), model)
     return compiled, spec, dt
 
 

@@ -16,6 +16,7 @@ REGISTRY = {
     "crosscheck": ("bayesdid.bench.crosscheck", "bench_crosscheck"),
     "families": ("bayesdid.bench.families", "bench_families"),
     "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
+    "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
 }
 
 
