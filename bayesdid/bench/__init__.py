@@ -14,6 +14,7 @@ __all__ = ["REGISTRY", "run"]
 REGISTRY = {
     "collapse": ("bayesdid.bench.collapse", "bench_collapse"),
     "crosscheck": ("bayesdid.bench.crosscheck", "bench_crosscheck"),
+    "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
 }
 
 
