@@ -479,7 +479,10 @@ def plot_sbc(rows: list[dict], path: Path, title: str) -> Path:
         ax.set_title(name)
         ax.set_xlabel("fractional rank of the prior draw")
     axes[0].set_ylabel("ECDF difference")
-    axes[0].legend(loc="lower left", fontsize=8, frameon=False)
+    if N:
+        axes[0].legend(loc="lower left", fontsize=8, frameon=False)
+    else:
+        axes[0].text(0.5, 0.5, "no SBC reps were run", ha="center", transform=axes[0].transAxes)
     fig.suptitle(f"{title}: simulation-based calibration, {N} reps", fontsize=10)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
