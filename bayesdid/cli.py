@@ -155,7 +155,7 @@ def cmd_report(args, argv):
 def cmd_bench(args, argv):
     from . import bench
 
-    result = bench.run(args.name, quick=args.quick)
+    result = bench.run(args.name, quick=args.quick, **_calibration_kwargs(args))
     print(json.dumps(result))
     return EXIT_OK
 
@@ -209,6 +209,35 @@ def cmd_sweep(args, argv):
     return EXIT_OK
 
 
+# ---- bench calibration options (issue 8) ----
+_CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
+                        "replace")
+
+
+def _add_calibration_options(b):
+    c = b.add_argument_group("calibration (bayesdid bench calibration)")
+    c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
+    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails")
+    c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
+                                 "(default runs/calibration-SCENARIO)")
+    c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
+    c.add_argument("--cluster", help="address of a running Dask scheduler to run the reps on")
+    c.add_argument("--sbc-reps", type=int, help="simulation-based calibration reps (default: as --reps; 0 skips)")
+    c.add_argument("--draws", type=int, help="draws per chain (default 500)")
+    c.add_argument("--tune", type=int, help="tuning steps per chain (default 500)")
+    c.add_argument("--seed", type=int, help="base seed; each rep's seeds derive from it and the rep index")
+    c.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+
+
+def _calibration_kwargs(args) -> dict:
+    given = {k: getattr(args, k, None) for k in _CALIBRATION_OPTIONS}
+    given = {k: v for k, v in given.items() if v is not None and v is not False}
+    if given and args.name != "calibration":
+        opts = ", ".join("--" + k.replace("_", "-") for k in given)
+        raise BayesDidError(f"{opts}: only 'bayesdid bench calibration' takes these options.")
+    return given
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="bayesdid",
@@ -257,8 +286,9 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse, crosscheck")
+    b.add_argument("name", help="benchmark name: collapse, crosscheck, calibration")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
+    _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
     return p
 

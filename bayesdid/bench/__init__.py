@@ -17,6 +17,7 @@ REGISTRY = {
     "families": ("bayesdid.bench.families", "bench_families"),
     "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
+    "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
 }
 
 
