@@ -106,10 +106,10 @@ def cmd_demo(args, argv):
 
 #: Steps `bayesdid analyze` runs after the fit when their modules exist: (name, module, function).
 #: Each function is called as fn(study, run_dir) and writes its results inside run_dir (the checks
-#: into run_dir/checks, a sweep verdict into run_dir/sweep); the report reads them from there.
+#: into run_dir/checks); the report reads them from there. The fit itself already carries the
+#: cross-check and the power-scaling sensitivity; a sweep over variants is `bayesdid sweep`.
 ANALYZE_STEPS = [
     ("checks", "bayesdid.checks.runner", "checks_into_run"),
-    ("sensitivity sweep", "bayesdid.sweep", "run_sensitivity"),
 ]
 
 
