@@ -128,10 +128,34 @@ def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: 
                              cores=min(settings.chains, 2), seed=settings.seed, progress_bar=progress,
                              save_warmup=False, target_accept=TARGET_ACCEPT)
     sample_s = time.perf_counter() - t0
+    tree = _relabel(tree, cells, spec)
     fit = Fit(cells=cells, tree=tree, spec=spec, scales=dict(scales), settings=settings,
               timing={"compile_s": compile_s, "sample_s": sample_s})
     fit.diagnostics = diagnose(tree)
     return fit
+
+
+def _relabel(tree, cells: Cells, spec):
+    """Give the draws this data set's labels.
+
+    A compiled model reused through ``with_data`` keeps the coordinates of the data set it was first
+    built on; the shapes are the same but the labels (jurisdictions, periods, adopters, covariates)
+    may differ, so they are set again from ``cells``.
+    """
+    from .model.terms import coords_of
+
+    coords = coords_of(cells, getattr(spec, "event_times", ()) or ())
+    cov = cells.extra.get("covariates") if cells.extra else None
+    if cov is not None:
+        coords["covariate"] = list(cov["names"])
+    for group in ("posterior", "sample_stats"):
+        if group not in tree.children:
+            continue
+        ds = tree[group].to_dataset()
+        upd = {k: v for k, v in coords.items() if k in ds.dims and ds.sizes[k] == len(v)}
+        if upd:
+            tree[group] = xr.DataTree(ds.assign_coords(upd))
+    return tree
 
 
 def diagnose(tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float = THRESHOLDS["ess_bulk_min"],
