@@ -526,16 +526,7 @@ def read_results(out: str | Path, plan: SweepPlan) -> list[dict]:
                     failed[r["id"]] = r.get("error", "")
         except json.JSONDecodeError:
             pass
-    rows = []
-    for v in plan.variants:
-        folder = out / "variants" / v.id
-        if variant_is_complete(folder, v.id):
-            rows.append(_row(v, "done", json.loads((folder / "summary.json").read_text())))
-        elif v.id in failed:
-            rows.append(_row(v, "failed", None, failed[v.id]))
-        else:
-            rows.append(_row(v, "missing", None))
-    return rows
+    return _rows_now(out, plan, failed)
 
 
 def _atomic_write(path: Path, text: str) -> None:
