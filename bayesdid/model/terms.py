@@ -7,7 +7,8 @@ Notation (DESIGN.md): cells c = (j, g, t),
 with b[j,g] = mu[g] + sigma_b * z_b[j,g] (non-centred), s[j,t] = a[t] + (pooled jurisdiction
 shock), h[g,t] the target group's own period effects (zero for the reference group and the first
 period), e the structural gap noise on the target group with sd sigma_gap, and
-tau[j] = tau + sigma_tau * z_tau[j] over adopters.
+tau[j] = tau + sigma_tau * z_tau[j] over adopters (sampled as their mean and zero-sum contrasts, see
+:func:`hierarchical_mean`).
 
 Every prior scale is a ``pm.Data`` container named ``prior_<name>`` so that a sweep over priors
 reuses one compiled model (``compiled.with_data(prior_effect=...)``).
@@ -132,9 +133,6 @@ def event_time_data(cells: Cells, event_times: tuple) -> np.ndarray:
     return out
 
 
-ADOPTER_CENTRED = [False]
-
-
 def zero_sum_basis(T: int) -> np.ndarray:
     """Orthonormal (T, T-1) basis of the vectors that sum to zero.
 
@@ -166,6 +164,13 @@ def baseline_centred(cells: Cells) -> bool:
     if not np.isfinite(between) or not np.isfinite(within) or within <= 0:
         return True
     return bool(T * between / within > 2.0)
+
+
+def level_gap_rotation(G: int) -> np.ndarray | None:
+    """Orthonormal 2 x 2 rotation from (b_0, b_1) to ((b_0 + b_1)/sqrt 2, (b_1 - b_0)/sqrt 2); None unless G == 2."""
+    if G != 2:
+        return None
+    return np.array([[1.0, -1.0], [1.0, 1.0]]) / np.sqrt(2.0)
 
 
 class _LazyScales(dict):
@@ -216,10 +221,23 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
     is_adopter = pm.Data("is_adopter", (cells.start < T).astype(float), dims=("jurisdiction",))
     S["is_adopter"] = is_adopter
     scale_j = (is_adopter * S["intercept"] + (1.0 - is_adopter) * sigma_b)[:, None]
-    if baseline_centred(cells):
+    # With two groups the baselines are sampled in the rotated basis w = b R (level and gap of each
+    # jurisdiction, see `level_gap_rotation`). The prior is isotropic per jurisdiction, so the rotated
+    # prior is the same normal with the mean rotated: the model is unchanged, only the coordinates the
+    # sampler moves in. The data pin a jurisdiction's gap far more tightly than its level (the shared
+    # shocks move both groups), which makes b[j,0] and b[j,1] correlate near 1 in the posterior; in
+    # the rotated basis the two are close to independent and a diagonal mass matrix fits them.
+    R = level_gap_rotation(G)
+    centred = baseline_centred(cells)
+    if centred and R is not None:
+        w = pm.Normal("baseline_rotated", pt.dot(mu, R)[None, :], scale_j, shape=(J, G))
+        b = pm.Deterministic("baseline", pt.dot(w, R.T), dims=("jurisdiction", "group"))
+    elif centred:
         b = pm.Normal("baseline", mu[None, :], scale_j, dims=("jurisdiction", "group"))
     else:
-        z_b = pm.Normal("z_baseline", 0.0, 1.0, dims=("jurisdiction", "group"))
+        z_b = pm.Normal("z_baseline", 0.0, 1.0, shape=(J, G))
+        if R is not None:
+            z_b = pt.dot(z_b, R.T)
         b = pm.Deterministic("baseline", mu[None, :] + scale_j * z_b, dims=("jurisdiction", "group"))
 
     a_raw = pm.Normal("period_raw", 0.0, S["period"], shape=(T - 1,))
@@ -248,16 +266,31 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
     treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
                     dims=("adopter", "jurisdiction", "group", "period"))
-    tau = pm.Normal("tau", 0.0, S["effect"])
     if A > 1:
+        # tau_a = tau + sigma_tau z is written as its mean over adopters abar plus zero-sum contrasts:
+        #   abar ~ Normal(0, s_e^2 + sigma_tau^2 / A)        (tau integrated out; centred: data pin it)
+        #   tau_a = abar + sigma_tau Q w,  w ~ Normal(0, I)  (Q: orthonormal zero-sum basis; non-centred)
+        #   tau | abar ~ Normal(abar s_e^2 / v, s_e^2 sigma_tau^2 / (A v)),  v = s_e^2 + sigma_tau^2 / A,
+        # with tau = mean + sd * u, u ~ Normal(0, 1) (tau enters no likelihood). This is the same joint
+        # prior of (tau, sigma_tau, tau_a), z - mean(z) = Q Q'z and mean(z) being independent; only the
+        # coordinates differ. The data pin abar (the adopters' common effect) and say little about
+        # the contrasts when there are few adopters, so abar is centred and the contrasts are not. In
+        # the plain non-centred form a well-measured tau + sigma_tau z_a is a curved ridge (it
+        # diverged at 5M rows); in the plain centred form tau and sigma_tau make a funnel.
         sigma_tau = pm.HalfNormal("sigma_tau", S["adopter_spread"])
-        if ADOPTER_CENTRED[0]:
-            tau_a = pm.Normal("tau_adopter", tau, sigma_tau, dims=("adopter",))
-        else:
-            z_tau = pm.Normal("z_tau", 0.0, 1.0, dims=("adopter",))
-            tau_a = pm.Deterministic("tau_adopter", tau + sigma_tau * z_tau, dims=("adopter",))
-    else:
-        tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
+        se2 = S["effect"] ** 2
+        s2a = sigma_tau**2 / A
+        v = se2 + s2a
+        abar = pm.Normal("tau_adopter_mean", 0.0, pt.sqrt(v))
+        w = pm.Normal("z_tau_contrast", 0.0, 1.0, shape=(A - 1,))
+        tau_a = pm.Deterministic("tau_adopter", abar + sigma_tau * pt.dot(zero_sum_basis(A), w),
+                                 dims=("adopter",))
+        u = pm.Normal("u_tau", 0.0, 1.0)
+        pm.Deterministic("tau", abar * se2 / v + pt.sqrt(se2 * s2a / v) * u)
+        m = m + pt.tensordot(tau_a, treat, axes=1)
+        return m, S
+    tau = pm.Normal("tau", 0.0, S["effect"])
+    tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
     m = m + pt.tensordot(tau_a, treat, axes=1)
     return m, S
 
