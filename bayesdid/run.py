@@ -76,6 +76,7 @@ class Analysis:
                       "design": self.cells.design,
                       "likelihood": self.cells.extra.get(
                           "likelihood", "exact on cells (jurisdiction-period shock and gap noise integrated out)"),
+                      "sampled_as": _sampled_as(self.fit.spec),
                       **({"covariates": {"formula": self.study.model.covariates,
                                          "columns": list(self.cells.extra["covariates"]["names"]),
                                          "centred_at": [float(v) for v in self.cells.extra["covariates"]["means"]]}}
@@ -90,6 +91,28 @@ class Analysis:
             if k in e:
                 out[k] = e[k].summary
         return out
+
+
+def _sampled_as(spec) -> dict:
+    """The parameterisation choices of the compiled structure (they change the sampler's path only)."""
+    base = "centred" if spec.centred else "non-centred"
+    if spec.family != "gaussian":
+        base += ", as levels with each latent field's mean over periods folded in"
+    elif spec.G == 2:
+        base += ", as level and gap per jurisdiction"
+    if spec.effects == "event_time":
+        eff = "one effect per event time"
+    elif spec.A > 1:
+        eff = "their mean (centred) plus zero-sum contrasts (non-centred); tau from its exact conditional"
+    else:
+        eff = "one adopter: tau itself"
+    out = {"baselines": base, "adopter_effects": eff}
+    if spec.fields:
+        gap, shock = spec.fields
+        out["gap_noise_deviations"] = "centred" if gap else "non-centred"
+        if spec.design == "DDD":
+            out["shock_deviations"] = "centred" if shock else "non-centred"
+    return out
 
 
 def prepare(study: Study) -> tuple[Cells, str, float]:

@@ -4,7 +4,9 @@ Three models, each one compiled structure sampled at both sizes with the same se
 binomial (0/1 rows) and poisson (exposure) with two discrete covariates (sex, a three-level risk
 band), collapsed exactly per cell and covariate pattern; Gaussian with three continuous covariates,
 collapsed exactly to per-cell sums. The target (issue 3): each ratio within 2. Figures are ratios
-measured in one run; the collapse time of the large table is reported beside them.
+measured in one run, with the sampler's default settings (1,000 draws after 1,000 tuning steps, 2
+chains): short tuning leaves the mass matrix of the large, sharper posterior unfinished and measures
+the adaptation rather than the sampling. The collapse time of the large table is reported beside them.
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ def _study(frame, truth, family, covariates, **kw):
 
     return make_study(table="bench.csv", outcome="y", jurisdiction="region", period="period", group="group",
                       target_group="target", adopters=truth["starts"], family=family, covariates=covariates,
-                      draws=300, tune=300, chains=2, seed=99, **kw)
+                      chains=2, seed=99, **kw)  # the default draws and tune, as a user runs it
 
 
 def _gaussian_frame(rows_per_cell, seed):

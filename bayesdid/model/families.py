@@ -6,12 +6,18 @@ For record r (cell c = (j, g, t) and one covariate pattern x~_r, see :mod:`bayes
 
 with ``m`` from :func:`bayesdid.model.terms.hierarchical_mean` (baselines, period effects, target
 group period effects, tau[j] D[j,g,t]). Unlike the Gaussian family, the shock ``s`` and the gap
-noise ``e`` cannot be integrated out in closed form; they are non-centred latent fields,
+noise ``e`` cannot be integrated out in closed form; they stay latent fields,
 
-    s[j,t] = sigma_s[j] * z_shock[j,t]    (DDD only; a DiD has no within-jurisdiction contrast;
+    s[j,t] ~ Normal(0, sigma_s[j]^2)      (DDD only; a DiD has no within-jurisdiction contrast;
                                            sigma_s = sigma_shock for comparisons, the period scale
                                            for adopters, whose reference group identifies them),
-    e[j,t] = sigma_gap * z_gap[j,t],       z ~ Normal(0, 1).
+    e[j,t] ~ Normal(0, sigma_gap^2).
+
+Each field's mean over periods enters the likelihood only beside the baseline, so it is integrated
+into the baselines exactly (they become the identified levels b + mean_t s (+ mean_t e on the target
+group)) and the fields keep their zero-sum deviations; each part is centred or non-centred by a
+data rule (:func:`fields_centred`, ``baseline_centred``). Nothing of the model changes, only the
+coordinates the sampler moves in.
 
 The gap noise is what the effect is judged against, and it gives every treated cell over-dispersion
 on the link scale. The likelihood of each family is in :mod:`.binomial` and :mod:`.counts`; it is
@@ -29,7 +35,7 @@ from scipy import special
 
 from ..cells import Cells
 from . import binomial, counts
-from .terms import hierarchical_mean, mean_from_draws
+from .terms import hierarchical_mean, mean_from_draws, zero_sum_basis
 
 __all__ = ["FAMILY_BUILDERS", "build_family", "data_arrays", "record_loglik", "record_eta_draws",
            "pointwise_loglik", "inverse_link", "NP", "PT"]
@@ -118,6 +124,66 @@ def inverse_link(family: str, eta, xp=NP):
     return binomial.inverse_link(eta, xp) if family == "binomial" else counts.inverse_link(eta, xp)
 
 
+#: A field is centred only when the data inform each member this many times better than its spread
+#: does (near a ratio of 1 both forms sample about as well, and a margin keeps similar data sets, and
+#: so sweeps and tests, on one compiled structure).
+CENTRE_MARGIN = 4.0
+
+#: Set to (gap, shock) booleans to override :func:`fields_centred` (benchmarks and tests only).
+FIELDS_OVERRIDE: list = [None]
+
+
+def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
+    """Centre the gap-noise and shock fields when the cells measure them better than their spread.
+
+    A non-centred latent field samples well when each member is weakly informed by the data, and
+    makes a narrow curved ridge when the data pin it; the centred form is the opposite (Betancourt
+    and Girolami 2015; Papaspiliopoulos, Roberts and Skold 2007). The rule compares, on the link
+    scale, the sampling variance of one cell's linear predictor (1/events for counts,
+    1/(n p (1 - p)) for binomial; the median over cells) with the spread of the field read off the
+    cells: the variance of the two-way (jurisdiction, period) residuals of the gap series (target
+    minus reference) and of the reference series, less their sampling part. The gap is informed by
+    two cells (variance 2 v_cell in a DDD, v_cell in a DiD); the shock by the pair (v_cell / 2). A
+    field is centred when that variance, times :data:`CENTRE_MARGIN`, is below the field's spread.
+    It uses neither the start periods nor the adopters, so placebos keep the model's structure; the
+    choice changes no posterior, only the sampler's path, and is recorded in the model structure.
+    """
+    if FIELDS_OVERRIDE[0] is not None:
+        return tuple(FIELDS_OVERRIDE[0])
+    n, y = cells.n, cells.sum_y
+    ok = n > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if family == "binomial":
+            p = (y + 0.5) / (n + 1.0)
+            eta = np.log(p / (1.0 - p))
+            var = 1.0 / ((n + 1.0) * p * (1.0 - p))
+        else:
+            eta = np.log((y + 0.5) / n)
+            var = 1.0 / (y + 0.5)
+    eta = np.where(ok, eta, np.nan)
+    if not ok.any():
+        return False, False
+    v_cell = float(np.mean(var[ok]))
+
+    def spread(series):
+        with np.errstate(invalid="ignore"):
+            r = series - np.nanmean(series, axis=1, keepdims=True)
+            r = r - np.nanmean(r, axis=0, keepdims=True)
+            return float(np.nanmean(r * r))
+
+    J, _, T = cells.shape
+    keep = (1.0 - 1.0 / J) * (1.0 - 1.0 / T)  # share of iid noise left in two-way residuals
+    q = eta[:, cells.target, :]
+    m = CENTRE_MARGIN
+    if cells.design == "DDD":
+        ref = eta[:, cells.reference, :]
+        v_gap = spread(q - ref) - keep * 2.0 * v_cell
+        v_shock = spread(ref) - keep * v_cell
+        return bool(m * 2.0 * v_cell < v_gap), bool(m * 0.5 * v_cell < v_shock)
+    v_gap = spread(q) - keep * v_cell
+    return bool(m * v_cell < v_gap), False
+
+
 def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str) -> pm.Model:
     """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``."""
     J, G, T = cells.shape
@@ -127,26 +193,78 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
     if K:
         coords = {**coords, "covariate": list(cov["names"])}
     with pm.Model(coords=coords) as model:
-        m, S = hierarchical_mean(cells, scales)
+        gap_c, shock_c = fields_centred(cells, family)
+        jt = ("jurisdiction", "period")
+        Q = zero_sum_basis(T)
+        ddd = cells.design == "DDD"
+        fields = {}
+
+        def levels(mu, scale_j, S, centred):
+            # Only b[j,g] + mean_t s[j,t] (+ mean_t e[j,t] on the target group) reaches the
+            # likelihood, so the per-jurisdiction means of the two fields are integrated into the
+            # baselines exactly: per jurisdiction the pair of levels is bivariate normal with
+            #   var_r = v_b + v_s / T,  cov = v_s / T,  var_q = v_b + v_s / T + v_e / T,
+            # written as level_r ~ N(mu_r, var_r), level_q | level_r ~ N(mu_q + k (level_r - mu_r),
+            # var_q - k cov), k = cov / var_r. The fields keep only their zero-sum deviations over
+            # periods, s_dev = Q u with u ~ N(0, v_s I) (Q orthonormal, zero-sum), the exact law of
+            # s - mean(s). Without this the mean of a field and the baseline form a ridge that only the
+            # priors close. "baseline" then reports these identified levels.
+            sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
+            v_b = scale_j[:, 0] ** 2
+            v_e = sigma_gap**2
+            fields["sigma_gap"] = sigma_gap
+            if ddd:
+                sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
+                # As in the Gaussian family: adopters' own shocks are identified by their reference
+                # group and are not shrunk toward the comparisons' (wide period-effect scale).
+                ia = S["is_adopter"]
+                sd_s = ia * S["period"] + (1.0 - ia) * sigma_shock
+                fields["sd_shock"] = sd_s
+                v_s = sd_s**2
+                var_r = v_b + v_s / T
+                cov = v_s / T
+                var_q = var_r + v_e / T
+                k = cov / var_r
+                sd_r, sd_q = pt.sqrt(var_r), pt.sqrt(var_q - k * cov)
+                r, q = cells.reference, cells.target
+                if centred:
+                    lev_r = pm.Normal("level_reference", mu[r], sd_r, dims=("jurisdiction",))
+                    lev_q = pm.Normal("level_target", mu[q] + k * (lev_r - mu[r]), sd_q, dims=("jurisdiction",))
+                else:
+                    z = pm.Normal("z_level", 0.0, 1.0, shape=(J, 2))
+                    lev_r = mu[r] + sd_r * z[:, 0]
+                    lev_q = mu[q] + k * (lev_r - mu[r]) + sd_q * z[:, 1]
+                cols = [None, None]
+                cols[r], cols[q] = lev_r, lev_q
+                b = pt.stack(cols, axis=1)
+            else:
+                sd = pt.sqrt(v_b + v_e / T)
+                if centred:
+                    b = pm.Normal("level_target", mu[0], sd, dims=("jurisdiction",))[:, None]
+                else:
+                    b = (mu[0] + sd * pm.Normal("z_level", 0.0, 1.0, dims=("jurisdiction",)))[:, None]
+            return pm.Deterministic("baseline", b, dims=("jurisdiction", "group"))
+
+        m, S = hierarchical_mean(cells, scales, levels=levels)
         # only the arrays this family reads: nutpie's with_data rejects names the graph does not use
         keys = ("rec_size", "rec_w") + (("rec_first", "rec_ycell", "rec_cellid") if family == "negbinomial" else ())
         used = ("rec_cell", "rec_jt", "rec_tgt") + (("rec_x",) if K else ()) + keys
         d = {k: pm.Data(k, arr[k]) for k in used}
         obs = pm.Data("rec_y", arr["rec_y"])
-        sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
-        z_gap = pm.Normal("z_gap", 0.0, 1.0, dims=("jurisdiction", "period"))
-        gap = pm.Deterministic("gap", sigma_gap * z_gap, dims=("jurisdiction", "period"))
+
+        def deviations(name, sd_j, centred_):
+            # sd_j: (J,) or scalar; the zero-sum deviations over periods of a field with that sd.
+            sd = sd_j[:, None] if getattr(sd_j, "ndim", 0) == 1 else sd_j
+            if centred_:
+                u = pm.Normal(f"{name}_basis", 0.0, sd, shape=(J, T - 1))
+            else:
+                u = sd * pm.Normal(f"z_{name}", 0.0, 1.0, shape=(J, T - 1))
+            return pm.Deterministic(name, pt.dot(u, Q.T), dims=jt)
+
+        gap = deviations("gap", fields["sigma_gap"], gap_c)
         eta = pt.reshape(m, (-1,))[d["rec_cell"]] + pt.reshape(gap, (-1,))[d["rec_jt"]] * d["rec_tgt"]
-        if cells.design == "DDD":
-            sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
-            z_shock = pm.Normal("z_shock", 0.0, 1.0, dims=("jurisdiction", "period"))
-            # As in the Gaussian family: adopters' own shocks are identified by their reference group
-            # and are not shrunk toward the comparisons' (wide period-effect scale); comparisons pool.
-            ia = S.get("is_adopter")
-            if ia is None:  # shared terms without the adopter indicator as data
-                ia = pt.as_tensor((cells.start < T).astype(float))
-            scale_j = ia * S["period"] + (1.0 - ia) * sigma_shock
-            shock = pm.Deterministic("shock", scale_j[:, None] * z_shock, dims=("jurisdiction", "period"))
+        if ddd:
+            shock = deviations("shock", fields["sd_shock"], shock_c)
             eta = eta + pt.reshape(shock, (-1,))[d["rec_jt"]]
         if K:
             theta = pm.Normal("theta", 0.0, S["covariate"], dims=("covariate",))

@@ -78,6 +78,8 @@ class ModelSpec:
     T: int
     A: int
     centred: bool = False
+    #: Non-Gaussian families: (gap noise, shock) fields centred, see ``families.fields_centred``.
+    fields: tuple = ()
     K: int = 0  # covariate columns (theta's length)
     effects: str = "att"
     event_times: tuple = ()
@@ -188,7 +190,7 @@ class _LazyScales(dict):
 
 
 def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = "att",
-                      event_times: tuple | None = None, event_pooled: bool = False):
+                      event_times: tuple | None = None, event_pooled: bool = False, levels=None):
     """Add the shared terms to the current model; return (m, extras).
 
     ``m`` is the (J, G, T) mean without the jurisdiction-period shock and the gap noise (both are
@@ -205,6 +207,10 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         ``event_by_k`` (dims event_time, jurisdiction, group, period).
     event_times : tuple of int
         The k with a parameter (default :func:`event_times_of`).
+    levels : callable, optional
+        ``levels(mu, scale_j, S, centred) -> b`` builds the (J, G) baselines instead of the default
+        hierarchical normal ``b[j,g] ~ Normal(mu[g], scale_j^2)`` (the non-Gaussian families fold the
+        jurisdiction's mean shock and mean gap noise into them, see :mod:`bayesdid.model.families`).
     """
     J, G, T = cells.shape
     A = len(cells.adopters)
@@ -229,7 +235,9 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
     # the rotated basis the two are close to independent and a diagonal mass matrix fits them.
     R = level_gap_rotation(G)
     centred = baseline_centred(cells)
-    if centred and R is not None:
+    if levels is not None:
+        b = levels(mu, scale_j, S, centred)
+    elif centred and R is not None:
         w = pm.Normal("baseline_rotated", pt.dot(mu, R)[None, :], scale_j, shape=(J, G))
         b = pm.Deterministic("baseline", pt.dot(w, R.T), dims=("jurisdiction", "group"))
     elif centred:
@@ -312,14 +320,19 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     """The structure of the model; ``effects="event_time"`` fixes the event times in the key."""
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
+    fields = ()
+    if family != "gaussian":
+        from .families import fields_centred
+
+        fields = fields_centred(cells, family)
     if effects == "event_time":
         ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
         return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                         centred=baseline_centred(cells), effects="event_time", event_times=ks,
+                         centred=baseline_centred(cells), fields=fields, effects="event_time", event_times=ks,
                          event_pooled=bool(event_pooled),
                          K=0 if cov is None else len(cov["names"]))
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                     centred=baseline_centred(cells), K=0 if cov is None else len(cov["names"]))
+                     centred=baseline_centred(cells), fields=fields, K=0 if cov is None else len(cov["names"]))
 
 
 def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
