@@ -174,14 +174,27 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
     for n in names:
         li = top(ps_l, n)
         joint = top(ps_p, n)
+        note = ""
         if n in lp:  # the parameter's own prior alone (Kallioinen et al. 2023, section 2.3)
-            own = top(az.psense(tree, var_names=[n], group="prior", alphas=alphas, group_var_names=[n]), n)
+            try:
+                own = top(az.psense(tree, var_names=[n], group="prior", alphas=alphas, group_var_names=[n]), n)
+            except ValueError as exc:
+                # Pareto smoothing refuses a tail of equal log weights. When the parameter's own log
+                # prior is the same at every draw (to rounding: the data pin it far inside a wide
+                # prior), power-scaling it reweights nothing and the sensitivity is 0; otherwise unknown.
+                spread = float(np.ptp(np.asarray(lp[n])))
+                own = 0.0 if spread < 1e-6 else float("nan")
+                note = (f"its own prior's log density varies by only {spread:.1e} over the draws, so power-scaling "
+                        "it moves nothing (sensitivity 0)" if own == 0.0 else
+                        f"power-scaling its own prior could not be computed ({exc})")
         else:
             own = float("nan")
         code, reading = diagnosis(own, li, threshold=threshold)
         jcode, _ = diagnosis(joint, li, threshold=threshold)
         out["parameters"][n] = {"prior": own, "likelihood": li, "joint_prior": joint, "diagnosis": code,
                                 "joint_diagnosis": jcode, "reading": reading, "meaning": _MEANING.get(n, "")}
+        if note:
+            out["parameters"][n]["note"] = note
         if code in ("prior_data_conflict", "prior_dominates"):
             out["flagged"].append(n)
         if jcode in ("prior_data_conflict", "prior_dominates"):

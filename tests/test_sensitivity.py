@@ -49,8 +49,12 @@ def test_defaults_do_not_flag_tau_or_variances(demo_default):
     tau = s["parameters"]["tau"]
     assert tau["diagnosis"] == "ok", tau
     assert tau["prior"] < SENSITIVE <= tau["likelihood"]
+    # The defaults must not drive the variances: prior sensitivity below the threshold. How strongly
+    # the likelihood moves a variance is not the claim here (sigma_baseline sits near 0.05, within
+    # the Monte Carlo error of 1,000 draws), so "weak_both" is accepted beside "ok".
     for name in ("sigma_gap", "sigma_shock", "sigma", "sigma_baseline"):
-        assert s["parameters"][name]["diagnosis"] == "ok", (name, s["parameters"][name])
+        p = s["parameters"][name]
+        assert p["prior"] < SENSITIVE and p["diagnosis"] in ("ok", "weak_both"), (name, p)
     # two adopters: their spread is prior-driven, reported but not flagged (see bayesdid.sensitivity)
     assert s["flagged"] == []
     assert s.get("expected", []) in ([], ["sigma_tau"])

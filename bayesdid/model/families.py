@@ -35,7 +35,7 @@ from scipy import special
 
 from ..cells import Cells
 from . import binomial, counts
-from .terms import hierarchical_mean, mean_from_draws, zero_sum_basis
+from .terms import hierarchical_mean, mean_from_draws, small_matmul, zero_sum_basis
 
 __all__ = ["FAMILY_BUILDERS", "build_family", "data_arrays", "record_loglik", "record_eta_draws",
            "pointwise_loglik", "inverse_link", "NP", "PT"]
@@ -259,7 +259,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                 u = pm.Normal(f"{name}_basis", 0.0, sd, shape=(J, T - 1))
             else:
                 u = sd * pm.Normal(f"z_{name}", 0.0, 1.0, shape=(J, T - 1))
-            return pm.Deterministic(name, pt.dot(u, Q.T), dims=jt)
+            return pm.Deterministic(name, small_matmul(u, Q.T), dims=jt)
 
         gap = deviations("gap", fields["sigma_gap"], gap_c)
         eta = pt.reshape(m, (-1,))[d["rec_cell"]] + pt.reshape(gap, (-1,))[d["rec_jt"]] * d["rec_tgt"]
@@ -268,7 +268,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
             eta = eta + pt.reshape(shock, (-1,))[d["rec_jt"]]
         if K:
             theta = pm.Normal("theta", 0.0, S["covariate"], dims=("covariate",))
-            eta = eta + pt.dot(d["rec_x"], theta)
+            eta = eta + (d["rec_x"] * theta[None, :]).sum(axis=1)  # no BLAS call (see small_matmul)
         params = [eta]
         if family == "negbinomial":
             disp = pm.HalfNormal("dispersion", S["dispersion"])

@@ -168,6 +168,17 @@ def baseline_centred(cells: Cells) -> bool:
     return bool(T * between / within > 2.0)
 
 
+def small_matmul(x, M: np.ndarray):
+    """``x @ M`` for a small constant matrix ``M``, as a broadcast product and sum.
+
+    Written without a BLAS call: BLAS kernels may round differently with the memory alignment of
+    their operands, which differs between processes, and sampling amplifies a last-bit difference
+    into different draws; the sweep and calibration promise the same draws for the same seed in any
+    worker.
+    """
+    return (x[..., :, None] * pt.as_tensor(np.asarray(M, dtype=float))).sum(axis=-2)
+
+
 def level_gap_rotation(G: int) -> np.ndarray | None:
     """Orthonormal 2 x 2 rotation from (b_0, b_1) to ((b_0 + b_1)/sqrt 2, (b_1 - b_0)/sqrt 2); None unless G == 2."""
     if G != 2:
@@ -238,23 +249,23 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
     if levels is not None:
         b = levels(mu, scale_j, S, centred)
     elif centred and R is not None:
-        w = pm.Normal("baseline_rotated", pt.dot(mu, R)[None, :], scale_j, shape=(J, G))
-        b = pm.Deterministic("baseline", pt.dot(w, R.T), dims=("jurisdiction", "group"))
+        w = pm.Normal("baseline_rotated", small_matmul(mu[None, :], R), scale_j, shape=(J, G))
+        b = pm.Deterministic("baseline", small_matmul(w, R.T), dims=("jurisdiction", "group"))
     elif centred:
         b = pm.Normal("baseline", mu[None, :], scale_j, dims=("jurisdiction", "group"))
     else:
         z_b = pm.Normal("z_baseline", 0.0, 1.0, shape=(J, G))
         if R is not None:
-            z_b = pt.dot(z_b, R.T)
+            z_b = small_matmul(z_b, R.T)
         b = pm.Deterministic("baseline", mu[None, :] + scale_j * z_b, dims=("jurisdiction", "group"))
 
     a_raw = pm.Normal("period_raw", 0.0, S["period"], shape=(T - 1,))
-    a = pt.dot(lift, a_raw)
+    a = small_matmul(a_raw[None, :], lift.T)[0]
     pm.Deterministic("period_effect", a, dims=("period",))
     m = b[:, :, None] + a[None, None, :]
     if G == 2:
         h_raw = pm.Normal("group_period_raw", 0.0, S["group_period"], shape=(T - 1,))
-        h = pt.dot(lift, h_raw)
+        h = small_matmul(h_raw[None, :], lift.T)[0]
         pm.Deterministic("group_period_effect", h, dims=("period",))
         hg = pt.stack([pt.zeros((T,)), h])  # reference group first, target second
         m = m + hg[None, :, :]
@@ -269,7 +280,7 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
             beta = pm.Deterministic("event_effect", sig * z, dims=("event_time",))
         else:
             beta = pm.Normal("event_effect", 0.0, S["effect"], dims=("event_time",))
-        return m + pt.tensordot(beta, E, axes=1), S
+        return m + (beta[:, None, None, None] * E).sum(axis=0), S
     if effects != "att":
         raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
     treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
@@ -291,15 +302,15 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         v = se2 + s2a
         abar = pm.Normal("tau_adopter_mean", 0.0, pt.sqrt(v))
         w = pm.Normal("z_tau_contrast", 0.0, 1.0, shape=(A - 1,))
-        tau_a = pm.Deterministic("tau_adopter", abar + sigma_tau * pt.dot(zero_sum_basis(A), w),
+        tau_a = pm.Deterministic("tau_adopter", abar + sigma_tau * small_matmul(w[None, :], zero_sum_basis(A).T)[0],
                                  dims=("adopter",))
         u = pm.Normal("u_tau", 0.0, 1.0)
         pm.Deterministic("tau", abar * se2 / v + pt.sqrt(se2 * s2a / v) * u)
-        m = m + pt.tensordot(tau_a, treat, axes=1)
+        m = m + (tau_a[:, None, None, None] * treat).sum(axis=0)  # no BLAS call, see small_matmul
         return m, S
     tau = pm.Normal("tau", 0.0, S["effect"])
     tau_a = pm.Deterministic("tau_adopter", pt.reshape(tau, (1,)), dims=("adopter",))
-    m = m + pt.tensordot(tau_a, treat, axes=1)
+    m = m + (tau_a[:, None, None, None] * treat).sum(axis=0)
     return m, S
 
 
