@@ -83,3 +83,23 @@ def test_model_scale_outcomes_are_stated_in_outcome_units(kind):
     assert "in the outcome's own units" in text
     assert ("no clear effect" in text) == (kind == "null")
     assert "(90% interval " in text
+
+
+def test_count_outcome_headline_reads_the_rate_ratio_not_the_link_scale():
+    """Counts: the sentence states the rate ratio over the treated cells as a percent change, its
+    probabilities against a ratio of 1, and the rate difference; never the log-rate coefficient."""
+    s = fake_summary("clear")
+    s.pop("effect_percent", None)
+    s["model"] = {"family": "poisson"}
+    s["effect"] = {**s["effect"], "median": -0.1234, "eti_90": [-0.2, -0.05]}  # log rate ratio (link scale)
+    s["effect_natural"] = [
+        {"measure": "rate ratio", "median": 0.88, "eti_90": [0.81, 0.96], "prob_lt_1": 0.991, "prob_gt_1": 0.009,
+         "threshold": 0.95, "prob_beyond_threshold": 0.80},
+        {"measure": "rate difference per 1,000 units of exposure", "median": -3.1, "eti_90": [-5.2, -0.9]},
+    ]
+    text = headline(s, outcome="emergency visits")
+    assert "most likely lowered the rate of emergency visits by 12% (90% interval 4% to 19% lower)" in text
+    assert "the probability of any reduction is 99%, of a reduction larger than 5% is 80%" in text
+    assert "rate ratio over the treated cells, 0.88" in text
+    assert "rate difference per 1,000 units of exposure, -3.1 (90% interval -5.2 to -0.9)" in text
+    assert "0.123" not in text and "own units" not in text

@@ -50,9 +50,38 @@ def evidence(summary: dict) -> str:
     return "null" if (lo < 0) != (hi < 0) or lo == 0 or hi == 0 else "clear"
 
 
+def _natural(summary: dict, kind: str) -> dict | None:
+    """The ``effect_natural`` entry whose measure names ``kind`` ("ratio" or "difference")."""
+    if (summary.get("model") or {}).get("family", "gaussian") == "gaussian":
+        return None
+    for e in summary.get("effect_natural") or []:
+        if kind in str(e.get("measure", "")):
+            return e
+    return None
+
+
+def _ratio_as_percent(r: dict) -> dict:
+    """A rate or risk ratio read as a percent change (ratio - 1), with its probabilities against 1."""
+    out = {"median": r["median"] - 1.0, "eti_90": [r["eti_90"][0] - 1.0, r["eti_90"][1] - 1.0],
+           "prob_lt_0": r.get("prob_lt_1"), "prob_gt_0": r.get("prob_gt_1")}
+    if r.get("threshold") is not None:
+        out["threshold"] = round(r["threshold"] - 1.0, 12)  # 0.95 - 1 is not exactly -0.05
+        out["prob_beyond_threshold"] = r.get("prob_beyond_threshold")
+    return out
+
+
 def _effect(summary: dict) -> tuple[dict, bool]:
+    """The effect the headline states, and whether it is a percent change.
+
+    Log outcomes: the percent change. Binomial and count outcomes: the risk or rate ratio over the
+    treated cells read as a percent change (never the link-scale coefficient). Otherwise the ATT in
+    the outcome's units.
+    """
     if "effect_percent" in summary:
         return summary["effect_percent"], True
+    ratio = _natural(summary, "ratio")
+    if ratio is not None:
+        return _ratio_as_percent(ratio), True
     return summary["effect"], False
 
 
@@ -96,6 +125,9 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
     diag = summary.get("diagnostics") or {}
     e, pct = _effect(summary)
     what = outcome or "the outcome"
+    ratio_m = (_natural(summary, "ratio") or {}).get("measure", "")
+    if ratio_m and "effect_percent" not in summary:
+        what = f"the {'rate' if 'rate' in ratio_m else 'risk'} of {what}"
     lo, hi = e["eti_90"]
     med = e["median"]
     down = med < 0
@@ -127,6 +159,14 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
         probs += f", of {'a' if kind == 'reduction' else 'an'} {kind} larger than {amount} is " \
                  f"{_prob(e['prob_beyond_threshold'])}"
     text = f"{main}; {probs}."
+    ratio, diff = _natural(summary, "ratio"), _natural(summary, "difference")
+    if ratio is not None:
+        text += f" That is the {ratio['measure']} over the treated cells, {ratio['median']:.3g}"
+        if diff is not None:
+            dlo, dhi = diff["eti_90"]
+            text += (f"; as a {diff['measure']}, {diff['median']:+.3g} (90% interval {dlo:+.3g} to "
+                     f"{dhi:+.3g})")
+        text += "."
     if reading == "null":
         text += " The direction of the effect is not settled by these data."
     if reading == "unreliable":
