@@ -27,10 +27,10 @@ Simulation-based calibration (Talts et al. 2018)
     and Vehtari 2022, the simulation method for the band).
 
 Parallel over reps: :func:`run_rep` is a module-level function of one picklable :class:`RepTask`,
-so any executor can map it. :func:`make_executor` gives in-process, a local process pool
-(``concurrent.futures.ProcessPoolExecutor``, spawned workers) or a Dask ``distributed.Client``
-(when an address is given); each worker process compiles one model per structure and re-samples
-the other reps through the cache in :mod:`bayesdid.sample`.
+so any executor can map it. :func:`make_executor` hands the reps to the sweep's executors
+(:data:`bayesdid.sweep.EXECUTORS`): in-process, the local pool of spawned worker processes, or Dask
+(a scheduler address, or "local"); each worker process compiles one model per structure and
+re-samples the other reps through the cache in :mod:`bayesdid.sample`.
 """
 
 from __future__ import annotations
@@ -40,7 +40,6 @@ import dataclasses
 import json
 import math
 import time
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -302,69 +301,42 @@ def sbc_prior(scenario: str, base_seed: int) -> dict:
 
 # ---- executors -------------------------------------------------------------------------------------
 
-class _InProcess:
-    """Runs tasks one after another in this process (debugging, tests)."""
+def _rep_lost(task: "RepTask", exc: BaseException) -> dict:
+    return {"kind": task.kind, "scenario": task.scenario, "rep": task.rep, "data_seed": task.seeds[0],
+            "sampler_seed": task.seeds[1], "ok": False, "wall_s": float("nan"),
+            "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}"}
 
-    name = "in-process"
+
+class _SweepExecutor:
+    """The sweep's executors (``bayesdid.sweep.EXECUTORS``) for calibration reps: ``map`` yields the
+    records as they complete (the study sorts them by kind and rep)."""
+
+    def __init__(self, kind: str, workers: int, cluster: str | None):
+        self.kind, self.workers, self.cluster = kind, workers, cluster
+        self.name = {"serial": "in-process", "pool": f"process pool ({workers} workers)",
+                     "dask": f"dask ({cluster})"}[kind]
 
     def map(self, fn, tasks):
-        return (fn(t) for t in tasks)
+        from .sweep import EXECUTORS
+
+        yield from EXECUTORS[self.kind](list(tasks), self.workers, self.cluster, fn=fn, lost=_rep_lost)
 
     def close(self):
         pass
 
 
-class _Pool:
-    """A local pool of spawned worker processes (each compiles once per model structure)."""
-
-    def __init__(self, workers: int):
-        import multiprocessing as mp
-
-        self.name = f"process pool ({workers} workers)"
-        self.pool = ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"))
-
-    def map(self, fn, tasks):
-        return self.pool.map(fn, tasks)  # an iterator, in task order, as results arrive
-
-    def close(self):
-        self.pool.shutdown()
-
-
-class _Dask:
-    """An existing Dask cluster by address (``tcp://127.0.0.1:8786``)."""
-
-    def __init__(self, address: str):
-        try:
-            from distributed import Client
-        except ImportError:  # pragma: no cover - distributed is a dependency
-            raise BayesDidError("--cluster needs the 'distributed' package; pip install distributed.") from None
-        try:
-            self.client = Client(address, timeout="20s")
-        except OSError as exc:
-            raise BayesDidError(f"--cluster {address!r}: no Dask scheduler answered ({exc}); start one or drop "
-                                "--cluster to use the local pool.") from None
-        self.name = f"dask ({address})"
-
-    def map(self, fn, tasks):
-        futures = self.client.map(fn, tasks, pure=False)
-        return (f.result() for f in futures)
-
-    def close(self):
-        self.client.close()
-
-
 def make_executor(workers: int = 2, cluster: str | None = None):
-    """An object with ``map(fn, tasks) -> iterator of results in task order`` and ``close()``.
+    """An object with ``map(fn, tasks) -> iterator of results as they complete`` and ``close()``.
 
-    ``cluster`` (a Dask scheduler address) wins; else ``workers`` = 1 runs in-process and more use a
-    local process pool. The sweep executors (``bayesdid/sweep.py``) expose the same two methods and
-    can replace this adapter one for one.
+    The sweep's executors: ``cluster`` (a Dask scheduler address, or "local" for a local Dask
+    cluster of ``workers`` processes) wins; else ``workers`` = 1 runs in-process and more use the
+    local process pool.
     """
-    if cluster:
-        return _Dask(cluster)
-    if not isinstance(workers, int) or workers < 1:
+    if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
         raise BayesDidError(f"--workers: expected a whole number of at least 1, found {workers!r}.")
-    return _InProcess() if workers == 1 else _Pool(workers)
+    if cluster:
+        return _SweepExecutor("dask", workers, cluster)
+    return _SweepExecutor("serial" if workers == 1 else "pool", workers, None)
 
 
 # ---- summaries -----------------------------------------------------------------------------------
@@ -533,6 +505,7 @@ def run_calibration(*, scenario: str = "one_adopter", reps: int = 200, sbc_reps:
         if log:
             log.close()
     wall = time.perf_counter() - t0
+    results.sort(key=lambda r: (r["kind"] != "coverage", r["rep"]))  # executors yield as reps complete
     rows = [r for r in results if r["kind"] == "coverage"]
     sbc_rows = [r for r in results if r["kind"] == "sbc"]
     failed = [{"kind": r["kind"], "rep": r["rep"], "error": r["error"]} for r in results if not r["ok"]]

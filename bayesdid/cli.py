@@ -221,7 +221,8 @@ def _add_calibration_options(b):
     c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
                                  "(default runs/calibration-SCENARIO)")
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
-    c.add_argument("--cluster", help="address of a running Dask scheduler to run the reps on")
+    c.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local' "
+                                     "for a local Dask cluster of --workers processes")
     c.add_argument("--sbc-reps", type=int, help="simulation-based calibration reps (default: as --reps; 0 skips)")
     c.add_argument("--draws", type=int, help="draws per chain (default 500)")
     c.add_argument("--tune", type=int, help="tuning steps per chain (default 500)")

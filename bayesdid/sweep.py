@@ -595,34 +595,44 @@ def _alive(pid: int) -> bool:
 
 
 # ---- executors ---------------------------------------------------------------------------------
-def _result_or_failure(future, task: dict) -> dict:
+def _variant_lost(task: dict, exc: BaseException) -> dict:
+    return {"id": task["id"], "label": task["label"], "pid": "lost", "status": "failed", "compiles": 0,
+            "error": f"the worker running this variant stopped: {type(exc).__name__}: {exc}"}
+
+
+def _result_or_failure(future, task, lost=_variant_lost) -> dict:
     """The worker's record, or a failure record when the worker itself died (killed, out of memory)."""
     try:
         return future.result()
     except Exception as exc:
-        return {"id": task["id"], "label": task["label"], "pid": "lost", "status": "failed", "compiles": 0,
-                "error": f"the worker running this variant stopped: {type(exc).__name__}: {exc}"}
+        return lost(task, exc)
 
 
-def _serial(tasks: list[dict], workers: int, cluster):
+# Each executor maps ``fn`` (default: one sweep variant) over picklable tasks and yields the records
+# as they complete; ``lost(task, exc)`` makes the record of a task whose worker died. The calibration
+# study runs its reps through the same executors (``bayesdid.calibration.make_executor``).
+def _serial(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
+    fn = fn or run_variant
     for t in tasks:
-        yield run_variant(t)
+        yield fn(t)
 
 
-def _pool(tasks: list[dict], workers: int, cluster):
+def _pool(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
+    fn = fn or run_variant
     # spawn: a clean interpreter per worker (no forked numba/LLVM state); each worker compiles once
     with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn")) as ex:
-        futs = {ex.submit(run_variant, t): t for t in tasks}
+        futs = {ex.submit(fn, t): t for t in tasks}
         for f in as_completed(futs):
-            yield _result_or_failure(f, futs[f])
+            yield _result_or_failure(f, futs[f], lost)
 
 
-def _dask(tasks: list[dict], workers: int, cluster):
+def _dask(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     from distributed import Client, LocalCluster, as_completed
 
+    fn = fn or run_variant
     local = None
     if cluster == "local":
         local = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
@@ -636,14 +646,18 @@ def _dask(tasks: list[dict], workers: int, cluster):
                              "(dask scheduler) or use --cluster local.") from None
     try:
         token = uuid.uuid4().hex[:8]  # a fresh key per run: a scheduler never hands back an old result
-        futs = {client.submit(run_variant, t, pure=False, key=f"bayesdid-variant-{t['id']}-{token}"): t
-                for t in tasks}
+        futs = {client.submit(fn, t, pure=False, key=f"bayesdid-{_task_key(t, i)}-{token}"): t
+                for i, t in enumerate(tasks)}
         for f in as_completed(list(futs)):
-            yield _result_or_failure(f, futs[f])
+            yield _result_or_failure(f, futs[f], lost)
     finally:
         client.close()
         if local is not None:
             local.close()
+
+
+def _task_key(task, i: int) -> str:
+    return f"variant-{task['id']}" if isinstance(task, dict) and "id" in task else f"task-{i}"
 
 
 EXECUTORS: dict[str, Callable] = {"serial": _serial, "pool": _pool, "dask": _dask}

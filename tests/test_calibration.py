@@ -197,8 +197,11 @@ def test_executor_adapter():
                                      chains=2).seeds
     ex = cal.make_executor(2)
     try:
-        assert list(ex.map(math.sqrt, [4.0, 9.0, 16.0])) == [2.0, 3.0, 4.0]  # spawned processes, in order
+        # the sweep's process pool (spawned processes): every result, in the order they complete
+        assert ex.name == "process pool (2 workers)"
+        assert sorted(ex.map(math.sqrt, [4.0, 9.0, 16.0])) == [2.0, 3.0, 4.0]
     finally:
         ex.close()
+    assert list(cal.make_executor(1).map(math.sqrt, [9.0, 4.0])) == [3.0, 2.0]  # in-process, in order
     with pytest.raises(BayesDidError, match="--workers: expected a whole number of at least 1"):
         cal.make_executor(0)
