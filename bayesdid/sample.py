@@ -19,7 +19,7 @@ from .errors import DiagnosticsWarning
 from .model.terms import build_model, design_data, model_spec
 from .study import SamplerSettings
 
-__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "THRESHOLDS", "clear_cache"]
+__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "THRESHOLDS", "clear_cache", "compile_exact"]
 
 #: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
 THRESHOLDS = {"rhat_max": 1.01, "ess_bulk_min": 400, "ess_tail_min": 400, "divergences": 0}
@@ -72,6 +72,22 @@ def _data_updates(cells: Cells, scales: dict, family: str, event_times: tuple = 
     return upd
 
 
+def compile_exact(model):
+    """``nutpie.compile_pymc_model`` with PyTensor's numba fast-math flags off.
+
+    With fast-math (PyTensor's default) LLVM may reassociate and vectorise sums, and how it peels a
+    loop depends on the memory alignment of the arrays, which differs between processes: the same
+    seed then gives draws that differ in the last bits, and sampling can grow that into different
+    draws. Sweeps and calibration run variants in worker processes and promise the same draws for
+    the same seed as a serial run, so every model is compiled without it.
+    """
+    import nutpie
+    import pytensor
+
+    with pytensor.config.change_flags(numba__fastmath=False):
+        return nutpie.compile_pymc_model(model)
+
+
 def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
     import nutpie
 
@@ -90,7 +106,7 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         return compiled.with_data(**upd), spec, 0.0
     model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
-    compiled = nutpie.compile_pymc_model(model)
+    compiled = compile_exact(model)
     dt = time.perf_counter() - t0
     COMPILES["count"] += 1
     _CACHE[key] = (compiled, set(model.named_vars), model)
