@@ -100,7 +100,7 @@ covariates = "C(sex) + C(risk_band)"
 
 [sampler]
 chains = 2
-draws = 1000
+draws = 3000   # the spread of shocks shared by the groups mixes slowly (bulk ESS about 10% of draws)
 tune = 1000
 seed = 5151
 
