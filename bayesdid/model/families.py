@@ -129,10 +129,6 @@ def inverse_link(family: str, eta, xp=NP):
 #: so sweeps and tests, on one compiled structure).
 CENTRE_MARGIN = 4.0
 
-#: Set to (gap, shock) booleans to override :func:`fields_centred` (benchmarks and tests only).
-FIELDS_OVERRIDE: list = [None]
-
-
 def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
     """Centre the gap-noise and shock fields when the cells measure them better than their spread.
 
@@ -140,7 +136,7 @@ def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
     makes a narrow curved ridge when the data pin it; the centred form is the opposite (Betancourt
     and Girolami 2015; Papaspiliopoulos, Roberts and Skold 2007). The rule compares, on the link
     scale, the sampling variance of one cell's linear predictor (1/events for counts,
-    1/(n p (1 - p)) for binomial; the median over cells) with the spread of the field read off the
+    1/(n p (1 - p)) for binomial; the mean over cells) with the spread of the field read off the
     cells: the variance of the two-way (jurisdiction, period) residuals of the gap series (target
     minus reference) and of the reference series, less their sampling part. The gap is informed by
     two cells (variance 2 v_cell in a DDD, v_cell in a DiD); the shock by the pair (v_cell / 2). A
@@ -148,8 +144,6 @@ def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
     It uses neither the start periods nor the adopters, so placebos keep the model's structure; the
     choice changes no posterior, only the sampler's path, and is recorded in the model structure.
     """
-    if FIELDS_OVERRIDE[0] is not None:
-        return tuple(FIELDS_OVERRIDE[0])
     n, y = cells.n, cells.sum_y
     ok = n > 0
     with np.errstate(invalid="ignore", divide="ignore"):

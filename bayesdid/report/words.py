@@ -125,9 +125,9 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
     diag = summary.get("diagnostics") or {}
     e, pct = _effect(summary)
     what = outcome or "the outcome"
-    ratio_m = (_natural(summary, "ratio") or {}).get("measure", "")
-    if ratio_m and "effect_percent" not in summary:
-        what = f"the {'rate' if 'rate' in ratio_m else 'risk'} of {what}"
+    ratio, diff = _natural(summary, "ratio"), _natural(summary, "difference")
+    if ratio is not None:
+        what = f"the {'rate' if 'rate' in ratio['measure'] else 'risk'} of {what}"
     lo, hi = e["eti_90"]
     med = e["median"]
     down = med < 0
@@ -159,7 +159,6 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
         probs += f", of {'a' if kind == 'reduction' else 'an'} {kind} larger than {amount} is " \
                  f"{_prob(e['prob_beyond_threshold'])}"
     text = f"{main}; {probs}."
-    ratio, diff = _natural(summary, "ratio"), _natural(summary, "difference")
     if ratio is not None:
         text += f" That is the {ratio['measure']} over the treated cells, {ratio['median']:.3g}"
         if diff is not None:
