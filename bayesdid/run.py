@@ -162,6 +162,8 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
+    for msg in cells.extra.get("warnings", []):
+        notes.append(msg)
     if cells.extra.get("fallback"):
         notes.append(cells.extra["fallback"])
         say("WARNING: " + cells.extra["fallback"])
