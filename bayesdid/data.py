@@ -212,10 +212,16 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
         if nmiss:
             raise DataRoleError(f"column '{c}' ({role}) has {nmiss} missing value(s); every row needs a "
                                 f"{role}. Drop or fill those rows.")
-    yv = _numeric(out, cols.outcome, "outcome")
-    for c in required_columns(study.model.covariates):
+    covs = required_columns(study.model.covariates)
+    roles = {"outcome": cols.outcome, "exposure": cols.exposure, "trials": cols.trials}
+    for c in covs:
+        role = next((r for r, v in roles.items() if v == c), None)
+        if role is not None:
+            raise DataRoleError(f"'model.covariates' uses column '{c}', which is the {role} column ('data.{role}'); "
+                                "a covariate must be another column. Fix the formula.")
         if c not in cols.used():
             _refuse_mixed_text(out, c)
+    yv = _numeric(out, cols.outcome, "outcome")
     nmiss = int(np.isnan(yv).sum())
     if nmiss:
         raise DataRoleError(f"outcome column '{cols.outcome}' has {nmiss} missing value(s); drop those "
@@ -223,6 +229,11 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     if not np.isfinite(yv).all():
         raise DataRoleError(f"outcome column '{cols.outcome}' has {int((~np.isfinite(yv)).sum())} infinite "
                             "value(s); replace them with finite numbers or drop the rows.")
+    with np.errstate(over="ignore"):
+        big = not np.isfinite(np.sum(yv * yv))
+    if big:
+        raise DataRoleError(f"outcome column '{cols.outcome}' holds values as large as {np.abs(yv).max():g}, whose "
+                            "sums of squares overflow; rescale the outcome (say to thousands or millions).")
     if study.model.log_outcome and (yv <= 0).any():
         nbad = int((yv <= 0).sum())
         raise DataRoleError(f"outcome column '{cols.outcome}' has {nbad} value(s) at or below zero (smallest "
@@ -248,9 +259,12 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     as_str = [str(v) for v in levels]
     for a, start in study.policy.adopters:
         if str(start) not in as_str:
+            same = [v for v in levels if _label_kind(v) == "number" and _label_kind(start) != "text"
+                    and float(v) == float(start)]
+            hint = f" Write it as it appears in the table: {same[0]!r}." if same else ""
             raise DataRoleError(
                 f"the start of adopter '{a}' ({start!r}, 'policy.adopters') is not a period of column "
-                f"'{cols.period}', which runs {levels[0]!r} .. {levels[-1]!r}. Give the first treated period.")
+                f"'{cols.period}', which runs {levels[0]!r} .. {levels[-1]!r}. Give the first treated period.{hint}")
         if as_str.index(str(start)) == 0:
             raise DataRoleError(
                 f"adopter '{a}' starts in the first period ({start!r}): there is no pre-period to compare "
@@ -289,6 +303,9 @@ def _text_mask(v: pd.Series) -> np.ndarray:
 
 
 def _text_error(v: pd.Series, mask: np.ndarray, what: str) -> DataRoleError:
+    if pd.api.types.is_bool_dtype(v):
+        return DataRoleError(f"{what} holds true/false values where numbers are expected; give 0 and 1 "
+                             "(for a yes/no outcome, with model.family = \"binomial\").")
     examples = list(dict.fromkeys(repr(x) for x in v[mask].head(20).tolist()))[:3]
     return DataRoleError(
         f"{what} holds text where numbers are expected: {_rows_text(mask)} hold {', '.join(examples)}. Give "

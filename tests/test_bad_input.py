@@ -139,6 +139,10 @@ CASES: dict[str, Case] = {
                                   study=sub("log_outcome = false", 'covariates = "age +"')),
     "covariate column absent": Case(r"column\(s\) \['income'\] named in the study are not in the table",
                                     study=sub("log_outcome = false", 'covariates = "income"')),
+    "covariate formula with a left-hand side": Case(r"'model.covariates': 'y ~ age' has a left-hand side",
+                                                    study=sub("log_outcome = false", 'covariates = "y ~ age"')),
+    "covariate is the outcome": Case(r"'model.covariates' uses column 'y', which is the outcome column",
+                                     study=sub("log_outcome = false", 'covariates = "age + y"')),
     # ---- study file: values ---------------------------------------------------------------------------
     "prior scale negative": Case(r"'priors.effect'.*positive number, found -1", study=add("[priors]\neffect = -1")),
     "prior scale text": Case(r"'priors.effect'.*finite number, found 'wide'", study=add("[priors]\neffect = 'wide'")),
@@ -214,6 +218,10 @@ CASES: dict[str, Case] = {
     "outcome 'n/a' is text, not missing": Case(r"outcome column 'y' holds text.*lines 4, 9\).*'n/a'",
                                               table=lambda f: cell("y", 7, "n/a")(cell("y", 2, "n/a")(f))),
     "outcome missing": Case(r"outcome column 'y' has 1 missing value", table=cell("y", 3, np.nan)),
+    "outcome true/false": Case(r"outcome column 'y' holds true/false values.*give 0 and 1", study=sub("table.csv", "t.parquet"),
+                               setup=lambda d: base_table().assign(y=lambda f: f["y"] > 15).to_parquet(d / "t.parquet")),
+    "outcome too large to square": Case(r"outcome column 'y' holds values as large as 1.*e\+3\d\d.*rescale",
+                                        table=lambda f: f.assign(y=f["y"] * 1e300)),
     "outcome infinite": Case(r"outcome column 'y' has 1 infinite", table=cell("y", 2, np.inf)),
     "outcome not positive under log": Case(r"at or below zero.*log_outcome", table=cell("y", 3, -1.0),
                                            study=sub("log_outcome = false", "log_outcome = true")),
@@ -360,3 +368,27 @@ def test_subprocess_exit_code_and_clean_stderr(tmp_path, argv_tail, pattern):
     assert "Traceback" not in proc.stderr and pattern in proc.stderr.replace("\n  ", " ")
     assert proc.stdout == ""
     assert _snapshot(work) == before
+
+
+def test_sparse_comparison_jurisdiction_is_named_in_a_warning_and_kept(tmp_path):
+    """A comparison jurisdiction seen with both groups in one period contributes nothing to the comparison
+    of changes: a warning names it, the fit goes on, and the run's notes keep the message."""
+    from bayesdid.errors import SparseJurisdictionWarning
+    from bayesdid.run import prepare
+    from bayesdid.study import load_study
+
+    work, _ = _prepare(tmp_path, Case(pattern="", table=lambda f: f[~((f["region"] == "R5") & (f["period"] > 1))]))
+    with pytest.warns(SparseJurisdictionWarning, match=r"'R5' \(1 period\) are observed with both groups"):
+        cells, _, _ = prepare(load_study(work / "study.toml"))
+    assert "R5" in cells.jurisdictions and "'R5'" in cells.extra["warnings"][0]
+
+
+def test_numbers_written_as_text_sort_as_numbers(tmp_path):
+    """Period labels "1".."10" held as text (a Parquet string column) are put in numeric order, not 1, 10, 2."""
+    from bayesdid.data import period_levels
+    from bayesdid.study import load_study
+
+    work, _ = _prepare(tmp_path, Case(pattern=""))
+    study = load_study(work / "study.toml")
+    frame = pd.DataFrame({"period": [str(t) for t in (10, 2, 1, 9)]})
+    assert period_levels(study, frame) == ["1", "2", "9", "10"]
