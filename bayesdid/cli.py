@@ -197,11 +197,12 @@ def cmd_checks(args, argv):
 
 
 def cmd_sweep(args, argv):
-    from .sweep import load_sweep, run_sweep
+    from .sweep import check_sweep_folder, load_sweep, run_sweep
 
     if args.cluster and args.serial:
         raise BayesDidError("--serial and --cluster exclude each other: --serial runs every variant in this "
                             "process, --cluster sends them to Dask. Give one of them.")
+    check_sweep_folder(args.out)  # before reading the sweep's table
     executor = "serial" if args.serial else ("dask" if args.cluster else "pool")
     plan = load_sweep(args.sweep)
     rep = run_sweep(plan, args.out, executor=executor, workers=args.workers, cluster=args.cluster,

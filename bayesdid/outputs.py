@@ -28,7 +28,7 @@ from . import __version__
 from .errors import OutputError
 
 __all__ = ["atomic_folder", "check_output_folder", "is_bayesdid_folder", "clean_leftovers", "owner_tag",
-           "owner_alive", "process_start", "MANIFEST"]
+           "owner_alive", "process_start", "probe_writable", "MANIFEST"]
 
 MANIFEST = "manifest.json"
 
@@ -103,7 +103,7 @@ def _nearest_existing(path: Path) -> Path:
     return p
 
 
-def _probe_writable(folder: Path) -> str | None:
+def probe_writable(folder: Path) -> str | None:
     """None when a folder can be created (and is removed again) in ``folder``; else the reason."""
     probe = folder / f".bayesdid-write-test-{owner_tag()}-{uuid.uuid4().hex[:6]}"
     try:
@@ -165,7 +165,7 @@ def check_output_folder(target: str | Path, *, replace: bool = False, option: st
     if not anchor.is_dir():
         raise OutputError(f"{option} '{t}': '{anchor}' is a file, not a folder, so the {what} cannot be created "
                           f"under it. Choose another {option}.")
-    why = _probe_writable(anchor)
+    why = probe_writable(anchor)
     if why is not None:
         raise OutputError(f"{option} '{t}': nothing can be written in folder '{anchor}' ({why}). Choose an "
                           f"{option} in a folder you can write to.")
