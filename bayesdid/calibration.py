@@ -543,7 +543,7 @@ def write_calibration(result: dict, out: str | Path, *, replace: bool = False) -
     from .run import atomic_folder, dump_json
 
     s = result["summary"]
-    with atomic_folder(out, replace=replace) as tmp:
+    with atomic_folder(out, replace=replace, kind="calibration") as tmp:
         dump_json(s, tmp / "calibration.json")
         _write_csv(result["rows"], tmp / "coverage_reps.csv")
         _write_csv(result["sbc_rows"], tmp / "sbc_reps.csv")

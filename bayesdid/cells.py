@@ -268,14 +268,93 @@ def _max_levels() -> int:
     return DISCRETE_MAX_LEVELS
 
 
+def _refuse_constant(study: Study, frame: pd.DataFrame, cells: Cells) -> None:
+    """Refuse an outcome with nothing to estimate from: constant overall, over the comparison
+    jurisdictions, or (Gaussian) within every comparison cell that holds several rows."""
+    from .errors import DataRoleError
+
+    col, fam = study.columns.outcome, study.model.family
+    y = frame[col].to_numpy(dtype=float)
+    if fam == "binomial":
+        trials = frame[study.columns.trials].to_numpy(dtype=float) if study.columns.trials else np.ones(len(y))
+        if y.sum() == 0 or y.sum() == trials.sum():
+            what = "no success" if y.sum() == 0 else "only successes"
+            raise DataRoleError(f"outcome column '{col}' holds {what} in every row, so family 'binomial' has nothing "
+                                "to estimate an effect from. Check that the outcome column is the right one.")
+        return
+    if fam in ("poisson", "negbinomial"):
+        if y.sum() == 0:
+            raise DataRoleError(f"outcome column '{col}' is 0 in every row: there are no events to estimate an effect "
+                                "from. Check that the outcome column is the right one.")
+        return
+    if y.min() == y.max():
+        raise DataRoleError(f"outcome column '{col}' has the same value ({y[0]:g}) in every row: there is nothing to "
+                            "estimate. Check that the outcome column is the right one.")
+    comp = cells.comparisons
+    jur = frame[study.columns.jurisdiction].astype(str).to_numpy()
+    in_comp = np.isin(jur, [cells.jurisdictions[j] for j in comp])
+    yc = y[in_comp]
+    if yc.size and yc.min() == yc.max():
+        raise DataRoleError(f"outcome column '{col}' has the same value ({yc[0]:g}) in every row of the comparison "
+                            "jurisdictions, so they say nothing about how the outcome varies without the policy. "
+                            "Check the outcome column and the rows of the comparison jurisdictions.")
+    n, ss = cells.n[comp], cells.ss[comp]
+    several = n >= 2
+    if several.any():
+        mean = np.abs(cells.sum_y[comp][several] / n[several])
+        # zero spread up to rounding: the two-pass sum of squares of equal values is ~1e-32 of the mean squared
+        flat = ss[several] <= n[several] * (1e-10 * mean) ** 2
+        if flat.all():
+            raise DataRoleError(
+                f"outcome column '{col}' does not vary within any comparison cell (jurisdiction, group, period) that "
+                "holds several rows: it looks like one value per cell copied onto every row (say a region's rate "
+                "on each of its people), which would count each copy as a new observation. Give one row per "
+                "cell, or the row-level outcome.")
+
+
+def _coverage(study: Study, cells: Cells) -> list[str]:
+    """Refuse an adopter without an observed pre- and post-period; name the comparison jurisdictions seen
+    in fewer than two periods (a warning: they contribute nothing to the comparison of changes)."""
+    import warnings
+
+    from .errors import DataRoleError, SparseJurisdictionWarning
+
+    seen = (cells.n > 0).all(axis=1) if cells.design == "DDD" else (cells.n[:, 0, :] > 0)  # (J, T)
+    how = "with both groups " if cells.design == "DDD" else ""
+    for j in cells.adopters:
+        s = cells.start[j]
+        pre, post = int(seen[j, :s].sum()), int(seen[j, s:].sum())
+        if pre == 0 or post == 0:
+            raise DataRoleError(
+                f"adopter '{cells.jurisdictions[j]}' is observed {how}in {pre} period(s) before its start "
+                f"({cells.periods[s]!r}) and {post} from it on; it needs at least one of each to inform the effect. "
+                f"Add its rows to the table, or remove it from 'policy.adopters'.")
+    sparse = [(cells.jurisdictions[j], int(seen[j].sum())) for j in cells.comparisons if seen[j].sum() < 2]
+    if not sparse:
+        return []
+    shown = ", ".join(f"'{name}' ({k} period{'s' if k != 1 else ''})" for name, k in sparse[:8])
+    more = f" and {len(sparse) - 8} more" if len(sparse) > 8 else ""
+    msg = (f"comparison jurisdiction(s) {shown}{more} are observed {how}in fewer than 2 periods, so they contribute "
+           "nothing to the comparison of changes (they are kept in the fit). Check the table for missing rows.")
+    warnings.warn(msg, SparseJurisdictionWarning, stacklevel=3)
+    return [msg]
+
+
 def collapse(study: Study, frame: pd.DataFrame) -> Cells:
     """Check the roles of ``frame`` and collapse it to cells.
 
     Raises
     ------
     DataRoleError
-        From the role checks, and when an adopter has no observed target-group cell in its pre- or
-        post-period (nothing to estimate from).
+        From the role checks; when the outcome is constant (overall, over the comparison
+        jurisdictions, or within every comparison cell of several rows); and when an adopter has
+        no observed target-group cell in its pre- or post-period (nothing to estimate from).
+
+    Warns
+    -----
+    SparseJurisdictionWarning
+        Naming the comparison jurisdictions observed in fewer than two periods; the message is
+        also kept in ``cells.extra["warnings"]`` (and so in the run's notes).
     """
     from .errors import DataRoleError
 
@@ -287,4 +366,8 @@ def collapse(study: Study, frame: pd.DataFrame) -> Cells:
         if tgt[:s].sum() == 0 or tgt[s:].sum() == 0:
             raise DataRoleError(f"adopter '{cells.jurisdictions[j]}' has no rows in the target group "
                                 "before or after its start; it cannot inform the effect.")
+    _refuse_constant(study, checked, cells)
+    notes = _coverage(study, cells)
+    if notes:
+        cells = replace(cells, extra={**cells.extra, "warnings": notes})
     return cells

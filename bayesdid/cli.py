@@ -9,11 +9,13 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
+import math
 import sys
 import textwrap
+import warnings
 from pathlib import Path
 
-from .errors import BayesDidError
+from .errors import BayesDidError, BayesDidWarning
 
 __all__ = ["main"]
 
@@ -25,13 +27,16 @@ def _say(msg: str) -> None:
 
 
 def _overrides(study, args):
-    changes = {}
-    for key in ("draws", "chains", "seed", "tune"):
+    """The study with the command line's sampler options; each goes through the study's own checks."""
+    from .errors import StudyError
+
+    for key in ("chains", "draws", "tune", "seed"):
         v = getattr(args, key, None)
         if v is not None:
-            changes[key] = v
-    if changes:
-        study = study.replace(sampler=changes)
+            try:
+                study = study.replace(sampler={key: v})
+            except StudyError as exc:
+                raise StudyError(f"command-line option --{key} {v}: {exc}") from None
     return study
 
 
@@ -47,12 +52,13 @@ def _add_sampling(p):
 
 def _fit_and_write(study, out, args, argv, then=None):
     from .report.words import headline
-    from .run import analyse, atomic_folder, write_run
+    from .run import analyse, atomic_folder, prepare, write_run
     from .sample import warn_if_bad
 
-    atomic_folder(out, replace=args.replace).check()
+    atomic_folder(out, replace=args.replace).check()  # before any work: the folder, then the table
+    prepared = prepare(study)
     an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
-                 full_cross_check=not getattr(args, "no_cross_check", False))
+                 full_cross_check=not getattr(args, "no_cross_check", False), prepared=prepared)
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())
     print(headline(summary))
@@ -161,17 +167,24 @@ def cmd_bench(args, argv):
 
 
 def cmd_checks(args, argv):
+    from .checks import CHECKS as CHECK_NAMES
     from .checks import run_checks, write_checks
     from .study import load_study
 
+    from .run import atomic_folder, prepare
+
     study = _overrides(load_study(args.study), args)
-    out = Path(args.out)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())) and not args.replace:
-        raise BayesDidError(f"output folder '{out}' already exists and is not empty; choose another --out "
-                            "or pass --replace to swap it for the new results.")
-    report = run_checks(study, only=args.only, tolerance=args.lead_tolerance, pooled=args.pool_event_times,
-                        log=None if args.quiet else _say)
-    path = write_checks(report, args.out, replace=True, argv=argv)
+    atomic_folder(args.out, replace=args.replace, kind="checks").check()
+    if args.only is not None and args.only not in CHECK_NAMES:
+        raise BayesDidError(f"unknown check '{args.only}' for --only; choose one of {list(CHECK_NAMES)}.")
+    tol = args.lead_tolerance
+    if tol is not None and not (math.isfinite(tol) and tol > 0):
+        raise BayesDidError(f"command-line option --lead-tolerance {tol}: expected a positive finite number (on "
+                            "the model scale: log units for a log outcome).")
+    cells, _, _ = prepare(study)
+    report = run_checks(study, cells=cells, only=args.only, tolerance=args.lead_tolerance,
+                        pooled=args.pool_event_times, log=None if args.quiet else _say)
+    path = write_checks(report, args.out, replace=args.replace, argv=argv)
     for r in report.results.values():
         print(r)
     print(f"checks in {path}")
@@ -184,11 +197,12 @@ def cmd_checks(args, argv):
 
 
 def cmd_sweep(args, argv):
-    from .sweep import load_sweep, run_sweep
+    from .sweep import check_sweep_folder, load_sweep, run_sweep
 
     if args.cluster and args.serial:
         raise BayesDidError("--serial and --cluster exclude each other: --serial runs every variant in this "
                             "process, --cluster sends them to Dask. Give one of them.")
+    check_sweep_folder(args.out)  # before reading the sweep's table
     executor = "serial" if args.serial else ("dask" if args.cluster else "pool")
     plan = load_sweep(args.sweep)
     rep = run_sweep(plan, args.out, executor=executor, workers=args.workers, cluster=args.cluster,
@@ -294,15 +308,30 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _paragraph(text: str) -> str:
+    """One paragraph wrapped at 100 columns; paths and values are never split."""
+    return textwrap.fill(text, width=100, subsequent_indent="  ", break_on_hyphens=False, break_long_words=False)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None, _default=warnings.showwarning):
+    """bayesdid's own warnings as one plain paragraph; others as Python shows them."""
+    if issubclass(category, BayesDidWarning):
+        print("bayesdid: warning: " + _paragraph(str(message)), file=sys.stderr, flush=True)
+    else:
+        _default(message, category, filename, lineno, file, line)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
     args = parser.parse_args(argv)
-    try:
-        return args.func(args, ["bayesdid", *argv])
-    except BayesDidError as exc:
-        print("bayesdid: error: " + textwrap.fill(str(exc), width=100, subsequent_indent="  "), file=sys.stderr)
-        return EXIT_BAD_INPUT
+    with warnings.catch_warnings():
+        warnings.showwarning = _show_warning
+        try:
+            return args.func(args, ["bayesdid", *argv])
+        except BayesDidError as exc:
+            print("bayesdid: error: " + _paragraph(str(exc)), file=sys.stderr)
+            return EXIT_BAD_INPUT
 
 
 if __name__ == "__main__":  # pragma: no cover

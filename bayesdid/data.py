@@ -25,32 +25,93 @@ def file_sha256(path: str | Path) -> str:
     return h.hexdigest()
 
 
+def _open_text_bytes(path: Path) -> bytes:
+    if path.name.lower().endswith(".gz"):
+        import gzip
+
+        with gzip.open(path, "rb") as fh:
+            return fh.read()
+    return path.read_bytes()
+
+
+def _not_utf8(path: Path) -> DataRoleError:
+    """The error for a table that is not UTF-8, naming the first bad byte's line (1 = the header)."""
+    data = _open_text_bytes(path)
+    try:
+        data.decode("utf-8-sig")
+        where = ""
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        where = f": byte 0x{data[exc.start]:02x} on line {line} cannot be read"
+    return DataRoleError(f"table '{path}' is not UTF-8 text{where}. Save it with the UTF-8 encoding (in a spreadsheet: "
+                         "Save as, 'CSV UTF-8'); fix 'data.table' if it names the wrong file.")
+
+
+def _csv_header(path: Path) -> list[str]:
+    import csv
+    import io
+
+    data = _open_text_bytes(path)
+    first = data.split(b"\n", 1)[0].decode("utf-8-sig", errors="replace")
+    return next(csv.reader(io.StringIO(first)), [])
+
+
+def _refuse_duplicates(path: Path, names: list) -> None:
+    seen, dup = set(), []
+    for n in names:
+        key = str(n)
+        if key.strip() and key in seen and key not in dup:
+            dup.append(key)
+        seen.add(key)
+    if dup:
+        raise DataRoleError(f"table '{path}' has more than one column named {dup}; which one is meant is ambiguous. "
+                            "Rename or remove the extra column(s) in the table's header.")
+
+
 def read_table(path: str | Path) -> pd.DataFrame:
-    """Read a CSV or Parquet table.
+    """Read a CSV (UTF-8; only an empty field is a missing value) or Parquet table.
+
+    Text such as ``n/a`` is kept as text, so that a numeric column holding it is named as text, with
+    its rows, by :func:`check_roles` rather than silently read as a missing value.
 
     Raises
     ------
     DataRoleError
-        If the file is missing, of another kind, unreadable or empty.
+        If the path is missing or a folder, the file is of another kind, not UTF-8, unreadable or
+        empty, or has two columns of the same name.
     """
     path = Path(path)
+    if path.is_dir():
+        raise DataRoleError(f"table '{path}' is a folder, not a file; 'data.table' must name one CSV or Parquet "
+                            "file (a path relative to the study file).")
     if not path.is_file():
         raise DataRoleError(f"table '{path}' does not exist; fix 'data.table' in the study file "
                             "(a path relative to the study file).")
     suffix = path.suffix.lower()
+    is_csv = suffix in (".csv", ".txt") or path.name.lower().endswith(".csv.gz")
     try:
         if suffix in (".parquet", ".pq"):
             frame = pd.read_parquet(path)
-        elif suffix in (".csv", ".txt") or path.name.lower().endswith(".csv.gz"):
-            frame = pd.read_csv(path)
+        elif is_csv:
+            frame = pd.read_csv(path, encoding="utf-8-sig", keep_default_na=False, na_values=[""])
         else:
             raise DataRoleError(f"table '{path}': unknown file kind '{suffix}'; use .csv or .parquet.")
     except DataRoleError:
         raise
+    except UnicodeDecodeError:
+        raise _not_utf8(path) from None
     except pd.errors.EmptyDataError:
         raise DataRoleError(f"table '{path}' is empty: it has no header and no rows.") from None
-    except Exception as exc:  # pragma: no cover - depends on the parser's message
-        raise DataRoleError(f"table '{path}' could not be read ({type(exc).__name__}: {exc}).") from None
+    except pd.errors.ParserError as exc:
+        raise DataRoleError(f"table '{path}' is not a well-formed CSV file ({str(exc).strip()}). Check the separator "
+                            "(a comma) and the quoting on the line it names.") from None
+    except Exception as exc:  # noqa: BLE001 - the Parquet reader raises many kinds of errors
+        size = path.stat().st_size
+        kind = "Parquet" if not is_csv else "CSV"
+        raise DataRoleError(f"table '{path}' could not be read as a {kind} file ({size} bytes; "
+                            f"{type(exc).__name__}: {str(exc).strip()[:200]}). Export it again, or fix 'data.table' "
+                            "if it names the wrong file.") from None
+    _refuse_duplicates(path, _csv_header(path) if is_csv else list(frame.columns))
     if len(frame) == 0:
         raise DataRoleError(f"table '{path}' has no rows; the study needs at least one row per "
                             "jurisdiction, group and period.")
@@ -64,8 +125,50 @@ def _sortable(values: np.ndarray) -> list:
         return sorted(values.tolist(), key=str)
 
 
+def _label_kind(v) -> str:
+    """'number', 'numeric text' (such as "3"), 'date' or 'text': the kind of one period label."""
+    if isinstance(v, (bool, np.bool_)):
+        return "text"
+    if isinstance(v, (int, float, np.integer, np.floating)):
+        return "number"
+    if isinstance(v, str):
+        try:
+            float(v)
+            return "numeric text"
+        except ValueError:
+            return "text"
+    if isinstance(v, (pd.Timestamp, np.datetime64)) or hasattr(v, "isoformat"):
+        return "date"
+    return "text"
+
+
+def _ordered_without_order(col: str, present: np.ndarray) -> list:
+    """Sorted period labels when no period_order is given; refuses labels of mixed kinds."""
+    values = present.tolist()
+    by_kind: dict[str, list] = {}
+    for v in values:
+        by_kind.setdefault(_label_kind(v), []).append(v)
+    kinds = set(by_kind)
+    if kinds <= {"number", "numeric text"} and "numeric text" in kinds:
+        return sorted(values, key=float)  # "10" after "9": numbers written as text sort as numbers
+    if len(kinds) > 1:
+        shown = "; ".join(f"{k} such as {by_kind[k][0]!r}" for k in sorted(kinds))
+        raise DataRoleError(
+            f"period column '{col}' mixes kinds of labels ({shown}), so their order in time is ambiguous: text "
+            "would sort by its characters, after or before the numbers. Make the labels one kind, or list every "
+            "period in time order in 'data.period_order' (study file, [data]).")
+    return _sortable(present)
+
+
 def period_levels(study: Study, frame: pd.DataFrame) -> list:
-    """The period labels in time order: ``data.period_order`` if given, else sorted values."""
+    """The period labels in time order: ``data.period_order`` if given, else sorted values.
+
+    Raises
+    ------
+    DataRoleError
+        When the column holds periods that period_order does not list, or, without period_order,
+        labels of mixed kinds (numbers and text) whose order in time is ambiguous.
+    """
     col = study.columns.period
     present = pd.unique(frame[col])
     if study.period_order is not None:
@@ -77,7 +180,7 @@ def period_levels(study: Study, frame: pd.DataFrame) -> list:
                                 "not list; add them to period_order in time order.")
         lookup = {str(v): v for v in present.tolist()}
         return [lookup[str(v)] for v in order if str(v) in lookup]
-    return _sortable(present)
+    return _ordered_without_order(col, present)
 
 
 def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
@@ -109,12 +212,16 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
         if nmiss:
             raise DataRoleError(f"column '{c}' ({role}) has {nmiss} missing value(s); every row needs a "
                                 f"{role}. Drop or fill those rows.")
-    y = out[cols.outcome]
-    if not pd.api.types.is_numeric_dtype(y) or pd.api.types.is_bool_dtype(y):
-        bad = y[pd.to_numeric(y, errors="coerce").isna() & y.notna()].head(3).tolist()
-        raise DataRoleError(f"outcome column '{cols.outcome}' is not numeric (values such as {bad}); "
-                            "give numbers, with a dot as decimal separator.")
-    yv = y.to_numpy(dtype=float, na_value=np.nan)
+    covs = required_columns(study.model.covariates)
+    roles = {"outcome": cols.outcome, "exposure": cols.exposure, "trials": cols.trials}
+    for c in covs:
+        role = next((r for r, v in roles.items() if v == c), None)
+        if role is not None:
+            raise DataRoleError(f"'model.covariates' uses column '{c}', which is the {role} column ('data.{role}'); "
+                                "a covariate must be another column. Fix the formula.")
+        if c not in cols.used():
+            _refuse_mixed_text(out, c)
+    yv = _numeric(out, cols.outcome, "outcome")
     nmiss = int(np.isnan(yv).sum())
     if nmiss:
         raise DataRoleError(f"outcome column '{cols.outcome}' has {nmiss} missing value(s); drop those "
@@ -122,6 +229,11 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     if not np.isfinite(yv).all():
         raise DataRoleError(f"outcome column '{cols.outcome}' has {int((~np.isfinite(yv)).sum())} infinite "
                             "value(s); replace them with finite numbers or drop the rows.")
+    with np.errstate(over="ignore"):
+        big = not np.isfinite(np.sum(yv * yv))
+    if big:
+        raise DataRoleError(f"outcome column '{cols.outcome}' holds values as large as {np.abs(yv).max():g}, whose "
+                            "sums of squares overflow; rescale the outcome (say to thousands or millions).")
     if study.model.log_outcome and (yv <= 0).any():
         nbad = int((yv <= 0).sum())
         raise DataRoleError(f"outcome column '{cols.outcome}' has {nbad} value(s) at or below zero (smallest "
@@ -147,9 +259,12 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     as_str = [str(v) for v in levels]
     for a, start in study.policy.adopters:
         if str(start) not in as_str:
+            same = [v for v in levels if _label_kind(v) == "number" and _label_kind(start) != "text"
+                    and float(v) == float(start)]
+            hint = f" Write it as it appears in the table: {same[0]!r}." if same else ""
             raise DataRoleError(
                 f"the start of adopter '{a}' ({start!r}, 'policy.adopters') is not a period of column "
-                f"'{cols.period}', which runs {levels[0]!r} .. {levels[-1]!r}. Give the first treated period.")
+                f"'{cols.period}', which runs {levels[0]!r} .. {levels[-1]!r}. Give the first treated period.{hint}")
         if as_str.index(str(start)) == 0:
             raise DataRoleError(
                 f"adopter '{a}' starts in the first period ({start!r}): there is no pre-period to compare "
@@ -177,15 +292,47 @@ def _rows_text(mask: np.ndarray, limit: int = 5) -> str:
     return f"{rows.size} row(s) (table lines {shown}{', ...' if rows.size > limit else ''})"
 
 
+def _text_mask(v: pd.Series) -> np.ndarray:
+    """True where a value is present but is not a number (text such as 'n/a', or true/false)."""
+    if pd.api.types.is_bool_dtype(v):
+        return v.notna().to_numpy()
+    if pd.api.types.is_numeric_dtype(v):
+        return np.zeros(len(v), dtype=bool)
+    conv = pd.to_numeric(v, errors="coerce")
+    return (conv.isna() & v.notna()).to_numpy() | v.map(lambda x: isinstance(x, (bool, np.bool_))).to_numpy(bool)
+
+
+def _text_error(v: pd.Series, mask: np.ndarray, what: str) -> DataRoleError:
+    if pd.api.types.is_bool_dtype(v):
+        return DataRoleError(f"{what} holds true/false values where numbers are expected; give 0 and 1 "
+                             "(for a yes/no outcome, with model.family = \"binomial\").")
+    examples = list(dict.fromkeys(repr(x) for x in v[mask].head(20).tolist()))[:3]
+    return DataRoleError(
+        f"{what} holds text where numbers are expected: {_rows_text(mask)} hold {', '.join(examples)}. Give "
+        "numbers, with a dot as decimal separator; if the text marks a missing value, leave the field empty "
+        "(only an empty field counts as missing).")
+
+
 def _numeric(out: pd.DataFrame, col: str, role: str) -> np.ndarray:
+    """The column as floats; text values are refused, named as text with their first rows."""
     v = out[col]
+    mask = _text_mask(v)
+    if mask.any():
+        raise _text_error(v, mask, f"{role} column '{col}'")
     if not pd.api.types.is_numeric_dtype(v) or pd.api.types.is_bool_dtype(v):
-        conv = pd.to_numeric(v, errors="coerce")
-        bad = v[conv.isna() & v.notna()].head(3).tolist()
-        if bad:
-            raise DataRoleError(f"{role} column '{col}' is not numeric (values such as {bad}); give numbers.")
-        v = conv
+        v = pd.to_numeric(v, errors="coerce")
     return v.to_numpy(dtype=float, na_value=np.nan)
+
+
+def _refuse_mixed_text(out: pd.DataFrame, col: str) -> None:
+    """A covariate column of numbers with some text in it (such as 'n/a') is refused; all-text is a category."""
+    v = out[col]
+    if pd.api.types.is_numeric_dtype(v) and not pd.api.types.is_bool_dtype(v):
+        return
+    mask = _text_mask(v)
+    numbers_present = bool((~mask & v.notna().to_numpy()).any())
+    if mask.any() and numbers_present:
+        raise _text_error(v, mask, f"covariate column '{col}' mixes numbers and text: it")
 
 
 def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:

@@ -13,10 +13,12 @@ __all__ = [
     "DataRoleError",
     "SweepError",
     "ReportError",
+    "OutputError",
     "BayesDidWarning",
     "FewAdoptersWarning",
     "DiagnosticsWarning",
     "RowLevelFallbackWarning",
+    "SparseJurisdictionWarning",
 ]
 
 
@@ -40,6 +42,10 @@ class ReportError(BayesDidError, ValueError):
     """A run folder cannot be reported: it is missing or lacks the files a fit writes."""
 
 
+class OutputError(BayesDidError, ValueError):
+    """The output folder cannot be written, or writing it would replace something bayesdid did not write."""
+
+
 class BayesDidWarning(UserWarning):
     """Base class of bayesdid's warnings (filter them together or one by one)."""
 
@@ -54,3 +60,7 @@ class DiagnosticsWarning(BayesDidWarning):
 
 class RowLevelFallbackWarning(BayesDidWarning):
     """The likelihood cannot be collapsed exactly and is evaluated on rows."""
+
+
+class SparseJurisdictionWarning(BayesDidWarning):
+    """A comparison jurisdiction is observed in too few periods to contribute to the comparison of changes."""

@@ -2,18 +2,15 @@
 
 A run folder holds ``posterior.nc`` (ArviZ DataTree: posterior, log_likelihood, log_prior, sample_stats,
 observed_data, constant_data), ``summary.json`` and ``manifest.json``. It is written into a
-temporary sibling folder and renamed into place at the end, so a failure leaves nothing
-half-written, and an existing folder is never overwritten unless asked.
+temporary sibling folder and renamed into place at the end (:class:`bayesdid.outputs.atomic_folder`),
+so a failure leaves nothing half-written, and an existing folder is never overwritten unless asked.
 """
 
 from __future__ import annotations
 
 import json
-import os
 import platform
-import shutil
 import sys
-import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,6 +25,7 @@ from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, FewAdoptersWarning
 from .model.terms import resolve_scales
+from .outputs import atomic_folder
 from .sample import Fit, fit_cells
 from .study import Study, study_to_dict
 
@@ -125,17 +123,21 @@ def prepare(study: Study) -> tuple[Cells, str, float]:
 
 
 def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None,
-            full_cross_check: bool = True, least_squares: dict | None = None) -> Analysis:
+            full_cross_check: bool = True, least_squares: dict | None = None,
+            prepared: tuple | None = None) -> Analysis:
     """Fit the study and compute its effects and the least-squares cross-check.
 
     ``full_cross_check=False`` (``bayesdid fit --no-cross-check``) keeps the least-squares estimate
     and its classical, HC1 and CR1 errors but skips the wild bootstrap and the permutation.
     ``least_squares`` may pass a cross-check already computed on the same cells (a sweep over
-    priors reuses one); by default it is computed here.
+    priors reuses one); by default it is computed here. ``prepared`` passes what :func:`prepare`
+    returned, for callers that check the table before any work (the command line).
     """
     say = log or (lambda msg: None)
     digest, collapse_s = None, 0.0
-    if cells is None:
+    if prepared is not None:  # (cells, data SHA-256, collapse seconds) from :func:`prepare`
+        cells, digest, collapse_s = prepared
+    elif cells is None:
         say(f"reading {study.table.name} and collapsing to cells")
         cells, digest, collapse_s = prepare(study)
     d = cells.describe()
@@ -160,6 +162,8 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     if len(cells.adopters) <= 2:
         notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
+    for msg in cells.extra.get("warnings", []):
+        notes.append(msg)
     if cells.extra.get("fallback"):
         notes.append(cells.extra["fallback"])
         say("WARNING: " + cells.extra["fallback"])
@@ -235,46 +239,6 @@ def dump_json(obj, path: Path) -> None:
         return str(o)
 
     path.write_text(json.dumps(obj, indent=2, default=default, allow_nan=True) + "\n", encoding="utf-8")
-
-
-class atomic_folder:
-    """Write into a temporary sibling folder; rename it to ``target`` only on success.
-
-    An existing non-empty ``target`` is refused unless ``replace`` is true; then it is swapped out
-    only after the new folder is complete.
-    """
-
-    def __init__(self, target: str | Path, *, replace: bool = False):
-        self.target = Path(target)
-        self.replace = replace
-
-    def check(self) -> None:
-        """Raise before any work when the target may not be written."""
-        t = self.target
-        if t.exists() and (not t.is_dir() or any(t.iterdir())) and not self.replace:
-            raise BayesDidError(f"output folder '{t}' already exists and is not empty; choose another --out "
-                                "or pass --replace to swap it for the new results.")
-
-    def __enter__(self) -> Path:
-        t = self.target
-        self.check()
-        t.parent.mkdir(parents=True, exist_ok=True)
-        self.tmp = Path(tempfile.mkdtemp(prefix=f".{t.name}.partial-", dir=t.parent))
-        return self.tmp
-
-    def __exit__(self, exc_type, exc, tb):
-        if exc_type is not None:
-            shutil.rmtree(self.tmp, ignore_errors=True)
-            return False
-        t = self.target
-        if t.exists():
-            old = t.with_name(f".{t.name}.old-{os.getpid()}")
-            os.replace(t, old)
-            os.replace(self.tmp, t)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(self.tmp, t)
-        return False
 
 
 def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None) -> Path:

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import numbers
+import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -30,6 +32,8 @@ __all__ = [
     "study_to_dict",
     "PRIOR_NAMES",
     "FAMILIES",
+    "SAMPLER_LIMITS",
+    "read_text_utf8",
 ]
 
 FAMILIES = ("gaussian", "binomial", "poisson", "negbinomial")
@@ -58,12 +62,24 @@ def _where(key: str, value: Any, expected: str, fix: str = "") -> StudyError:
 
 
 def _check_keys(section: Mapping[str, Any], allowed: set[str], where: str) -> None:
-    unknown = sorted(set(section) - allowed)
+    unknown = sorted(str(k) for k in set(section) - allowed)
     if unknown:
         raise StudyError(
             f"unknown key(s) {unknown} in [{where}]; allowed keys are {sorted(allowed)}. "
             "Check the spelling or remove them."
         )
+
+
+def _section(raw: Mapping[str, Any], name: str, allowed: set[str]) -> Mapping[str, Any]:
+    """The table ``[name]`` of the study (empty when absent), checked to be a table of known keys."""
+    sec = raw.get(name, {})
+    if sec is None:
+        return {}
+    if not isinstance(sec, Mapping):
+        raise _where(name, sec, f"a [{name}] table with keys {sorted(allowed)}",
+                     f"Write it as a section: a line [{name}] followed by key = value lines.")
+    _check_keys(sec, allowed, name)
+    return sec
 
 
 def _get_str(d: Mapping[str, Any], key: str, where: str, *, required: bool = True) -> str | None:
@@ -77,12 +93,15 @@ def _get_str(d: Mapping[str, Any], key: str, where: str, *, required: bool = Tru
     return v
 
 
-def _get_int(d, key, where, default, *, minimum=None):
+def _get_int(d, key, where, default, *, minimum=None, maximum=None, why=""):
     v = d.get(key, default)
-    if isinstance(v, bool) or not isinstance(v, int):
+    if isinstance(v, bool) or not isinstance(v, numbers.Integral):
         raise _where(f"{where}.{key}", v, "an integer")
+    v = int(v)
     if minimum is not None and v < minimum:
-        raise _where(f"{where}.{key}", v, f"an integer of at least {minimum}")
+        raise _where(f"{where}.{key}", v, f"an integer of at least {minimum}", why)
+    if maximum is not None and v > maximum:
+        raise _where(f"{where}.{key}", v, f"an integer of at most {maximum}", why)
     return v
 
 
@@ -90,11 +109,17 @@ def _get_float(d, key, where, default, *, positive=False, allow_none=True):
     v = d.get(key, default)
     if v is None and allow_none:
         return None
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+    if isinstance(v, bool) or not isinstance(v, numbers.Real):
         raise _where(f"{where}.{key}", v, "a finite number")
-    if positive and v <= 0:
+    try:
+        f = float(v)
+    except OverflowError:
+        f = math.inf
+    if not math.isfinite(f):
+        raise _where(f"{where}.{key}", v, "a finite number")
+    if positive and f <= 0:
         raise _where(f"{where}.{key}", v, "a positive number")
-    return float(v)
+    return f
 
 
 def _get_bool(d, key, where, default):
@@ -221,15 +246,61 @@ class Study:
         return "DiD" if self.columns.group is None else "DDD"
 
     def replace(self, **changes) -> "Study":
-        """A copy with some top-level fields replaced; nested settings take dicts or dataclasses."""
-        cur = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
-        for k, v in changes.items():
-            if k not in cur:
-                raise StudyError(f"unknown study field '{k}'; allowed: {sorted(cur)}")
-            if isinstance(v, Mapping) and dataclasses.is_dataclass(cur[k]):
-                v = dataclasses.replace(cur[k], **v)
-            cur[k] = v
-        return _validated(Study(**cur))
+        """A copy with some top-level fields replaced; nested settings take dicts or dataclasses.
+
+        The copy is rebuilt from the study-file layout by the same parser as :func:`load_study`, so
+        every value goes through the same checks, with the same messages, whatever its source.
+        """
+        return _parse(_raw_with(self, changes), Path.cwd())
+
+
+#: Study field -> section of the study file that holds it.
+_FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck"}
+
+
+def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
+    """The study in study-file layout with ``changes`` (Study field -> value) applied."""
+    raw = study_to_dict(study)
+    fields = [f.name for f in dataclasses.fields(study)]
+    for k, v in changes.items():
+        if k not in fields:
+            raise StudyError(f"unknown study field '{k}'; allowed: {sorted(fields)}.")
+        if k == "title":
+            raw["title"] = v
+        elif k == "table":
+            raw["data"]["table"] = os.fspath(v) if isinstance(v, os.PathLike) else v
+        elif k == "period_order":
+            raw["data"].pop("period_order", None)
+            if v is not None:
+                raw["data"]["period_order"] = list(v) if isinstance(v, tuple) else v
+        elif k == "placebo_lag":
+            raw.setdefault("checks", {}).pop("placebo_lag", None)
+            if v is not None:
+                raw["checks"]["placebo_lag"] = v
+        else:
+            sec = _FIELD_SECTIONS[k]
+            if dataclasses.is_dataclass(v) and not isinstance(v, type):
+                if k == "columns":
+                    keep = {kk: raw["data"][kk] for kk in ("table", "period_order") if kk in raw["data"]}
+                    raw["data"] = {**keep, **{kk: vv for kk, vv in dataclasses.asdict(v).items() if vv is not None}}
+                elif k == "policy":
+                    raw["policy"] = {"adopters": dict(v.adopters)}
+                    if v.target_group is not None:
+                        raw["policy"]["target_group"] = v.target_group
+                else:
+                    raw[sec] = {kk: vv for kk, vv in dataclasses.asdict(v).items() if vv is not None}
+            elif isinstance(v, Mapping):
+                cur = dict(raw.get(sec, {}))
+                for kk, vv in v.items():
+                    if vv is None:
+                        cur.pop(kk, None)
+                    else:
+                        cur[kk] = vv
+                raw[sec] = cur
+            else:
+                raise _where(k, v, f"a dict of [{sec}] keys or a {type(getattr(study, k)).__name__}")
+    return raw
 
 
 _TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
@@ -237,7 +308,16 @@ _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "ex
               "period_order"}
 
 
+#: Bounds of the sampler settings. The lower ones keep diagnostics computable; the upper ones catch
+#: typing slips (``--draws 10000000``) that would run for days or exhaust memory (common practice:
+#: 2-8 chains of 500-5,000 draws); the seed must fit the sampler's unsigned 64-bit seed after the
+#: small offsets the checks add.
+SAMPLER_LIMITS = {"chains": (1, 64), "draws": (10, 1_000_000), "tune": (10, 1_000_000), "seed": (0, 2**63 - 1)}
+
+
 def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
+    if not isinstance(raw, Mapping):
+        raise _where("top level", raw, "a table of sections ([data], [policy], ...)")
     _check_keys(raw, _TOP_KEYS, "top level")
     data = raw.get("data")
     if not isinstance(data, Mapping):
@@ -257,10 +337,23 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         trials=_get_str(data, "trials", "data", required=False),
     )
     order = data.get("period_order")
-    if order is not None and (not isinstance(order, list) or not order):
-        raise _where("data.period_order", order, "a non-empty list of period labels in time order")
+    if order is not None:
+        if not isinstance(order, (list, tuple)) or not order:
+            raise _where("data.period_order", order, "a non-empty list of period labels in time order")
+        bad = [v for v in order if isinstance(v, bool) or not isinstance(v, (str, int, float))]
+        if bad:
+            raise _where("data.period_order", bad[0], "period labels (numbers or text) only",
+                         "List the labels of the period column in time order, e.g. [\"2023Q1\", \"2023Q2\"].")
+        seen: dict[str, Any] = {}
+        for v in order:
+            if str(v) in seen:
+                raise _where("data.period_order", v, "each period once",
+                             f"The label {v!r} is listed twice; remove one.")
+            seen[str(v)] = v
 
     pol = raw.get("policy")
+    if pol is not None and not isinstance(pol, Mapping):
+        raise _where("policy", pol, "a [policy] table with 'adopters' (and 'target_group' for DDD)")
     if not isinstance(pol, Mapping):
         raise StudyError("the study needs a [policy] section with 'adopters' (and 'target_group' for DDD).")
     _check_keys(pol, {"adopters", "target_group"}, "policy")
@@ -271,32 +364,23 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = raw.get("model", {})
-    _check_keys(m, {"family", "log_outcome", "covariates", "missing"}, "model")
+    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing"})
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
     )
-    p = raw.get("priors", {})
-    _check_keys(p, set(PRIOR_NAMES), "priors")
+    p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
-    s = raw.get("sampler", {})
-    _check_keys(s, {"chains", "draws", "tune", "seed"}, "sampler")
-    sampler = SamplerSettings(
-        chains=_get_int(s, "chains", "sampler", 2, minimum=1),
-        draws=_get_int(s, "draws", "sampler", 1000, minimum=10),
-        tune=_get_int(s, "tune", "sampler", 1000, minimum=10),
-        seed=_get_int(s, "seed", "sampler", 20261202, minimum=0),
-    )
-    d = raw.get("decision", {})
-    _check_keys(d, {"threshold"}, "decision")
+    s = _section(raw, "sampler", {"chains", "draws", "tune", "seed"})
+    defaults = SamplerSettings()
+    sampler = SamplerSettings(**{
+        k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
+        for k, (lo, hi) in SAMPLER_LIMITS.items()})
+    d = _section(raw, "decision", {"threshold"})
     decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
-    x = raw.get("crosscheck", {})
-    if not isinstance(x, Mapping):
-        raise _where("crosscheck", x, "a [crosscheck] section with keys seed, draws, weights, placebos")
-    _check_keys(x, {"seed", "draws", "weights", "placebos"}, "crosscheck")
+    x = _section(raw, "crosscheck", {"seed", "draws", "weights", "placebos"})
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
         raise _where("crosscheck.weights", weights, f"one of {list(CROSSCHECK_WEIGHTS)}")
@@ -306,8 +390,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         weights=weights,
         placebos=_get_int(x, "placebos", "crosscheck", 999, minimum=1),
     )
-    c = raw.get("checks", {})
-    _check_keys(c, {"placebo_lag"}, "checks")
+    c = _section(raw, "checks", {"placebo_lag"})
     lag = c.get("placebo_lag")
     if lag is not None:
         lag = _get_int(c, "placebo_lag", "checks", None, minimum=1)
@@ -347,6 +430,19 @@ def _validated(study: Study) -> Study:
                              "add a column of ones if every row counts one unit.")
     if study.columns.trials is not None and study.model.family != "binomial":
         raise _where("data.trials", study.columns.trials, "no trials column unless model.family = 'binomial'")
+    roles = {f"data.{k}": v for k, v in dataclasses.asdict(study.columns).items() if v is not None}
+    seen: dict[str, str] = {}
+    for key, col in roles.items():
+        if col in seen:
+            raise StudyError(f"study keys '{seen[col]}' and '{key}' name the same column '{col}'; each role needs "
+                             "its own column. Fix one of them under [data].")
+        seen[col] = key
+    t = study.decision.threshold
+    if t is not None and t <= -1 and (study.model.log_outcome or study.model.family != "gaussian"):
+        scale = ("a log outcome (model.log_outcome = true)" if study.model.log_outcome else
+                 f"family '{study.model.family}', whose effect is read as a ratio")
+        raise _where("decision.threshold", t, f"a relative change above -1 for {scale}",
+                     f"{t:g} would be a cut of {-t:.0%}, which no ratio can reach; write a cut of 15% as -0.15.")
     names = [a for a, _ in study.policy.adopters]
     if len(set(names)) != len(names):
         raise _where("policy.adopters", names, "each adopter once")
@@ -356,19 +452,43 @@ def _validated(study: Study) -> Study:
     return study
 
 
+def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
+    """The text of a file that must be UTF-8 (a byte-order mark is allowed).
+
+    Raises ``error`` naming the file, what it is, and when it is not UTF-8 the first bad byte with
+    its line and column, and the fix.
+    """
+    path = Path(path)
+    if path.is_dir():
+        raise error(f"{what} '{path}' is a folder, not a file; give the path of the file itself.")
+    if not path.exists():
+        raise error(f"{what} '{path}' does not exist; check the path (relative paths start in the current folder).")
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise error(f"{what} '{path}' cannot be read ({type(exc).__name__}: {exc.strerror or exc}).") from None
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        col = exc.start - (data.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise error(f"{what} '{path}' is not UTF-8 text: byte 0x{data[exc.start]:02x} on line {line}, column {col} "
+                    "cannot be read. Save the file with the UTF-8 encoding (in most editors: Save as, "
+                    "encoding UTF-8).") from None
+
+
 def load_study(path: str | Path) -> Study:
-    """Read and validate a study file (TOML).
+    """Read and validate a study file (TOML, UTF-8).
 
     Raises
     ------
     StudyError
-        If the file is missing, not valid TOML, or any key is wrong.
+        If the path is missing or a folder, the file is not UTF-8 or not valid TOML, or any key is wrong.
     """
     path = Path(path)
-    if not path.is_file():
-        raise StudyError(f"study file '{path}' does not exist; give the path to a .toml study file.")
+    text = read_text_utf8(path, "study file")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyError(f"study file '{path}' is not valid TOML: {exc}. Fix the line it names.") from None
     return _parse(raw, path.parent.resolve())
@@ -382,18 +502,18 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
     """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
     raw: dict[str, Any] = {
         "title": title,
-        "data": {k: v for k, v in dict(table=str(table), outcome=outcome, jurisdiction=jurisdiction,
+        "data": {k: v for k, v in dict(table=os.fspath(table) if isinstance(table, os.PathLike) else table, outcome=outcome, jurisdiction=jurisdiction,
                                          period=period, group=group, unit=unit, exposure=exposure,
                                          trials=trials, period_order=period_order).items() if v is not None},
-        "policy": {k: v for k, v in dict(adopters=dict(adopters), target_group=target_group).items()
-                   if v is not None},
+        "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
+                                         target_group=target_group).items() if v is not None},
         "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
                                         missing=missing).items() if v is not None},
-        "priors": dict(priors or {}),
+        "priors": dict(priors) if isinstance(priors, Mapping) else (priors or {}),
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},
         "checks": {} if placebo_lag is None else {"placebo_lag": placebo_lag},
-        "crosscheck": dict(crosscheck or {}),
+        "crosscheck": dict(crosscheck) if isinstance(crosscheck, Mapping) else (crosscheck or {}),
     }
     return _parse(raw, Path.cwd())
 

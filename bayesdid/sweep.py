@@ -76,6 +76,7 @@ import numpy as np
 
 from . import __version__
 from .errors import BayesDidError, SweepError
+from .outputs import owner_alive, owner_tag, probe_writable, process_start
 from .study import PRIOR_NAMES, Study, _parse, load_study, study_to_dict
 
 __all__ = ["Variant", "SweepPlan", "load_sweep", "run_sweep", "verdict", "SUMMARY_COLUMNS",
@@ -562,36 +563,79 @@ def _write_tables(out: Path, plan: SweepPlan, rows: list[dict], meta: dict) -> d
 
 
 class _Lock:
-    """DIR/.sweep.lock with the pid; a lock left by a dead process (a killed sweep) is taken over."""
+    """DIR/.sweep.lock naming its owner (host, pid and the process's start time, as JSON).
+
+    Taken with an exclusive create; a lock whose owner is dead (a killed sweep), or whose pid now
+    belongs to another process, is stale and taken over. A lock of a live sweep, or of one on
+    another machine, is refused with how to proceed.
+    """
 
     def __init__(self, out: Path):
         self.path = out / ".sweep.lock"
 
+    def _owner(self) -> dict:
+        try:
+            body = json.loads(self.path.read_text() or "{}")
+        except (OSError, ValueError):
+            return {}
+        if isinstance(body, int):  # the plain pid written by earlier versions
+            body = {"owner": owner_tag(body)}
+        return body if isinstance(body, dict) else {}
+
     def __enter__(self):
-        if self.path.exists():
+        me = json.dumps({"owner": owner_tag(), "pid": os.getpid(), "start": process_start(os.getpid())})
+        for _ in range(3):
             try:
-                pid = int(self.path.read_text().strip() or 0)
-            except ValueError:
-                pid = 0
-            if pid and pid != os.getpid() and _alive(pid):
-                raise SweepError(f"another sweep (process {pid}) is writing to '{self.path.parent}'; wait for it "
-                                 "to finish or choose another --out.")
-        self.path.write_text(str(os.getpid()))
-        return self
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                owner = self._owner()
+                tag = str(owner.get("owner", ""))
+                if tag and owner_alive(tag, owner.get("start")):
+                    here = tag.partition("-")[0] == owner_tag().partition("-")[0]
+                    raise SweepError(
+                        f"another sweep (process {tag.partition('-')[2]}{'' if here else ' on another machine'}) "
+                        f"is writing to '{self.path.parent}'; wait for it to finish or choose another --out. If no "
+                        f"sweep runs there, delete '{self.path}'.") from None
+                self.path.unlink(missing_ok=True)  # stale: its owner is dead
+                continue
+            with os.fdopen(fd, "w") as fh:
+                fh.write(me)
+            return self
+        raise SweepError(f"could not take the lock '{self.path}'; another process keeps creating it. Retry.")
 
     def __exit__(self, *exc):
         self.path.unlink(missing_ok=True)
         return False
 
 
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+def _bind_to_parent(parent_pid: int) -> None:
+    """Pool-worker initializer: the worker ends when the sweep's main process does, however it ends.
+
+    On Linux the kernel sends SIGKILL to the worker when its parent dies (prctl PR_SET_PDEATHSIG);
+    everywhere a watchdog thread checks the parent pid once a second and ends the worker once it
+    has been handed to another parent.
+    """
+    import signal
+    import threading
+
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
+        except (OSError, AttributeError):
+            pass
+    if os.getppid() != parent_pid:  # the parent died before the signal was armed
+        os._exit(1)
+
+    def watch():
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="bayesdid-parent-watch", daemon=True).start()
 
 
 # ---- executors ---------------------------------------------------------------------------------
@@ -623,7 +667,9 @@ def _pool(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
 
     fn = fn or run_variant
     # spawn: a clean interpreter per worker (no forked numba/LLVM state); each worker compiles once
-    with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn")) as ex:
+    # each worker ends with this process, even when it is killed (_bind_to_parent)
+    with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                             initializer=_bind_to_parent, initargs=(os.getpid(),)) as ex:
         futs = {ex.submit(fn, t): t for t in tasks}
         for f in as_completed(futs):
             yield _result_or_failure(f, futs[f], lost)
@@ -714,12 +760,7 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         raise SweepError("the Dask executor needs --cluster: a scheduler address (tcp://host:8786) or 'local'.")
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise SweepError(f"--workers: expected a whole number of at least 1, found {workers!r}.")
-    out = Path(out)
-    if out.exists() and not out.is_dir():
-        raise SweepError(f"--out '{out}' is a file; give a folder for the sweep's results.")
-    if out.is_dir() and any(out.iterdir()) and not (out / "manifest.json").is_file() \
-            and not (out / "variants").is_dir():
-        raise SweepError(f"--out '{out}' is a non-empty folder that holds no sweep; choose another folder.")
+    out = check_sweep_folder(out)
     t0 = time.perf_counter()
     (out / "variants").mkdir(parents=True, exist_ok=True)
     with _Lock(out):
@@ -727,6 +768,8 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         shutil.rmtree(staging, ignore_errors=True)  # leftovers of a killed run
         for p in (out / "variants").glob(".*"):
             shutil.rmtree(p, ignore_errors=True)
+        for p in out.glob(".*.tmp-*"):  # half-written tables (_atomic_write); only the lock's owner writes them
+            p.unlink(missing_ok=True)
         staging.mkdir()
         todo, skipped = [], []
         for v in plan.variants:
@@ -762,6 +805,28 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         shutil.rmtree(staging, ignore_errors=True)
     return {"ran": meta["last_run"]["ran"], "skipped": skipped, "failed": failed, "compiles": compiles,
             "rows": rows, "verdict": ver, "seconds": meta["seconds"], "out": str(out)}
+
+
+def check_sweep_folder(out: str | Path) -> Path:
+    """Refuse, before any work, a sweep --out that is a file, a non-empty folder holding no sweep, or
+    a folder under which nothing can be created. A folder of an earlier sweep is reused (resumed)."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise SweepError(f"--out '{out}' is a file, not a folder; give a folder for the sweep's results (a file is "
+                         "never replaced).")
+    if out.is_dir() and any(out.iterdir()) and not (out / "manifest.json").is_file() \
+            and not (out / "variants").is_dir():
+        raise SweepError(f"--out '{out}' already exists and holds files but no sweep; choose another folder.")
+    anchor = out
+    while not anchor.exists() and anchor.parent != anchor:
+        anchor = anchor.parent
+    if not anchor.is_dir():
+        raise SweepError(f"--out '{out}': '{anchor}' is a file, not a folder; choose another --out.")
+    why = probe_writable(anchor)
+    if why is not None:
+        raise SweepError(f"--out '{out}': nothing can be written in folder '{anchor}' ({why}); choose an --out in "
+                         "a folder you can write to.")
+    return out
 
 
 def _rows_now(out: Path, plan: SweepPlan, failed: dict) -> list[dict]:

@@ -79,8 +79,8 @@ def test_reproducible_for_a_fixed_seed(small_run):
 def test_files_written_atomically_and_parse(small_run, tmp_path):
     out = tmp_path / "cal"
     cal.write_calibration(small_run, out)
-    assert sorted(p.name for p in out.iterdir()) == ["calibration.json", "coverage_reps.csv", "sbc_ranks.png",
-                                                     "sbc_reps.csv"]
+    assert sorted(p.name for p in out.iterdir()) == ["calibration.json", "coverage_reps.csv", "manifest.json",
+                                                     "sbc_ranks.png", "sbc_reps.csv"]
     summary = json.loads((out / "calibration.json").read_text())
     assert summary["coverage"]["posterior"]["cover_95"]["reps"] == 3
     with open(out / "coverage_reps.csv", newline="") as fh:

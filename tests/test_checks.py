@@ -242,7 +242,7 @@ placebo_lag = 1
     assert list(tab.columns) == ["lag", "fake_start", "mean", "sd", "lower_90", "upper_90", "prob_gt_0"]
     # existing folder: refused with exit 2, nothing changed
     assert main(["checks", str(tmp_path / "study.toml"), "--out", str(out), "--quiet"]) == 2
-    assert sorted(p.name for p in out.iterdir()) == ["checks.json", "placebo_time.csv"]
+    assert sorted(p.name for p in out.iterdir()) == ["checks.json", "manifest.json", "placebo_time.csv"]
     assert main(["checks", str(tmp_path / "study.toml"), "--out", str(tmp_path / "x"), "--only", "nope"]) == 2
     assert not (tmp_path / "x").exists()
 

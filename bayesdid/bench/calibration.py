@@ -27,7 +27,7 @@ def bench_calibration(*, quick: bool = False, reps: int | None = None, scenario:
     draws = draws if draws is not None else (200 if quick else 500)
     tune = tune if tune is not None else (200 if quick else 500)
     out = out or f"runs/calibration-{scenario}"
-    atomic_folder(out, replace=replace).check()  # refuse before any work, not after an hour
+    atomic_folder(out, replace=replace, kind="calibration").check()  # refuse before any work, not after an hour
     target = Path(out)
     target.parent.mkdir(parents=True, exist_ok=True)
     progress = target.with_name(f".{target.name}.reps.jsonl")  # reps so far; removed once DIR is written

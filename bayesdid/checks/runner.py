@@ -124,7 +124,7 @@ def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False,
 
     from ..run import atomic_folder, dump_json, versions
 
-    with atomic_folder(out, replace=replace) as tmp:
+    with atomic_folder(out, replace=replace, kind="checks") as tmp:
         files = []
         for r in report.results.values():
             for name, table in r.tables.items():

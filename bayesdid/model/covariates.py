@@ -40,6 +40,9 @@ def parse_formula(spec: str):
     """Parse ``model.covariates`` with formulaic; errors name the key and the parser's complaint."""
     import formulaic
 
+    if "~" in spec:
+        raise StudyError(f"study key 'model.covariates': {spec!r} has a left-hand side ('~'); give only the "
+                         "covariate terms, e.g. \"age + C(sex)\" (the outcome is 'data.outcome').")
     try:
         formula = formulaic.Formula(spec)
     except Exception as exc:  # formulaic raises several syntax error types

@@ -30,6 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import ReportError
+from ..outputs import clean_leftovers, owner_tag
 from . import plots
 from .words import evidence, headline
 
@@ -751,7 +752,8 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     """
     text = render_report(run_dir)
     target = Path(out) if out is not None else Path(run_dir) / "report.html"
-    fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html.partial", dir=target.parent)
+    clean_leftovers(target)  # a report killed while it was written
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.partial-{owner_tag()}-", dir=target.parent)
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
