@@ -18,6 +18,7 @@ REGISTRY = {
     "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
+    "plan": ("bayesdid.bench.plan", "bench_plan"),
 }
 
 
