@@ -522,11 +522,10 @@ def _validate_shape(study: Study) -> None:
         if fam != "gaussian":
             raise _where("data.weight", c.weight, "sampling weights with family 'gaussian' only",
                          f"Weighted likelihoods for family '{fam}' are not supported; drop data.weight.")
-        if study.model.log_outcome or study.model.covariates:
-            what = "model.log_outcome" if study.model.log_outcome else "model.covariates"
-            raise _where(what, getattr(study.model, what.split(".")[1]), "not set together with data.weight",
-                         "Weighted cells support a plain Gaussian outcome without covariates; log the outcome in "
-                         "the table instead of log_outcome, or drop the covariates or the weights.")
+        if study.model.covariates:
+            raise _where("model.covariates", study.model.covariates, "no covariates together with data.weight",
+                         "Weighted cells support a Gaussian outcome without covariates; drop the covariates or "
+                         "the weights.")
 
 
 def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
