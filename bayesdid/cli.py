@@ -245,7 +245,8 @@ def _add_calibration_options(b):
 
 
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
-_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS), "weights": {"reps", "draws", "tune", "seed"}}
+_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS), "weights": {"reps", "draws", "tune", "seed"},
+                  "panel": {"reps", "draws", "tune", "seed"}}
 
 
 def _calibration_kwargs(args) -> dict:
@@ -311,7 +312,7 @@ def build_parser() -> argparse.ArgumentParser:
     w.set_defaults(func=cmd_sweep)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights")
+                                  "weights, panel")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
