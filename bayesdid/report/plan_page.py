@@ -61,8 +61,11 @@ def plan_sentences(summary: dict) -> list[str]:
             continue
         head = f"With {layout_words(lay, plan['period_name'])}"
         if row["effect"] == 0:
+            width = ("" if row["width_95_mean"] is None else
+                     f"; the 95% interval of the effect would typically be {row['width_95_mean']:.3g} wide"
+                     + (" on the log scale" if log else ""))
             out.append(f"{head}, a policy with no effect would wrongly be judged to meet the rule with probability "
-                       f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}).")
+                       f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){width}.")
         else:
             perm = ("" if row["permutation_power"] is None else
                     f"; the permutation test would detect it with probability {row['permutation_power']:.2f}")
