@@ -429,8 +429,6 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     if method not in ("shift", "refit"):
         raise _err("simulation.method", method, "'shift' (one fit per data set, the other effects by exact "
                    "reweighting) or 'refit' (one fit per data set and effect)")
-    if noise.stated["rho"] != 0:
-        notes.append(_rho_note(noise.stated["rho"]))
     return Plan(title=title, base=base, layouts=tuple(layouts), noise=noise, effects=values, threshold=threshold,
                 direction=direction, level=level, log_outcome=log_outcome, period_name=period_name.strip(),
                 reps=reps, seed=seed, draws=draws, tune=tune, chains=chains, placebos=placebos, method=method,
@@ -438,19 +436,15 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
                 path=path)
 
 
-def _model_has_rho() -> bool:
-    """Whether the fitted model on this version learns a persistence of the gap noise."""
-    from .study import PRIOR_NAMES
-
-    return any("rho" in k or "persist" in k for k in PRIOR_NAMES)
-
-
-def _rho_note(rho: float) -> str:
-    if _model_has_rho():
-        return f"the gap noise is simulated with AR(1) correlation {rho:g}; the fitted model learns it"
-    return (f"the gap noise is simulated with AR(1) correlation {rho:g}, but the fitted model of this version "
-            "assumes independent gap noise: its intervals are too narrow and the assurance and false-decision "
-            "rate read here are what that model would report, not what an honest analysis would")
+def rho_note(rho_simulated: bool, fitted: set[str]) -> str | None:
+    """What the page says about persistent gap noise, from what was simulated and the forms fitted."""
+    if not rho_simulated:
+        return None
+    if fitted and fitted <= {"persistent"}:
+        return "the gap noise is simulated as persistent (AR(1)); the fitted model learns its correlation rho"
+    return ("the gap noise is simulated as persistent (AR(1)), but the model fitted here assumed independent gap "
+            "noise" + (" in some data sets" if "persistent" in fitted else "") + ": its intervals are too "
+            "narrow, so the assurance and false-decision rate read here are those of an over-confident analysis")
 
 
 def load_plan(path: str | Path) -> Plan:
@@ -841,7 +835,8 @@ def _rep(task: RepTask) -> dict:
             w = None
         row = {"effect": effect, "method": how, "weights_ess_share": ess, **_decide(plan, att, w, truth),
                "rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
-               "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"]}
+               "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"],
+               "rho_true": scales_true["rho"], "gap_fitted": getattr(fit.spec, "gap", "independent")}
         if plan.placebos:
             perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed)
             p1 = _one_sided_p(perm["estimate"], perm["estimates"], plan.direction)
@@ -1079,14 +1074,16 @@ def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progre
             compiles[str(r["pid"])] = compiles.get(str(r["pid"]), 0) + int(r.get("compiles", 0))
     failed = [{"key": r["key"], "error": r["error"]} for r in records if not r.get("ok")]
     ex_name = {"serial": "in-process", "pool": f"process pool ({workers} workers)", "dask": f"dask ({cluster})"}[kind]
+    note = rho_note(plan.noise.stated["rho"] != 0 or bool(plan.noise.draws and "rho" in plan.noise.draws),
+                    {r.get("gap_fitted", "independent") for r in rows})
     summary = {
-        "plan": plan.to_dict(),
+        "plan": plan.to_dict() | ({"notes": list(plan.notes) + [note]} if note else {}),
         "assurance": table,
         "false_decision": [{"layout": t["layout"], "rate": t["false_decision_rate"], "mcse": t["assurance_mcse"],
                             "reps": t["reps"], "bound": 1 - plan.level}
                            for t in table if t["effect"] == 0],
         "failed": failed,
-        "model_learns_rho": _model_has_rho(),
+        "gap_fitted": sorted({r.get("gap_fitted", "independent") for r in rows}),
         "run": {"executor": ex_name, "ran_now": len(new), "kept_from_earlier_run": len(done),
                 "compiles_per_worker": compiles, "wall_s": wall,
                 "fits_now": int(sum(r.get("fits", 0) for r in new)),
