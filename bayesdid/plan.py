@@ -772,6 +772,9 @@ def _wquantile(x: np.ndarray, w: np.ndarray, q) -> np.ndarray:
     return np.interp(q, c, xs)
 
 
+#: Least-squares designs of the layouts this process has seen (see crosscheck.permutation_test).
+_DESIGNS: dict = {}
+
 #: Below this share of effective draws the shifted draws are not used and the effect is refitted.
 MIN_WEIGHT_ESS = 0.5
 
@@ -838,7 +841,7 @@ def _rep(task: RepTask) -> dict:
                "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"],
                "rho_true": scales_true["rho"], "gap_fitted": getattr(fit.spec, "gap", "independent")}
         if plan.placebos:
-            perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed)
+            perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed, designs=_DESIGNS)
             p1 = _one_sided_p(perm["estimate"], perm["estimates"], plan.direction)
             row.update({"ls_estimate": perm["estimate"], "p_permutation_two_sided": perm["p_value"],
                         "p_permutation": p1, "permutation_assignments": perm["assignments"],

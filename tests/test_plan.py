@@ -346,3 +346,22 @@ def test_rho_note_follows_what_was_fitted():
     assert "over-confident" in rho_note(True, {"independent"})
     assert "some data sets" in rho_note(True, {"independent", "persistent"})
     assert "learns its correlation" in rho_note(True, {"persistent"})
+
+
+def test_permutation_reuses_the_design_of_a_layout_exactly():
+    """The fixed-effect basis is reused across data sets of one layout: same estimates as a fresh design."""
+    from bayesdid.crosscheck import permutation_test
+
+    plan = make_plan(with_(DID, "vary", comparisons=[9, 29]))
+    rng = np.random.default_rng(5)
+    designs: dict = {}
+    for lay in plan.layouts:
+        for effect in (0.0, -0.4):
+            cells = simulate_cells(plan, lay, simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng),
+                                   effect)
+            a = permutation_test(cells, placebos=19, seed=3, designs=designs)
+            b = permutation_test(cells, placebos=19, seed=3)
+            assert a["estimate"] == pytest.approx(b["estimate"], abs=1e-12)
+            assert a["p_value"] == b["p_value"]
+            assert np.allclose(a["estimates"], b["estimates"], atol=1e-12)
+    assert len(designs) == 2  # one per layout
