@@ -49,6 +49,7 @@ class Scenario:
     group_period_sd: float = 0.05
     gap_sd: float = 0.05
     gap_df: float | None = None  # Student-t degrees of freedom for the gap noise (heavy tails)
+    gap_rho: float = 0.0  # AR(1) correlation of the gap noise over periods (marginal sd stays gap_sd)
     residual_sd: float = 1.0
     pre_drift: float = 0.0  # per-period drift of the adopters' target-group gap before the start
     fixed_cells: bool = False  # every cell exactly rows_per_cell rows
@@ -68,6 +69,11 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
         e = sc.gap_sd * rng.standard_t(sc.gap_df, size=(J, T)) * np.sqrt((sc.gap_df - 2) / sc.gap_df)
     else:
         e = sc.gap_sd * rng.standard_normal((J, T))
+    if sc.gap_rho:
+        # stationary AR(1) from the same innovations: e_t = rho e_{t-1} + sqrt(1 - rho^2) z_t
+        z, r = e.copy(), float(sc.gap_rho)
+        for t in range(1, T):
+            e[:, t] = r * e[:, t - 1] + np.sqrt(1.0 - r * r) * z[:, t]
     tau_j = {j: sc.tau + sc.tau_spread * rng.standard_normal() for j in sc.starts}
     mean = np.zeros((J, G, T))
     tg = G - 1  # target group index (last)
@@ -110,6 +116,7 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
         "tau_adopter": {names[j]: float(v) for j, v in tau_j.items()},
         "starts": {names[j]: int(st) + 1 for j, st in sc.starts.items()},
         "gap_sd": sc.gap_sd,
+        "gap_rho": sc.gap_rho,
         "rows": total,
     }
     return frame, truth

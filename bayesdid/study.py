@@ -167,6 +167,8 @@ class ModelOptions:
     log_outcome: bool = False
     covariates: str | None = None
     missing: str = "error"  # or "drop"
+    #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
+    gap_over_time: str = "persistent"
 
 
 @dataclass(frozen=True)
@@ -364,12 +366,13 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing"})
+    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing", "gap_over_time"})
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
+        gap_over_time=m.get("gap_over_time", "persistent"),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
@@ -415,6 +418,9 @@ def _validated(study: Study) -> Study:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
+    if study.model.gap_over_time not in ("persistent", "independent"):
+        raise _where("model.gap_over_time", study.model.gap_over_time, "'persistent' or 'independent'",
+                     "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.")
     if study.model.log_outcome and study.model.family != "gaussian":
         raise _where("model.log_outcome", True, "false for non-gaussian families",
                      "Binomial and count families already use a logit or log link.")
@@ -495,7 +501,8 @@ def load_study(path: str | Path) -> Study:
 
 
 def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
-               log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
+               log_outcome=False, family="gaussian", covariates=None, missing="error", gap_over_time=None,
+               exposure=None,
                trials=None, unit=None, priors=None, chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
                crosscheck=None) -> Study:
@@ -508,7 +515,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
                                          target_group=target_group).items() if v is not None},
         "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
-                                        missing=missing).items() if v is not None},
+                                        missing=missing, gap_over_time=gap_over_time).items() if v is not None},
         "priors": dict(priors) if isinstance(priors, Mapping) else (priors or {}),
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},

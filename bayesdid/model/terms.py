@@ -25,6 +25,7 @@ import pytensor.tensor as pt
 
 from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
+from .structure import gap_structure, residual_rule
 
 __all__ = ["default_scales", "resolve_scales", "ModelSpec", "build_model", "design_data",
            "hierarchical_mean", "event_times_of", "event_time_data", "EFFECTS"]
@@ -84,6 +85,12 @@ class ModelSpec:
     effects: str = "att"
     event_times: tuple = ()
     event_pooled: bool = False
+    #: The gap noise over periods as fitted, "persistent" (AR(1)) or "independent"; see
+    #: :mod:`bayesdid.model.structure`.
+    gap: str = "independent"
+    #: Gaussian: a separate residual sd (False when the cells cannot identify it, see
+    #: :func:`bayesdid.model.structure.residual_rule`).
+    residual: bool = True
 
     def key(self) -> tuple:
         return dataclasses.astuple(self)
@@ -332,6 +339,9 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
     fields = ()
+    # The AR(1) form is built for the Gaussian family; the others keep independent gap noise.
+    gap = gap_structure(cells).over_time if family == "gaussian" else "independent"
+    residual = residual_rule(cells)["separate"] if family == "gaussian" else True
     if family != "gaussian":
         from .families import fields_centred
 
@@ -340,10 +350,11 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
         ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
         return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
                          centred=baseline_centred(cells), fields=fields, effects="event_time", event_times=ks,
-                         event_pooled=bool(event_pooled),
+                         event_pooled=bool(event_pooled), gap=gap, residual=residual,
                          K=0 if cov is None else len(cov["names"]))
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                     centred=baseline_centred(cells), fields=fields, K=0 if cov is None else len(cov["names"]))
+                     centred=baseline_centred(cells), fields=fields, gap=gap, residual=residual,
+                     K=0 if cov is None else len(cov["names"]))
 
 
 def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
@@ -355,7 +366,8 @@ def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian"
     if family == "gaussian":
         from .gaussian import build_gaussian
 
-        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), **terms), spec
+        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
+                              residual=spec.residual, **terms), spec
     from .families import FAMILY_BUILDERS, build_family
 
     if family in FAMILY_BUILDERS:

@@ -269,7 +269,27 @@ def _effect_section(run: RunFolder) -> str:
         out.append(_table(["most likely", "90% interval", "probability above zero"],
                           [[_num(nat["median"]), f"{_num(nat['eti_90'][0])} to {_num(nat['eti_90'][1])}",
                             f"{nat.get('prob_gt_0', float('nan')):.1%}"]]))
+    out.extend(_persistence_words(s))
     return "\n".join(out)
+
+
+def _persistence_words(s: dict) -> list[str]:
+    """How the gap noise was modelled over periods (summary.json's model.gap_noise and persistence)."""
+    g = (s.get("model") or {}).get("gap_noise")
+    if not isinstance(g, dict):
+        return []
+    out = ["<h3>Persistence of the gap noise over periods</h3>"]
+    pers = s.get("persistence")
+    if isinstance(pers, dict) and pers.get("sentence"):
+        out.append(f"<p>{esc(pers['sentence'])} Prior: {esc(pers.get('prior', ''))}.</p>")
+    else:
+        out.append(f"<p>{esc(g.get('meaning', ''))}.</p>")
+    if g.get("fallback"):
+        out.append(f'<p class="caution">{esc(g["fallback"])}</p>')
+    res = (s.get("model") or {}).get("residual_sd")
+    if isinstance(res, dict) and not res.get("separate", True):
+        out.append(f"<p>No separate residual sd: {esc(res.get('reason', ''))}</p>")
+    return out
 
 
 def _check_status(run: RunFolder, name: str) -> tuple[dict | None, str]:
