@@ -196,6 +196,46 @@ def cmd_checks(args, argv):
     return EXIT_OK
 
 
+def cmd_trends(args, argv):
+    """Parallel-trends sensitivity of a run folder: rewrite its trends.csv and summary.json's section."""
+    import os
+
+    from .run import dump_json
+    from .trends import trends_from_run, write_trends
+
+    mult = None
+    if args.multiples is not None:
+        try:
+            mult = [float(v) for v in args.multiples.split(",") if v.strip()]
+        except ValueError:
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r}: expected numbers separated by "
+                                "commas, e.g. 0,0.5,1,2.") from None
+        if not mult or any(not math.isfinite(v) or v < 0 for v in mult):
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r} (trends.multiples): expected "
+                                "zero or positive finite numbers; M scales the largest pre-policy change.")
+        mult = sorted(mult)
+    run = Path(args.run_dir)
+    tb = trends_from_run(run, multiples=mult)
+    summary_path = run / "summary.json"
+    summary = json.loads(summary_path.read_text(encoding="utf-8"))
+    summary["parallel_trends"] = tb.to_dict()
+    tmp = run / ".summary.json.tmp"
+    dump_json(summary, tmp)
+    if tb.rows:
+        write_trends(tb, run)
+    os.replace(tmp, summary_path)
+    if tb.status != "ok":
+        print(f"parallel-trends sensitivity: {tb.status} ({tb.reason})")
+        return EXIT_OK
+    print("M      95% interval of the effect (model scale)   P(reduction)  P(increase)")
+    for r in tb.rows:
+        print(f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
+              f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}")
+    print(tb.sentence)
+    print(f"written to {run / 'trends.csv'} and summary.json (parallel_trends)")
+    return EXIT_OK
+
+
 def cmd_sweep(args, argv):
     from .sweep import check_sweep_folder, load_sweep, run_sweep
 
@@ -300,6 +340,11 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
+    t = sub.add_parser("trends", help="how far parallel trends may fail before the conclusion changes "
+                                      "(relative-magnitudes bound over a grid of M) for a run folder")
+    t.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
+    t.add_argument("--multiples", help="grid of M, comma-separated (default: the study's trends.multiples)")
+    t.set_defaults(func=cmd_trends)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, calibration")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")

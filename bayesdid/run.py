@@ -60,6 +60,7 @@ class Analysis:
     data_sha256: str | None = None
     notes: list = field(default_factory=list)
     sensitivity: dict | None = None
+    trends: object = None  # bayesdid.trends.TrendBounds
 
     def summary(self) -> dict:
         e = self.effects
@@ -87,6 +88,8 @@ class Analysis:
         }
         if self.sensitivity is not None:
             out["sensitivity"] = self.sensitivity
+        if self.trends is not None:
+            out["parallel_trends"] = self.trends.to_dict()
         pers = persistence_summary(self.fit)
         if pers is not None:
             out["persistence"] = pers
@@ -215,8 +218,14 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     sens = power_scaling(fit)
     timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s,
               "sensitivity_s": time.perf_counter() - t0}
+    from .trends import model_threshold, trend_bounds
+
+    t0 = time.perf_counter()
+    tb = trend_bounds(fit, multiples=study.trends.multiples, threshold=model_threshold(study, cells),
+                      level=study.decision.level)
+    timing["trends_s"] = time.perf_counter() - t0
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
-                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens)
+                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens, trends=tb)
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
@@ -287,6 +296,11 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
         summary = an.summary()
         summary["timing"]["write_s"] = time.perf_counter() - t0
         dump_json(summary, tmp / "summary.json")
+        files = ["posterior.nc", "summary.json", "manifest.json"]
+        if an.trends is not None and an.trends.rows:
+            from .trends import write_trends
+
+            files.append(write_trends(an.trends, tmp).name)
         manifest = {
             "bayesdid": __version__,
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -298,7 +312,7 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
             "table": str(an.study.table),
             "study": study_to_dict(an.study),
             "command": list(argv) if argv is not None else sys.argv,
-            "files": ["posterior.nc", "summary.json", "manifest.json"],
+            "files": files,
         }
         dump_json(manifest, tmp / "manifest.json")
     return Path(out)

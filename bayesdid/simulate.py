@@ -52,6 +52,8 @@ class Scenario:
     gap_rho: float = 0.0  # AR(1) correlation of the gap noise over periods (marginal sd stays gap_sd)
     residual_sd: float = 1.0
     pre_drift: float = 0.0  # per-period drift of the adopters' target-group gap before the start
+    pre_wiggle: float = 0.0  # adopters' pre-period gap alternates +w, -w (period-to-period changes of 2w)
+    post_drift: float = 0.0  # adopters' gap departs from parallel by post_drift * (k + 1) at event time k >= 0
     fixed_cells: bool = False  # every cell exactly rows_per_cell rows
 
 
@@ -90,8 +92,12 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
                     mean[j, tg, t] += sc.effect_path[min(k, len(sc.effect_path) - 1)]
                 else:
                     mean[j, tg, t] += tau_j[j]
-            elif sc.pre_drift:
+            if k >= 0 and sc.post_drift:
+                mean[j, tg, t] += sc.post_drift * (k + 1)
+            if k < 0 and sc.pre_drift:
                 mean[j, tg, t] += sc.pre_drift * k
+            if k < 0 and sc.pre_wiggle:
+                mean[j, tg, t] += sc.pre_wiggle * (1.0 if k % 2 else -1.0)
     if sc.fixed_cells:
         counts = np.full((J, G, T), int(sc.rows_per_cell))
     else:

@@ -206,6 +206,16 @@ class Decision:
     """
 
     threshold: float | None = None
+    #: Probability at which the decision counts as made (used by the parallel-trends breakdown value).
+    level: float = 0.9
+
+
+@dataclass(frozen=True)
+class TrendSettings:
+    """The parallel-trends sensitivity (study-file section ``[trends]``, see :mod:`bayesdid.trends`):
+    the grid of multiples M of the largest pre-policy change; each must be zero or positive."""
+
+    multiples: tuple = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
 
 
 CROSSCHECK_WEIGHTS = ("webb", "rademacher")
@@ -239,6 +249,7 @@ class Study:
     sampler: SamplerSettings = field(default_factory=SamplerSettings)
     decision: Decision = field(default_factory=Decision)
     crosscheck: CrossCheckSettings = field(default_factory=CrossCheckSettings)
+    trends: TrendSettings = field(default_factory=TrendSettings)
     title: str = "bayesdid study"
     period_order: tuple | None = None
     placebo_lag: int | None = None
@@ -258,7 +269,7 @@ class Study:
 
 #: Study field -> section of the study file that holds it.
 _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck"}
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends"}
 
 
 def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -305,7 +316,7 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends"}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
               "period_order"}
 
@@ -381,8 +392,21 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     sampler = SamplerSettings(**{
         k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
         for k, (lo, hi) in SAMPLER_LIMITS.items()})
-    d = _section(raw, "decision", {"threshold"})
-    decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
+    d = _section(raw, "decision", {"threshold", "level"})
+    level = _get_float(d, "level", "decision", 0.9)
+    if not 0.5 <= level < 1.0:
+        raise _where("decision.level", d.get("level"), "a probability from 0.5 up to (not including) 1",
+                     "It is the probability at which a decision counts as made, e.g. 0.9.")
+    decision = Decision(threshold=_get_float(d, "threshold", "decision", None), level=level)
+    tr = _section(raw, "trends", {"multiples"})
+    mult = tr.get("multiples", list(TrendSettings().multiples))
+    if (not isinstance(mult, (list, tuple)) or not mult
+            or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)):
+        raise _where("trends.multiples", mult, "a non-empty list of finite numbers, e.g. [0, 0.5, 1, 2]")
+    if any(float(v) < 0 for v in mult):
+        raise _where("trends.multiples", mult, "multiples of zero or more",
+                     "M scales the largest pre-policy change; a negative multiple has no meaning.")
+    trends = TrendSettings(multiples=tuple(sorted(float(v) for v in mult)))
     x = _section(raw, "crosscheck", {"seed", "draws", "weights", "placebos"})
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
@@ -401,7 +425,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     if not isinstance(title, str):
         raise _where("title", title, "a string")
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
-                            sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
+                            sampler=sampler, decision=decision, crosscheck=crosscheck, trends=trends, title=title,
                             period_order=tuple(order) if order else None, placebo_lag=lag))
 
 
@@ -541,6 +565,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         "sampler": dataclasses.asdict(study.sampler),
         "decision": {k: v for k, v in dataclasses.asdict(study.decision).items() if v is not None},
         "crosscheck": dataclasses.asdict(study.crosscheck),
+        "trends": {"multiples": list(study.trends.multiples)},
     }
     if study.policy.target_group is not None:
         out["policy"]["target_group"] = study.policy.target_group

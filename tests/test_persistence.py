@@ -199,3 +199,134 @@ def test_smoothing_draws_mean_equals_dense_conditional():
     ob = o[0, 0] > 0
     ref = Se[:, ob] @ np.linalg.solve(Se[np.ix_(ob, ob)] + np.diag(V[0, 0, ob]), y[0, 0, ob])
     np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-12)
+
+
+@pytest.fixture(scope="module")
+def castle_one_adopter():
+    """causaldata package, data set castle (state-year panel 2000-2010, one row per state and year):
+    the state that adopted in 2006 and the 29 states that never adopt; the others are dropped."""
+    from causaldata import castle
+
+    d = castle.load_pandas().data
+    first = d[d["post"] > 0].groupby("sid")["year"].min()
+    adopter = int(first[first == 2006].index[0])
+    never = sorted(set(d["sid"]) - set(first.index))
+    keep = d[d["sid"].isin(never + [adopter])].copy()
+    keep["state"] = "S" + keep["sid"].astype(str)
+    return keep[["state", "year", "homicide"]].reset_index(drop=True), f"S{adopter}"
+
+
+@pytest.mark.slow
+def test_castle_one_row_per_cell_fits_cleanly(tmp_path, castle_one_adopter):
+    """One row per cell: no separate residual sd (0 within-cell df), the fit passes the diagnostics
+    of Vehtari et al. (2021) at the default sampler settings, and the least-squares estimate equals
+    statsmodels' two-way fixed effects on the same rows (log homicide rate)."""
+    import statsmodels.formula.api as smf
+
+    from bayesdid import analyse
+
+    df, adopter = castle_one_adopter
+    p = tmp_path / "castle.csv"
+    df.to_csv(p, index=False)
+    st = make_study(table=p, outcome="homicide", jurisdiction="state", period="year", log_outcome=True,
+                    adopters={adopter: 2006}, seed=12)
+    an = analyse(st, full_cross_check=False)
+    s = an.summary()
+    assert s["model"]["residual_sd"]["separate"] is False and s["model"]["residual_sd"]["within_cell_df"] == 0
+    assert "sigma" not in an.fit.posterior
+    assert s["model"]["gap_noise"]["over_time"] == "persistent"
+    assert s["diagnostics"]["ok"], s["diagnostics"]["advice"]
+    d = df.assign(ly=np.log(df["homicide"]), D=((df["state"] == adopter) & (df["year"] >= 2006)).astype(float))
+    ref = smf.ols("ly ~ C(state) + C(year) + D", data=d).fit().params["D"]
+    assert an.least_squares["estimate"] == pytest.approx(ref, rel=1e-8)
+
+
+# ---- parallel-trends sensitivity (bayesdid.trends) ------------------------------------------------------
+
+_DRIFT = dict(jurisdictions=40, periods=12, groups=1, starts={0: 6}, rows_per_cell=60, residual_sd=0.5)
+
+
+@pytest.mark.slow
+def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
+    """Injected departures of known size (same model structure as the rho test: one compile).
+    The adopter's pre-period gap alternates +-0.1 (period-to-period changes of 0.2) and after the
+    start departs by 0.2 (k + 1): the effect (truth 0) reads as 0.2 x mean(k + 1) = 0.7, and the
+    bound M x 0.2 x 3.5 reaches it at M = 0.2 / 0.2 = 1 by construction; the 95% interval's own
+    half-width (about 2 posterior sd, ~0.1 here, i.e. ~0.15 in M) moves the breakdown below 1.
+    Without departures the M = 0 row is the main fit's 95% interval (same draws)."""
+    from bayesdid import analyse
+
+    sc = Scenario(**_DRIFT, tau=0.0, gap_sd=0.02, pre_wiggle=0.1, post_drift=0.2)
+    st, cells, _, _ = sim_study(tmp_path_factory, sc, 8, "drift", draws=400, tune=400, seed=4)
+    an = analyse(st, cells=cells, full_cross_check=False)
+    tb = an.trends
+    assert tb.status == "ok"
+    assert tb.pre_change[cells.jurisdictions[0]]["median"] == pytest.approx(0.2, abs=0.04)
+    m0 = tb.breakdown["M_zero"]
+    assert 0.7 < m0 < 1.02
+    grid = {r["M"]: r for r in tb.rows}
+    assert grid[0.5]["lower_95"] > 0 > grid[1.5]["lower_95"]  # excludes zero at 0.5, includes it at 1.5
+    assert grid[0.0]["lower_95"] == pytest.approx(an.effects["effect"].summary["eti_95"][0], abs=1e-12)
+    # the command on the run folder the fit writes: same numbers, its own grid, CSV and summary section
+    import json
+
+    from bayesdid.cli import main
+    from bayesdid.run import write_run
+
+    run = write_run(an, tmp_path_factory.mktemp("drift_run") / "run")
+    assert (run / "trends.csv").is_file()
+    assert main(["trends", str(run), "--multiples", "0,1,0.5"]) == 0
+    s = json.loads((run / "summary.json").read_text())["parallel_trends"]
+    assert s["multiples"] == [0.0, 0.5, 1.0]
+    assert s["breakdown"]["M_zero"] == pytest.approx(m0, abs=1e-9)
+    import pandas as pd
+
+    csv = pd.read_csv(run / "trends.csv")
+    assert list(csv["M"]) == [0.0, 0.5, 1.0]
+    assert csv["lower_95"].iloc[1] == pytest.approx(grid[0.5]["lower_95"], rel=1e-12)
+    assert main(["trends", str(run), "--multiples", "0,-1"]) == 2
+
+    clean = Scenario(**_DRIFT, tau=-0.3, gap_sd=0.2, gap_rho=0.5)
+    st2, cells2, _, _ = sim_study(tmp_path_factory, clean, 9, "nodrift", draws=400, tune=400, seed=4)
+    an2 = analyse(st2, cells=cells2, full_cross_check=False)
+    row0 = an2.trends.rows[0]
+    e = an2.effects["effect"].summary
+    assert row0["M"] == 0.0
+    assert [row0["lower_95"], row0["upper_95"]] == e["eti_95"]  # M = 0 is the main fit, exactly
+    assert row0["prob_reduction"] == e["prob_lt_0"]
+
+
+def test_trend_multiples_refused_when_negative(tmp_path):
+    frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}), 1)
+    st = _study(tmp_path, frame, truth)
+    assert st.trends.multiples == (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
+    with pytest.raises(StudyError, match=r"trends.multiples.*zero or more"):
+        st.replace(trends={"multiples": [0, 0.5, -1]})
+    with pytest.raises(StudyError, match=r"decision.level"):
+        st.replace(decision={"level": 1.2})
+    study_file = tmp_path / "s.toml"
+    study_file.write_text(f"""
+[data]
+table = "{tmp_path / 't.csv'}"
+outcome = "y"
+jurisdiction = "region"
+period = "period"
+group = "group"
+[policy]
+target_group = "target"
+adopters = {{ "{next(iter(truth['starts']))}" = 4 }}
+[trends]
+multiples = [0, -0.5]
+""")
+    from bayesdid.cli import main
+
+    assert main(["fit", str(study_file), "--out", str(tmp_path / "out")]) == 2
+    assert not (tmp_path / "out").exists()
+
+
+def test_bisection_finds_the_smallest_multiple():
+    from bayesdid.trends import _bisect
+
+    assert _bisect(lambda M: M >= 1.3) == pytest.approx(1.3, abs=1e-3)
+    assert _bisect(lambda M: True) == 0.0
+    assert _bisect(lambda M: False) is None
