@@ -18,6 +18,7 @@ REGISTRY = {
     "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
+    "weights": ("bayesdid.bench.weights", "bench_weights"),
 }
 
 
