@@ -271,7 +271,8 @@ _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_re
 def _add_calibration_options(b):
     c = b.add_argument_group("calibration (bayesdid bench calibration)")
     c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
-    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails")
+    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
+                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo")
     c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
                                  "(default runs/calibration-SCENARIO)")
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")

@@ -19,6 +19,7 @@ REGISTRY = {
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
     "weights": ("bayesdid.bench.weights", "bench_weights"),
+    "persistence": ("bayesdid.bench.persistence", "bench_persistence"),
 }
 
 
