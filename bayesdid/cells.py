@@ -381,7 +381,7 @@ def _gap_of(study: Study, cells: Cells):
         return GapStructure(over_time="independent", requested=asked, fallback=(
             f"the persistent (AR(1)) gap noise is built for the gaussian family only so far; family "
             f"'{study.model.family}' fits its gap noise as independent over periods."))
-    return resolve_gap(cells, asked, warn=False)  # warned when the model is fitted (run.analyse)
+    return resolve_gap(cells, asked, study.model.gap_drift, warn=False)  # warned when the model is fitted (run.analyse)
 
 
 def collapse(study: Study, frame: pd.DataFrame) -> Cells:

@@ -54,6 +54,8 @@ class Scenario:
     pre_drift: float = 0.0  # per-period drift of the adopters' target-group gap before the start
     pre_wiggle: float = 0.0  # adopters' pre-period gap alternates +w, -w (period-to-period changes of 2w)
     post_drift: float = 0.0  # adopters' gap departs from parallel by post_drift * (k + 1) at event time k >= 0
+    adopter_trend: float = 0.0  # adopters' gap drifts linearly over all periods: adopter_trend * (t - start)
+    trend_sd: float = 0.0  # comparison jurisdictions' gaps drift linearly, slopes Normal(0, trend_sd^2)
     fixed_cells: bool = False  # every cell exactly rows_per_cell rows
 
 
@@ -84,7 +86,12 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
     if G == 2:
         mean[:, tg, :] += h[None, :]
     mean[:, tg, :] += e
+    if sc.trend_sd:
+        slopes = sc.trend_sd * np.random.default_rng([seed, 7]).standard_normal(J)
+        mean[:, tg, :] += slopes[:, None] * (np.arange(T) - (T - 1) / 2.0)[None, :]
     for j, st in sc.starts.items():
+        if sc.adopter_trend:
+            mean[j, tg, :] += sc.adopter_trend * (np.arange(T) - st)
         for t in range(T):
             k = t - st
             if k >= 0:

@@ -51,6 +51,8 @@ PRIOR_NAMES = {
     "residual": "scale of the half-normal prior on each group's residual sd",
     "covariate": "sd of the normal prior on each (centred) covariate coefficient",
     "dispersion": "scale of the half-normal prior on 1/sqrt(phi) of the over-dispersed count family",
+    "drift_spread": "scale of the half-normal prior on the spread of jurisdictions' linear gap drifts per period "
+                    "(model.gap_drift = true)",
 }
 
 
@@ -173,6 +175,8 @@ class ModelOptions:
     missing: str = "error"  # or "drop"
     #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
     gap_over_time: str = "persistent"
+    #: Pooled jurisdiction-specific linear drifts of the gap (Gaussian; see bayesdid.model.terms)
+    gap_drift: bool = False
 
 
 @dataclass(frozen=True)
@@ -190,6 +194,7 @@ class PriorScales:
     residual: float | None = None
     covariate: float | None = None
     dispersion: float | None = None
+    drift_spread: float | None = None
 
 
 @dataclass(frozen=True)
@@ -402,13 +407,14 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing", "gap_over_time"})
+    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"})
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
         gap_over_time=m.get("gap_over_time", "persistent"),
+        gap_drift=_get_bool(m, "gap_drift", "model", False),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
@@ -467,6 +473,9 @@ def _validated(study: Study) -> Study:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
+    if study.model.gap_drift and study.model.family != "gaussian":
+        raise _where("model.gap_drift", True, "false for non-gaussian families",
+                     "Pooled gap drifts are built for the gaussian family only so far.")
     if study.model.gap_over_time not in ("persistent", "independent"):
         raise _where("model.gap_over_time", study.model.gap_over_time, "'persistent' or 'independent'",
                      "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.")

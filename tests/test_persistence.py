@@ -236,6 +236,9 @@ def test_castle_one_row_per_cell_fits_cleanly(tmp_path, castle_one_adopter):
     assert "sigma" not in an.fit.posterior
     assert s["model"]["gap_noise"]["over_time"] == "persistent"
     assert s["diagnostics"]["ok"], s["diagnostics"]["advice"]
+    import pandas as pd
+
+    df = pd.read_csv(p)  # the rows as bayesdid read them (the package stores float32, the CSV its decimal form)
     d = df.assign(ly=np.log(df["homicide"]), D=((df["state"] == adopter) & (df["year"] >= 2006)).astype(float))
     ref = smf.ols("ly ~ C(state) + C(year) + D", data=d).fit().params["D"]
     assert an.least_squares["estimate"] == pytest.approx(ref, rel=1e-8)
@@ -261,7 +264,7 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     an = analyse(st, cells=cells, full_cross_check=False)
     tb = an.trends
     assert tb.status == "ok"
-    assert tb.pre_change[cells.jurisdictions[0]]["median"] == pytest.approx(0.2, abs=0.04)
+    assert tb.pre_change[cells.jurisdictions[cells.adopters[0]]]["median"] == pytest.approx(0.2, abs=0.04)
     m0 = tb.breakdown["M_zero"]
     assert 0.7 < m0 < 1.02
     grid = {r["M"]: r for r in tb.rows}
@@ -330,3 +333,92 @@ def test_bisection_finds_the_smallest_multiple():
     assert _bisect(lambda M: M >= 1.3) == pytest.approx(1.3, abs=1e-3)
     assert _bisect(lambda M: True) == 0.0
     assert _bisect(lambda M: False) is None
+
+
+def _graph_point_fit(model, cells, rng):
+    """A one-draw 'fit' at a random point of the model, read through PyMC's own graph (as in
+    test_families_loglik), and the model's own log density of the observed cells there."""
+    from types import SimpleNamespace
+
+    ip = model.initial_point()
+    point = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ip.items()}
+    names = [n for n in ("baseline", "period_effect", "group_period_effect", "tau_adopter", "sigma", "sigma_gap",
+                         "sigma_shock", "rho", "gap_drift", "effect_deviation") if n in model.named_vars]
+    outs = model.replace_rvs_by_values([model[n] for n in names])
+    fn = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore", point_fn=True)
+    vals = dict(zip(names, fn(point)))
+    logp = model.compile_fn(model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars,
+                            on_unused_input="ignore", point_fn=True)(point)
+    scales = {n[len("prior_"):]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
+    spec = model_spec(cells)
+    return SimpleNamespace(cells=cells, spec=spec, scales=scales,
+                           draws=lambda n: np.asarray(vals[n])[None, ...]), float(logp), vals
+
+
+@pytest.mark.slow  # compiles PyTensor functions (about a minute each on a shared machine)
+@pytest.mark.parametrize("kind", ["ddd_drift", "did_one_row", "ddd_independent"])
+def test_numpy_twin_matches_the_model_graph(tmp_path, kind):
+    """The PyTensor graph (Kalman filter, drifts, no residual sd) and the numpy twin that writes
+    posterior.nc's log-likelihood agree at a random point (PyMC's own evaluation as reference)."""
+    from bayesdid.model.gaussian import pointwise_loglik
+    from bayesdid.model.terms import build_model, resolve_scales
+    from bayesdid.study import PriorScales
+
+    rng = np.random.default_rng(5)
+    if kind == "did_one_row":
+        sc = Scenario(jurisdictions=6, periods=7, groups=1, starts={0: 4}, rows_per_cell=1, fixed_cells=True)
+    else:
+        sc = Scenario(jurisdictions=6, periods=7, starts={0: 3, 1: 4}, rows_per_cell=5)
+    frame, truth = simulate(sc, 2)
+    path = tmp_path / "t.csv"
+    frame.to_csv(path, index=False)
+    ddd = sc.groups == 2
+    st = make_study(table=path, outcome="y", jurisdiction="region", period="period", group="group" if ddd else None,
+                    target_group="target" if ddd else None, adopters=truth["starts"],
+                    gap_over_time="independent" if kind == "ddd_independent" else None)
+    if kind == "ddd_drift":
+        st = st.replace(model={"gap_drift": True})
+    cells = collapse(st, frame)
+    spec = model_spec(cells)
+    assert spec.drift == (kind == "ddd_drift")
+    assert spec.residual == (kind != "did_one_row")
+    assert spec.gap == ("independent" if kind == "ddd_independent" else "persistent")
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
+    model, _ = build_model(cells, scales)
+    fake, logp, vals = _graph_point_fit(model, cells, rng)
+    assert pointwise_loglik(fake).sum() == pytest.approx(logp, rel=1e-10)
+    if kind == "ddd_drift":  # each adopter's post-period deviations are zero outside and sum to zero inside
+        eta = vals["effect_deviation"]
+        post = cells.treated[cells.adopters][:, cells.target, :]
+        assert np.all(eta[~post] == 0) and np.allclose(eta.sum(axis=1), 0, atol=1e-12)
+        assert np.any(np.abs(eta[post]) > 1e-3)
+
+
+@pytest.mark.slow
+def test_drift_recovered_and_effect_freed_of_it(tmp_path_factory):
+    """An adopter whose gap drifts 0.05 per period over the whole panel (before and after its start)
+    and comparisons with small drifts (sd 0.005): without gap drifts the effect absorbs the drift
+    (about 0.05 x 6 = 0.3 off the truth -0.1, from the mean event time after minus before); with
+    model.gap_drift the adopter's drift, learned from its own 6 pre-periods, is recovered and the 95%
+    interval covers the truth. Same model shapes as the rho test for the drift-free fit."""
+    from bayesdid import analyse
+
+    sc = Scenario(**_DRIFT, tau=-0.1, gap_sd=0.03, adopter_trend=0.05, trend_sd=0.005)
+    st, cells, _, _ = sim_study(tmp_path_factory, sc, 6, "adrift", draws=400, tune=400, seed=2)
+    plain = analyse(st, cells=cells, full_cross_check=False).effects["effect"].summary
+    assert not (plain["eti_95"][0] <= -0.1 <= plain["eti_95"][1])
+    assert plain["mean"] > 0.05  # pulled up by the drift
+    st_d = st.replace(model={"gap_drift": True})
+    cells_d = collapse(st_d, pd_read(st_d))
+    an = analyse(st_d, cells=cells_d, full_cross_check=False)
+    e = an.effects["effect"].summary
+    assert e["eti_95"][0] <= -0.1 <= e["eti_95"][1]
+    g = an.fit.draws("gap_drift")[:, 0]
+    assert abs(np.median(g) - 0.05) < 0.015
+    assert an.summary()["model"]["gap_noise"]["drift"] is True
+
+
+def pd_read(study):
+    import pandas as pd
+
+    return pd.read_csv(study.table)
