@@ -50,13 +50,19 @@ def _add_sampling(p):
     p.add_argument("--quiet", action="store_true", help="no progress display")
 
 
+def _add_streaming(p):
+    p.add_argument("--stream", action="store_true", help="collapse the table without reading it into memory "
+                                                         "(implied when data.table is a folder or a glob)")
+    p.add_argument("--cluster", help="collapse on Dask: a scheduler address (tcp://host:8786) or 'local'")
+
+
 def _fit_and_write(study, out, args, argv, then=None):
     from .report.words import headline
     from .run import analyse, atomic_folder, prepare, write_run
     from .sample import warn_if_bad
 
     atomic_folder(out, replace=args.replace).check()  # before any work: the folder, then the table
-    prepared = prepare(study)
+    prepared = prepare(study, stream=getattr(args, "stream", False), cluster=getattr(args, "cluster", None))
     an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
                  full_cross_check=not getattr(args, "no_cross_check", False), prepared=prepared)
     path = write_run(an, out, replace=args.replace, argv=argv)
@@ -265,7 +271,7 @@ def cmd_sweep(args, argv):
 
 # ---- bench calibration options (issue 8) ----
 _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
-                        "replace")
+                        "replace", "large", "rows")
 
 
 def _add_calibration_options(b):
@@ -283,10 +289,16 @@ def _add_calibration_options(b):
     c.add_argument("--tune", type=int, help="tuning steps per chain (default 500)")
     c.add_argument("--seed", type=int, help="base seed; each rep's seeds derive from it and the rep index")
     c.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    k = b.add_argument_group("large tables (bayesdid bench collapse --large)")
+    k.add_argument("--large", action="store_true", help="write a Parquet data set in parts and stream-collapse it "
+                                                        "(time, peak memory, Dask equality)")
+    k.add_argument("--rows", type=int, help="rows of the --large data set (default 200,000,000; 2,000,000 with --quick)")
 
 
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
-_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS), "weights": {"reps", "draws", "tune", "seed"}}
+_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
+                  "weights": {"reps", "draws", "tune", "seed"},
+                  "panel": {"reps", "draws", "tune", "seed"}}
 
 
 def _calibration_kwargs(args) -> dict:
@@ -316,6 +328,7 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("study", help="study file (TOML)")
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
+    _add_streaming(f)
     f.add_argument("--no-cross-check", action="store_true",
                    help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
                         "wild cluster bootstrap and the placebo permutation")
@@ -329,6 +342,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("study", help="study file (TOML)")
     a.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(a)
+    _add_streaming(a)
     a.set_defaults(func=cmd_analyze)
     r = sub.add_parser("report", help="write RUN_DIR/report.html, a single-file HTML report of a run folder")
     r.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
@@ -357,7 +371,7 @@ def build_parser() -> argparse.ArgumentParser:
     t.set_defaults(func=cmd_trends)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights")
+                                  "weights, panel")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)

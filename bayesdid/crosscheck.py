@@ -219,6 +219,11 @@ def _design(cells: Cells) -> _Design:
         n = np.asarray(sampling["sum_w"], dtype=float).ravel()[keep]
         ss = np.asarray(sampling["ss_w"], dtype=float).ravel()[keep]
         nobs = float(np.asarray(sampling["rows"]).ravel()[keep].sum())
+    panel = cells.extra.get("panel") if cells.extra else None
+    absorbed = 0
+    if panel is not None:  # unit fixed effects by centring: the regression with unit dummies
+        ss = np.asarray(panel["ss_ls"], dtype=float).ravel()[keep]
+        absorbed = int(panel["absorbed"])
     F, _ = _fixed_effects(jj, gg, tt, J, G, T, cells.target)
     Fs = F * np.sqrt(n)[:, None]
     # rank-revealing QR: the first r columns of Q span the weighted fixed-effect space
@@ -233,7 +238,7 @@ def _design(cells: Cells) -> _Design:
     assert np.all(np.diff(jj) >= 0)  # cells are ordered jurisdiction-major
     bounds = np.flatnonzero(np.r_[True, np.diff(jj) > 0])
     des = _Design(cells=cells, keep=keep, jj=jj, gg=gg, tt=tt, cluster=code[jj], cluster_jur=cj, n=n,
-                  ybar=ybar, ss=ss, U=u[:, :r], rank=r, columns=F.shape[1], bounds=bounds, nobs=nobs)
+                  ybar=ybar, ss=ss, U=u[:, :r], rank=r + absorbed, columns=F.shape[1], bounds=bounds, nobs=nobs)
     cov = cells.extra.get("covariates") if cells.extra else None
     if cov:
         missing = [k for k in ("names", "sx", "sxx", "sxy") if k not in cov]

@@ -557,6 +557,14 @@ def _validate_shape(study: Study) -> None:
             if getattr(c, key) is not None:
                 raise _where(f"data.{key}", getattr(c, key), f"no {key} column with data.summary",
                              "A summary row already stands for many observations; give the observation-level rows.")
+    if c.unit is not None:
+        if fam != "gaussian":
+            raise _where("data.unit", c.unit, "a unit column with family 'gaussian' only",
+                         f"Unit fixed effects for family '{fam}' are not supported; leave out data.unit (pooled).")
+        if study.model.covariates or c.weight is not None:
+            what = "model.covariates" if study.model.covariates else "data.weight"
+            raise _where(what, study.model.covariates or c.weight, "not set together with data.unit",
+                         "Unit fixed effects are supported without covariates and weights; leave out one of them.")
     if c.weight is not None:
         if fam != "gaussian":
             raise _where("data.weight", c.weight, "sampling weights with family 'gaussian' only",

@@ -20,6 +20,7 @@ REGISTRY = {
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
     "weights": ("bayesdid.bench.weights", "bench_weights"),
     "persistence": ("bayesdid.bench.persistence", "bench_persistence"),
+    "panel": ("bayesdid.bench.panel", "bench_panel"),
 }
 
 

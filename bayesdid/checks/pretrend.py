@@ -14,7 +14,10 @@ noise e out, so they are drawn back here), for adopter j and pre-period t:
 (with persistent gap noise, e is drawn as the fitted AR(1) path over the pre-periods, correlation
 rho per period apart)    gap_rep[j,t] = y_rep[j,q,t] - y_rep[j,r,t]
 
-(for a DiD the gap is the cell mean itself, gap = m + e + eps, without s). With the expected gap
+(for a DiD the gap is the cell mean itself, gap = m + e + eps, without s). For binomial and count
+families the gap is read on the link scale (log rate or log odds of each cell, with a half added to
+events and non-events) and replicated from the family's own sampling model
+(:func:`bayesdid.model.families.replicate_gap_path`). With the expected gap
 mg[j,t] = m[j,q,t] - m[j,r,t] of the same draw, the residual paths are r_obs = gap_obs - mg and
 r_rep = gap_rep - mg, and the statistics are
 
@@ -37,6 +40,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..cells import Cells
+from ..model.families import replicate_gap_path
 from ..model.gaussian import residual_draws
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
@@ -62,7 +66,13 @@ def slope(x: np.ndarray, r: np.ndarray) -> np.ndarray:
 
 
 def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
-    """Observed gap, expected gap (S, n) and replicated gap (S, n) of jurisdiction j at ``periods``."""
+    """Observed gap, expected gap (S, n) and replicated gap (S, n) of jurisdiction j at ``periods``.
+
+    Gaussian: as in the module docstring. Other families: on the link scale, records replicated from
+    the family itself (:func:`bayesdid.model.families.replicate_gap_path`).
+    """
+    if fit.spec.family != "gaussian":
+        return replicate_gap_path(fit, j, periods, rng)
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
     sigma = residual_draws(fit)  # (S, G)
