@@ -269,6 +269,30 @@ def cmd_sweep(args, argv):
     return EXIT_OK
 
 
+def cmd_plan(args, argv):
+    from .plan import load_plan, progress_path, run_plan, with_overrides, write_plan
+    from .report.plan_page import plan_sentences
+    from .run import atomic_folder
+
+    plan = with_overrides(load_plan(args.plan), reps=args.reps, draws=args.draws, tune=args.tune, seed=args.seed)
+    atomic_folder(args.out, replace=args.replace, kind="plan").check()  # before any work
+    progress = progress_path(args.out)
+    Path(args.out).parent.mkdir(parents=True, exist_ok=True)
+    result = run_plan(plan, workers=args.workers, cluster=args.cluster, progress_file=progress,
+                      progress=not args.quiet, log=None if args.quiet else _say)
+    path = write_plan(result, args.out, replace=args.replace, argv=argv)
+    for line in plan_sentences(result["summary"]):
+        print(line)
+    print(f"plan results in {path}")
+    failed = result["summary"]["failed"]
+    if failed:
+        _say(f"{len(failed)} rep(s) failed (errors in {path}/plan.json); the tables use the others. The finished "
+             f"reps are kept in {progress}: rerun the same command with --replace to retry the failed ones.")
+        return EXIT_VARIANTS_FAILED
+    progress.unlink(missing_ok=True)
+    return EXIT_OK
+
+
 # ---- bench calibration options (issue 8) ----
 _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
                         "replace", "large", "rows")
@@ -298,7 +322,7 @@ def _add_calibration_options(b):
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
 _BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
                   "weights": {"reps", "draws", "tune", "seed"},
-                  "panel": {"reps", "draws", "tune", "seed"}}
+                  "panel": {"reps", "draws", "tune", "seed"}, "plan": {"reps", "workers", "cluster"}}
 
 
 def _calibration_kwargs(args) -> dict:
@@ -322,7 +346,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=textwrap.dedent("""\
             exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
-            4 some sweep variants failed (recorded; rerun to retry)"""))
+            4 some sweep variants or plan reps failed (recorded; rerun to retry)"""))
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
     f.add_argument("study", help="study file (TOML)")
@@ -369,9 +393,22 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
     t.add_argument("--multiples", help="grid of M, comma-separated (default: the study's trends.multiples)")
     t.set_defaults(func=cmd_trends)
+    pl = sub.add_parser("plan", help="assurance before the data: simulate and fit a proposed evaluation's layout")
+    pl.add_argument("plan", help="plan file (TOML): layout, noise, true effects, decision rule")
+    pl.add_argument("--out", required=True, help="folder for plan.json, the CSV tables, the figure and report.html")
+    pl.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2; "
+                                                          "1 runs in this process)")
+    pl.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local'")
+    pl.add_argument("--reps", type=int, help="data sets per layout and effect (overrides simulation.reps)")
+    pl.add_argument("--draws", type=int, help="draws per chain (overrides simulation.draws)")
+    pl.add_argument("--tune", type=int, help="tuning steps per chain (overrides simulation.tune)")
+    pl.add_argument("--seed", type=int, help="base seed (overrides simulation.seed)")
+    pl.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    pl.add_argument("--quiet", action="store_true", help="no progress display")
+    pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel")
+                                  "weights, panel, plan")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)

@@ -21,6 +21,7 @@ REGISTRY = {
     "weights": ("bayesdid.bench.weights", "bench_weights"),
     "persistence": ("bayesdid.bench.persistence", "bench_persistence"),
     "panel": ("bayesdid.bench.panel", "bench_panel"),
+    "plan": ("bayesdid.bench.plan", "bench_plan"),
 }
 
 
