@@ -19,6 +19,7 @@ __all__ = [
     "DiagnosticsWarning",
     "RowLevelFallbackWarning",
     "SparseJurisdictionWarning",
+    "CacheWarning",
 ]
 
 
@@ -64,3 +65,7 @@ class RowLevelFallbackWarning(BayesDidWarning):
 
 class SparseJurisdictionWarning(BayesDidWarning):
     """A comparison jurisdiction is observed in too few periods to contribute to the comparison of changes."""
+
+
+class CacheWarning(BayesDidWarning):
+    """The compile cache cannot be used (a folder that cannot be written, a damaged entry): runs are slower."""
