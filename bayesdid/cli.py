@@ -244,12 +244,22 @@ def _add_calibration_options(b):
     c.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
 
 
+#: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
+_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS), "weights": {"reps", "draws", "tune", "seed"},
+                  "panel": {"reps", "draws", "tune", "seed"}}
+
+
 def _calibration_kwargs(args) -> dict:
     given = {k: getattr(args, k, None) for k in _CALIBRATION_OPTIONS}
     given = {k: v for k, v in given.items() if v is not None and v is not False}
-    if given and args.name != "calibration":
-        opts = ", ".join("--" + k.replace("_", "-") for k in given)
-        raise BayesDidError(f"{opts}: only 'bayesdid bench calibration' takes these options.")
+    allowed = _BENCH_OPTIONS.get(args.name, set())
+    extra = [k for k in given if k not in allowed]
+    if extra:
+        opts = ", ".join("--" + k.replace("_", "-") for k in extra)
+        takers = sorted(n for n, o in _BENCH_OPTIONS.items() if set(extra) <= o)
+        raise BayesDidError(f"{opts}: 'bayesdid bench {args.name}' does not take "
+                            f"{'this option' if len(extra) == 1 else 'these options'}"
+                            + (f"; {', '.join(takers)} do{'es' if len(takers) == 1 else ''}." if takers else "."))
     return given
 
 
@@ -327,7 +337,8 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse, crosscheck, calibration")
+    b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
+                                  "weights, panel")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
