@@ -338,7 +338,7 @@ def build_parser() -> argparse.ArgumentParser:
     w.set_defaults(func=cmd_sweep)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel")
+                                  "weights, panel, compile")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
