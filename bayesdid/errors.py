@@ -14,6 +14,7 @@ __all__ = [
     "SweepError",
     "ReportError",
     "OutputError",
+    "PlanError",
     "BayesDidWarning",
     "FewAdoptersWarning",
     "DiagnosticsWarning",
@@ -45,6 +46,10 @@ class ReportError(BayesDidError, ValueError):
 
 class OutputError(BayesDidError, ValueError):
     """The output folder cannot be written, or writing it would replace something bayesdid did not write."""
+
+
+class PlanError(BayesDidError, ValueError):
+    """The plan file (assurance before the data) is malformed or inconsistent."""
 
 
 class BayesDidWarning(UserWarning):

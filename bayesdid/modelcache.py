@@ -45,7 +45,7 @@ import numpy as np
 
 from . import __version__, cachedir
 
-__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "STATS"]
+__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS"]
 
 #: Bump when the entry layout or the way models are compiled changes (compile flags, nutpie wrapper).
 FORMAT = 1
@@ -201,14 +201,28 @@ class DamagedEntry(Exception):
     """A cache entry that cannot be used (its reason is the message)."""
 
 
-def _read_entry(path: Path, material: dict) -> dict:
-    raw = path.read_bytes()
+def _checked_body(raw: bytes) -> bytes:
+    """The payload of an entry's bytes after its header and checksum are verified."""
     if not raw.startswith(MAGIC):
         raise DamagedEntry("it does not start with bayesdid's header")
     rest = raw[len(MAGIC):]
     digest, sep, body = rest[:64], rest[64:65], rest[65:]
     if sep != b"\n" or hashlib.sha256(body).hexdigest().encode() != digest:
         raise DamagedEntry(f"its checksum does not match ({len(raw):,} bytes; truncated or altered)")
+    return body
+
+
+def entry_ok(path: Path) -> bool:
+    """Whether the entry at ``path`` is whole (header and checksum); says nothing of its key."""
+    try:
+        _checked_body(Path(path).read_bytes())
+    except (DamagedEntry, OSError):
+        return False
+    return True
+
+
+def _read_entry(path: Path, material: dict) -> dict:
+    body = _checked_body(path.read_bytes())
     try:
         payload = pickle.loads(body)
     except Exception as exc:  # noqa: BLE001 - any unpickling failure means the entry is unusable

@@ -76,7 +76,10 @@ def test_damaged_entry_is_rebuilt(shared_cache):
     assert r["draws"] == pair[0]["draws"]
     assert any("cannot be used" in w and "rebuilt" in w for w in r["cache_warnings"])
     (rebuilt,) = _entries(cache)
-    assert rebuilt.stat().st_size == len(raw)  # a whole entry again
+    assert rebuilt.name == entry.name and modelcache.entry_ok(rebuilt)  # a whole entry again, same key
+    half = cache / "half.bin"
+    half.write_bytes(raw[: len(raw) // 2])
+    assert not modelcache.entry_ok(half)
 
 
 @pytest.mark.slow
@@ -105,6 +108,7 @@ def test_cache_folder_precedence(monkeypatch, tmp_path):
 def test_entry_of_other_material_or_damaged_is_refused(tmp_path):
     path = tmp_path / "x.model"
     modelcache._write_entry(path, {"material": {"versions": {"pytensor": "1"}}, "logp": b"code"})
+    assert modelcache.entry_ok(path)
     assert modelcache._read_entry(path, {"versions": {"pytensor": "1"}})["logp"] == b"code"
     with pytest.raises(modelcache.DamagedEntry, match="another model or version"):
         modelcache._read_entry(path, {"versions": {"pytensor": "2"}})
@@ -113,6 +117,7 @@ def test_entry_of_other_material_or_damaged_is_refused(tmp_path):
     path.write_bytes(bytes(raw))
     with pytest.raises(modelcache.DamagedEntry, match="checksum"):
         modelcache._read_entry(path, {"versions": {"pytensor": "1"}})
+    assert not modelcache.entry_ok(path)
     path.write_bytes(b"something else entirely")
     with pytest.raises(modelcache.DamagedEntry, match="header"):
         modelcache._read_entry(path, {"versions": {"pytensor": "1"}})

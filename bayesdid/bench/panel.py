@@ -10,7 +10,9 @@ median 95% widths (the unit role should be narrower), biases.
 
 from __future__ import annotations
 
+import json
 import math
+import sys
 import time
 
 import numpy as np
@@ -59,6 +61,9 @@ def bench_panel(*, quick: bool = False, reps: int | None = None, seed: int = 202
             att = fit.draws("tau_adopter") @ att_weights(cells)
             lo, hi = np.quantile(att, [0.025, 0.975])
             out[kind].append((lo <= truth <= hi, hi - lo, float(att.mean()) - truth))
+            # one line per fit on stderr: a long run cut short still tells its reps
+            print(json.dumps({"rep": r, "kind": kind, "cover_95": bool(lo <= truth <= hi), "width_95": float(hi - lo),
+                              "error": float(att.mean()) - truth}), file=sys.stderr, flush=True)
     line = {"benchmark": "panel", "reps": reps, "pooled_reps": len(out["pooled"]), "draws": settings["draws"]}
     for kind, rows in out.items():
         p = float(np.mean([c for c, _, _ in rows]))

@@ -12,7 +12,9 @@ the coverage shares, their Monte Carlo standard errors sqrt(p(1 - p)/reps), widt
 
 from __future__ import annotations
 
+import json
 import math
+import sys
 import time
 
 import numpy as np
@@ -65,6 +67,9 @@ def bench_weights(*, quick: bool = False, reps: int | None = None, seed: int = 2
             att = fit.draws("tau_adopter") @ att_weights(cells)
             lo, hi = np.quantile(att, [0.025, 0.975])
             out[kind].append((lo <= truth <= hi, hi - lo, float(att.mean()) - truth))
+            # one line per fit on stderr: a long run cut short still tells its reps
+            print(json.dumps({"rep": r, "kind": kind, "cover_95": bool(lo <= truth <= hi), "width_95": float(hi - lo),
+                              "error": float(att.mean()) - truth}), file=sys.stderr, flush=True)
     line = {"benchmark": "weights", "reps": reps, "unweighted_reps": len(out["unweighted"]), "draws": settings["draws"]}
     for kind, rows in out.items():
         cov = _share([c for c, _, _ in rows])
