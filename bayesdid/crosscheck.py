@@ -69,6 +69,7 @@ __all__ = [
     "cell_design",
     "least_squares_estimate",
     "cross_check",
+    "permutation_test",
     "cross_check_not_applicable",
     "bootstrap_weights",
     "WEIGHT_KINDS",
@@ -704,6 +705,18 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     if perm["p_value"] is None:
         out["skipped"]["p_permutation"] = "not applicable: no placebo assignment identifies the effect"
     return out
+
+
+def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202) -> dict:
+    """The least-squares estimate and its placebo-in-space distribution, without errors or bootstrap.
+
+    The same assignments and estimates as :func:`cross_check` (``p_value`` two-sided on |estimate|,
+    ``estimates`` of the placebo assignments without the real one), for callers that run it on many
+    simulated data sets (``bayesdid plan``).
+    """
+    des = _design(cells)
+    f = _fit(des, des.treat_vector(cells.start))
+    return {"estimate": f.beta, **_placebo(des, f.beta, placebos, seed)}
 
 
 def cross_check_not_applicable(reason: str) -> dict:

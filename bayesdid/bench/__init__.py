@@ -20,6 +20,8 @@ REGISTRY = {
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
     "weights": ("bayesdid.bench.weights", "bench_weights"),
     "panel": ("bayesdid.bench.panel", "bench_panel"),
+    "plan": ("bayesdid.bench.plan", "bench_plan"),
+    "compile": ("bayesdid.bench.compile", "bench_compile"),
 }
 
 
