@@ -339,6 +339,31 @@ def _calibration_kwargs(args) -> dict:
     return given
 
 
+def cmd_cache(args, argv):
+    from . import cachedir
+
+    c = cachedir.current()
+    if args.action == "clear":
+        before = cachedir.clear(c)
+        print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
+              f"from {c.path}")
+        return EXIT_OK
+    i = cachedir.info(c)
+    print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
+    print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
+    print(f"compiled models: {i['models']}")
+    for sub, p in i["parts"].items():
+        print(f"  {sub}/: {p['files']} file(s), {p['bytes'] / 1e6:.1f} MB")
+    print("clear it with: bayesdid cache clear")
+    return EXIT_OK
+
+
+def _add_cache_dir(p, top: bool = False):
+    p.add_argument("--cache-dir", metavar="FOLDER", default=None if top else argparse.SUPPRESS,
+                   help="compile cache folder (default: $BAYESDID_CACHE_DIR, else $XDG_CACHE_HOME/bayesdid, "
+                        "else ~/.cache/bayesdid)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="bayesdid",
@@ -347,6 +372,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=textwrap.dedent("""\
             exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
             4 some sweep variants or plan reps failed (recorded; rerun to retry)"""))
+    _add_cache_dir(p, top=True)
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
     f.add_argument("study", help="study file (TOML)")
@@ -408,10 +434,15 @@ def build_parser() -> argparse.ArgumentParser:
     pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel, plan")
+                                  "weights, panel, plan, compile")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
+    k = sub.add_parser("cache", help="show or clear the compile cache (compiled models kept between runs)")
+    k.add_argument("action", choices=("info", "clear"), help="info: where it is and what it holds; clear: empty it")
+    k.set_defaults(func=cmd_cache)
+    for sp in (f, d, a, c, w, pl, b, k):
+        _add_cache_dir(sp)
     return p
 
 
@@ -428,10 +459,22 @@ def _show_warning(message, category, filename, lineno, file=None, line=None, _de
         _default(message, category, filename, lineno, file, line)
 
 
+def _use_cache_dir(folder: str) -> None:
+    """Point the compile cache at ``folder`` before PyTensor and numba are imported."""
+    from . import cachedir
+
+    if "pytensor" in sys.modules and cachedir.current().path != cachedir.resolve(folder)[0]:
+        _say(f"--cache-dir {folder}: PyTensor is already loaded in this process, so only bayesdid's compiled "
+             "models go there; PyTensor's own files stay in " + str(cachedir.current().path))
+    cachedir.configure(folder)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.cache_dir is not None:
+        _use_cache_dir(args.cache_dir)
     with warnings.catch_warnings():
         warnings.showwarning = _show_warning
         try:

@@ -22,6 +22,7 @@ REGISTRY = {
     "persistence": ("bayesdid.bench.persistence", "bench_persistence"),
     "panel": ("bayesdid.bench.panel", "bench_panel"),
     "plan": ("bayesdid.bench.plan", "bench_plan"),
+    "compile": ("bayesdid.bench.compile", "bench_compile"),
 }
 
 
