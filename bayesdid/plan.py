@@ -370,7 +370,7 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     for src in ("run", "pilot"):
         if src not in noise_raw:
             continue
-        given = [k for k in ("gap", "shock", "residual") if k in noise_raw]
+        given = [k for k in ("gap", "shock") if k in noise_raw]
         if given:
             raise PlanError(f"plan keys {['noise.' + k for k in given]} and 'noise.{src}' exclude each other: the "
                             f"{'run folder' if src == 'run' else 'pilot'}'s posterior gives these scales. Remove "
@@ -378,6 +378,14 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         reader = noise_from_run if src == "run" else noise_from_pilot
         noise = reader(noise_raw[src], base_dir, design=design, log_outcome=log_outcome, stated=stated,
                        rho_given="rho" in noise_raw)
+        if noise.pilot is not None:
+            noise = dataclasses.replace(noise, pilot={**noise.pilot, "residual_given": "residual" in noise_raw})
+        if noise.draws is not None and ("residual" in noise_raw or "residual" not in noise.draws):
+            noise = dataclasses.replace(noise, draws={k: v for k, v in noise.draws.items() if k != "residual"})
+            notes.append(f"the residual sd of a row is {'stated' if 'residual' in noise_raw else 'the default'} "
+                         f"({stated['residual'][1]:g}), not drawn from the run folder"
+                         + ("" if "residual" in noise_raw else ": its model had no separate residual sd (too few "
+                            "rows per cell); state noise.residual"))
 
     eff = _section(raw, "effects", {"values"})
     vals = eff.get("values")
@@ -532,13 +540,15 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
         other = [d for d in da.dims if d not in ("chain", "draw")]
         return da.stack(sample=("chain", "draw")).transpose("sample", *other).to_numpy()
 
-    need = ["sigma_gap", "sigma"] + (["sigma_shock"] if design == "DDD" else [])
+    need = ["sigma_gap"] + (["sigma_shock"] if design == "DDD" else [])
     missing = [n for n in need if n not in post]
     if missing:
         raise PlanError(f"plan key '{key}': {what} lacks {missing}; it was not written by a Gaussian "
                         "'bayesdid fit' of this version.")
-    sig = flat("sigma")
-    draws = {"gap": flat("sigma_gap"), "residual": sig if sig.ndim == 2 else sig[:, None]}
+    draws = {"gap": flat("sigma_gap")}
+    if "sigma" in post:  # absent when the cells held too few rows for a separate residual sd
+        sig = flat("sigma")
+        draws["residual"] = sig if sig.ndim == 2 else sig[:, None]
     if design == "DDD":
         draws["shock"] = flat("sigma_shock")
     if "sigma_baseline" in post:
@@ -549,7 +559,7 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
         draws["group_period"] = flat("group_period_effect").std(axis=1, ddof=1)
     if "rho" in post and not rho_given:
         draws["rho"] = flat("rho")
-    if draws["residual"].shape[1] == 1:
+    if "residual" in draws and draws["residual"].shape[1] == 1:
         draws["residual"] = np.repeat(draws["residual"], 2, axis=1)
     loc = (0.0, 0.0)
     if "mu_group" in post:
@@ -628,6 +638,11 @@ def resolve_noise(plan: Plan, log=None) -> Plan:
     pilot = {**nz.pilot, "diagnostics_ok": bool(fit.diagnostics.get("ok")),
              "rhat_max": fit.diagnostics.get("rhat_max"), "seed": study.sampler.seed}
     notes = plan.notes
+    if "residual" in draws and nz.pilot.get("residual_given"):
+        draws.pop("residual")
+    if "residual" not in draws:
+        notes = notes + (f"the residual sd of a row is {'stated' if nz.pilot.get('residual_given') else 'the default'} "
+                         f"({nz.stated['residual'][1]:g}), not drawn from the pilot's posterior",)
     if not fit.diagnostics.get("ok"):
         notes = notes + (f"the pilot fit's sampler diagnostics fail ({fit.diagnostics.get('advice')}); the noise "
                          "draws may be unreliable: raise the pilot study's draws",)
