@@ -728,7 +728,7 @@ def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
     weights or panel units).
     """
     des = None
-    plain = not cells.extra and cells.weight is None
+    plain = not (set(cells.extra or {}) - {"gap"}) and cells.weight is None
     if designs is not None and plain:
         key = (cells.shape, int(cells.target), cells.design, np.asarray(cells.n, float).tobytes())
         if key in designs:

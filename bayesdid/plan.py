@@ -87,7 +87,7 @@ PLAN_KEYS = {"title", "layout", "noise", "effects", "decision", "simulation", "v
 LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name",
                "location"}
 NOISE_KEYS = set(DEFAULT_NOISE) | {"run", "pilot"}
-SIM_KEYS = {"reps", "seed", "draws", "tune", "chains", "placebos", "method"}
+SIM_KEYS = {"reps", "seed", "draws", "tune", "chains", "placebos", "method", "gap_over_time"}
 VARY_KEYS = {"periods", "comparisons"}
 
 
@@ -184,6 +184,7 @@ class Plan:
     chains: int
     placebos: int
     method: str = "shift"  # "shift": one fit per data set, other effects by reweighting; "refit": one fit per effect
+    gap_over_time: str = "persistent"  # the gap noise the analysis will fit (as the study key model.gap_over_time)
     notes: tuple[str, ...] = ()
     path: str | None = None
 
@@ -209,7 +210,7 @@ class Plan:
         """
         d = {"frame": dataclasses.asdict(self.frame), "noise": self.noise.describe(), "threshold": self.threshold,
              "direction": self.direction, "level": self.level, "log": self.log_outcome, "seed": self.seed,
-             "effects": self.effects, "method": self.method, "draws": self.draws, "tune": self.tune, "chains": self.chains,
+             "effects": self.effects, "method": self.method, "gap_over_time": self.gap_over_time, "draws": self.draws, "tune": self.tune, "chains": self.chains,
              "placebos": self.placebos, "location": self.noise.location}
         return hashlib.sha256(json.dumps(d, sort_keys=True, default=str).encode()).hexdigest()
 
@@ -225,7 +226,8 @@ class Plan:
                              "rule": f"conclude when P(effect {'<' if self.direction == 'below' else '>'} "
                                      f"{self.threshold:g}) >= {self.level:g}"},
                 "simulation": {"reps": self.reps, "seed": self.seed, "draws": self.draws, "tune": self.tune,
-                               "chains": self.chains, "placebos": self.placebos, "method": self.method},
+                               "chains": self.chains, "placebos": self.placebos, "method": self.method,
+                               "gap_over_time": self.gap_over_time},
                 "period_name": self.period_name, "notes": list(self.notes), "fingerprint": self.fingerprint()}
 
 
@@ -433,6 +435,10 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     tune = _int(sim, "tune", "simulation", 500, low=10, high=1_000_000)
     chains = _int(sim, "chains", "simulation", 2, low=1, high=64)
     placebos = _int(sim, "placebos", "simulation", 199, low=0, high=100_000)
+    gap_fit = sim.get("gap_over_time", "persistent")
+    if gap_fit not in ("persistent", "independent"):
+        raise _err("simulation.gap_over_time", gap_fit, "'persistent' (AR(1), as bayesdid fit by default) or "
+                   "'independent': the gap noise the planned analysis will fit")
     method = sim.get("method", "shift")
     if method not in ("shift", "refit"):
         raise _err("simulation.method", method, "'shift' (one fit per data set, the other effects by exact "
@@ -440,6 +446,7 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     return Plan(title=title, base=base, layouts=tuple(layouts), noise=noise, effects=values, threshold=threshold,
                 direction=direction, level=level, log_outcome=log_outcome, period_name=period_name.strip(),
                 reps=reps, seed=seed, draws=draws, tune=tune, chains=chains, placebos=placebos, method=method,
+                gap_over_time=gap_fit,
                 notes=tuple(notes),
                 path=path)
 
@@ -718,10 +725,20 @@ def simulate_cells(plan: Plan, layout: Layout, noise_cells: dict, effect_model: 
     N = float(n.sum())
     m = float(sum_y.sum() / N)
     sd = math.sqrt(max(float(sum_y2.sum()) / N - m * m, 0.0))
-    return Cells(jurisdictions=tuple(_names(J)), groups=("reference", "target") if G == 2 else ("all",),
-                 periods=tuple(range(1, T + 1)), design=frame.design, target=tg, start=start, n=n, sum_y=sum_y,
-                 sum_y2=sum_y2, ss=ss, rows=int(N), log_outcome=plan.log_outcome,
-                 outcome_sd=sd if sd > 0 else 1.0, outcome_mean=m)
+    cells = Cells(jurisdictions=tuple(_names(J)), groups=("reference", "target") if G == 2 else ("all",),
+                  periods=tuple(range(1, T + 1)), design=frame.design, target=tg, start=start, n=n, sum_y=sum_y,
+                  sum_y2=sum_y2, ss=ss, rows=int(N), log_outcome=plan.log_outcome,
+                  outcome_sd=sd if sd > 0 else 1.0, outcome_mean=m)
+    return _with_gap(cells, plan.gap_over_time)
+
+
+def _with_gap(cells, requested: str):
+    """The cells with the gap structure the planned analysis fits (as the collapse records it for a study)."""
+    try:
+        from .model.structure import resolve_gap
+    except ImportError:  # a version without persistent gap noise: independent is all there is
+        return cells
+    return dataclasses.replace(cells, extra={**cells.extra, "gap": resolve_gap(cells, requested, warn=False)})
 
 
 # ---- one rep -------------------------------------------------------------------------------------
@@ -810,9 +827,11 @@ def _rep(task: RepTask) -> dict:
     from .crosscheck import permutation_test
     from .effects import att_weights
     from .model.terms import resolve_scales
+    from . import sample
     from .sample import COMPILES, fit_cells
     from .study import PriorScales, SamplerSettings
 
+    loads = getattr(sample, "LOADS", {"count": 0})  # compiled models loaded from the disk cache
     plan = task.plan
     layout = plan.layouts[task.layout]
     noise_seed, sampler_seed = task.seeds
@@ -820,7 +839,7 @@ def _rep(task: RepTask) -> dict:
     scales_true = plan.noise.for_rep(rng)
     noise_cells = simulate_noise(plan.frame, scales_true, plan.noise.location, rng)
     settings = SamplerSettings(chains=plan.chains, draws=plan.draws, tune=plan.tune, seed=sampler_seed)
-    before = COMPILES["count"]
+    before, loaded = COMPILES["count"], loads["count"]
     fits = {"compile_s": 0.0, "sample_s": 0.0, "fits": 0}
 
     def fit_at(effect_model: float):
@@ -862,7 +881,7 @@ def _rep(task: RepTask) -> dict:
                         "p_permutation": p1, "permutation_assignments": perm["assignments"],
                         "permutation_reject": None if p1 is None else bool(p1 <= 1 - plan.level + 1e-12)})
         rows.append(row)
-    return {"rows": rows, "compiles": COMPILES["count"] - before, **fits}
+    return {"rows": rows, "compiles": COMPILES["count"] - before, "cache_loads": loads["count"] - loaded, **fits}
 
 
 def run_rep(task: RepTask) -> dict:
@@ -1087,9 +1106,11 @@ def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progre
     rows.sort(key=lambda r: (order[r["layout"]], eorder[r["effect"]], r["rep"]))
     table = assurance_table(plan, rows)
     compiles: dict[str, int] = {}
+    cache_loads: dict[str, int] = {}
     for r in new:
         if r.get("ok"):
             compiles[str(r["pid"])] = compiles.get(str(r["pid"]), 0) + int(r.get("compiles", 0))
+            cache_loads[str(r["pid"])] = cache_loads.get(str(r["pid"]), 0) + int(r.get("cache_loads", 0))
     failed = [{"key": r["key"], "error": r["error"]} for r in records if not r.get("ok")]
     ex_name = {"serial": "in-process", "pool": f"process pool ({workers} workers)", "dask": f"dask ({cluster})"}[kind]
     note = rho_note(plan.noise.stated["rho"] != 0 or bool(plan.noise.draws and "rho" in plan.noise.draws),
@@ -1103,7 +1124,7 @@ def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progre
         "failed": failed,
         "gap_fitted": sorted({r.get("gap_fitted", "independent") for r in rows}),
         "run": {"executor": ex_name, "ran_now": len(new), "kept_from_earlier_run": len(done),
-                "compiles_per_worker": compiles, "wall_s": wall,
+                "compiles_per_worker": compiles, "cache_loads_per_worker": cache_loads, "wall_s": wall,
                 "fits_now": int(sum(r.get("fits", 0) for r in new)),
                 "compile_s_total": float(sum(r.get("compile_s", 0.0) for r in new)),
                 "data_set_wall_s_median": float(np.median([r["wall_s"] for r in new])) if new else None,

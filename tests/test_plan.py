@@ -27,7 +27,8 @@ DID = {
     "noise": {"gap": 0.1, "residual": 1.0, "baseline": 0.3, "period": 0.1},
     "effects": {"values": [0.0, -0.2, -1.0]},
     "decision": {"threshold": 0.0, "level": 0.9, "direction": "below"},
-    "simulation": {"reps": 50, "seed": 1603, "draws": 200, "tune": 200, "chains": 2, "placebos": 199},
+    "simulation": {"reps": 50, "seed": 1603, "draws": 200, "tune": 200, "chains": 2, "placebos": 199,
+                   "gap_over_time": "independent"},  # the normal approximation's assumption: independent noise
 }
 SQRT_V = math.sqrt((0.1**2 + 1 / 20) * 0.5 * (1 + 1 / 29))
 
