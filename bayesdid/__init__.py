@@ -11,6 +11,10 @@ Typical use::
 
 __version__ = "0.1.0"
 
+from .lifeline import arm_from_env as _arm_from_env  # noqa: E402
+
+_arm_from_env()  # a sweep's worker binds itself to the sweep before its heavy imports (bayesdid.lifeline)
+
 from .errors import (BayesDidError, DataRoleError, DiagnosticsWarning, FewAdoptersWarning,  # noqa: E402
                      StudyError)
 from .study import Study, load_study, make_study  # noqa: E402
