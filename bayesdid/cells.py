@@ -17,6 +17,8 @@ import pandas as pd
 
 from .data import check_roles, period_levels
 from .study import Study
+from .panels import check_units, within_units
+from .summaries import as_count_rows, check_summary_rows, check_weights, mean_sums, weighted_sums
 
 __all__ = ["Cells", "collapse", "collapse_frame"]
 
@@ -145,28 +147,84 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
         y = np.log(y)
     idx = (j_code * G + g_code) * T + t_code
     size = J * G * T
-    n = np.bincount(idx, minlength=size).astype(float)
-    s1 = np.bincount(idx, weights=y, minlength=size)
-    s2 = np.bincount(idx, weights=y * y, minlength=size)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        m = np.where(n > 0, s1 / np.where(n > 0, n, 1), 0.0)
-    dev = y - m[idx]
-    ss = np.bincount(idx, weights=dev * dev, minlength=size)
+    weighted = None
+    if study.summary == "mean":
+        k = frame[cols.count].to_numpy(dtype=float)
+        n, s1, s2, ss = mean_sums(y, k, frame["__sd"].to_numpy(dtype=float), idx, size)
+        rows = int(k.sum())
+    elif cols.weight is not None:
+        weighted = weighted_sums(y, frame[cols.weight].to_numpy(dtype=float), idx, size)
+        n, s1, s2, ss = weighted["n"], weighted["sum_y"], weighted["sum_y2"], weighted["ss"]
+        rows = len(frame)
+    else:
+        panel = within_units(frame[cols.unit], y) if cols.unit is not None else None
+        yc = y if panel is None else panel["y"]
+        n = np.bincount(idx, minlength=size).astype(float)
+        s1 = np.bincount(idx, weights=yc, minlength=size)
+        s2 = np.bincount(idx, weights=yc * yc, minlength=size)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = np.where(n > 0, s1 / np.where(n > 0, n, 1), 0.0)
+        dev = yc - m[idx]
+        ss = np.bincount(idx, weights=dev * dev, minlength=size)
+        rows = len(frame)
+        if panel is not None:
+            # priors scaled by the outcome itself, as without the unit role; centred means sit at 0
+            _, raw_sd = _overall(n, np.bincount(idx, weights=y, minlength=size),
+                                 _within(y, idx, n, size))
+            ss_ls = ss
+            ss = np.bincount(idx, weights=panel["scale"] * dev * dev, minlength=size)
+            jg = np.unique(idx // T)
+            panel = {"column": cols.unit, "units": panel["units"], "absorbed": panel["units"] - len(jg),
+                     "ss_ls": ss_ls.reshape(J, G, T), "outcome_sd": raw_sd}
 
     start = np.full(J, T, dtype=int)
     for a, s in study.policy.adopters:
         start[jur_index[a]] = period_index[str(s)]
-    sd = float(np.std(y)) if len(y) > 1 else 1.0
+    mean, sd = _overall(n, s1, ss)
+    if weighted is None and study.summary is None and cols.unit is not None:
+        mean, sd = 0.0, panel["outcome_sd"]
     cells = Cells(
         jurisdictions=tuple(jur_labels), groups=groups, periods=tuple(_plain(v) for v in levels),
         design=study.design, target=target, start=start,
         n=n.reshape(J, G, T), sum_y=s1.reshape(J, G, T), sum_y2=s2.reshape(J, G, T), ss=ss.reshape(J, G, T),
-        rows=len(frame), log_outcome=study.model.log_outcome,
-        outcome_sd=sd if sd > 0 else 1.0, outcome_mean=float(np.mean(y)),
+        rows=rows, log_outcome=study.model.log_outcome,
+        outcome_sd=sd if sd > 0 else 1.0, outcome_mean=mean,
     )
+    if cols.unit is not None and panel is not None:
+        return replace(cells, extra={"family": "gaussian", "panel": panel,
+                                     "likelihood": "exact on cells of the outcome centred within units (unit fixed "
+                                                   "effects; balanced panel), within-cell spread scaled by T/(T-1)"})
+    if weighted is not None:
+        shape = (J, G, T)
+        return replace(cells, extra={"family": "gaussian", "weights": {
+            "column": cols.weight, "sum_w": weighted["sum_w"].reshape(shape), "ss_w": weighted["ss_w"].reshape(shape),
+            "rows": weighted["rows"].reshape(shape)},
+            "likelihood": "exact on cells for the Hajek means with Kish effective sizes (jurisdiction-period shock "
+                          "and gap noise integrated out); within-cell spread by moment match"})
     if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
         return cells
     return attach_family(study, frame, cells, idx, y)
+
+
+def _within(y: np.ndarray, idx: np.ndarray, n: np.ndarray, size: int) -> np.ndarray:
+    """Per-cell sums of squared deviations from the cell means (two passes)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m = np.where(n > 0, np.bincount(idx, weights=y, minlength=size) / np.where(n > 0, n, 1), 0.0)
+    dev = y - m[idx]
+    return np.bincount(idx, weights=dev * dev, minlength=size)
+
+
+def _overall(n: np.ndarray, s1: np.ndarray, ss: np.ndarray) -> tuple[float, float]:
+    """Mean and (population) sd of the outcome from the cell statistics alone, so that every input shape
+    of the same observations gives the same data-scaled priors."""
+    total = float(n.sum())
+    if total <= 1:
+        return (float(s1.sum()) / total if total > 0 else 0.0), 1.0
+    mean = float(s1.sum()) / total
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m = np.where(n > 0, s1 / np.where(n > 0, n, 1), 0.0)
+    var = (float(ss.sum()) + float((n * (m - mean) ** 2).sum())) / total
+    return mean, float(np.sqrt(max(var, 0.0)))
 
 
 def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarray, y: np.ndarray) -> Cells:
@@ -300,7 +358,7 @@ def _refuse_constant(study: Study, frame: pd.DataFrame, cells: Cells) -> None:
                             "Check the outcome column and the rows of the comparison jurisdictions.")
     n, ss = cells.n[comp], cells.ss[comp]
     several = n >= 2
-    if several.any():
+    if several.any() and study.summary is None:
         mean = np.abs(cells.sum_y[comp][several] / n[several])
         # zero spread up to rounding: the two-pass sum of squares of equal values is ~1e-32 of the mean squared
         flat = ss[several] <= n[several] * (1e-10 * mean) ** 2
@@ -358,7 +416,14 @@ def collapse(study: Study, frame: pd.DataFrame) -> Cells:
     """
     from .errors import DataRoleError
 
+    study, frame = as_count_rows(study, frame)
     checked = check_roles(study, frame)
+    if study.summary == "mean":
+        checked = check_summary_rows(study, checked)
+    elif study.columns.weight is not None:
+        checked[study.columns.weight] = check_weights(study, checked)
+    if study.columns.unit is not None:
+        check_units(study, checked)
     cells = collapse_frame(study, checked)
     for j in cells.adopters:
         tgt = cells.n[j, cells.target]

@@ -50,13 +50,19 @@ def _add_sampling(p):
     p.add_argument("--quiet", action="store_true", help="no progress display")
 
 
+def _add_streaming(p):
+    p.add_argument("--stream", action="store_true", help="collapse the table without reading it into memory "
+                                                         "(implied when data.table is a folder or a glob)")
+    p.add_argument("--cluster", help="collapse on Dask: a scheduler address (tcp://host:8786) or 'local'")
+
+
 def _fit_and_write(study, out, args, argv, then=None):
     from .report.words import headline
     from .run import analyse, atomic_folder, prepare, write_run
     from .sample import warn_if_bad
 
     atomic_folder(out, replace=args.replace).check()  # before any work: the folder, then the table
-    prepared = prepare(study)
+    prepared = prepare(study, stream=getattr(args, "stream", False), cluster=getattr(args, "cluster", None))
     an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
                  full_cross_check=not getattr(args, "no_cross_check", False), prepared=prepared)
     path = write_run(an, out, replace=args.replace, argv=argv)
@@ -223,9 +229,33 @@ def cmd_sweep(args, argv):
     return EXIT_OK
 
 
+def cmd_plan(args, argv):
+    from .plan import load_plan, progress_path, run_plan, with_overrides, write_plan
+    from .report.plan_page import plan_sentences
+    from .run import atomic_folder
+
+    plan = with_overrides(load_plan(args.plan), reps=args.reps, draws=args.draws, tune=args.tune, seed=args.seed)
+    atomic_folder(args.out, replace=args.replace, kind="plan").check()  # before any work
+    progress = progress_path(args.out)
+    Path(args.out).parent.mkdir(parents=True, exist_ok=True)
+    result = run_plan(plan, workers=args.workers, cluster=args.cluster, progress_file=progress,
+                      progress=not args.quiet, log=None if args.quiet else _say)
+    path = write_plan(result, args.out, replace=args.replace, argv=argv)
+    for line in plan_sentences(result["summary"]):
+        print(line)
+    print(f"plan results in {path}")
+    failed = result["summary"]["failed"]
+    if failed:
+        _say(f"{len(failed)} rep(s) failed (errors in {path}/plan.json); the tables use the others. The finished "
+             f"reps are kept in {progress}: rerun the same command with --replace to retry the failed ones.")
+        return EXIT_VARIANTS_FAILED
+    progress.unlink(missing_ok=True)
+    return EXIT_OK
+
+
 # ---- bench calibration options (issue 8) ----
 _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
-                        "replace")
+                        "replace", "large", "rows")
 
 
 def _add_calibration_options(b):
@@ -242,15 +272,55 @@ def _add_calibration_options(b):
     c.add_argument("--tune", type=int, help="tuning steps per chain (default 500)")
     c.add_argument("--seed", type=int, help="base seed; each rep's seeds derive from it and the rep index")
     c.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    k = b.add_argument_group("large tables (bayesdid bench collapse --large)")
+    k.add_argument("--large", action="store_true", help="write a Parquet data set in parts and stream-collapse it "
+                                                        "(time, peak memory, Dask equality)")
+    k.add_argument("--rows", type=int, help="rows of the --large data set (default 200,000,000; 2,000,000 with --quick)")
+
+
+#: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
+_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
+                  "weights": {"reps", "draws", "tune", "seed"},
+                  "panel": {"reps", "draws", "tune", "seed"}, "plan": {"reps", "workers", "cluster"}}
 
 
 def _calibration_kwargs(args) -> dict:
     given = {k: getattr(args, k, None) for k in _CALIBRATION_OPTIONS}
     given = {k: v for k, v in given.items() if v is not None and v is not False}
-    if given and args.name != "calibration":
-        opts = ", ".join("--" + k.replace("_", "-") for k in given)
-        raise BayesDidError(f"{opts}: only 'bayesdid bench calibration' takes these options.")
+    allowed = _BENCH_OPTIONS.get(args.name, set())
+    extra = [k for k in given if k not in allowed]
+    if extra:
+        opts = ", ".join("--" + k.replace("_", "-") for k in extra)
+        takers = sorted(n for n, o in _BENCH_OPTIONS.items() if set(extra) <= o)
+        raise BayesDidError(f"{opts}: 'bayesdid bench {args.name}' does not take "
+                            f"{'this option' if len(extra) == 1 else 'these options'}"
+                            + (f"; {', '.join(takers)} do{'es' if len(takers) == 1 else ''}." if takers else "."))
     return given
+
+
+def cmd_cache(args, argv):
+    from . import cachedir
+
+    c = cachedir.current()
+    if args.action == "clear":
+        before = cachedir.clear(c)
+        print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
+              f"from {c.path}")
+        return EXIT_OK
+    i = cachedir.info(c)
+    print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
+    print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
+    print(f"compiled models: {i['models']}")
+    for sub, p in i["parts"].items():
+        print(f"  {sub}/: {p['files']} file(s), {p['bytes'] / 1e6:.1f} MB")
+    print("clear it with: bayesdid cache clear")
+    return EXIT_OK
+
+
+def _add_cache_dir(p, top: bool = False):
+    p.add_argument("--cache-dir", metavar="FOLDER", default=None if top else argparse.SUPPRESS,
+                   help="compile cache folder (default: $BAYESDID_CACHE_DIR, else $XDG_CACHE_HOME/bayesdid, "
+                        "else ~/.cache/bayesdid)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -260,12 +330,14 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=textwrap.dedent("""\
             exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
-            4 some sweep variants failed (recorded; rerun to retry)"""))
+            4 some sweep variants or plan reps failed (recorded; rerun to retry)"""))
+    _add_cache_dir(p, top=True)
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
     f.add_argument("study", help="study file (TOML)")
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
+    _add_streaming(f)
     f.add_argument("--no-cross-check", action="store_true",
                    help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
                         "wild cluster bootstrap and the placebo permutation")
@@ -279,6 +351,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("study", help="study file (TOML)")
     a.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(a)
+    _add_streaming(a)
     a.set_defaults(func=cmd_analyze)
     r = sub.add_parser("report", help="write RUN_DIR/report.html, a single-file HTML report of a run folder")
     r.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
@@ -300,11 +373,30 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
+    pl = sub.add_parser("plan", help="assurance before the data: simulate and fit a proposed evaluation's layout")
+    pl.add_argument("plan", help="plan file (TOML): layout, noise, true effects, decision rule")
+    pl.add_argument("--out", required=True, help="folder for plan.json, the CSV tables, the figure and report.html")
+    pl.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2; "
+                                                          "1 runs in this process)")
+    pl.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local'")
+    pl.add_argument("--reps", type=int, help="data sets per layout and effect (overrides simulation.reps)")
+    pl.add_argument("--draws", type=int, help="draws per chain (overrides simulation.draws)")
+    pl.add_argument("--tune", type=int, help="tuning steps per chain (overrides simulation.tune)")
+    pl.add_argument("--seed", type=int, help="base seed (overrides simulation.seed)")
+    pl.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    pl.add_argument("--quiet", action="store_true", help="no progress display")
+    pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse, crosscheck, calibration")
+    b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
+                                  "weights, panel, plan, compile")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
+    k = sub.add_parser("cache", help="show or clear the compile cache (compiled models kept between runs)")
+    k.add_argument("action", choices=("info", "clear"), help="info: where it is and what it holds; clear: empty it")
+    k.set_defaults(func=cmd_cache)
+    for sp in (f, d, a, c, w, pl, b, k):
+        _add_cache_dir(sp)
     return p
 
 
@@ -321,10 +413,22 @@ def _show_warning(message, category, filename, lineno, file=None, line=None, _de
         _default(message, category, filename, lineno, file, line)
 
 
+def _use_cache_dir(folder: str) -> None:
+    """Point the compile cache at ``folder`` before PyTensor and numba are imported."""
+    from . import cachedir
+
+    if "pytensor" in sys.modules and cachedir.current().path != cachedir.resolve(folder)[0]:
+        _say(f"--cache-dir {folder}: PyTensor is already loaded in this process, so only bayesdid's compiled "
+             "models go there; PyTensor's own files stay in " + str(cachedir.current().path))
+    cachedir.configure(folder)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.cache_dir is not None:
+        _use_cache_dir(args.cache_dir)
     with warnings.catch_warnings():
         warnings.showwarning = _show_warning
         try:

@@ -105,8 +105,13 @@ def percent_change(b):
 
 
 def att_weights(cells) -> np.ndarray:
-    """w_j: treated target-group rows of adopter j over all treated target-group rows."""
-    treated_rows = (cells.n * cells.treated).sum(axis=(1, 2))[cells.adopters]
+    """w_j: treated target-group rows of adopter j over all treated target-group rows.
+
+    With sampling weights (``cells.extra["weights"]``) rows count by their weights: w_j is the share of
+    the weighted population of the treated target-group cells that adopter j holds.
+    """
+    size = cells.extra.get("weights", {}).get("sum_w", cells.n) if cells.extra else cells.n
+    treated_rows = (size * cells.treated).sum(axis=(1, 2))[cells.adopters]
     return treated_rows / treated_rows.sum()
 
 

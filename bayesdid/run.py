@@ -113,8 +113,18 @@ def _sampled_as(spec) -> dict:
     return out
 
 
-def prepare(study: Study) -> tuple[Cells, str, float]:
-    """Read the table and collapse it; returns (cells, data SHA-256, collapse seconds)."""
+def prepare(study: Study, *, stream: bool = False, cluster: str | None = None) -> tuple[Cells, str, float]:
+    """Read the table and collapse it; returns (cells, data SHA-256, collapse seconds).
+
+    ``stream`` (or a folder or glob in ``data.table``) collapses without reading the table into memory,
+    ``cluster`` does so on Dask (see :mod:`bayesdid.stream`); the digest is then of the file listing.
+    """
+    from .stream import collapse_stream, should_stream
+
+    if stream or cluster or should_stream(study):
+        t0 = time.perf_counter()
+        cells, digest = collapse_stream(study, cluster=cluster)
+        return cells, digest, time.perf_counter() - t0
     frame = read_table(study.table)
     digest = file_sha256(study.table)
     t0 = time.perf_counter()

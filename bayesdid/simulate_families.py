@@ -47,6 +47,8 @@ class CountScenario:
     phi: float = 20.0  # negbinomial cell-level gamma shape
     exposure: tuple = (0.5, 1.5)  # uniform range of person-time per row (counts)
     trials: int = 1  # binomial trials per row (1 = a 0/1 outcome)
+    pre_drift: float = 0.0  # adopters' target-group gap drifts by this per period before the start (0 at k = 0)
+    gap_jump: dict = field(default_factory=dict)  # jurisdiction index -> jump of its gap from the earliest start on
 
 
 def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = None):
@@ -67,6 +69,12 @@ def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = N
     D = np.zeros((J, G, T))
     for j, st in sc.starts.items():
         D[j, tg, st:] = 1.0
+        if sc.pre_drift:
+            k = np.arange(T) - st
+            eta0[j, tg, :] += sc.pre_drift * np.minimum(k, 0)
+    t0 = min(sc.starts.values()) if sc.starts else T
+    for j, jump in sc.gap_jump.items():
+        eta0[j, tg, t0:] += jump
     n = sc.rows_per_cell
     jj, gg, tt = np.meshgrid(np.arange(J), np.arange(G), np.arange(T), indexing="ij")
     jr, gr, tr = (np.repeat(v.ravel(), n) for v in (jj, gg, tt))

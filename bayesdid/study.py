@@ -140,6 +140,10 @@ class Columns:
     unit: str | None = None
     exposure: str | None = None
     trials: str | None = None
+    weight: str | None = None
+    count: str | None = None
+    sd: str | None = None
+    se: str | None = None
 
     def used(self) -> list[str]:
         return [c for c in dataclasses.astuple(self) if c is not None]
@@ -240,6 +244,7 @@ class Study:
     title: str = "bayesdid study"
     period_order: tuple | None = None
     placebo_lag: int | None = None
+    summary: str | None = None  # what a row holds (SUMMARIES); None: one observation
 
     @property
     def design(self) -> str:
@@ -270,6 +275,10 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
             raw["title"] = v
         elif k == "table":
             raw["data"]["table"] = os.fspath(v) if isinstance(v, os.PathLike) else v
+        elif k == "summary":
+            raw["data"].pop("summary", None)
+            if v is not None:
+                raw["data"]["summary"] = v
         elif k == "period_order":
             raw["data"].pop("period_order", None)
             if v is not None:
@@ -282,7 +291,7 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
             sec = _FIELD_SECTIONS[k]
             if dataclasses.is_dataclass(v) and not isinstance(v, type):
                 if k == "columns":
-                    keep = {kk: raw["data"][kk] for kk in ("table", "period_order") if kk in raw["data"]}
+                    keep = {kk: raw["data"][kk] for kk in ("table", "period_order", "summary") if kk in raw["data"]}
                     raw["data"] = {**keep, **{kk: vv for kk, vv in dataclasses.asdict(v).items() if vv is not None}}
                 elif k == "policy":
                     raw["policy"] = {"adopters": dict(v.adopters)}
@@ -305,7 +314,16 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
 
 _TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
-              "period_order"}
+              "period_order", "summary", "weight", "count", "sd", "se"}
+
+#: What one row of the table holds (``data.summary``): absent = one observation per row.
+SUMMARIES = {
+    "mean": "the mean of the observations of a cell, with their count ('data.count') and their within-cell "
+            "standard deviation ('data.sd') or the standard error of the mean ('data.se')",
+    "proportion": "the proportion of successes among 'data.count' people (family 'binomial')",
+    "rate": "events per unit of person-time, with the person-time in 'data.exposure' (family 'poisson' or "
+            "'negbinomial')",
+}
 
 
 #: Bounds of the sampler settings. The lower ones keep diagnostics computable; the upper ones catch
@@ -335,7 +353,14 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         unit=_get_str(data, "unit", "data", required=False),
         exposure=_get_str(data, "exposure", "data", required=False),
         trials=_get_str(data, "trials", "data", required=False),
+        weight=_get_str(data, "weight", "data", required=False),
+        count=_get_str(data, "count", "data", required=False),
+        sd=_get_str(data, "sd", "data", required=False),
+        se=_get_str(data, "se", "data", required=False),
     )
+    summary = data.get("summary")
+    if summary is not None and summary not in SUMMARIES:
+        raise _where("data.summary", summary, f"one of {list(SUMMARIES)} (or no key for one observation per row)")
     order = data.get("period_order")
     if order is not None:
         if not isinstance(order, (list, tuple)) or not order:
@@ -399,7 +424,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         raise _where("title", title, "a string")
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
                             sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
-                            period_order=tuple(order) if order else None, placebo_lag=lag))
+                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary))
 
 
 def _validated(study: Study) -> Study:
@@ -430,6 +455,7 @@ def _validated(study: Study) -> Study:
                              "add a column of ones if every row counts one unit.")
     if study.columns.trials is not None and study.model.family != "binomial":
         raise _where("data.trials", study.columns.trials, "no trials column unless model.family = 'binomial'")
+    _validate_shape(study)
     roles = {f"data.{k}": v for k, v in dataclasses.asdict(study.columns).items() if v is not None}
     seen: dict[str, str] = {}
     for key, col in roles.items():
@@ -450,6 +476,64 @@ def _validated(study: Study) -> Study:
         if isinstance(start, bool) or not isinstance(start, (int, str, float)):
             raise _where(f"policy.adopters.{a}", start, "a period label (number or text)")
     return study
+
+
+def _validate_shape(study: Study) -> None:
+    """Keys of the input's shape: summaries (data.summary with count, sd or se) and sampling weights."""
+    c, fam, summary = study.columns, study.model.family, study.summary
+    if summary is None:
+        for key in ("count", "sd", "se"):
+            if getattr(c, key) is not None:
+                raise _where(f"data.{key}", getattr(c, key), "no such column unless 'data.summary' is set",
+                             "Set data.summary = \"mean\" (or \"proportion\") when each row summarises a cell.")
+    else:
+        need = {"mean": ("gaussian",), "proportion": ("binomial",), "rate": ("poisson", "negbinomial")}[summary]
+        if fam not in need:
+            raise _where("model.family", fam, f"{' or '.join(repr(f) for f in need)} with data.summary = '{summary}'")
+        if summary in ("mean", "proportion") and c.count is None:
+            raise StudyError(f"data.summary = '{summary}' needs 'data.count', the column holding how many "
+                             "people (observations) each row summarises.")
+        if summary == "rate" and c.count is not None:
+            raise _where("data.count", c.count, "no count column with data.summary = 'rate'",
+                         "A rate's denominator is its person-time: name it in 'data.exposure'.")
+        if summary == "mean" and (c.sd is None) == (c.se is None):
+            raise StudyError("data.summary = 'mean' needs exactly one of 'data.sd' (the within-cell standard "
+                             "deviation of the observations) and 'data.se' (the standard error of the mean)"
+                             + ("; both are set." if c.sd is not None else "; neither is set."))
+        if summary != "mean" and (c.sd is not None or c.se is not None):
+            key = "sd" if c.sd is not None else "se"
+            raise _where(f"data.{key}", getattr(c, key), f"no sd or se column with data.summary = '{summary}'",
+                         "The binomial and count families need no spread: the count and the total determine it.")
+        if summary == "proportion" and c.trials is not None:
+            raise _where("data.trials", c.trials, "no trials column with data.summary = 'proportion'",
+                         "The number of people is 'data.count'.")
+        if study.model.log_outcome:
+            raise _where("model.log_outcome", True, "false with data.summary",
+                         "The mean of the logs cannot be computed from the mean: summarise log(outcome) per cell "
+                         "and give those means with log_outcome = false.")
+        if study.model.covariates:
+            raise _where("model.covariates", study.model.covariates, "no covariates with data.summary",
+                         "Covariates need the observation-level rows; give those rows without data.summary.")
+        for key in ("weight", "unit"):
+            if getattr(c, key) is not None:
+                raise _where(f"data.{key}", getattr(c, key), f"no {key} column with data.summary",
+                             "A summary row already stands for many observations; give the observation-level rows.")
+    if c.unit is not None:
+        if fam != "gaussian":
+            raise _where("data.unit", c.unit, "a unit column with family 'gaussian' only",
+                         f"Unit fixed effects for family '{fam}' are not supported; leave out data.unit (pooled).")
+        if study.model.covariates or c.weight is not None:
+            what = "model.covariates" if study.model.covariates else "data.weight"
+            raise _where(what, study.model.covariates or c.weight, "not set together with data.unit",
+                         "Unit fixed effects are supported without covariates and weights; leave out one of them.")
+    if c.weight is not None:
+        if fam != "gaussian":
+            raise _where("data.weight", c.weight, "sampling weights with family 'gaussian' only",
+                         f"Weighted likelihoods for family '{fam}' are not supported; drop data.weight.")
+        if study.model.covariates:
+            raise _where("model.covariates", study.model.covariates, "no covariates together with data.weight",
+                         "Weighted cells support a Gaussian outcome without covariates; drop the covariates or "
+                         "the weights.")
 
 
 def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
@@ -499,7 +583,8 @@ def load_study(path: str | Path) -> Study:
 
 def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
                log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
-               trials=None, unit=None, priors=None, chains=2, draws=1000, tune=1000, seed=20261202,
+               trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
+               chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
                crosscheck=None) -> Study:
     """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
@@ -507,7 +592,8 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "title": title,
         "data": {k: v for k, v in dict(table=os.fspath(table) if isinstance(table, os.PathLike) else table, outcome=outcome, jurisdiction=jurisdiction,
                                          period=period, group=group, unit=unit, exposure=exposure,
-                                         trials=trials, period_order=period_order).items() if v is not None},
+                                         trials=trials, period_order=period_order, weight=weight, summary=summary,
+                                         count=count, sd=sd, se=se).items() if v is not None},
         "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
                                          target_group=target_group).items() if v is not None},
         "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
@@ -528,6 +614,8 @@ def study_to_dict(study: Study) -> dict[str, Any]:
     data["table"] = str(study.table)
     if study.period_order:
         data["period_order"] = list(study.period_order)
+    if study.summary is not None:
+        data["summary"] = study.summary
     out: dict[str, Any] = {
         "title": study.title,
         "data": data,

@@ -99,6 +99,28 @@ def _rows_of(frame, **eq):
     return m
 
 
+_SUMMARY_KEYS = 'group = "grp"\nsummary = "mean"\ncount = "n"\nsd = "s"'
+
+
+def _panel_ids(frame):
+    """The base table as a balanced panel: the k-th row of each cell is the same unit in every period."""
+    k = frame.groupby(["region", "grp", "period"]).cumcount().astype(str)
+    return frame.assign(pid=frame["region"] + "-" + frame["grp"] + "-" + k)
+
+
+def _means(frame):
+    """The base table as cell means with count and sd."""
+    agg = frame.groupby(["region", "grp", "period"])["y"].agg(["mean", "count", "std"]).reset_index()
+    return agg.rename(columns={"mean": "y", "count": "n", "std": "s"})
+
+
+def _parquet_parts(d: Path) -> None:
+    (d / "parts").mkdir()
+    f = base_table()
+    f.iloc[:40].to_parquet(d / "parts" / "a.parquet", index=False)
+    f.iloc[40:].assign(period=f["period"].iloc[40:].astype(str)).to_parquet(d / "parts" / "b.parquet", index=False)
+
+
 CASES: dict[str, Case] = {
     # ---- study file: structure and keys -------------------------------------------------------------
     "unknown top-level key": Case(r"unknown key\(s\) \['famly'\] in \[top level\]", study=lambda s: "famly = 1\n" + s),
@@ -283,6 +305,32 @@ CASES: dict[str, Case] = {
                           study=lambda s: s.replace('outcome = "y"', 'outcome = "visits"')
                           .replace('group = "grp"', 'group = "grp"\nexposure = "ex"')
                           .replace("log_outcome = false", 'family = "poisson"')),
+    # ---- input shapes: weights, panels, summary rows, Parquet folders ------------------------------------
+    "weight zero": Case(r"weight column 'w' must hold positive, finite sampling weights; 1 row\(s\) \(table lines 7\)",
+                        study=sub('group = "grp"', 'group = "grp"\nweight = "w"'),
+                        table=lambda f: cell("w", 5, 0.0)(f.assign(w=1.5))),
+    "weight negative": Case(r"weight column 'w' .*smallest -2",
+                            study=sub('group = "grp"', 'group = "grp"\nweight = "w"'),
+                            table=lambda f: cell("w", 5, -2.0)(f.assign(w=1.5))),
+    "weight missing": Case(r"weight column 'w' has 1 row\(s\) \(table lines 7\) missing",
+                           study=sub('group = "grp"', 'group = "grp"\nweight = "w"'),
+                           table=lambda f: cell("w", 5, np.nan)(f.assign(w=1.5))),
+    "unit in two jurisdictions": Case(r"1 unit\(s\) of column 'pid' appear in more than one jurisdiction",
+                                      study=sub('group = "grp"', 'group = "grp"\nunit = "pid"'),
+                                      table=lambda f: cell("region", 0, "R5")(_panel_ids(f))),
+    "summary count below 1": Case(r"count column 'n' must hold whole numbers of at least 1",
+                                  study=sub('group = "grp"', _SUMMARY_KEYS), table=lambda f: cell("n", 2, 0)(_means(f))),
+    "summary sd missing": Case(r"sd column 's' is empty in 1 row\(s\) \(table lines 4\)",
+                               study=sub('group = "grp"', _SUMMARY_KEYS), table=lambda f: cell("s", 2, np.nan)(_means(f))),
+    "summary sd where count is 1": Case(r"sd column 's' holds a value in 1 row\(s\) \(table lines 4\) whose count",
+                                        study=sub('group = "grp"', _SUMMARY_KEYS),
+                                        table=lambda f: cell("n", 2, 1)(_means(f))),
+    "summary and observation rows mixed": Case(r"look like observation-level rows mixed into a table of cell summaries",
+                                               study=sub('group = "grp"', _SUMMARY_KEYS),
+                                               table=lambda f: pd.concat([_means(f), f.head(3)], ignore_index=True)),
+    "Parquet folder, types disagree": Case(r"files of the table disagree on the type of column 'period'",
+                                           study=sub('table = "table.csv"', 'table = "parts"'),
+                                           setup=lambda d: _parquet_parts(d)),
     # ---- output folder ------------------------------------------------------------------------------------
     "--out is a file": Case(r"--out '.*afile' is a file, not a folder.*never replaces a file", args=("--replace",),
                             out="afile", setup=write_bytes("afile", b"the user's notes")),

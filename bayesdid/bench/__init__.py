@@ -18,6 +18,10 @@ REGISTRY = {
     "placebo": ("bayesdid.bench.placebo", "bench_placebo"),
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
+    "weights": ("bayesdid.bench.weights", "bench_weights"),
+    "panel": ("bayesdid.bench.panel", "bench_panel"),
+    "plan": ("bayesdid.bench.plan", "bench_plan"),
+    "compile": ("bayesdid.bench.compile", "bench_compile"),
 }
 
 

@@ -10,7 +10,9 @@ and how the cell model's sampling time and the collapse scale with the number of
 
 from __future__ import annotations
 
+import os
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -75,7 +77,11 @@ def _ess_att(tree, cells):
     return float(az.ess(ds, method="bulk")["att"]), float(att.mean()), float(att.std())
 
 
-def bench_collapse(*, quick: bool = False, seed: int = 7) -> dict:
+def bench_collapse(*, quick: bool = False, seed: int = 7, large: bool = False, rows: int | None = None) -> dict:
+    """The row-versus-cell model comparison; with ``large``, the streaming collapse of a big Parquet data set
+    (:func:`bench_collapse_large`)."""
+    if large:
+        return bench_collapse_large(rows=rows or 200_000_000, quick=quick)
     import nutpie
 
     small, large = (5_000, 200_000) if quick else (50_000, 5_000_000)
@@ -118,4 +124,84 @@ def bench_collapse(*, quick: bool = False, seed: int = 7) -> dict:
         "sample_s_cells_small": t_cells_small, "sample_s_rows_small": t_rows, "compile_s_rows": compile_rows,
         "sample_time_ratio_large_over_small": t_cells_large / t_cells_small, "target_time_ratio": 1.5,
         "collapse_s_large": collapse_large, "target_collapse_s": 5.0,
+    }
+
+
+# ---- large-table mode (bayesdid bench collapse --large) ---------------------------------------------
+LARGE_TARGETS = {"seconds": 90.0, "peak_gb": 3.0}
+
+
+def write_parquet_parts(folder, rows: int, *, parts: int = 20, seed: int = 7, jurisdictions: int = 40,
+                        periods: int = 12) -> dict:
+    """Write ``rows`` invented DDD rows as ``parts`` Parquet files (text columns dictionary-encoded)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from ..simulate import region_names
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    names = pa.array(region_names(jurisdictions))
+    groups = pa.array(["reference", "target"])
+    rng = np.random.default_rng(seed)
+    base = rng.normal(10.0, 1.0, size=(jurisdictions, 2, periods))
+    per = -(-rows // parts)
+    written = 0
+    for i in range(parts):
+        k = min(per, rows - written)
+        if k <= 0:
+            break
+        j = rng.integers(0, jurisdictions, size=k, dtype=np.int32)
+        g = rng.integers(0, 2, size=k, dtype=np.int32)
+        t = rng.integers(0, periods, size=k, dtype=np.int32)
+        y = base[j, g, t] + rng.standard_normal(k)
+        table = pa.table({"region": pa.DictionaryArray.from_arrays(pa.array(j), names),
+                          "group": pa.DictionaryArray.from_arrays(pa.array(g), groups),
+                          "period": pa.array(t + 1, type=pa.int16()), "y": pa.array(y)})
+        pq.write_table(table, folder / f"part-{i:03d}.parquet", row_group_size=1 << 20)
+        written += k
+        del j, g, t, y, table
+    return {"rows": written, "parts": parts, "adopters": {region_names(jurisdictions)[0]: 7}}
+
+
+def bench_collapse_large(*, rows: int = 200_000_000, quick: bool = False, folder: str | None = None,
+                         keep: bool = False) -> dict:
+    """Write a Parquet data set in parts, then stream-collapse it in a fresh process (time and peak
+    memory by ``resource.getrusage``), and again on a Dask LocalCluster (2 workers): its cells must
+    equal the local ones bit for bit."""
+    import json
+    import shutil
+    import subprocess
+    import sys
+    import tempfile
+
+    rows = 2_000_000 if quick else rows
+    root = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="bayesdid-large-"))
+    data = root / "parts"
+    t0 = time.perf_counter()
+    meta = write_parquet_parts(data, rows, parts=max(2, min(40, rows // 5_000_000)))
+    write_s = time.perf_counter() - t0
+    res = {}
+    try:
+        for kind, cluster in (("local", None), ("dask", "local")):
+            out = root / f"{kind}.npz"
+            subprocess.run([sys.executable, "-m", "bayesdid.bench.large_child", str(data),
+                            json.dumps(meta["adopters"]), cluster or "", str(out)], check=True)
+            with np.load(out) as z:
+                res[kind] = {k: z[k] for k in z.files}
+    finally:
+        if not keep:
+            shutil.rmtree(root, ignore_errors=True)
+    loc, dsk = res["local"], res["dask"]
+    equal = all(np.array_equal(loc[k], dsk[k]) for k in ("n", "sum_y", "ss"))
+    peak_gb = float(loc["peak_kb"]) / 1024**2
+    seconds = float(loc["seconds"])
+    return {
+        "benchmark": "collapse-large", "rows": int(loc["rows"]), "parts": meta["parts"], "cores": os.cpu_count(),
+        "write_s": round(write_s, 1), "collapse_s": round(seconds, 2), "peak_gb": round(peak_gb, 3),
+        "rows_per_s": round(float(loc["rows"]) / seconds), "dask_collapse_s": round(float(dsk["seconds"]), 2),
+        "dask_equals_local_bitwise": bool(equal),
+        "target_s": LARGE_TARGETS["seconds"], "target_peak_gb": LARGE_TARGETS["peak_gb"],
+        "seconds_over_target": round(seconds / LARGE_TARGETS["seconds"], 3),
+        "peak_over_target": round(peak_gb / LARGE_TARGETS["peak_gb"], 3),
     }

@@ -1,6 +1,7 @@
 """What every check returns, and the small numeric helpers the checks share.
 
-A :class:`CheckResult` holds a ``status`` ("ok", "flag" or "not applicable"), the ``threshold``
+A :class:`CheckResult` holds a ``status`` ("ok", "flag", "not applicable" or "failed": the check
+raised, and the reason names the error; the other checks still run), the ``threshold``
 used (as text and numbers), the ``offenders`` (what tripped the flag), a plain ``reason``, the
 numbers behind it (``details``) and the plot data (``tables``: name -> pandas DataFrame, written as
 ``<name>.csv`` by :func:`bayesdid.checks.runner.write_checks`).
@@ -17,9 +18,9 @@ import pandas as pd
 from ..cells import Cells
 
 __all__ = ["CheckResult", "not_applicable", "pre_weight", "earliest_start", "effect_weights",
-           "interval_row", "reseed", "STATUSES"]
+           "interval_row", "reseed", "STATUSES", "failed"]
 
-STATUSES = ("ok", "flag", "not applicable")
+STATUSES = ("ok", "flag", "not applicable", "failed")
 
 
 @dataclass
@@ -49,6 +50,13 @@ class CheckResult:
 
 def not_applicable(name: str, reason: str, threshold: dict | None = None) -> CheckResult:
     return CheckResult(name=name, status="not applicable", reason=reason, threshold=threshold or {})
+
+
+def failed(name: str, exc: BaseException) -> CheckResult:
+    """The result of a check that raised: status "failed", the error named in the reason."""
+    return CheckResult(name=name, status="failed",
+                       reason=f"the check could not be completed: {type(exc).__name__}: {exc}",
+                       details={"error": type(exc).__name__})
 
 
 def earliest_start(cells: Cells) -> int:

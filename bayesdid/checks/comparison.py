@@ -8,7 +8,8 @@ target q) of each jurisdiction-period:
     e | y ~ N( sigma_gap^2 (dq - k dr) / V ,  sigma_gap^2 - sigma_gap^4 / V )
 
 with s2 = sigma_shock^2, dr = ybar_r - m_r, dq = ybar_q - m_q (a DiD has no reference cell: k = 0,
-s2 = 0; an empty target cell leaves e at its prior). Because b[j,g] is constant and h[g,t] common, the
+s2 = 0; an empty target cell leaves e at its prior). Binomial and count models keep e as a latent
+field in the posterior; its draws are used as they are. Because b[j,g] is constant and h[g,t] common, the
 change of the jurisdiction's own gap net of the common change is
 
     delta_j = mean_{t >= t0} e[j,t] - mean_{t < t0} e[j,t]       (t0: the earliest start)
@@ -28,6 +29,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..cells import Cells
+from ..model import families
 from ..model.gaussian import cell_arrays
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
@@ -43,6 +45,8 @@ MAX_REFITS = 5
 
 def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
     """Draws of e[j,t] from its conditional posterior (module docstring): shape (S, J, T)."""
+    if fit.spec.family != "gaussian":  # latent fields: drawn with the model (their period means are in the baselines)
+        return families.gap_noise_draws(fit)
     cells = fit.cells
     arr = cell_arrays(cells)
     m = mean_from_draws(fit)

@@ -12,7 +12,10 @@ noise e out, so they are drawn back here), for adopter j and pre-period t:
     y_rep[j,q,t] = m[j,q,t] + s + e + eps_q,        e ~ N(0, sigma_gap^2),   eps_q ~ N(0, sigma_q^2 / n_q)
     gap_rep[j,t] = y_rep[j,q,t] - y_rep[j,r,t]
 
-(for a DiD the gap is the cell mean itself, gap = m + e + eps, without s). With the expected gap
+(for a DiD the gap is the cell mean itself, gap = m + e + eps, without s). For binomial and count
+families the gap is read on the link scale (log rate or log odds of each cell, with a half added to
+events and non-events) and replicated from the family's own sampling model
+(:func:`bayesdid.model.families.replicate_gap_path`). With the expected gap
 mg[j,t] = m[j,q,t] - m[j,r,t] of the same draw, the residual paths are r_obs = gap_obs - mg and
 r_rep = gap_rep - mg, and the statistics are
 
@@ -35,6 +38,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..cells import Cells
+from ..model.families import replicate_gap_path
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
 from ..study import SamplerSettings
@@ -59,7 +63,13 @@ def slope(x: np.ndarray, r: np.ndarray) -> np.ndarray:
 
 
 def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
-    """Observed gap, expected gap (S, n) and replicated gap (S, n) of jurisdiction j at ``periods``."""
+    """Observed gap, expected gap (S, n) and replicated gap (S, n) of jurisdiction j at ``periods``.
+
+    Gaussian: as in the module docstring. Other families: on the link scale, records replicated from
+    the family itself (:func:`bayesdid.model.families.replicate_gap_path`).
+    """
+    if fit.spec.family != "gaussian":
+        return replicate_gap_path(fit, j, periods, rng)
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
     sigma = fit.draws("sigma")  # (S, G)

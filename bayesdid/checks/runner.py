@@ -4,7 +4,7 @@ Folder layout (written atomically with :class:`bayesdid.run.atomic_folder`):
 
 * ``checks.json``: ``title``, ``design``, ``sampler``, ``data`` (as :meth:`Cells.describe`), ``timing``
   and one section per check (``event_time``, ``pretrend``, ``placebo_time``, ``comparison``,
-  ``placebo_space``), each with ``status`` ("ok", "flag", "not applicable"), ``reason``,
+  ``placebo_space``), each with ``status`` ("ok", "flag", "not applicable", "failed"), ``reason``,
   ``threshold``, ``offenders``, the check's numbers and the names of its CSV tables. With
   ``--only NAME`` the other sections read ``{"status": "not run", ...}``.
 * CSV tables (columns documented in each check's module): ``event_time.csv``
@@ -27,7 +27,7 @@ from ..errors import BayesDidError
 from ..model.terms import resolve_scales
 from ..sample import fit_cells
 from ..study import Study, study_to_dict
-from .base import CheckResult, effect_weights
+from .base import CheckResult, effect_weights, failed
 from .comparison import comparison_check
 from .event_time import event_time_check
 from .placebo import placebo_space_check, placebo_time_check
@@ -96,26 +96,39 @@ def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = N
     if any(n in _NEEDS_MAIN for n in names) and main_fit is None:
         say("fitting the main model")
         t0 = time.perf_counter()
-        main_fit = fit_cells(cells, scales, settings, family=family)
+        try:
+            main_fit = fit_cells(cells, scales, settings, family=family)
+        except Exception as exc:  # noqa: BLE001 - the checks that do not need it still run
+            say(f"the main fit failed: {type(exc).__name__}: {exc}")
         timing["main_fit_s"] = time.perf_counter() - t0
     for name in names:
         say(f"check: {name}")
         t0 = time.perf_counter()
-        if name == "event_time":
-            r = event_time_check(cells, scales, settings, tolerance=tol, pooled=pooled, family=family)
-            r.threshold["tolerance_source"] = tol_src
-        elif name == "pretrend":
-            r = pretrend_check(cells, scales, settings, family=family)
-        elif name == "placebo_time":
-            r = placebo_time_check(cells, scales, settings, lag=study.placebo_lag, family=family)
-        elif name == "comparison":
-            r = comparison_check(cells, scales, settings, main_fit, family=family)
-        else:
-            real = main_fit.draws("tau_adopter") @ effect_weights(cells)
-            r = placebo_space_check(cells, scales, settings, real, family=family, progress=say)
+        try:
+            r = _run_one(name, study, cells, scales, settings, family, tol, tol_src, pooled, main_fit, say)
+        except Exception as exc:  # noqa: BLE001 - one failing check must not cost the others
+            r = failed(name, exc)
+            say(f"check {name} failed: {type(exc).__name__}: {exc}")
         timing[f"{name}_s"] = time.perf_counter() - t0
         results[name] = r
     return CheckReport(study=study, cells=cells, results=results, timing=timing)
+
+
+def _run_one(name, study, cells, scales, settings, family, tol, tol_src, pooled, main_fit, say) -> CheckResult:
+    if name == "event_time":
+        r = event_time_check(cells, scales, settings, tolerance=tol, pooled=pooled, family=family)
+        r.threshold["tolerance_source"] = tol_src
+        return r
+    if name == "pretrend":
+        return pretrend_check(cells, scales, settings, family=family)
+    if name == "placebo_time":
+        return placebo_time_check(cells, scales, settings, lag=study.placebo_lag, family=family)
+    if main_fit is None:
+        raise RuntimeError("the main fit, which this check reads, did not complete")
+    if name == "comparison":
+        return comparison_check(cells, scales, settings, main_fit, family=family)
+    real = main_fit.draws("tau_adopter") @ effect_weights(cells)
+    return placebo_space_check(cells, scales, settings, real, family=family, progress=say)
 
 
 def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False, argv=None) -> Path:

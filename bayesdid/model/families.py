@@ -320,3 +320,92 @@ def pointwise_loglik(fit) -> np.ndarray:
     phi = fit.draws("phi")[:, None] if family == "negbinomial" else None
     ll = record_loglik(family, d, eta, phi, xp=NP)
     return _np_segment_sum(ll, d["rec_jt"], J * T).reshape(ll.shape[0], J, T)
+
+
+def _link_of_cell(family: str, y, size):
+    """The cell's empirical link-scale value: log((Y + 1/2) / E) for counts, logit((Y + 1/2) / (N - Y + 1/2))
+    for binomial (the half keeps empty or full cells finite; the same rule on observed and replicated
+    data, so it shifts both alike)."""
+    if family == "binomial":
+        return np.log((y + 0.5) / (size - y + 0.5))
+    return np.log((y + 0.5) / size)
+
+
+def replicate_gap_path(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
+    """Observed, expected and replicated link-scale gap of jurisdiction j at ``periods``, non-Gaussian.
+
+    The twin of the Gaussian replication in :mod:`bayesdid.checks.pretrend` for the families whose
+    shock and gap noise stay latent. Per posterior draw: fresh gap-noise deviations ``e = Q u``,
+    ``u ~ N(0, sigma_gap^2 I)`` (the model's own law of the zero-sum deviations; the mean is in the
+    baselines), the shock and covariate terms as drawn, then every record of the cells is replicated
+    from the family (binomial successes of its trials; Poisson events of its exposure; for
+    negbinomial a Gamma(phi, phi) multiplier per cell first). Each cell is summarised by its empirical
+    link value (:func:`_link_of_cell`); the gap is target minus reference (DDD) or the target cell
+    itself (DiD). The expected gap is the link of the cell's expected totals without the gap noise.
+
+    Returns ``observed`` (n,), ``expected`` (S, n) and ``replicated`` (S, n).
+    """
+    cells = fit.cells
+    family = fit.spec.family
+    J, G, T = cells.shape
+    d = data_arrays(cells, family)
+    m = mean_from_draws(fit)
+    S = m.shape[0]
+    per = np.asarray(periods, dtype=int)
+    pos = np.full(T, -1)
+    pos[per] = np.arange(len(per))
+    rc = d["rec_cell"]
+    rj, rg, rt = rc // (G * T), (rc // T) % G, rc % T
+    keep = (rj == j) & (pos[rt] >= 0)
+    groups = [cells.target] if cells.design == "DiD" else [cells.target, cells.reference]
+    keep &= np.isin(rg, groups)
+    idx = np.flatnonzero(keep)
+    size, y, tgt = d["rec_size"][idx], d["rec_y"][idx], d["rec_tgt"][idx]
+    slot = pos[rt[idx]] * G + rg[idx]  # (period slot, group) of each record
+    n_slot = len(per) * G
+    eta0 = m.reshape(S, -1)[:, rc[idx]]
+    if cells.design == "DDD":
+        eta0 = eta0 + fit.draws("shock")[:, j, :][:, rt[idx]]
+    if d["rec_x"].shape[1]:
+        eta0 = eta0 + fit.draws("theta") @ d["rec_x"][idx].T
+    u = fit.draws("sigma_gap")[:, None] * rng.standard_normal((S, T - 1))
+    e = u @ zero_sum_basis(T).T  # (S, T)
+    eta = eta0 + e[:, rt[idx]] * tgt
+    inv = NP.expit if family == "binomial" else np.exp
+    mu = size * inv(eta)
+    if family == "binomial":
+        y_rep = rng.binomial(np.round(size).astype(np.int64), np.clip(inv(eta), 0.0, 1.0)).astype(float)
+    elif family == "negbinomial":
+        phi = fit.draws("phi")[:, None]
+        cell_of = np.unique(slot, return_inverse=True)[1]
+        mult = rng.gamma(phi, 1.0 / phi, size=(S, int(cell_of.max()) + 1))
+        y_rep = rng.poisson(mu * mult[:, cell_of]).astype(float)
+    else:
+        y_rep = rng.poisson(mu).astype(float)
+
+    def by_slot(v):
+        return _np_segment_sum(v, slot, n_slot).reshape(*v.shape[:-1], len(per), G)
+
+    E = by_slot(size)
+    obs = _link_of_cell(family, by_slot(y), E)
+    rep = _link_of_cell(family, by_slot(y_rep), E[None])
+    expected_tot = by_slot(size * inv(eta0))
+    with np.errstate(divide="ignore"):
+        if family == "binomial":
+            p = expected_tot / E[None]
+            exp_link = np.log(p / (1.0 - p))
+        else:
+            exp_link = np.log(expected_tot / E[None])
+    q = cells.target
+    if cells.design == "DDD":
+        r = cells.reference
+        return (obs[:, q] - obs[:, r], exp_link[..., q] - exp_link[..., r], rep[..., q] - rep[..., r])
+    return obs[:, q], exp_link[..., q], rep[..., q]
+
+
+def gap_noise_draws(fit) -> np.ndarray:
+    """Posterior draws of the gap-noise deviations e[j,t] of a non-Gaussian fit: (S, J, T).
+
+    Their mean over periods is folded into the baselines, so only changes over time are meaningful
+    (differences of period means, as the comparison check takes, are exact)."""
+    return fit.draws("gap")

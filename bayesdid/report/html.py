@@ -176,7 +176,7 @@ class _Raw(str):
 
 def _badge(status: str) -> _Raw:
     s = str(status).lower()
-    cls = {"ok": "pass", "pass": "pass", "flag": "fail", "fail": "fail"}.get(s, "na")
+    cls = {"ok": "pass", "pass": "pass", "flag": "fail", "fail": "fail", "failed": "fail"}.get(s, "na")
     return _Raw(f'<span class="badge {cls}">{esc(status)}</span>')
 
 
