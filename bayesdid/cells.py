@@ -197,8 +197,8 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
     if weighted is not None:
         shape = (J, G, T)
         return replace(cells, extra={"family": "gaussian", "weights": {
-            "column": cols.weight, "sum_w": weighted["sum_w"].reshape(shape), "ss_w": weighted["ss_w"].reshape(shape),
-            "rows": weighted["rows"].reshape(shape)},
+            "column": cols.weight, **{k: weighted[k].reshape(shape) for k in
+                                      ("sum_w", "ss_w", "rows", "sum_w2", "w2_dev", "w2_dev2")}},
             "likelihood": "exact on cells for the Hajek means with Kish effective sizes (jurisdiction-period shock "
                           "and gap noise integrated out); within-cell spread by moment match"})
     if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
