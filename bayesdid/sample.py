@@ -118,7 +118,11 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         COMPILES["count"] += 1
     else:
         LOADS["count"] += 1
-    _CACHE[key] = (compiled, set(model.named_vars), model)
+    # The data containers the compiled functions read: a container the graph no longer uses (the
+    # cell counts of a model without a residual sd, folded away as 0 * x) is not among them, and
+    # nutpie's with_data refuses names it does not know.
+    used = {var.name for var in compiled.shared_var_keys}
+    _CACHE[key] = (compiled, set(model.named_vars) & used, model)
     return compiled, spec, dt
 
 
