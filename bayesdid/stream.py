@@ -66,6 +66,9 @@ def stream_sources(table: str | Path) -> tuple[list[str], str]:
     else:
         raise DataRoleError(f"table '{text}' does not exist; fix 'data.table' (a file, a folder of Parquet files or "
                             "a glob such as 'claims/*.parquet').")
+    if not files and Path(text).is_dir():
+        raise DataRoleError(f"table '{text}' is a folder holding no file; 'data.table' must name one CSV or Parquet "
+                            "file, or a folder or glob of Parquet files (a path relative to the study file).")
     if not files:
         raise DataRoleError(f"table '{text}' matches no file; fix 'data.table' or the folder's contents.")
     kinds = {("parquet" if f.lower().endswith((".parquet", ".pq")) else

@@ -209,7 +209,9 @@ CASES: dict[str, Case] = {
                                              command="checks"),
     # ---- table: the file --------------------------------------------------------------------------------
     "table missing": Case(r"table '.*nowhere.csv' does not exist", study=sub("table.csv", "nowhere.csv")),
-    "table path a folder": Case(r"table '.*tables' is a folder, not a file", study=sub("table.csv", "tables"),
+    "table path an empty folder": Case(r"table '.*tables' is a folder holding no file; 'data.table' must name one "
+                                       r"CSV or Parquet file, or a folder or glob of Parquet files",
+                                       study=sub("table.csv", "tables"),
                                 setup=lambda d: (d / "tables").mkdir()),
     "table of unknown kind": Case(r"unknown file kind '.xlsx'", study=sub("table.csv", "t.xlsx"),
                                   setup=write_bytes("t.xlsx", b"PK\x03\x04")),
