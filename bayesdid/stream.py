@@ -66,10 +66,11 @@ def stream_sources(table: str | Path) -> tuple[list[str], str]:
     else:
         raise DataRoleError(f"table '{text}' does not exist; fix 'data.table' (a file, a folder of Parquet files or "
                             "a glob such as 'claims/*.parquet').")
-    if not files and Path(text).is_dir():
-        raise DataRoleError(f"table '{text}' is a folder holding no file; 'data.table' must name one CSV or Parquet "
-                            "file, or a folder or glob of Parquet files (a path relative to the study file).")
     if not files:
+        if Path(text).is_dir():
+            raise DataRoleError(f"table '{text}' is a folder holding no data file (hidden files and names starting "
+                                "with '_' are skipped); put the Parquet files in it, or name one CSV or Parquet file "
+                                "in 'data.table'.")
         raise DataRoleError(f"table '{text}' matches no file; fix 'data.table' or the folder's contents.")
     kinds = {("parquet" if f.lower().endswith((".parquet", ".pq")) else
               "csv" if f.lower().endswith((".csv", ".csv.gz", ".txt")) else "other") for f in files}
