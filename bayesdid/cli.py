@@ -208,6 +208,46 @@ def cmd_checks(args, argv):
     return EXIT_OK
 
 
+def cmd_trends(args, argv):
+    """Parallel-trends sensitivity of a run folder: rewrite its trends.csv and summary.json's section."""
+    import os
+
+    from .run import dump_json
+    from .trends import trends_from_run, write_trends
+
+    mult = None
+    if args.multiples is not None:
+        try:
+            mult = [float(v) for v in args.multiples.split(",") if v.strip()]
+        except ValueError:
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r}: expected numbers separated by "
+                                "commas, e.g. 0,0.5,1,2.") from None
+        if not mult or any(not math.isfinite(v) or v < 0 for v in mult):
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r} (trends.multiples): expected "
+                                "zero or positive finite numbers; M scales the largest pre-policy change.")
+        mult = sorted(mult)
+    run = Path(args.run_dir)
+    tb = trends_from_run(run, multiples=mult)
+    summary_path = run / "summary.json"
+    summary = json.loads(summary_path.read_text(encoding="utf-8"))
+    summary["parallel_trends"] = tb.to_dict()
+    tmp = run / ".summary.json.tmp"
+    dump_json(summary, tmp)
+    if tb.rows:
+        write_trends(tb, run)
+    os.replace(tmp, summary_path)
+    if tb.status != "ok":
+        print(f"parallel-trends sensitivity: {tb.status} ({tb.reason})")
+        return EXIT_OK
+    print("M      95% interval of the effect (model scale)   P(reduction)  P(increase)")
+    for r in tb.rows:
+        print(f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
+              f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}")
+    print(tb.sentence)
+    print(f"written to {run / 'trends.csv'} and summary.json (parallel_trends)")
+    return EXIT_OK
+
+
 def cmd_sweep(args, argv):
     from .sweep import check_sweep_folder, load_sweep, run_sweep
 
@@ -267,7 +307,8 @@ _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_re
 def _add_calibration_options(b):
     c = b.add_argument_group("calibration (bayesdid bench calibration)")
     c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
-    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails")
+    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
+                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo")
     c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
                                  "(default runs/calibration-SCENARIO)")
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
@@ -380,6 +421,11 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
+    t = sub.add_parser("trends", help="how far parallel trends may fail before the conclusion changes "
+                                      "(relative-magnitudes bound over a grid of M) for a run folder")
+    t.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
+    t.add_argument("--multiples", help="grid of M, comma-separated (default: the study's trends.multiples)")
+    t.set_defaults(func=cmd_trends)
     pl = sub.add_parser("plan", help="assurance before the data: simulate and fit a proposed evaluation's layout")
     pl.add_argument("plan", help="plan file (TOML): layout, noise, true effects, decision rule")
     pl.add_argument("--out", required=True, help="folder for plan.json, the CSV tables, the figure and report.html")

@@ -72,5 +72,10 @@ class SparseJurisdictionWarning(BayesDidWarning):
     """A comparison jurisdiction is observed in too few periods to contribute to the comparison of changes."""
 
 
+class PersistenceFallbackWarning(BayesDidWarning):
+    """The study asks for persistent (AR(1)) gap noise but the data cannot learn it: the
+    independent form is fitted instead, for the reason the message names."""
+
+
 class CacheWarning(BayesDidWarning):
     """The compile cache cannot be used (a folder that cannot be written, a damaged entry): runs are slower."""

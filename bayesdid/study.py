@@ -51,6 +51,8 @@ PRIOR_NAMES = {
     "residual": "scale of the half-normal prior on each group's residual sd",
     "covariate": "sd of the normal prior on each (centred) covariate coefficient",
     "dispersion": "scale of the half-normal prior on 1/sqrt(phi) of the over-dispersed count family",
+    "drift_spread": "scale of the half-normal prior on the spread of jurisdictions' linear gap drifts per period "
+                    "(model.gap_drift = true)",
 }
 
 
@@ -171,6 +173,10 @@ class ModelOptions:
     log_outcome: bool = False
     covariates: str | None = None
     missing: str = "error"  # or "drop"
+    #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
+    gap_over_time: str = "persistent"
+    #: Pooled jurisdiction-specific linear drifts of the gap (Gaussian; see bayesdid.model.terms)
+    gap_drift: bool = False
 
 
 @dataclass(frozen=True)
@@ -188,6 +194,7 @@ class PriorScales:
     residual: float | None = None
     covariate: float | None = None
     dispersion: float | None = None
+    drift_spread: float | None = None
 
 
 @dataclass(frozen=True)
@@ -208,6 +215,16 @@ class Decision:
     """
 
     threshold: float | None = None
+    #: Probability at which the decision counts as made (used by the parallel-trends breakdown value).
+    level: float = 0.9
+
+
+@dataclass(frozen=True)
+class TrendSettings:
+    """The parallel-trends sensitivity (study-file section ``[trends]``, see :mod:`bayesdid.trends`):
+    the grid of multiples M of the largest pre-policy change; each must be zero or positive."""
+
+    multiples: tuple = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
 
 
 CROSSCHECK_WEIGHTS = ("webb", "rademacher")
@@ -241,6 +258,7 @@ class Study:
     sampler: SamplerSettings = field(default_factory=SamplerSettings)
     decision: Decision = field(default_factory=Decision)
     crosscheck: CrossCheckSettings = field(default_factory=CrossCheckSettings)
+    trends: TrendSettings = field(default_factory=TrendSettings)
     title: str = "bayesdid study"
     period_order: tuple | None = None
     placebo_lag: int | None = None
@@ -261,7 +279,7 @@ class Study:
 
 #: Study field -> section of the study file that holds it.
 _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck"}
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends"}
 
 
 def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -312,7 +330,7 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends"}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
               "period_order", "summary", "weight", "count", "sd", "se"}
 
@@ -389,12 +407,14 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing"})
+    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"})
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
+        gap_over_time=m.get("gap_over_time", "persistent"),
+        gap_drift=_get_bool(m, "gap_drift", "model", False),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
@@ -403,8 +423,21 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     sampler = SamplerSettings(**{
         k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
         for k, (lo, hi) in SAMPLER_LIMITS.items()})
-    d = _section(raw, "decision", {"threshold"})
-    decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
+    d = _section(raw, "decision", {"threshold", "level"})
+    level = _get_float(d, "level", "decision", 0.9)
+    if not 0.5 <= level < 1.0:
+        raise _where("decision.level", d.get("level"), "a probability from 0.5 up to (not including) 1",
+                     "It is the probability at which a decision counts as made, e.g. 0.9.")
+    decision = Decision(threshold=_get_float(d, "threshold", "decision", None), level=level)
+    tr = _section(raw, "trends", {"multiples"})
+    mult = tr.get("multiples", list(TrendSettings().multiples))
+    if (not isinstance(mult, (list, tuple)) or not mult
+            or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)):
+        raise _where("trends.multiples", mult, "a non-empty list of finite numbers, e.g. [0, 0.5, 1, 2]")
+    if any(float(v) < 0 for v in mult):
+        raise _where("trends.multiples", mult, "multiples of zero or more",
+                     "M scales the largest pre-policy change; a negative multiple has no meaning.")
+    trends = TrendSettings(multiples=tuple(sorted(float(v) for v in mult)))
     x = _section(raw, "crosscheck", {"seed", "draws", "weights", "placebos"})
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
@@ -423,7 +456,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     if not isinstance(title, str):
         raise _where("title", title, "a string")
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
-                            sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
+                            sampler=sampler, decision=decision, crosscheck=crosscheck, trends=trends, title=title,
                             period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary))
 
 
@@ -440,6 +473,12 @@ def _validated(study: Study) -> Study:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
+    if study.model.gap_drift and study.model.family != "gaussian":
+        raise _where("model.gap_drift", True, "false for non-gaussian families",
+                     "Pooled gap drifts are built for the gaussian family only so far.")
+    if study.model.gap_over_time not in ("persistent", "independent"):
+        raise _where("model.gap_over_time", study.model.gap_over_time, "'persistent' or 'independent'",
+                     "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.")
     if study.model.log_outcome and study.model.family != "gaussian":
         raise _where("model.log_outcome", True, "false for non-gaussian families",
                      "Binomial and count families already use a logit or log link.")
@@ -546,6 +585,9 @@ def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
     if path.is_dir():
         raise error(f"{what} '{path}' is a folder, not a file; give the path of the file itself.")
     if not path.exists():
+        if path.is_symlink():
+            raise error(f"{what} '{path}' is a symbolic link that leads nowhere (its target is missing, or the "
+                        "link loops); point it at the file, or give the file's own path.")
         raise error(f"{what} '{path}' does not exist; check the path (relative paths start in the current folder).")
     try:
         data = path.read_bytes()
@@ -579,7 +621,8 @@ def load_study(path: str | Path) -> Study:
 
 
 def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
-               log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
+               log_outcome=False, family="gaussian", covariates=None, missing="error", gap_over_time=None,
+               exposure=None,
                trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
                chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
@@ -594,7 +637,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
                                          target_group=target_group).items() if v is not None},
         "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
-                                        missing=missing).items() if v is not None},
+                                        missing=missing, gap_over_time=gap_over_time).items() if v is not None},
         "priors": dict(priors) if isinstance(priors, Mapping) else (priors or {}),
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},
@@ -622,6 +665,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         "sampler": dataclasses.asdict(study.sampler),
         "decision": {k: v for k, v in dataclasses.asdict(study.decision).items() if v is not None},
         "crosscheck": dataclasses.asdict(study.crosscheck),
+        "trends": {"multiples": list(study.trends.multiples)},
     }
     if study.policy.target_group is not None:
         out["policy"]["target_group"] = study.policy.target_group

@@ -75,7 +75,8 @@ def test_weighted_least_squares_equals_statsmodels_wls(tmp_path, rng, ddd):
     assert ls["estimate"] == pytest.approx(ref.params["treated"], rel=1e-8, abs=1e-10)
     assert ls["se_cr1"] == pytest.approx(ref.bse["treated"], rel=1e-8)
     assert ls["se_classical"] == pytest.approx(classical.bse["treated"], rel=1e-8)
-    assert ls["se_hc1"] is None
+    hc1 = sm.WLS(f["y"], X, weights=f["w"]).fit(cov_type="HC1")
+    assert ls["se_hc1"] == pytest.approx(hc1.bse["treated"], rel=1e-8)
     # weights matter: the unweighted estimate differs
     plain = cross_check(collapse(_study(tmp_path, f.drop(columns="w")), f.drop(columns="w")), full=False)
     assert abs(plain["estimate"] - ls["estimate"]) > 1e-4
