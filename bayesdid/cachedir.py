@@ -140,9 +140,12 @@ def info(cache: CacheDir | None = None) -> dict:
     for sub in SUBFOLDERS:
         files, total = _size(c.path / sub) if (c.path / sub).is_dir() else (0, 0)
         parts[sub] = {"files": files, "bytes": total}
+    from .modelcache import entry_ok
+
     entries = sorted(c.models.glob("*.model")) if c.models.is_dir() else []
+    damaged = sum(not entry_ok(e) for e in entries)
     return {"folder": str(c.path), "chosen_by": c.source, "writable": c.writable, "reason": c.reason,
-            "models": len(entries), "parts": parts,
+            "models": len(entries), "damaged": damaged, "parts": parts,
             "bytes": sum(p["bytes"] for p in parts.values())}
 
 
