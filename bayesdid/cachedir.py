@@ -20,6 +20,7 @@ the run is slower.
 
 from __future__ import annotations
 
+import atexit
 import os
 import shutil
 import sys
@@ -96,7 +97,11 @@ def configure(override: str | os.PathLike | None = None) -> CacheDir:
     _CURRENT = CacheDir(path=path, source=source, writable=writable, reason=reason)
     os.environ[ENV_VAR] = str(path)  # worker processes follow
     if "pytensor" not in sys.modules:
-        compiledir = path / "pytensor" if writable else Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
+        if writable:
+            compiledir = path / "pytensor"
+        else:  # private to this process, and removed when it ends
+            compiledir = Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
+            atexit.register(shutil.rmtree, compiledir, ignore_errors=True)
         flags = [f for f in os.environ.get("PYTENSOR_FLAGS", "").split(",")
                  if f and not f.strip().startswith(("base_compiledir", "generated_src_dir"))]
         # generated_src_dir: without it PyTensor writes the Python source it generates for each
