@@ -21,9 +21,11 @@ import xarray as xr
 from . import __version__
 from .cells import Cells, collapse
 from .crosscheck import cross_check, cross_check_not_applicable
+from .contracts import run_id
 from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, FewAdoptersWarning
+from .model.registry import model_priors
 from .model.terms import resolve_scales
 from .outputs import atomic_folder
 from .sample import Fit, fit_cells
@@ -188,6 +190,8 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     sens = power_scaling(fit)
     timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s,
               "sensitivity_s": time.perf_counter() - t0}
+    has = model_priors(study.model.family, cells.design, len(cells.adopters), "covariates" in cells.extra)
+    priors = {k: v for k, v in priors.items() if k in has}  # only the priors the fitted model has
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
                     timing=timing, data_sha256=digest, notes=notes, sensitivity=sens)
 
@@ -259,6 +263,8 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
         tree.to_netcdf(tmp / "posterior.nc", engine="h5netcdf")
         summary = an.summary()
         summary["timing"]["write_s"] = time.perf_counter() - t0
+        rid = run_id(an.data_sha256, study_to_dict(an.study))
+        summary["identity"] = {"data_sha256": an.data_sha256, "run_id": rid}
         dump_json(summary, tmp / "summary.json")
         manifest = {
             "bayesdid": __version__,
@@ -268,6 +274,7 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
             "sampler": {"name": "nutpie (NUTS)", "chains": an.study.sampler.chains,
                         "draws": an.study.sampler.draws, "tune": an.study.sampler.tune},
             "data_sha256": an.data_sha256,
+            "run_id": rid,
             "table": str(an.study.table),
             "study": study_to_dict(an.study),
             "command": list(argv) if argv is not None else sys.argv,

@@ -31,6 +31,7 @@ __all__ = [
     "make_study",
     "study_to_dict",
     "PRIOR_NAMES",
+    "STUDY_KEYS",
     "FAMILIES",
     "SAMPLER_LIMITS",
     "read_text_utf8",
@@ -230,6 +231,22 @@ class CrossCheckSettings:
 
 
 @dataclass(frozen=True)
+class Wording:
+    """How the report and the headline name things (study-file section ``[wording]``, all optional).
+
+    ``policy`` the policy's name ("the copay cap"), ``outcome`` what the outcome is ("out-of-pocket
+    spending"), ``unit`` its unit ("dollars per enrollee-quarter"), ``target`` the target group
+    ("chronic-condition enrollees"). Absent: "the policy", "the outcome (<column>)", none, the
+    target group's level.
+    """
+
+    policy: str | None = None
+    outcome: str | None = None
+    unit: str | None = None
+    target: str | None = None
+
+
+@dataclass(frozen=True)
 class Study:
     """A validated study. Build with :func:`load_study` or :func:`make_study`."""
 
@@ -245,6 +262,7 @@ class Study:
     period_order: tuple | None = None
     placebo_lag: int | None = None
     summary: str | None = None  # what a row holds (SUMMARIES); None: one observation
+    wording: Wording = field(default_factory=Wording)
 
     @property
     def design(self) -> str:
@@ -261,7 +279,7 @@ class Study:
 
 #: Study field -> section of the study file that holds it.
 _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck"}
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "wording": "wording"}
 
 
 def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -312,9 +330,18 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "wording"}
+WORDING_KEYS = ("policy", "outcome", "unit", "target")
+#: Every key the study file accepts, by section ("" = top level); the parser reads its allowed keys
+#: from here, and tests/test_readme_keys.py checks each is documented in the README and read by the code.
+STUDY_KEYS: dict[str, tuple[str, ...]] = {}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
               "period_order", "summary", "weight", "count", "sd", "se"}
+STUDY_KEYS.update({
+    "": ("title",), "data": tuple(sorted(_DATA_KEYS)), "policy": ("adopters", "target_group"),
+    "model": ("family", "log_outcome", "covariates", "missing"), "priors": tuple(PRIOR_NAMES),
+    "sampler": ("chains", "draws", "tune", "seed"), "decision": ("threshold",),
+    "crosscheck": ("seed", "draws", "weights", "placebos"), "checks": ("placebo_lag",), "wording": WORDING_KEYS})
 
 #: What one row of the table holds (``data.summary``): absent = one observation per row.
 SUMMARIES = {
@@ -381,7 +408,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         raise _where("policy", pol, "a [policy] table with 'adopters' (and 'target_group' for DDD)")
     if not isinstance(pol, Mapping):
         raise StudyError("the study needs a [policy] section with 'adopters' (and 'target_group' for DDD).")
-    _check_keys(pol, {"adopters", "target_group"}, "policy")
+    _check_keys(pol, set(STUDY_KEYS["policy"]), "policy")
     adopters = pol.get("adopters")
     if not isinstance(adopters, Mapping) or not adopters:
         raise _where("policy.adopters", adopters,
@@ -389,7 +416,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing"})
+    m = _section(raw, "model", set(STUDY_KEYS["model"]))
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
@@ -398,14 +425,14 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
-    s = _section(raw, "sampler", {"chains", "draws", "tune", "seed"})
+    s = _section(raw, "sampler", set(STUDY_KEYS["sampler"]))
     defaults = SamplerSettings()
     sampler = SamplerSettings(**{
         k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
         for k, (lo, hi) in SAMPLER_LIMITS.items()})
-    d = _section(raw, "decision", {"threshold"})
+    d = _section(raw, "decision", set(STUDY_KEYS["decision"]))
     decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
-    x = _section(raw, "crosscheck", {"seed", "draws", "weights", "placebos"})
+    x = _section(raw, "crosscheck", set(STUDY_KEYS["crosscheck"]))
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
         raise _where("crosscheck.weights", weights, f"one of {list(CROSSCHECK_WEIGHTS)}")
@@ -415,16 +442,22 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         weights=weights,
         placebos=_get_int(x, "placebos", "crosscheck", 999, minimum=1),
     )
-    c = _section(raw, "checks", {"placebo_lag"})
+    c = _section(raw, "checks", set(STUDY_KEYS["checks"]))
     lag = c.get("placebo_lag")
     if lag is not None:
         lag = _get_int(c, "placebo_lag", "checks", None, minimum=1)
     title = raw.get("title", "bayesdid study")
     if not isinstance(title, str):
         raise _where("title", title, "a string")
+    w = _section(raw, "wording", set(WORDING_KEYS))
+    for k, v in w.items():
+        if not isinstance(v, str) or not v.strip():
+            raise _where(f"wording.{k}", v, "a non-empty string (words for the report)")
+    wording = Wording(**{k: w[k].strip() for k in WORDING_KEYS if k in w})
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
                             sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
-                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary))
+                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary,
+                            wording=wording))
 
 
 def _validated(study: Study) -> Study:
@@ -583,7 +616,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
                trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
                chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
-               crosscheck=None) -> Study:
+               crosscheck=None, wording=None) -> Study:
     """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
     raw: dict[str, Any] = {
         "title": title,
@@ -600,6 +633,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "decision": {} if threshold is None else {"threshold": threshold},
         "checks": {} if placebo_lag is None else {"placebo_lag": placebo_lag},
         "crosscheck": dict(crosscheck) if isinstance(crosscheck, Mapping) else (crosscheck or {}),
+        "wording": dict(wording) if isinstance(wording, Mapping) else (wording or {}),
     }
     return _parse(raw, Path.cwd())
 
@@ -627,4 +661,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         out["policy"]["target_group"] = study.policy.target_group
     if study.placebo_lag is not None:
         out["checks"] = {"placebo_lag": study.placebo_lag}
+    wording = {k: v for k, v in dataclasses.asdict(study.wording).items() if v is not None}
+    if wording:
+        out["wording"] = wording
     return out
