@@ -164,9 +164,23 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         say("least-squares cross-check" + ("" if full_cross_check else " (estimate and standard errors only)"))
     t0 = time.perf_counter()
     x = study.crosscheck
+    ls_cells, ls_note = cells, None
+    if study.model.family != "gaussian" and "covariates" in cells.extra:
+        # Least squares on cells regresses the cells' proportions or rates; the model's covariates act
+        # on the link scale, which a linear regression on cell means cannot reproduce. The cross-check
+        # is then the unadjusted one, and says so.
+        import dataclasses
+
+        ls_cells = dataclasses.replace(cells, extra={k: v for k, v in cells.extra.items() if k != "covariates"})
+        ls_note = (f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
+                   f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
+                   "regression on the cells' " + ("proportions" if study.model.family == "binomial" else "rates")
+                   + " cannot reproduce; read it as the unadjusted difference")
     try:
-        ls = least_squares if least_squares is not None else cross_check(cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
+        ls = least_squares if least_squares is not None else cross_check(ls_cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
                          full=full_cross_check)
+        if ls_note and least_squares is None:
+            ls["covariates_note"] = ls_note
     except BayesDidError as exc:  # the posterior stands; the cross-check says why it cannot run
         ls = cross_check_not_applicable(str(exc))
     crosscheck_s = time.perf_counter() - t0

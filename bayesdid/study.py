@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
+from . import frames
 from .errors import StudyError
 
 __all__ = [
@@ -370,7 +371,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     _check_keys(data, _DATA_KEYS, "data")
     table = _get_str(data, "table", "data")
     path = Path(table)
-    if not path.is_absolute():
+    if not path.is_absolute() and not frames.is_memory(table):
         path = (base_dir / path).resolve()
     cols = Columns(
         outcome=_get_str(data, "outcome", "data"),
@@ -617,7 +618,12 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
                chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
                crosscheck=None, wording=None) -> Study:
-    """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
+    """Build a validated study in Python, without a file. Arguments mirror the study-file keys.
+
+    ``table`` is a path or a pandas DataFrame (kept in memory, see :mod:`bayesdid.frames`).
+    """
+    if hasattr(table, "dtypes") and hasattr(table, "columns"):  # a data frame (notebook use)
+        table = frames.register(table)
     raw: dict[str, Any] = {
         "title": title,
         "data": {k: v for k, v in dict(table=os.fspath(table) if isinstance(table, os.PathLike) else table, outcome=outcome, jurisdiction=jurisdiction,

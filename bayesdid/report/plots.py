@@ -12,6 +12,7 @@ marker shape).
 
 from __future__ import annotations
 
+import contextlib
 import io
 
 import matplotlib
@@ -20,7 +21,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-__all__ = ["PALETTE", "svg_of", "effect_figure", "interval_figure", "event_time_figure", "band_figure", "comparison_figure",
+__all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure", "event_time_figure", "band_figure", "comparison_figure",
            "placebo_figure"]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
@@ -54,11 +55,35 @@ _RC = {
 }
 
 
+_COLLECTED: list | None = None
+_SECTION = [""]
+
+
+@contextlib.contextmanager
+def collect_figures():
+    """Keep every figure drawn inside the block, open, as (section, matplotlib Figure) pairs (the
+    notebook API reads the report's figures this way; the page itself is unchanged)."""
+    global _COLLECTED
+    prev, _COLLECTED = _COLLECTED, []
+    try:
+        yield _COLLECTED
+    finally:
+        _COLLECTED = prev
+
+
+def in_section(name: str) -> None:
+    """Name the report section the next figures belong to (for :func:`collect_figures`)."""
+    _SECTION[0] = name
+
+
 def svg_of(fig) -> str:
     """The figure as standalone SVG text (no metadata date, so output is reproducible)."""
     buf = io.StringIO()
     fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None, "Creator": "bayesdid"})
-    plt.close(fig)
+    if _COLLECTED is not None:
+        _COLLECTED.append((_SECTION[0], fig))
+    else:
+        plt.close(fig)
     return buf.getvalue()
 
 
