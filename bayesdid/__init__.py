@@ -11,11 +11,26 @@ Typical use::
 
 __version__ = "0.1.0"
 
+# The compile cache folder must be chosen before PyTensor or numba is imported (they read their
+# folders at import); the command line may choose another one with --cache-dir before its first
+# heavy import, which is why the names of .run are imported lazily below.
+from . import cachedir as _cachedir  # noqa: E402
+
+_cachedir.configure()
+
 from .errors import (BayesDidError, DataRoleError, DiagnosticsWarning, FewAdoptersWarning,  # noqa: E402
                      StudyError)
 from .study import Study, load_study, make_study  # noqa: E402
 from .cells import Cells, collapse  # noqa: E402
-from .run import Analysis, analyse, write_run  # noqa: E402
+
+
+def __getattr__(name):
+    if name in ("Analysis", "analyse", "write_run"):
+        from . import run
+
+        return getattr(run, name)
+    raise AttributeError(f"module 'bayesdid' has no attribute {name!r}")
+
 
 __all__ = ["__version__", "BayesDidError", "DataRoleError", "DiagnosticsWarning", "FewAdoptersWarning",
            "StudyError", "Study", "load_study", "make_study", "Cells", "collapse", "Analysis", "analyse",

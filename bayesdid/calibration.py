@@ -44,6 +44,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from .errors import BayesDidError
 from .simulate import Scenario, simulate
@@ -57,6 +58,8 @@ LEVELS = (0.5, 0.9, 0.95)
 SBC_DRAWS = 99
 #: Equal-width bins of the SBC chi-square test (SBC_DRAWS + 1 = 100 rank values, 10 per bin).
 SBC_BINS = 10
+#: Parameters whose SBC ranks are tested (rho only when the model has persistent gap noise).
+SBC_PARAMETERS = ("tau", "sigma_gap", "rho")
 #: Methods compared in the coverage study.
 METHODS = ("posterior", "cr1", "wild", "permutation")
 
@@ -69,6 +72,9 @@ class CalibrationScenario:
     scenario: Scenario
     about: str
     model_assumes: bool = True  # False: the noise departs from the model's assumptions
+    #: "simulated" (the scenario's rows) or "castle_placebo" (the causaldata castle panel, its real
+    #: adopters dropped, one random remaining state given a fake policy from a random year; truth 0)
+    source: str = "simulated"
 
 
 def _sc(**kw) -> Scenario:
@@ -98,6 +104,59 @@ SCENARIOS: dict[str, CalibrationScenario] = {
 }
 
 
+def _ar1(**kw) -> Scenario:
+    """Persistent gap noise dominating the cells (as in the issue's table): 40 jurisdictions, 12 periods,
+    one adopter from period 7, gap sd 0.2, about 400 rows per cell, effect -0.1."""
+    base = dict(jurisdictions=40, periods=12, groups=2, starts={0: 6}, rows_per_cell=400.0, tau=-0.1,
+                gap_sd=0.2, shock_sd=0.1, residual_sd=1.0)
+    base.update(kw)
+    return Scenario(**base)
+
+
+SCENARIOS.update({
+    "ar1_ddd_0": CalibrationScenario(
+        "ar1_ddd_0", _ar1(gap_rho=0.0),
+        "DDD, 40 jurisdictions x 12 periods, one adopter from period 7, about 400 rows per cell, gap noise "
+        "sd 0.2 independent over periods (rho 0), effect -0.1"),
+    "ar1_ddd_05": CalibrationScenario(
+        "ar1_ddd_05", _ar1(gap_rho=0.5), "as ar1_ddd_0 with AR(1) gap noise, rho 0.5"),
+    "ar1_ddd_08": CalibrationScenario(
+        "ar1_ddd_08", _ar1(gap_rho=0.8), "as ar1_ddd_0 with AR(1) gap noise, rho 0.8"),
+    "ar1_did_08": CalibrationScenario(
+        "ar1_did_08", _ar1(groups=1, gap_rho=0.8), "DiD version of ar1_ddd_08 (jurisdiction-period noise AR(1), rho 0.8)"),
+    "ar1_staggered_08": CalibrationScenario(
+        "ar1_staggered_08", _ar1(jurisdictions=42, starts={0: 5, 1: 6, 2: 7}, gap_rho=0.8),
+        "as ar1_ddd_08 with three adopters starting in periods 6, 7 and 8"),
+    "one_row_did": CalibrationScenario(
+        "one_row_did", Scenario(jurisdictions=50, periods=16, groups=1, starts={0: 8}, rows_per_cell=1,
+                                fixed_cells=True, tau=-0.1, gap_sd=0.1, gap_rho=0.5, residual_sd=0.05),
+        "DiD with one row per jurisdiction-period, as state-year data come: 50 jurisdictions, 16 periods, one "
+        "adopter from period 9, AR(1) jurisdiction-period noise sd 0.1 with rho 0.5 plus row noise sd 0.05, effect -0.1"),
+    "castle_placebo": CalibrationScenario(
+        "castle_placebo", Scenario(groups=1, tau=0.0),
+        "placebo laws on the castle-doctrine state panel of the causaldata package (2000-2010, one row per "
+        "state and year, outcome log homicide rate): the states that ever adopted are dropped, each rep gives "
+        "one random remaining state a fake policy from a random year 2003-2009; the truth is no effect, so "
+        "coverage is one minus the false-positive rate", source="castle_placebo"),
+})
+
+
+def castle_placebo_frame(seed: int):
+    """(frame, truth) of one placebo-law rep on the castle panel (see the scenario's text)."""
+    from causaldata import castle
+
+    d = castle.load_pandas().data
+    adopted = set(d.loc[d["post"] > 0, "sid"])
+    keep = d[~d["sid"].isin(adopted)]
+    rng = np.random.default_rng(seed)
+    states = sorted(set(keep["sid"]))
+    fake = int(rng.choice(states))
+    year = int(rng.integers(2003, 2010))
+    frame = pd.DataFrame({"region": "S" + keep["sid"].astype(int).astype(str), "period": keep["year"].astype(int),
+                          "y": np.log(keep["homicide"].to_numpy(float))})
+    return frame, {"tau": 0.0, "tau_adopter": {f"S{fake}": 0.0}, "starts": {f"S{fake}": year}}
+
+
 @dataclass(frozen=True)
 class RepTask:
     """One rep: everything a worker needs (picklable)."""
@@ -125,6 +184,12 @@ def _scenario(name: str) -> CalibrationScenario:
     if name not in SCENARIOS:
         raise BayesDidError(f"calibration scenario '{name}' is unknown; choose one of {sorted(SCENARIOS)}.")
     return SCENARIOS[name]
+
+
+def _frame_of(cs: CalibrationScenario, seed: int):
+    if cs.source == "castle_placebo":
+        return castle_placebo_frame(seed)
+    return simulate(cs.scenario, seed)
 
 
 def _cells_of(frame, sc: Scenario, truth: dict):
@@ -164,7 +229,7 @@ def _coverage_rep(task: RepTask) -> dict:
 
     cs = _scenario(task.scenario)
     data_seed, sampler_seed = task.seeds
-    frame, truth = simulate(cs.scenario, data_seed)
+    frame, truth = _frame_of(cs, data_seed)
     cells = _cells_of(frame, cs.scenario, truth)
     effect_j = np.zeros(len(cells.jurisdictions))
     for name, v in truth["tau_adopter"].items():
@@ -231,14 +296,24 @@ def _draw_prior(cells, prior: dict, rng: np.random.Generator) -> tuple[dict, np.
     else:
         sigma_tau, tau_a = None, np.array([tau])
     m += np.tensordot(tau_a, _treat_by_adopter(cells), axes=1)
-    sigma = hn(S["residual"], G)
+    from .model.structure import RHO_PRIOR, gap_structure, residual_rule
+
+    sigma = hn(S["residual"], G) if residual_rule(cells)["separate"] else np.zeros(G)
     sigma_gap = hn(S["gap_noise"])
-    m[:, cells.target, :] += sigma_gap * rng.standard_normal((J, T))
+    e = rng.standard_normal((J, T))
+    rho = None
+    if gap_structure(cells).over_time == "persistent":
+        rho = 2.0 * rng.beta(RHO_PRIOR["a"], RHO_PRIOR["b"]) - 1.0
+        for t in range(1, T):  # stationary AR(1), marginal sd sigma_gap
+            e[:, t] = rho * e[:, t - 1] + np.sqrt(1.0 - rho * rho) * e[:, t]
+    m[:, cells.target, :] += sigma_gap * e
     if G == 2:
         sigma_shock = hn(S["shock_spread"])
         sd_j = np.where(is_adopter, S["period"], sigma_shock)
         m += (sd_j[:, None] * rng.standard_normal((J, T)))[:, None, :]
     truth = {"tau": float(tau), "sigma_gap": float(sigma_gap)}
+    if rho is not None:
+        truth["rho"] = float(rho)
     return truth, m, np.broadcast_to(sigma[None, :, None], (J, G, T))
 
 
@@ -254,7 +329,7 @@ def _sbc_rep(task: RepTask) -> dict:
     cs = _scenario(task.scenario)
     data_seed, sampler_seed = task.seeds
     rng = np.random.default_rng(data_seed)
-    frame, truth0 = simulate(cs.scenario, data_seed)
+    frame, truth0 = _frame_of(cs, data_seed)
     template = _cells_of(frame, cs.scenario, truth0)  # the design (n per cell, starts) of this rep
     truth, mean, sd = _draw_prior(template, task.sbc_prior, rng)
     n = template.n
@@ -266,7 +341,9 @@ def _sbc_rep(task: RepTask) -> dict:
     row = {"rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
            "diagnostics_ok": bool(fit.diagnostics.get("ok")), "sample_s": fit.timing["sample_s"],
            "compile_s": fit.timing["compile_s"]}
-    for name in ("tau", "sigma_gap"):
+    for name in SBC_PARAMETERS:
+        if name not in truth:
+            continue
         d = fit.draws(name).ravel()
         keep = d[np.linspace(0, d.size - 1, SBC_DRAWS).round().astype(int)]
         row[f"{name}_truth"] = truth[name]
@@ -293,7 +370,7 @@ def sbc_prior(scenario: str, base_seed: int) -> dict:
     from .study import PriorScales
 
     cs = _scenario(scenario)
-    frame, truth = simulate(cs.scenario, int(base_seed))
+    frame, truth = _frame_of(cs, int(base_seed))
     cells = _cells_of(frame, cs.scenario, truth)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
     return {"scales": scales, "location": float(cells.outcome_mean), "sd": float(cells.outcome_sd)}
@@ -392,8 +469,8 @@ def sbc_table(rows: list[dict]) -> dict:
     out = {"draws_ranked": SBC_DRAWS, "bins": SBC_BINS, "reps": len(ok),
            "method": "rank of the prior draw among 99 thinned posterior draws (Talts et al. 2018); Pearson "
                      "chi-square of the bin counts against equal expected counts, SBC_BINS - 1 degrees of freedom"}
-    for name in ("tau", "sigma_gap"):
-        ranks = np.array([r[f"{name}_rank"] for r in ok], int)
+    for name in SBC_PARAMETERS:
+        ranks = np.array([r[f"{name}_rank"] for r in ok if f"{name}_rank" in r], int)
         if ranks.size == 0:
             out[name] = {"p_value": None, "reason": "not applicable: no SBC rep finished"}
             continue
@@ -430,18 +507,19 @@ def ecdf_band(N: int, L: int = SBC_DRAWS, prob: float = 0.95, sims: int = 2000, 
 
 
 def plot_sbc(rows: list[dict], path: Path, title: str) -> Path:
-    """ECDF-difference plot of the SBC ranks of tau and sigma_gap with simultaneous 95% bands."""
+    """ECDF-difference plot of the SBC ranks of tau, sigma_gap (and rho) with simultaneous 95% bands."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
     ok = [r for r in rows if r.get("ok")]
-    fig, axes = plt.subplots(1, 2, figsize=(9, 3.6), sharey=True)
+    names = [n for n in SBC_PARAMETERS if n in ("tau", "sigma_gap") or any(f"{n}_rank" in r for r in ok)]
+    fig, axes = plt.subplots(1, len(names), figsize=(4.5 * len(names), 3.6), sharey=True)
     N = len(ok)
     if N:
         z, lo, hi = ecdf_band(N)
-    for ax, name in zip(axes, ("tau", "sigma_gap")):
+    for ax, name in zip(axes, names):
         if N:
             ranks = np.array([r[f"{name}_rank"] for r in ok])
             F = (ranks[:, None] < np.arange(1, SBC_DRAWS + 2)[None, :]).mean(axis=0)

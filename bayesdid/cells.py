@@ -197,8 +197,8 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
     if weighted is not None:
         shape = (J, G, T)
         return replace(cells, extra={"family": "gaussian", "weights": {
-            "column": cols.weight, "sum_w": weighted["sum_w"].reshape(shape), "ss_w": weighted["ss_w"].reshape(shape),
-            "rows": weighted["rows"].reshape(shape)},
+            "column": cols.weight, **{k: weighted[k].reshape(shape) for k in
+                                      ("sum_w", "ss_w", "rows", "sum_w2", "w2_dev", "w2_dev2")}},
             "likelihood": "exact on cells for the Hajek means with Kish effective sizes (jurisdiction-period shock "
                           "and gap noise integrated out); within-cell spread by moment match"})
     if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
@@ -398,6 +398,18 @@ def _coverage(study: Study, cells: Cells) -> list[str]:
     return [msg]
 
 
+def _gap_of(study: Study, cells: Cells):
+    """The gap noise's structure over periods for this study (see :mod:`bayesdid.model.structure`)."""
+    from .model.structure import GapStructure, resolve_gap
+
+    asked = study.model.gap_over_time
+    if study.model.family != "gaussian" and asked == "persistent":
+        return GapStructure(over_time="independent", requested=asked, fallback=(
+            f"the persistent (AR(1)) gap noise is built for the gaussian family only so far; family "
+            f"'{study.model.family}' fits its gap noise as independent over periods."))
+    return resolve_gap(cells, asked, study.model.gap_drift, warn=False)  # warned when the model is fitted (run.analyse)
+
+
 def collapse(study: Study, frame: pd.DataFrame) -> Cells:
     """Check the roles of ``frame`` and collapse it to cells.
 
@@ -432,6 +444,7 @@ def collapse(study: Study, frame: pd.DataFrame) -> Cells:
             raise DataRoleError(f"adopter '{cells.jurisdictions[j]}' has no rows in the target group "
                                 "before or after its start; it cannot inform the effect.")
     _refuse_constant(study, checked, cells)
+    cells = replace(cells, extra={**cells.extra, "gap": _gap_of(study, cells)})
     notes = _coverage(study, cells)
     if notes:
         cells = replace(cells, extra={**cells.extra, "warnings": notes})

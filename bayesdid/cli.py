@@ -243,6 +243,46 @@ def cmd_checks(args, argv):
     return EXIT_OK
 
 
+def cmd_trends(args, argv):
+    """Parallel-trends sensitivity of a run folder: rewrite its trends.csv and summary.json's section."""
+    import os
+
+    from .run import dump_json
+    from .trends import trends_from_run, write_trends
+
+    mult = None
+    if args.multiples is not None:
+        try:
+            mult = [float(v) for v in args.multiples.split(",") if v.strip()]
+        except ValueError:
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r}: expected numbers separated by "
+                                "commas, e.g. 0,0.5,1,2.") from None
+        if not mult or any(not math.isfinite(v) or v < 0 for v in mult):
+            raise BayesDidError(f"command-line option --multiples {args.multiples!r} (trends.multiples): expected "
+                                "zero or positive finite numbers; M scales the largest pre-policy change.")
+        mult = sorted(mult)
+    run = Path(args.run_dir)
+    tb = trends_from_run(run, multiples=mult)
+    summary_path = run / "summary.json"
+    summary = json.loads(summary_path.read_text(encoding="utf-8"))
+    summary["parallel_trends"] = tb.to_dict()
+    tmp = run / ".summary.json.tmp"
+    dump_json(summary, tmp)
+    if tb.rows:
+        write_trends(tb, run)
+    os.replace(tmp, summary_path)
+    if tb.status != "ok":
+        print(f"parallel-trends sensitivity: {tb.status} ({tb.reason})")
+        return EXIT_OK
+    print("M      95% interval of the effect (model scale)   P(reduction)  P(increase)")
+    for r in tb.rows:
+        print(f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
+              f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}")
+    print(tb.sentence)
+    print(f"written to {run / 'trends.csv'} and summary.json (parallel_trends)")
+    return EXIT_OK
+
+
 def cmd_sweep(args, argv):
     from .sweep import check_sweep_folder, load_sweep, run_sweep
 
@@ -270,6 +310,30 @@ def cmd_sweep(args, argv):
     return EXIT_OK
 
 
+def cmd_plan(args, argv):
+    from .plan import load_plan, progress_path, run_plan, with_overrides, write_plan
+    from .report.plan_page import plan_sentences
+    from .run import atomic_folder
+
+    plan = with_overrides(load_plan(args.plan), reps=args.reps, draws=args.draws, tune=args.tune, seed=args.seed)
+    atomic_folder(args.out, replace=args.replace, kind="plan").check()  # before any work
+    progress = progress_path(args.out)
+    Path(args.out).parent.mkdir(parents=True, exist_ok=True)
+    result = run_plan(plan, workers=args.workers, cluster=args.cluster, progress_file=progress,
+                      progress=not args.quiet, log=None if args.quiet else _say)
+    path = write_plan(result, args.out, replace=args.replace, argv=argv)
+    for line in plan_sentences(result["summary"]):
+        print(line)
+    print(f"plan results in {path}")
+    failed = result["summary"]["failed"]
+    if failed:
+        _say(f"{len(failed)} rep(s) failed (errors in {path}/plan.json); the tables use the others. The finished "
+             f"reps are kept in {progress}: rerun the same command with --replace to retry the failed ones.")
+        return EXIT_VARIANTS_FAILED
+    progress.unlink(missing_ok=True)
+    return EXIT_OK
+
+
 # ---- bench calibration options (issue 8) ----
 _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
                         "replace", "large", "rows")
@@ -278,7 +342,8 @@ _CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_re
 def _add_calibration_options(b):
     c = b.add_argument_group("calibration (bayesdid bench calibration)")
     c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
-    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails")
+    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
+                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo")
     c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
                                  "(default runs/calibration-SCENARIO)")
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
@@ -298,7 +363,7 @@ def _add_calibration_options(b):
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
 _BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
                   "weights": {"reps", "draws", "tune", "seed"},
-                  "panel": {"reps", "draws", "tune", "seed"}}
+                  "panel": {"reps", "draws", "tune", "seed"}, "plan": {"reps", "workers", "cluster"}}
 
 
 def _calibration_kwargs(args) -> dict:
@@ -315,6 +380,31 @@ def _calibration_kwargs(args) -> dict:
     return given
 
 
+def cmd_cache(args, argv):
+    from . import cachedir
+
+    c = cachedir.current()
+    if args.action == "clear":
+        before = cachedir.clear(c)
+        print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
+              f"from {c.path}")
+        return EXIT_OK
+    i = cachedir.info(c)
+    print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
+    print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
+    print(f"compiled models: {i['models']}")
+    for sub, p in i["parts"].items():
+        print(f"  {sub}/: {p['files']} file(s), {p['bytes'] / 1e6:.1f} MB")
+    print("clear it with: bayesdid cache clear")
+    return EXIT_OK
+
+
+def _add_cache_dir(p, top: bool = False):
+    p.add_argument("--cache-dir", metavar="FOLDER", default=None if top else argparse.SUPPRESS,
+                   help="compile cache folder (default: $BAYESDID_CACHE_DIR, else $XDG_CACHE_HOME/bayesdid, "
+                        "else ~/.cache/bayesdid)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="bayesdid",
@@ -322,7 +412,8 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=textwrap.dedent("""\
             exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
-            4 some sweep variants failed (recorded; rerun to retry)"""))
+            4 some sweep variants or plan reps failed (recorded; rerun to retry)"""))
+    _add_cache_dir(p, top=True)
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
     f.add_argument("study", help="study file (TOML)")
@@ -364,12 +455,35 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
+    t = sub.add_parser("trends", help="how far parallel trends may fail before the conclusion changes "
+                                      "(relative-magnitudes bound over a grid of M) for a run folder")
+    t.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
+    t.add_argument("--multiples", help="grid of M, comma-separated (default: the study's trends.multiples)")
+    t.set_defaults(func=cmd_trends)
+    pl = sub.add_parser("plan", help="assurance before the data: simulate and fit a proposed evaluation's layout")
+    pl.add_argument("plan", help="plan file (TOML): layout, noise, true effects, decision rule")
+    pl.add_argument("--out", required=True, help="folder for plan.json, the CSV tables, the figure and report.html")
+    pl.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2; "
+                                                          "1 runs in this process)")
+    pl.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local'")
+    pl.add_argument("--reps", type=int, help="data sets per layout and effect (overrides simulation.reps)")
+    pl.add_argument("--draws", type=int, help="draws per chain (overrides simulation.draws)")
+    pl.add_argument("--tune", type=int, help="tuning steps per chain (overrides simulation.tune)")
+    pl.add_argument("--seed", type=int, help="base seed (overrides simulation.seed)")
+    pl.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
+    pl.add_argument("--quiet", action="store_true", help="no progress display")
+    pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel")
+                                  "weights, panel, plan, compile")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
+    k = sub.add_parser("cache", help="show or clear the compile cache (compiled models kept between runs)")
+    k.add_argument("action", choices=("info", "clear"), help="info: where it is and what it holds; clear: empty it")
+    k.set_defaults(func=cmd_cache)
+    for sp in (f, d, a, c, w, pl, b, k):
+        _add_cache_dir(sp)
     return p
 
 
@@ -386,10 +500,22 @@ def _show_warning(message, category, filename, lineno, file=None, line=None, _de
         _default(message, category, filename, lineno, file, line)
 
 
+def _use_cache_dir(folder: str) -> None:
+    """Point the compile cache at ``folder`` before PyTensor and numba are imported."""
+    from . import cachedir
+
+    if "pytensor" in sys.modules and cachedir.current().path != cachedir.resolve(folder)[0]:
+        _say(f"--cache-dir {folder}: PyTensor is already loaded in this process, so only bayesdid's compiled "
+             "models go there; PyTensor's own files stay in " + str(cachedir.current().path))
+    cachedir.configure(folder)
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.cache_dir is not None:
+        _use_cache_dir(args.cache_dir)
     with warnings.catch_warnings():
         warnings.showwarning = _show_warning
         try:

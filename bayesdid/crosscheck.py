@@ -69,6 +69,7 @@ __all__ = [
     "cell_design",
     "least_squares_estimate",
     "cross_check",
+    "permutation_test",
     "cross_check_not_applicable",
     "bootstrap_weights",
     "WEIGHT_KINDS",
@@ -170,6 +171,7 @@ class _Design:
     covariates: tuple = ()
     bounds: np.ndarray | None = None  # first kept cell of each cluster
     nobs: float | None = None  # rows, when n holds summed sampling weights instead of row counts
+    weighted_hc1: tuple | None = None  # per-cell sum w^2, sum w^2 (y - ybar), sum w^2 (y - ybar)^2
     cache: dict = field(default_factory=dict)
 
     @property
@@ -213,12 +215,14 @@ def _design(cells: Cells) -> _Design:
         raise BayesDidError("the least-squares cross-check found no non-empty cells; check the table's rows.")
     n = cells.n.ravel()[keep].astype(float)
     ybar = cells.sum_y.ravel()[keep] / n
-    ss, nobs = cells.ss.ravel()[keep], None
+    ss, nobs, hc1_parts = cells.ss.ravel()[keep], None, ()
     sampling = cells.extra.get("weights") if cells.extra else None
     if sampling is not None:  # weighted least squares: cell weights sum w, within sums sum w (y - ybar_w)^2
         n = np.asarray(sampling["sum_w"], dtype=float).ravel()[keep]
         ss = np.asarray(sampling["ss_w"], dtype=float).ravel()[keep]
         nobs = float(np.asarray(sampling["rows"]).ravel()[keep].sum())
+        hc1_parts = tuple(np.asarray(sampling[k], dtype=float).ravel()[keep] for k in ("sum_w2", "w2_dev", "w2_dev2")
+                          if k in sampling)
     panel = cells.extra.get("panel") if cells.extra else None
     absorbed = 0
     if panel is not None:  # unit fixed effects by centring: the regression with unit dummies
@@ -238,7 +242,8 @@ def _design(cells: Cells) -> _Design:
     assert np.all(np.diff(jj) >= 0)  # cells are ordered jurisdiction-major
     bounds = np.flatnonzero(np.r_[True, np.diff(jj) > 0])
     des = _Design(cells=cells, keep=keep, jj=jj, gg=gg, tt=tt, cluster=code[jj], cluster_jur=cj, n=n,
-                  ybar=ybar, ss=ss, U=u[:, :r], rank=r + absorbed, columns=F.shape[1], bounds=bounds, nobs=nobs)
+                  ybar=ybar, ss=ss, U=u[:, :r], rank=r + absorbed, columns=F.shape[1], bounds=bounds, nobs=nobs,
+                  weighted_hc1=hc1_parts if len(hc1_parts) == 3 else None)
     cov = cells.extra.get("covariates") if cells.extra else None
     if cov:
         missing = [k for k in ("names", "sx", "sxx", "sxy") if k not in cov]
@@ -344,10 +349,14 @@ def _errors(des: _Design, f: _Fit) -> dict:
     out["factor_cr1"] = cr1
     out["factor_hc1"] = N / f.dof
     out["hc1_reason"] = None
-    if des.nobs is not None:
+    if des.nobs is not None and des.weighted_hc1 is None:
         out["se_hc1"] = None
-        out["hc1_reason"] = ("not computed with sampling weights (its meat needs per-cell sums of w^2 e^2); "
-                             "CR1 and the wild cluster bootstrap are weighted")
+        out["hc1_reason"] = ("not computed: the cells lack the per-cell sums of w^2, w^2 e and w^2 e^2 that its meat "
+                             "needs; CR1 and the wild cluster bootstrap are weighted")
+    elif des.nobs is not None:  # weighted rows: sum_i w_i^2 e_i^2 with e_i = (y_i - ybar_c) + rbar_c
+        sw2, w2d, w2d2 = des.weighted_hc1
+        e2 = w2d2 + 2 * f.rbar * w2d + f.rbar ** 2 * sw2
+        out["se_hc1"] = math.sqrt(N / f.dof * float((e2 * (a[0] * f.Wt[:, 0]) ** 2).sum()))
     elif not des.K:
         e2 = f.within_ssr + n * f.rbar ** 2
         out["se_hc1"] = math.sqrt(N / f.dof * float((e2 * (a[0] * f.Wt[:, 0]) ** 2).sum()))
@@ -704,6 +713,18 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     if perm["p_value"] is None:
         out["skipped"]["p_permutation"] = "not applicable: no placebo assignment identifies the effect"
     return out
+
+
+def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202) -> dict:
+    """The least-squares estimate and its placebo-in-space distribution, without errors or bootstrap.
+
+    The same assignments and estimates as :func:`cross_check` (``p_value`` two-sided on |estimate|,
+    ``estimates`` of the placebo assignments without the real one), for callers that run it on many
+    simulated data sets (``bayesdid plan``).
+    """
+    des = _design(cells)
+    f = _fit(des, des.treat_vector(cells.start))
+    return {"estimate": f.beta, **_placebo(des, f.beta, placebos, seed)}
 
 
 def cross_check_not_applicable(reason: str) -> dict:

@@ -14,11 +14,13 @@ __all__ = [
     "SweepError",
     "ReportError",
     "OutputError",
+    "PlanError",
     "BayesDidWarning",
     "FewAdoptersWarning",
     "DiagnosticsWarning",
     "RowLevelFallbackWarning",
     "SparseJurisdictionWarning",
+    "CacheWarning",
 ]
 
 
@@ -46,6 +48,10 @@ class OutputError(BayesDidError, ValueError):
     """The output folder cannot be written, or writing it would replace something bayesdid did not write."""
 
 
+class PlanError(BayesDidError, ValueError):
+    """The plan file (assurance before the data) is malformed or inconsistent."""
+
+
 class BayesDidWarning(UserWarning):
     """Base class of bayesdid's warnings (filter them together or one by one)."""
 
@@ -64,3 +70,12 @@ class RowLevelFallbackWarning(BayesDidWarning):
 
 class SparseJurisdictionWarning(BayesDidWarning):
     """A comparison jurisdiction is observed in too few periods to contribute to the comparison of changes."""
+
+
+class PersistenceFallbackWarning(BayesDidWarning):
+    """The study asks for persistent (AR(1)) gap noise but the data cannot learn it: the
+    independent form is fitted instead, for the reason the message names."""
+
+
+class CacheWarning(BayesDidWarning):
+    """The compile cache cannot be used (a folder that cannot be written, a damaged entry): runs are slower."""

@@ -12,6 +12,7 @@ import json
 import platform
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -24,8 +25,9 @@ from .crosscheck import cross_check, cross_check_not_applicable
 from .contracts import run_id
 from .data import file_sha256, read_table
 from .effects import compute_effects
-from .errors import BayesDidError, FewAdoptersWarning
+from .errors import BayesDidError, FewAdoptersWarning, PersistenceFallbackWarning
 from .model.registry import model_priors
+from .model.structure import RHO_PRIOR, gap_structure, residual_rule
 from .model.terms import resolve_scales
 from .outputs import atomic_folder
 from .sample import Fit, fit_cells
@@ -60,6 +62,7 @@ class Analysis:
     data_sha256: str | None = None
     notes: list = field(default_factory=list)
     sensitivity: dict | None = None
+    trends: object = None  # bayesdid.trends.TrendBounds
 
     def summary(self) -> dict:
         e = self.effects
@@ -77,6 +80,8 @@ class Analysis:
                       "likelihood": self.cells.extra.get(
                           "likelihood", "exact on cells (jurisdiction-period shock and gap noise integrated out)"),
                       "sampled_as": _sampled_as(self.fit.spec),
+                      "gap_noise": gap_structure(self.cells).to_dict(),
+                      **({"residual_sd": residual_rule(self.cells)} if self.fit.spec.family == "gaussian" else {}),
                       **({"covariates": {"formula": self.study.model.covariates,
                                          "columns": list(self.cells.extra["covariates"]["names"]),
                                          "centred_at": [float(v) for v in self.cells.extra["covariates"]["means"]]}}
@@ -85,12 +90,40 @@ class Analysis:
         }
         if self.sensitivity is not None:
             out["sensitivity"] = self.sensitivity
+        if self.trends is not None:
+            out["parallel_trends"] = self.trends.to_dict()
+        pers = persistence_summary(self.fit)
+        if pers is not None:
+            out["persistence"] = pers
         if "effect_percent" in e:
             out["effect_percent"] = e["effect_percent"].summary
         for k in ("effect_natural",):
             if k in e:
                 out[k] = e[k].summary
         return out
+
+
+def persistence_summary(fit) -> dict | None:
+    """rho's posterior and one plain sentence on what it means for the answer (None if not fitted)."""
+    if getattr(fit.spec, "gap", "independent") != "persistent":
+        return None
+    rho = fit.draws("rho")
+    lo, hi = (float(v) for v in np.quantile(rho, [0.025, 0.975]))
+    mean = float(rho.mean())
+    if lo > 0.3:
+        what = ("the gap noise is clearly persistent: a jurisdiction whose gap is above its usual level in one "
+                "period tends to stay above it in the next, so a run of post-policy periods carries less "
+                "independent evidence than its length suggests, and the effect's interval is widened for it")
+    elif hi < 0.3:
+        what = ("the gap noise shows little persistence over periods; the answer is close to what an "
+                "independent-noise model gives")
+    else:
+        what = ("the data leave the persistence of the gap noise uncertain; the effect's interval allows for "
+                "both weak and strong persistence")
+    return {"rho": {"mean": mean, "sd": float(rho.std()), "eti95": [lo, hi]},
+            "prior": "(rho + 1)/2 ~ Beta(%g, %g)" % (RHO_PRIOR["a"], RHO_PRIOR["b"]),
+            "sentence": f"Correlation of the gap noise from one period to the next: {mean:.2f} "
+                        f"(95% interval {lo:.2f} to {hi:.2f}); {what}."}
 
 
 def _sampled_as(spec) -> dict:
@@ -190,6 +223,13 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
                      "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
     for msg in cells.extra.get("warnings", []):
         notes.append(msg)
+    gs = gap_structure(cells)
+    if gs.fallback:
+        notes.append(gs.fallback)
+        say("WARNING: " + gs.fallback)
+        warnings.warn(gs.fallback, PersistenceFallbackWarning, stacklevel=2)
+    if fit.spec.family == "gaussian" and not fit.spec.residual:
+        notes.append("No separate residual sd: " + residual_rule(cells)["reason"])
     if cells.extra.get("fallback"):
         notes.append(cells.extra["fallback"])
         say("WARNING: " + cells.extra["fallback"])
@@ -204,10 +244,17 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     sens = power_scaling(fit)
     timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s,
               "sensitivity_s": time.perf_counter() - t0}
-    has = model_priors(study.model.family, cells.design, len(cells.adopters), "covariates" in cells.extra)
+    from .trends import model_threshold, trend_bounds
+
+    t0 = time.perf_counter()
+    tb = trend_bounds(fit, multiples=study.trends.multiples, threshold=model_threshold(study, cells),
+                      level=study.decision.level)
+    timing["trends_s"] = time.perf_counter() - t0
+    has = model_priors(study.model.family, cells.design, len(cells.adopters), "covariates" in cells.extra,
+                       drift=bool(getattr(fit.spec, "drift", False)), residual=bool(getattr(fit.spec, "residual", True)))
     priors = {k: v for k, v in priors.items() if k in has}  # only the priors the fitted model has
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
-                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens)
+                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens, trends=tb)
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
@@ -280,6 +327,11 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
         rid = run_id(an.data_sha256, study_to_dict(an.study))
         summary["identity"] = {"data_sha256": an.data_sha256, "run_id": rid}
         dump_json(summary, tmp / "summary.json")
+        files = ["posterior.nc", "summary.json", "manifest.json"]
+        if an.trends is not None and an.trends.rows:
+            from .trends import write_trends
+
+            files.append(write_trends(an.trends, tmp).name)
         manifest = {
             "bayesdid": __version__,
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -292,7 +344,7 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
             "table": str(an.study.table),
             "study": study_to_dict(an.study),
             "command": list(argv) if argv is not None else sys.argv,
-            "files": ["posterior.nc", "summary.json", "manifest.json"],
+            "files": files,
         }
         dump_json(manifest, tmp / "manifest.json")
     return Path(out)

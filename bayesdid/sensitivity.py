@@ -93,6 +93,11 @@ def log_prior_dataset(fit) -> xr.Dataset:
         lp = lp.sum(axis=extra) if extra else lp
         out[name] = xr.DataArray(lp, dims=("chain", "draw"),
                                  coords={"chain": post["chain"], "draw": post["draw"]})
+    if "rho" in post:  # persistent gap noise: (rho + 1)/2 ~ Beta(a, b), see bayesdid.model.structure
+        from .model.structure import RHO_PRIOR
+
+        lp = stats.beta.logpdf((post["rho"].to_numpy() + 1.0) / 2.0, RHO_PRIOR["a"], RHO_PRIOR["b"])
+        out["rho"] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
     return xr.Dataset(out)
 
 

@@ -49,8 +49,13 @@ class Scenario:
     group_period_sd: float = 0.05
     gap_sd: float = 0.05
     gap_df: float | None = None  # Student-t degrees of freedom for the gap noise (heavy tails)
+    gap_rho: float = 0.0  # AR(1) correlation of the gap noise over periods (marginal sd stays gap_sd)
     residual_sd: float = 1.0
     pre_drift: float = 0.0  # per-period drift of the adopters' target-group gap before the start
+    pre_wiggle: float = 0.0  # adopters' pre-period gap alternates +w, -w (period-to-period changes of 2w)
+    post_drift: float = 0.0  # adopters' gap departs from parallel by post_drift * (k + 1) at event time k >= 0
+    adopter_trend: float = 0.0  # adopters' gap drifts linearly over all periods: adopter_trend * (t - start)
+    trend_sd: float = 0.0  # comparison jurisdictions' gaps drift linearly, slopes Normal(0, trend_sd^2)
     fixed_cells: bool = False  # every cell exactly rows_per_cell rows
 
 
@@ -68,6 +73,11 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
         e = sc.gap_sd * rng.standard_t(sc.gap_df, size=(J, T)) * np.sqrt((sc.gap_df - 2) / sc.gap_df)
     else:
         e = sc.gap_sd * rng.standard_normal((J, T))
+    if sc.gap_rho:
+        # stationary AR(1) from the same innovations: e_t = rho e_{t-1} + sqrt(1 - rho^2) z_t
+        z, r = e.copy(), float(sc.gap_rho)
+        for t in range(1, T):
+            e[:, t] = r * e[:, t - 1] + np.sqrt(1.0 - r * r) * z[:, t]
     tau_j = {j: sc.tau + sc.tau_spread * rng.standard_normal() for j in sc.starts}
     mean = np.zeros((J, G, T))
     tg = G - 1  # target group index (last)
@@ -76,7 +86,12 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
     if G == 2:
         mean[:, tg, :] += h[None, :]
     mean[:, tg, :] += e
+    if sc.trend_sd:
+        slopes = sc.trend_sd * np.random.default_rng([seed, 7]).standard_normal(J)
+        mean[:, tg, :] += slopes[:, None] * (np.arange(T) - (T - 1) / 2.0)[None, :]
     for j, st in sc.starts.items():
+        if sc.adopter_trend:
+            mean[j, tg, :] += sc.adopter_trend * (np.arange(T) - st)
         for t in range(T):
             k = t - st
             if k >= 0:
@@ -84,8 +99,12 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
                     mean[j, tg, t] += sc.effect_path[min(k, len(sc.effect_path) - 1)]
                 else:
                     mean[j, tg, t] += tau_j[j]
-            elif sc.pre_drift:
+            if k >= 0 and sc.post_drift:
+                mean[j, tg, t] += sc.post_drift * (k + 1)
+            if k < 0 and sc.pre_drift:
                 mean[j, tg, t] += sc.pre_drift * k
+            if k < 0 and sc.pre_wiggle:
+                mean[j, tg, t] += sc.pre_wiggle * (1.0 if k % 2 else -1.0)
     if sc.fixed_cells:
         counts = np.full((J, G, T), int(sc.rows_per_cell))
     else:
@@ -110,6 +129,7 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
         "tau_adopter": {names[j]: float(v) for j, v in tau_j.items()},
         "starts": {names[j]: int(st) + 1 for j, st in sc.starts.items()},
         "gap_sd": sc.gap_sd,
+        "gap_rho": sc.gap_rho,
         "rows": total,
     }
     return frame, truth

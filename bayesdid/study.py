@@ -53,6 +53,8 @@ PRIOR_NAMES = {
     "residual": "scale of the half-normal prior on each group's residual sd",
     "covariate": "sd of the normal prior on each (centred) covariate coefficient",
     "dispersion": "scale of the half-normal prior on 1/sqrt(phi) of the over-dispersed count family",
+    "drift_spread": "scale of the half-normal prior on the spread of jurisdictions' linear gap drifts per period "
+                    "(model.gap_drift = true)",
 }
 
 
@@ -173,6 +175,10 @@ class ModelOptions:
     log_outcome: bool = False
     covariates: str | None = None
     missing: str = "error"  # or "drop"
+    #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
+    gap_over_time: str = "persistent"
+    #: Pooled jurisdiction-specific linear drifts of the gap (Gaussian; see bayesdid.model.terms)
+    gap_drift: bool = False
 
 
 @dataclass(frozen=True)
@@ -190,6 +196,7 @@ class PriorScales:
     residual: float | None = None
     covariate: float | None = None
     dispersion: float | None = None
+    drift_spread: float | None = None
 
 
 @dataclass(frozen=True)
@@ -210,6 +217,16 @@ class Decision:
     """
 
     threshold: float | None = None
+    #: Probability at which the decision counts as made (used by the parallel-trends breakdown value).
+    level: float = 0.9
+
+
+@dataclass(frozen=True)
+class TrendSettings:
+    """The parallel-trends sensitivity (study-file section ``[trends]``, see :mod:`bayesdid.trends`):
+    the grid of multiples M of the largest pre-policy change; each must be zero or positive."""
+
+    multiples: tuple = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
 
 
 CROSSCHECK_WEIGHTS = ("webb", "rademacher")
@@ -259,6 +276,7 @@ class Study:
     sampler: SamplerSettings = field(default_factory=SamplerSettings)
     decision: Decision = field(default_factory=Decision)
     crosscheck: CrossCheckSettings = field(default_factory=CrossCheckSettings)
+    trends: TrendSettings = field(default_factory=TrendSettings)
     title: str = "bayesdid study"
     period_order: tuple | None = None
     placebo_lag: int | None = None
@@ -280,7 +298,8 @@ class Study:
 
 #: Study field -> section of the study file that holds it.
 _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "wording": "wording"}
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends",
+                   "wording": "wording"}
 
 
 def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -331,7 +350,8 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "wording"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends",
+             "wording"}
 WORDING_KEYS = ("policy", "outcome", "unit", "target")
 #: Every key the study file accepts, by section ("" = top level); the parser reads its allowed keys
 #: from here, and tests/test_readme_keys.py checks each is documented in the README and read by the code.
@@ -340,8 +360,9 @@ _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "ex
               "period_order", "summary", "weight", "count", "sd", "se"}
 STUDY_KEYS.update({
     "": ("title",), "data": tuple(sorted(_DATA_KEYS)), "policy": ("adopters", "target_group"),
-    "model": ("family", "log_outcome", "covariates", "missing"), "priors": tuple(PRIOR_NAMES),
-    "sampler": ("chains", "draws", "tune", "seed"), "decision": ("threshold",),
+    "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"),
+    "priors": tuple(PRIOR_NAMES), "sampler": ("chains", "draws", "tune", "seed"), "decision": ("threshold", "level"),
+    "trends": ("multiples",),
     "crosscheck": ("seed", "draws", "weights", "placebos"), "checks": ("placebo_lag",), "wording": WORDING_KEYS})
 
 #: What one row of the table holds (``data.summary``): absent = one observation per row.
@@ -423,6 +444,8 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         log_outcome=_get_bool(m, "log_outcome", "model", False),
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
+        gap_over_time=m.get("gap_over_time", "persistent"),
+        gap_drift=_get_bool(m, "gap_drift", "model", False),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
@@ -432,7 +455,20 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
         for k, (lo, hi) in SAMPLER_LIMITS.items()})
     d = _section(raw, "decision", set(STUDY_KEYS["decision"]))
-    decision = Decision(threshold=_get_float(d, "threshold", "decision", None))
+    level = _get_float(d, "level", "decision", 0.9)
+    if not 0.5 <= level < 1.0:
+        raise _where("decision.level", d.get("level"), "a probability from 0.5 up to (not including) 1",
+                     "It is the probability at which a decision counts as made, e.g. 0.9.")
+    decision = Decision(threshold=_get_float(d, "threshold", "decision", None), level=level)
+    tr = _section(raw, "trends", set(STUDY_KEYS["trends"]))
+    mult = tr.get("multiples", list(TrendSettings().multiples))
+    if (not isinstance(mult, (list, tuple)) or not mult
+            or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)):
+        raise _where("trends.multiples", mult, "a non-empty list of finite numbers, e.g. [0, 0.5, 1, 2]")
+    if any(float(v) < 0 for v in mult):
+        raise _where("trends.multiples", mult, "multiples of zero or more",
+                     "M scales the largest pre-policy change; a negative multiple has no meaning.")
+    trends = TrendSettings(multiples=tuple(sorted(float(v) for v in mult)))
     x = _section(raw, "crosscheck", set(STUDY_KEYS["crosscheck"]))
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
@@ -456,7 +492,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
             raise _where(f"wording.{k}", v, "a non-empty string (words for the report)")
     wording = Wording(**{k: w[k].strip() for k in WORDING_KEYS if k in w})
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
-                            sampler=sampler, decision=decision, crosscheck=crosscheck, title=title,
+                            sampler=sampler, decision=decision, crosscheck=crosscheck, trends=trends, title=title,
                             period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary,
                             wording=wording))
 
@@ -474,6 +510,12 @@ def _validated(study: Study) -> Study:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
+    if study.model.gap_drift and study.model.family != "gaussian":
+        raise _where("model.gap_drift", True, "false for non-gaussian families",
+                     "Pooled gap drifts are built for the gaussian family only so far.")
+    if study.model.gap_over_time not in ("persistent", "independent"):
+        raise _where("model.gap_over_time", study.model.gap_over_time, "'persistent' or 'independent'",
+                     "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.")
     if study.model.log_outcome and study.model.family != "gaussian":
         raise _where("model.log_outcome", True, "false for non-gaussian families",
                      "Binomial and count families already use a logit or log link.")
@@ -613,7 +655,8 @@ def load_study(path: str | Path) -> Study:
 
 
 def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
-               log_outcome=False, family="gaussian", covariates=None, missing="error", exposure=None,
+               log_outcome=False, family="gaussian", covariates=None, missing="error", gap_over_time=None,
+               exposure=None,
                trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
                chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
@@ -633,7 +676,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
                                          target_group=target_group).items() if v is not None},
         "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
-                                        missing=missing).items() if v is not None},
+                                        missing=missing, gap_over_time=gap_over_time).items() if v is not None},
         "priors": dict(priors) if isinstance(priors, Mapping) else (priors or {}),
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},
@@ -662,6 +705,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         "sampler": dataclasses.asdict(study.sampler),
         "decision": {k: v for k, v in dataclasses.asdict(study.decision).items() if v is not None},
         "crosscheck": dataclasses.asdict(study.crosscheck),
+        "trends": {"multiples": list(study.trends.multiples)},
     }
     if study.policy.target_group is not None:
         out["policy"]["target_group"] = study.policy.target_group

@@ -138,8 +138,9 @@ def weighted_sums(y: np.ndarray, w: np.ndarray, idx: np.ndarray, size: int) -> d
     """Per-cell weighted statistics (flat arrays of length ``size``); see the module docstring.
 
     Returns ``n`` (Kish n_eff), ``sum_y`` (n_eff * Hajek mean), ``sum_y2``, ``ss`` (scaled weighted
-    within sum of squares), and for the weighted least squares ``sum_w``, ``ss_w`` = sum w (y - ybar_w)^2
-    and ``rows`` (observations per cell).
+    within sum of squares), and for the weighted least squares ``sum_w``, ``ss_w`` = sum w (y - ybar_w)^2,
+    ``rows`` (observations per cell), and for its HC1 error ``sum_w2``, ``w2_dev`` = sum w^2 (y - ybar_w)
+    and ``w2_dev2`` = sum w^2 (y - ybar_w)^2.
     """
     sw = np.bincount(idx, weights=w, minlength=size)
     sw2 = np.bincount(idx, weights=w * w, minlength=size)
@@ -151,8 +152,12 @@ def weighted_sums(y: np.ndarray, w: np.ndarray, idx: np.ndarray, size: int) -> d
     ss_w = np.bincount(idx, weights=w * dev * dev, minlength=size)
     n_eff = np.where(pos, sw * sw / np.where(pos, sw2, 1.0), 0.0)
     ss = np.where(pos, ss_w * n_eff / safe, 0.0)
+    w2 = w * w
     return {"n": n_eff, "sum_y": n_eff * ybar, "sum_y2": ss + n_eff * ybar * ybar, "ss": ss,
-            "sum_w": sw, "ss_w": ss_w, "rows": np.bincount(idx, minlength=size).astype(float)}
+            "sum_w": sw, "ss_w": ss_w, "rows": np.bincount(idx, minlength=size).astype(float),
+            # for the HC1 meat sum_i w_i^2 e_i^2 with e_i = (y_i - ybar_w) + rbar_c
+            "sum_w2": sw2, "w2_dev": np.bincount(idx, weights=w2 * dev, minlength=size),
+            "w2_dev2": np.bincount(idx, weights=w2 * dev * dev, minlength=size)}
 
 
 def _whole(total: np.ndarray, what: str, study: Study, frame: pd.DataFrame, denom: str) -> np.ndarray:

@@ -436,7 +436,7 @@ def run_variant(task: dict) -> dict:
     from .run import analyse, dump_json, write_run
 
     t0 = time.perf_counter()
-    before = sample.COMPILES["count"]
+    before, loads_before = sample.COMPILES["count"], sample.LOADS["count"]
     rec = {"id": task["id"], "label": task["label"], "pid": os.getpid()}
     try:
         study = _parse(task["raw"], Path(task["base_dir"]))
@@ -480,6 +480,7 @@ def run_variant(task: dict) -> dict:
         rec.update(status="failed", error=f"{type(exc).__name__}: {exc}", seconds=time.perf_counter() - t0)
     rec["compiles"] = sample.COMPILES["count"] - before
     rec["compiles_total"] = sample.COMPILES["count"]
+    rec["loads"] = sample.LOADS["count"] - loads_before  # from the compile cache on disk
     return rec
 
 
@@ -793,18 +794,20 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         say(f"{len(plan.variants)} variant(s): {len(skipped)} already done, {len(todo)} to run "
             f"({executor}{'' if executor == 'serial' else f', {workers} worker(s)'})")
         meta = {"executor": executor, "workers": workers if executor != "serial" else 1,
-                "cluster": cluster, "compiles_per_worker": {}, "last_run": {"ran": [], "skipped": skipped}}
-        failed, compiles = {}, {}
+                "cluster": cluster, "compiles_per_worker": {}, "cache_loads_per_worker": {}, "last_run": {"ran": [], "skipped": skipped}}
+        failed, compiles, loads = {}, {}, {}
         bar = _Progress(len(todo), len(skipped), progress)
         rows = read_results(out, plan)
         if todo:
             for rec in EXECUTORS[executor](todo, workers, cluster):
                 compiles[str(rec["pid"])] = compiles.get(str(rec["pid"]), 0) + rec["compiles"]
+                loads[str(rec["pid"])] = loads.get(str(rec["pid"]), 0) + rec.get("loads", 0)
                 meta["last_run"]["ran"].append(rec["id"])
                 if rec["status"] == "failed":
                     failed[rec["id"]] = rec["error"]
                     say(f"variant {rec['id']} ({rec['label']}) failed: {rec['error']}")
                 meta["compiles_per_worker"] = compiles
+                meta["cache_loads_per_worker"] = loads
                 rows = _rows_now(out, plan, failed)
                 _write_tables(out, plan, rows, meta)
                 bar.step(rec)
@@ -813,7 +816,7 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         ver = _write_tables(out, plan, rows, meta)
         shutil.rmtree(staging, ignore_errors=True)
     return {"ran": meta["last_run"]["ran"], "skipped": skipped, "failed": failed, "compiles": compiles,
-            "rows": rows, "verdict": ver, "seconds": meta["seconds"], "out": str(out)}
+            "loads": loads, "rows": rows, "verdict": ver, "seconds": meta["seconds"], "out": str(out)}
 
 
 def check_sweep_folder(out: str | Path) -> Path:

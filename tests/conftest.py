@@ -1,9 +1,17 @@
 """Shared fixtures. Compiled models are cached per process by bayesdid.sample, so fixtures that fit
-the same model structure re-sample without a recompile; keep draws small."""
+the same model structure re-sample without a recompile; keep draws small.
+
+The suite shares compiled models between its processes and runs through the compile cache in the
+clone's ``.cache/bayesdid`` (git-ignored), unless BAYESDID_CACHE_DIR names another folder; it is set
+here, before bayesdid (and so PyTensor and numba) is imported."""
 
 from __future__ import annotations
 
+import os
 import warnings
+from pathlib import Path
+
+os.environ.setdefault("BAYESDID_CACHE_DIR", str(Path(__file__).resolve().parent.parent / ".cache" / "bayesdid"))
 
 import numpy as np
 import pandas as pd

@@ -114,7 +114,7 @@ def test_cli_bench_calibration(small_run, tmp_path, capsys):
 @pytest.mark.parametrize("argv, match", [
     (["bench", "calibration", "--scenario", "nowhere"], "calibration scenario 'nowhere' is unknown"),
     (["bench", "collapse", "--reps", "3"],
-     "--reps: 'bayesdid bench collapse' does not take this option; calibration, panel, weights do"),
+     "--reps: 'bayesdid bench collapse' does not take this option; calibration, panel, plan, weights do"),
     (["bench", "calibration", "--reps", "0", "--scenario", "did"], "--reps: expected a whole number"),
 ])
 def test_cli_bad_options_exit_2(argv, match, tmp_path, capsys):

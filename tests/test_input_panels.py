@@ -125,3 +125,21 @@ def test_unit_refused_where_not_supported():
         make_study(family="poisson", exposure="t", **base)
     with pytest.raises(StudyError, match="model.covariates"):
         make_study(covariates="age", **base)
+
+
+def test_scaled_within_spread_estimates_the_error_sd():
+    """On the invented panel of ``bench panel`` (residual sd 1, unit sd 2, 8 periods) the pooled within-cell
+    spread of the centred outcome, scaled by T/(T-1), estimates the residual sd 1; unscaled it would sit at
+    sqrt(7/8) = 0.935. Tolerance: 4 standard errors of a pooled sd on about 2,600 degrees of freedom
+    (1/sqrt(2 df) = 0.014)."""
+    from bayesdid.bench.panel import panel_rows
+
+    frame, starts, _ = panel_rows(11)
+    st = make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts,
+                    unit="person")
+    cells = collapse(st, frame)
+    df = float(np.maximum(cells.n - 1, 0).sum())
+    assert np.sqrt(cells.ss.sum() / df) == pytest.approx(1.0, abs=4 / np.sqrt(2 * df))
+    raw = collapse(make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts),
+                   frame)
+    assert np.sqrt(raw.ss.sum() / df) > 2.0  # the unit effects (sd 2) sit in the pooled spread

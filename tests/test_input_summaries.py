@@ -180,7 +180,8 @@ def _bad(tmp_path, rng, edit, match, **kw):
 
 def test_count_below_one(tmp_path, rng):
     _bad(tmp_path, rng, lambda a: a.assign(n=a["n"].where(a.index != 3, 0)),
-         r"count column 'n' must hold whole numbers of at least 1 \(observations per row\); 1 row\(s\) \(table lines 5\)")
+         r"count column 'n' must hold whole numbers of at least 1 \(observations per row\); "
+         r"1 row\(s\) \(table lines 5\)")
 
 
 def test_missing_sd_where_count_above_one(tmp_path, rng):

@@ -48,11 +48,12 @@ def test_registry_names_exactly_the_priors_the_graph_reads(family, groups, adopt
     cells = _cells(family, groups, adopters, covariates)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, make_study(
         table="x.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 1}).priors).items()}
-    model, _ = build_model(cells, scales, family)
+    model, spec = build_model(cells, scales, family)
     logp = model.logp()
     used = {v.name.removeprefix("prior_") for v in ancestors([logp]) if getattr(v, "name", None)
             and v.name.startswith("prior_")}
-    assert set(model_priors(family, cells.design, len(cells.adopters), covariates)) == used & set(PRIOR_NAMES)
+    has = model_priors(family, cells.design, len(cells.adopters), covariates, drift=spec.drift, residual=spec.residual)
+    assert set(has) == used & set(PRIOR_NAMES)
 
 
 def test_a_sweep_over_a_prior_the_model_lacks_is_refused(tmp_path, capsys):

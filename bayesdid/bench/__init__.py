@@ -19,7 +19,10 @@ REGISTRY = {
     "sweep": ("bayesdid.bench.sweep", "bench_sweep"),
     "calibration": ("bayesdid.bench.calibration", "bench_calibration"),
     "weights": ("bayesdid.bench.weights", "bench_weights"),
+    "persistence": ("bayesdid.bench.persistence", "bench_persistence"),
     "panel": ("bayesdid.bench.panel", "bench_panel"),
+    "plan": ("bayesdid.bench.plan", "bench_plan"),
+    "compile": ("bayesdid.bench.compile", "bench_compile"),
 }
 
 

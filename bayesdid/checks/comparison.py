@@ -14,6 +14,9 @@ change of the jurisdiction's own gap net of the common change is
 
     delta_j = mean_{t >= t0} e[j,t] - mean_{t < t0} e[j,t]       (t0: the earliest start)
 
+With persistent (AR(1)) gap noise each jurisdiction's path e[j,.] is drawn jointly from its
+smoothing distribution given all its periods (forward filter, backward sampling) instead.
+
 It should be near zero. Outliers: robust z_j = (mean(delta_j) - median) / (1.4826 MAD) over the
 comparison jurisdictions; flag |z_j| > 3 (common practice). For each flagged one (the 5 most
 extreme at most) the main model is refitted without it (weight 0 on all its periods, the same
@@ -30,7 +33,7 @@ import numpy as np
 
 from ..cells import Cells
 from ..model import families
-from ..model.gaussian import cell_arrays
+from ..model.gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
 from ..study import SamplerSettings
@@ -50,7 +53,7 @@ def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
     cells = fit.cells
     arr = cell_arrays(cells)
     m = mean_from_draws(fit)
-    sigma = fit.draws("sigma")
+    sigma = residual_draws(fit)
     sg2 = fit.draws("sigma_gap")[:, None, None] ** 2
     q = cells.target
     dq = arr["ybar_q"][None] - m[:, :, q, :]
@@ -66,6 +69,11 @@ def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
         dr = np.zeros_like(dq)
         k = np.zeros_like(dq)
     V = C + s2 + sg2 - k * s2
+    if getattr(fit.spec, "gap", "independent") == "persistent":
+        # AR(1) gap noise: draw each jurisdiction's whole path jointly (forward filter, backward sampling)
+        o = arr["p_q"][None] * arr["w"][None] + 0.0 * dq
+        return ar1_smoothing_draws(dq - k * dr, C + (s2 - k * s2), o, sg2, fit.draws("rho")[:, None, None],
+                                   rng.standard_normal(dq.shape))
     pq = arr["p_q"][None]
     mean = pq * sg2 * (dq - k * dr) / V
     var = np.maximum(sg2 - pq * sg2 * sg2 / V, 0.0)

@@ -10,7 +10,9 @@ noise e out, so they are drawn back here), for adopter j and pre-period t:
 
     y_rep[j,r,t] = m[j,r,t] + s + eps_r,            s ~ N(0, sigma_shock^2), eps_r ~ N(0, sigma_r^2 / n_r)
     y_rep[j,q,t] = m[j,q,t] + s + e + eps_q,        e ~ N(0, sigma_gap^2),   eps_q ~ N(0, sigma_q^2 / n_q)
-    gap_rep[j,t] = y_rep[j,q,t] - y_rep[j,r,t]
+
+(with persistent gap noise, e is drawn as the fitted AR(1) path over the pre-periods, correlation
+rho per period apart)    gap_rep[j,t] = y_rep[j,q,t] - y_rep[j,r,t]
 
 (for a DiD the gap is the cell mean itself, gap = m + e + eps, without s). For binomial and count
 families the gap is read on the link scale (log rate or log odds of each cell, with a half added to
@@ -39,6 +41,7 @@ import numpy as np
 
 from ..cells import Cells
 from ..model.families import replicate_gap_path
+from ..model.gaussian import residual_draws
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
 from ..study import SamplerSettings
@@ -72,13 +75,21 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
         return replicate_gap_path(fit, j, periods, rng)
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
-    sigma = fit.draws("sigma")  # (S, G)
+    sigma = residual_draws(fit)  # (S, G)
     sg = fit.draws("sigma_gap")
     S = sigma.shape[0]
     q = cells.target
     n_q = cells.n[j, q, periods]
     mean = cells.mean
     e = sg[:, None] * rng.standard_normal((S, len(periods)))
+    if getattr(fit.spec, "gap", "independent") == "persistent":
+        # AR(1) gap noise (bayesdid.model.structure): the same normals, chained over the periods
+        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap
+        rho = fit.draws("rho")
+        z = e.copy()
+        for i in range(1, len(periods)):
+            c = rho ** float(periods[i] - periods[i - 1])
+            e[:, i] = c * e[:, i - 1] + np.sqrt(1.0 - c * c) * z[:, i]
     eps_q = sigma[:, q][:, None] / np.sqrt(n_q)[None, :] * rng.standard_normal((S, len(periods)))
     if cells.design == "DDD":
         r = cells.reference

@@ -7,8 +7,9 @@ reads depends on the family and the design:
 * a DDD (two groups): ``group_period`` (the target group's own period effects) and
   ``shock_spread`` (the jurisdiction-period shock the triple difference removes); a DiD has neither;
 * two or more adopters: ``adopter_spread`` (one adopter has no spread of effects);
-* gaussian: ``residual`` (each group's row-level sd); negbinomial: ``dispersion``;
-* with covariates: ``covariate``.
+* gaussian: ``residual`` (each group's row-level sd), unless the cells cannot identify it
+  (:func:`bayesdid.model.structure.residual_rule`); negbinomial: ``dispersion``;
+* with covariates: ``covariate``; with pooled linear gap drifts (``model.gap_drift``): ``drift_spread``.
 
 A prior the fitted model does not have is neither listed in summary.json nor accepted by a sweep.
 """
@@ -32,11 +33,19 @@ NATURAL_MEASURES["negbinomial"] = NATURAL_MEASURES["poisson"]
 _SHARED = ("intercept", "baseline_spread", "period", "gap_noise", "effect")
 
 
-def model_priors(family: str, design: str, n_adopters: int, covariates: bool) -> tuple[str, ...]:
-    """The prior names the model of this family and design reads, in :data:`PRIOR_NAMES` order."""
+def model_priors(family: str, design: str, n_adopters: int, covariates: bool, *, drift: bool = False,
+                 residual: bool = True) -> tuple[str, ...]:
+    """The prior names the model of this family and design reads, in :data:`PRIOR_NAMES` order.
+
+    ``drift``: the model has pooled linear gap drifts; ``residual=False``: a Gaussian model without a
+    separate residual sd (cells of one row)."""
     if family not in FAMILIES:
         raise ValueError(f"unknown family '{family}'; choose one of {list(FAMILIES)}")
     have = set(_SHARED) | set(FAMILY_PRIORS[family])
+    if not residual:
+        have.discard("residual")
+    if drift:
+        have.add("drift_spread")
     if design == "DDD":
         have |= {"group_period", "shock_spread"}
     if n_adopters >= 2:
@@ -49,4 +58,4 @@ def model_priors(family: str, design: str, n_adopters: int, covariates: bool) ->
 def study_priors(study) -> tuple[str, ...]:
     """:func:`model_priors` of a :class:`~bayesdid.study.Study` (read from its settings, no data)."""
     return model_priors(study.model.family, "DDD" if study.columns.group else "DiD", len(study.policy.adopters),
-                        bool(study.model.covariates))
+                        bool(study.model.covariates), drift=bool(getattr(study.model, "gap_drift", False)))

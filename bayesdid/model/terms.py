@@ -25,6 +25,7 @@ import pytensor.tensor as pt
 
 from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
+from .structure import gap_structure, residual_rule
 
 __all__ = ["default_scales", "resolve_scales", "ModelSpec", "build_model", "design_data",
            "hierarchical_mean", "event_times_of", "event_time_data", "EFFECTS"]
@@ -46,6 +47,8 @@ DEFAULT_MULTIPLES = {
     "residual": 2.0,
     "covariate": 2.5,
     "dispersion": 1.0,
+    # per period: a jurisdiction one spread above the others drifts 0.05 outcome sd per period
+    "drift_spread": 0.05,
 }
 
 
@@ -84,6 +87,14 @@ class ModelSpec:
     effects: str = "att"
     event_times: tuple = ()
     event_pooled: bool = False
+    #: The gap noise over periods as fitted, "persistent" (AR(1)) or "independent"; see
+    #: :mod:`bayesdid.model.structure`.
+    gap: str = "independent"
+    #: Gaussian: a separate residual sd (False when the cells cannot identify it, see
+    #: :func:`bayesdid.model.structure.residual_rule`).
+    residual: bool = True
+    #: Pooled jurisdiction-specific linear gap drifts (model.gap_drift), see :func:`hierarchical_mean`.
+    drift: bool = False
 
     def key(self) -> tuple:
         return dataclasses.astuple(self)
@@ -200,8 +211,14 @@ class _LazyScales(dict):
         return v
 
 
+def drift_times(T: int) -> np.ndarray:
+    """The period index centred at the panel's middle, t - (T - 1)/2 (the drift's time variable)."""
+    return np.arange(T, dtype=float) - (T - 1) / 2.0
+
+
 def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = "att",
-                      event_times: tuple | None = None, event_pooled: bool = False, levels=None):
+                      event_times: tuple | None = None, event_pooled: bool = False, levels=None,
+                      drift: bool = False):
     """Add the shared terms to the current model; return (m, extras).
 
     ``m`` is the (J, G, T) mean without the jurisdiction-period shock and the gap noise (both are
@@ -218,6 +235,15 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         ``event_by_k`` (dims event_time, jurisdiction, group, period).
     event_times : tuple of int
         The k with a parameter (default :func:`event_times_of`).
+    drift : bool
+        Pooled jurisdiction-specific linear gap drifts (``model.gap_drift``): the target group's
+        mean (a DiD: the jurisdiction's) gets ``g[j] * (t - (T - 1)/2)``, ``g[j] = sigma_drift z[j]``,
+        ``sigma_drift ~ HalfNormal(prior_drift_spread)``. An adopter's drift must be learned from its
+        pre-policy periods only (its post-policy path is what the effect is read from), so each
+        adopter's post-policy target cells also get free deviations ``eta[a, t] ~ Normal(0,
+        prior_effect^2)``, centred over its post-policy periods: the post-policy cells are then fitted
+        whatever the drift, carry no information about it, and tau[a] is the mean of the adopter's
+        per-period effects net of its drift extrapolated from before the policy.
     levels : callable, optional
         ``levels(mu, scale_j, S, centred) -> b`` builds the (J, G) baselines instead of the default
         hierarchical normal ``b[j,g] ~ Normal(mu[g], scale_j^2)`` (the non-Gaussian families fold the
@@ -270,6 +296,14 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         hg = pt.stack([pt.zeros((T,)), h])  # reference group first, target second
         m = m + hg[None, :, :]
 
+    if drift:
+        tt = pt.as_tensor(drift_times(T))
+        sig_d = pm.HalfNormal("sigma_drift", S["drift_spread"])
+        z_d = pm.Normal("z_drift", 0.0, 1.0, dims=("jurisdiction",))
+        g = pm.Deterministic("gap_drift", sig_d * z_d, dims=("jurisdiction",))
+        path = g[:, None] * tt[None, :]
+        m = m + (pt.stack([pt.zeros((J, T)), path], axis=1) if G == 2 else path[:, None, :])
+
     if effects == "event_time":
         ks = tuple(event_times) if event_times is not None else event_times_of(cells)
         E = pm.Data("event_by_k", event_time_data(cells, ks),
@@ -285,6 +319,12 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
     treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
                     dims=("adopter", "jurisdiction", "group", "period"))
+    if drift:  # free post-policy deviations per adopter, centred over its post periods (see `drift`)
+        post = treat.sum(axis=(1, 2))  # (A, T): 1 at the adopter's post-policy periods
+        raw = S["effect"] * pm.Normal("z_effect_deviation", 0.0, 1.0, shape=(A, T))
+        centre = (post * raw).sum(axis=1) / pt.maximum(post.sum(axis=1), 1.0)
+        eta = pm.Deterministic("effect_deviation", post * (raw - centre[:, None]), dims=("adopter", "period"))
+        m = m + (eta[:, None, None, :] * treat).sum(axis=0)
     if A > 1:
         # tau_a = tau + sigma_tau z is written as its mean over adopters abar plus zero-sum contrasts:
         #   abar ~ Normal(0, s_e^2 + sigma_tau^2 / A)        (tau integrated out; centred: data pin it)
@@ -332,6 +372,10 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
     fields = ()
+    # The AR(1) form is built for the Gaussian family; the others keep independent gap noise.
+    gap = gap_structure(cells).over_time if family == "gaussian" else "independent"
+    residual = residual_rule(cells)["separate"] if family == "gaussian" else True
+    drift = bool(gap_structure(cells).drift) and family == "gaussian" and effects == "att"
     if family != "gaussian":
         from .families import fields_centred
 
@@ -340,22 +384,24 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
         ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
         return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
                          centred=baseline_centred(cells), fields=fields, effects="event_time", event_times=ks,
-                         event_pooled=bool(event_pooled),
+                         event_pooled=bool(event_pooled), gap=gap, residual=residual,
                          K=0 if cov is None else len(cov["names"]))
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                     centred=baseline_centred(cells), fields=fields, K=0 if cov is None else len(cov["names"]))
+                     centred=baseline_centred(cells), fields=fields, gap=gap, residual=residual, drift=drift,
+                     K=0 if cov is None else len(cov["names"]))
 
 
 def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
                 event_times: tuple | None = None, event_pooled: bool = False) -> tuple[pm.Model, ModelSpec]:
     """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
     spec = model_spec(cells, family, effects=effects, event_times=event_times, event_pooled=event_pooled)
-    terms = {} if spec.effects == "att" else {"effects": "event_time", "event_times": spec.event_times,
-                                              "event_pooled": spec.event_pooled}
+    terms = ({"drift": True} if spec.drift else {}) if spec.effects == "att" else {
+        "effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
     if family == "gaussian":
         from .gaussian import build_gaussian
 
-        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), **terms), spec
+        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
+                              residual=spec.residual, **terms), spec
     from .families import FAMILY_BUILDERS, build_family
 
     if family in FAMILY_BUILDERS:
@@ -377,6 +423,9 @@ def mean_from_draws(fit) -> np.ndarray:
         h = fit.draws("group_period_effect")
         m[:, :, cells.target, :] += h[:, None, :]
     spec = getattr(fit, "spec", None)
+    if getattr(spec, "drift", False):
+        m[:, :, cells.target, :] += fit.draws("gap_drift")[:, :, None] * drift_times(T)[None, None, :]
+        m += np.einsum("sat,ajgt->sjgt", fit.draws("effect_deviation"), design_data(cells)["treat_by_adopter"])
     if getattr(spec, "effects", "att") == "event_time":
         beta = fit.draws("event_effect")  # (S, K)
         m += np.tensordot(beta, event_time_data(cells, spec.event_times), axes=1)

@@ -177,7 +177,27 @@ def _effect_section(run: RunFolder) -> str:
                            "probability above", "probability below"], nrows))
         out.append('<p class="caption">From counterfactual predictions over the treated cells, with and without '
                    'the policy, averaged with the cells\' own trials or exposure.</p>')
+    out.extend(_persistence_words(s))
     return "\n".join(out)
+
+
+def _persistence_words(s: dict) -> list[str]:
+    """How the gap noise was modelled over periods (summary.json's model.gap_noise and persistence)."""
+    g = (s.get("model") or {}).get("gap_noise")
+    if not isinstance(g, dict):
+        return []
+    out = ["<h3>Persistence of the gap noise over periods</h3>"]
+    pers = s.get("persistence")
+    if isinstance(pers, dict) and pers.get("sentence"):
+        out.append(f"<p>{esc(pers['sentence'])} Prior: {esc(pers.get('prior', ''))}.</p>")
+    else:
+        out.append(f"<p>{esc(g.get('meaning', ''))}.</p>")
+    if g.get("fallback"):
+        out.append(f'<p class="caution">{esc(g["fallback"])}</p>')
+    res = (s.get("model") or {}).get("residual_sd")
+    if isinstance(res, dict) and not res.get("separate", True):
+        out.append(f"<p>No separate residual sd: {esc(res.get('reason', ''))}</p>")
+    return out
 
 
 def _check_status(run: RunFolder, name: str):
@@ -345,8 +365,43 @@ def _placebo_space_body(run: RunFolder, sec) -> str:
     return "\n".join(out)
 
 
+def _trends_words(run: RunFolder) -> list[str]:
+    """summary.json's parallel_trends section: figure of the interval against M, table, one sentence."""
+    tr = run.summary.get("parallel_trends")
+    out = ["<h3>Departures from parallel trends</h3>"]
+    if not isinstance(tr, dict):
+        return out + [_absent("the parallel-trends sensitivity (summary.json has no 'parallel_trends' entry).",
+                              "bayesdid trends RUN_DIR")]
+    if tr.get("status") != "ok" or not tr.get("grid"):
+        return out + [f"<p>Not applicable: {esc(tr.get('reason', ''))}</p>"]
+    pct = _is_percent(run.summary)
+    conv = (lambda v: float(np.expm1(v)) * 100.0) if pct else (lambda v: float(v))
+    grid = tr["grid"]
+    thr = tr.get("threshold_model_scale")
+    out.append(_img(plots.trends_figure(
+        [g["M"] for g in grid], [conv(g["lower_95"]) for g in grid], [conv(g["upper_95"]) for g in grid],
+        breakdown=(tr.get("breakdown") or {}).get("M_zero"), threshold=None if thr is None else conv(thr),
+        ylabel="effect, 95% interval" + (" (%)" if pct else " (model scale)")),
+        "95% interval of the effect against M, with the breakdown value"))
+    out.append(f"<p><strong>{esc(tr.get('sentence', ''))}</strong></p>")
+    fmt = (lambda v: f"{conv(v):.1f}%") if pct else (lambda v: _num(v, 3))
+    rows = [[_num(g["M"]), f"{fmt(g['lower_95'])} to {fmt(g['upper_95'])}", f"{g['prob_reduction']:.1%}",
+             f"{g['prob_increase']:.1%}", f"{g['prob_beyond_threshold']:.1%}"] for g in grid]
+    out.append(_table(["M", "95% interval", "P(reduction) for every allowed path", "P(increase) for every allowed path",
+                       "P(beyond the decision threshold)"], rows))
+    b = tr.get("breakdown") or {}
+    out.append(f'<p class="caption">After the policy the adopters\' gap may depart from its parallel path by up to M '
+               f'times the largest period-to-period change it showed before (relative magnitudes, after Rambachan '
+               f'and Roth 2023; a bound applied to every posterior draw). Breakdown values: {esc(b.get("M_zero_meaning", ""))}: '
+               f'{_num(b.get("M_zero"))}; {esc(b.get("M_decision_meaning", ""))}: {_num(b.get("M_decision"))}. '
+               f'Table: trends.csv.</p>')
+    if tr.get("reason"):
+        out.append(f"<p>{esc(tr['reason'])}.</p>")
+    return out
+
+
 def _sensitivity_section(run: RunFolder) -> str:
-    out = []
+    out = _trends_words(run)
     sens = run.summary.get("sensitivity")
     out.append("<h3>Power-scaling sensitivity of the priors and the likelihood</h3>")
     if isinstance(sens, dict) and sens:

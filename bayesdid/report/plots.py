@@ -21,8 +21,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-__all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure", "event_time_figure", "band_figure", "comparison_figure",
-           "placebo_figure"]
+__all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure",
+           "event_time_figure", "band_figure", "comparison_figure", "placebo_figure", "trends_figure"]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
 #: readings, plum for flags, slate for reference lines, a pale blue for bands.
@@ -268,4 +268,25 @@ def placebo_figure(placebo: list[float], real: float, *, xlabel: str, names: lis
         ax.set_yticks([])
         ax.set_xlabel(xlabel)
         ax.legend(frameon=False, fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        return svg_of(fig)
+
+
+def trends_figure(M: list[float], lower: list[float], upper: list[float], *, breakdown: float | None,
+                  ylabel: str, threshold: float | None = None) -> str:
+    """The effect's 95% interval against M (departures from parallel trends), breakdown M marked."""
+    with plt.rc_context(_RC):
+        fig, ax = _fig(7.0, 3.2)
+        M = np.asarray(M, dtype=float)
+        ax.fill_between(M, lower, upper, color=PALETTE["band"], step=None, lw=0)
+        ax.plot(M, lower, color=PALETTE["posterior"], marker="o", ms=4, lw=1.5)
+        ax.plot(M, upper, color=PALETTE["posterior"], marker="o", ms=4, lw=1.5)
+        ax.axhline(0, color=PALETTE["reference"], lw=1)
+        if threshold is not None:
+            ax.axhline(threshold, color=PALETTE["threshold"], lw=1, ls="--")
+        if breakdown is not None and breakdown <= (M.max() if M.size else 0):
+            ax.axvline(breakdown, color=PALETTE["flag"], lw=1.5, ls=":")
+            ax.annotate(f"breakdown M = {breakdown:.2g}", (breakdown, ax.get_ylim()[1]), xytext=(4, -12),
+                        textcoords="offset points", color=PALETTE["flag"], fontsize=9)
+        ax.set_xlabel("M: post-policy departure per period, in multiples of the largest pre-policy change")
+        ax.set_ylabel(ylabel)
         return svg_of(fig)

@@ -1,0 +1,142 @@
+"""The compile cache: a structure compiled by one process is loaded, not compiled, by the next, with the
+same draws bit for bit; two processes compiling at once compile once; a damaged entry is rebuilt; a
+cache folder that cannot be written still lets the run finish and says why it is slower.
+
+The process tests run ``tests/cache_worker.py`` in fresh interpreters (each pays the imports) on a
+small DiD model, in a cache folder of their own, so that they start from an empty cache whatever the
+suite's shared cache holds.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from bayesdid import cachedir, modelcache
+
+WORKER = Path(__file__).with_name("cache_worker.py")
+
+
+def _start(cache: Path, seed: int = 5, fits: int = 1) -> subprocess.Popen:
+    env = {**os.environ, cachedir.ENV_VAR: str(cache)}
+    env.pop("PYTENSOR_FLAGS", None)
+    env.pop("NUMBA_CACHE_DIR", None)
+    return subprocess.Popen([sys.executable, str(WORKER), str(seed), str(fits)], env=env, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
+def _result(proc: subprocess.Popen) -> dict:
+    out, err = proc.communicate(timeout=1800)
+    assert proc.returncode == 0, err[-3000:]
+    return json.loads(out.strip().splitlines()[-1])
+
+
+def _entries(cache: Path) -> list[Path]:
+    return sorted((cache / "models").glob("*.model"))
+
+
+@pytest.fixture(scope="module")
+def shared_cache(tmp_path_factory):
+    """Two processes started together on an empty cache folder, then a third one after them."""
+    cache = tmp_path_factory.mktemp("cache")
+    pair = [_result(p) for p in [_start(cache), _start(cache)]]
+    third = _result(_start(cache))
+    return cache, pair, third
+
+
+@pytest.mark.slow
+def test_two_processes_at_once_compile_once(shared_cache):
+    cache, pair, _ = shared_cache
+    assert sorted(r["compiles"] for r in pair) == [0, 1]  # the lock made the other one wait, then load
+    assert sorted(r["loads"] for r in pair) == [0, 1]
+    assert pair[0]["draws"] == pair[1]["draws"]
+    assert len(_entries(cache)) == 1
+
+
+@pytest.mark.slow
+def test_second_process_compiles_nothing_and_draws_equal(shared_cache):
+    _, pair, third = shared_cache
+    assert third["compiles"] == 0 and third["loads"] == 1 and third["damaged"] == 0
+    assert third["draws"] == pair[0]["draws"]  # bit for bit: a digest of every posterior array
+
+
+@pytest.mark.slow
+def test_damaged_entry_is_rebuilt(shared_cache):
+    cache, pair, _ = shared_cache
+    (entry,) = _entries(cache)
+    raw = entry.read_bytes()
+    entry.write_bytes(raw[: len(raw) // 2])
+    r = _result(_start(cache))
+    assert r["damaged"] == 1 and r["compiles"] == 1
+    assert r["draws"] == pair[0]["draws"]
+    assert any("cannot be used" in w and "rebuilt" in w for w in r["cache_warnings"])
+    (rebuilt,) = _entries(cache)
+    assert rebuilt.name == entry.name and modelcache.entry_ok(rebuilt)  # a whole entry again, same key
+    half = cache / "half.bin"
+    half.write_bytes(raw[: len(raw) // 2])
+    assert not modelcache.entry_ok(half)
+
+
+@pytest.mark.slow
+def test_unwritable_cache_folder_runs_and_says_why_once(tmp_path):
+    blocker = tmp_path / "not-a-folder"
+    blocker.write_text("a file where the cache folder should be")
+    r = _result(_start(blocker / "cache", fits=2))
+    assert r["compiles"] == 1  # the second fit reuses the model compiled in this process
+    assert r["draws"][0] == r["draws"][1]
+    assert len(r["cache_warnings"]) == 1 and "cannot be written" in r["cache_warnings"][0]
+
+
+def test_cache_folder_precedence(monkeypatch, tmp_path):
+    monkeypatch.delenv(cachedir.ENV_VAR, raising=False)
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
+    assert cachedir.resolve() == (tmp_path / "xdg" / "bayesdid", "XDG_CACHE_HOME")
+    monkeypatch.setenv(cachedir.ENV_VAR, str(tmp_path / "env"))
+    assert cachedir.resolve() == ((tmp_path / "env").resolve(), cachedir.ENV_VAR)
+    assert cachedir.resolve(tmp_path / "opt") == ((tmp_path / "opt").resolve(), "--cache-dir")
+    monkeypatch.delenv(cachedir.ENV_VAR)
+    monkeypatch.delenv("XDG_CACHE_HOME")
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    assert cachedir.resolve() == (tmp_path / "home" / ".cache" / "bayesdid", "home")
+
+
+def test_entry_of_other_material_or_damaged_is_refused(tmp_path):
+    path = tmp_path / "x.model"
+    modelcache._write_entry(path, {"material": {"versions": {"pytensor": "1"}}, "logp": b"code"})
+    assert modelcache.entry_ok(path)
+    assert modelcache._read_entry(path, {"versions": {"pytensor": "1"}})["logp"] == b"code"
+    with pytest.raises(modelcache.DamagedEntry, match="another model or version"):
+        modelcache._read_entry(path, {"versions": {"pytensor": "2"}})
+    raw = bytearray(path.read_bytes())
+    raw[-3] ^= 0xFF  # one flipped byte in the payload
+    path.write_bytes(bytes(raw))
+    with pytest.raises(modelcache.DamagedEntry, match="checksum"):
+        modelcache._read_entry(path, {"versions": {"pytensor": "1"}})
+    assert not modelcache.entry_ok(path)
+    path.write_bytes(b"something else entirely")
+    with pytest.raises(modelcache.DamagedEntry, match="header"):
+        modelcache._read_entry(path, {"versions": {"pytensor": "1"}})
+
+
+def test_cache_command_info_and_clear(tmp_path, capsys):
+    from bayesdid.cli import main
+
+    folder = tmp_path / "c"
+    (folder / "models").mkdir(parents=True)
+    (folder / "models" / "abc.model").write_bytes(b"x" * 100)
+    (folder / "keep.txt").write_text("not ours")
+    suite_folder = cachedir.current().path
+    try:
+        assert main(["--cache-dir", str(folder), "cache", "info"]) == 0
+        out = capsys.readouterr().out
+        assert f"cache folder: {folder}" in out and "compiled models: 1" in out
+        assert main(["cache", "clear", "--cache-dir", str(folder)]) == 0
+        assert "removed 1 compiled model(s)" in capsys.readouterr().out
+        assert not (folder / "models").exists() and (folder / "keep.txt").exists()  # only bayesdid's parts
+    finally:
+        cachedir.configure(suite_folder)  # back to the suite's folder
