@@ -18,11 +18,11 @@ from bayesdid.simulate_families import CountScenario, simulate_family
 from bayesdid.study import PRIOR_NAMES
 
 
-def _cells(family, groups, adopters, covariates):
+def _cells(family, groups, adopters, covariates, rows=6, drift=False):
     starts = {0: 4, 1: 5} if adopters == 2 else {0: 4}
     if family == "gaussian":
         frame, truth = simulate(Scenario(jurisdictions=8, periods=6, groups=groups, starts=starts,
-                                         rows_per_cell=6), 1)
+                                         rows_per_cell=rows, fixed_cells=True), 1)
         if covariates:
             frame["age"] = (frame.index % 7).astype(float)
     else:
@@ -33,21 +33,23 @@ def _cells(family, groups, adopters, covariates):
                        adopters=truth["starts"], family=family,
                        exposure="exposure" if family in ("poisson", "negbinomial") else None,
                        covariates=("age" if family == "gaussian" else "C(sex)") if covariates else None)
+    if drift:
+        study = study.replace(model={"gap_drift": True})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return collapse(study, frame)
+        return collapse(study, frame), study
 
 
-CASES = [("gaussian", 2, 2, False), ("gaussian", 1, 1, False), ("gaussian", 2, 1, True),
-         ("binomial", 2, 2, False), ("poisson", 1, 2, True), ("negbinomial", 2, 1, False),
-         ("negbinomial", 1, 1, False)]
+CASES = [("gaussian", 2, 2, False, 6, False), ("gaussian", 1, 1, False, 6, False), ("gaussian", 2, 1, True, 6, False),
+         ("gaussian", 2, 2, False, 1, False), ("gaussian", 1, 2, False, 6, True),
+         ("binomial", 2, 2, False, 6, False), ("poisson", 1, 2, True, 6, False), ("negbinomial", 2, 1, False, 6, False),
+         ("negbinomial", 1, 1, False, 6, False)]
 
 
-@pytest.mark.parametrize("family,groups,adopters,covariates", CASES)
-def test_registry_names_exactly_the_priors_the_graph_reads(family, groups, adopters, covariates):
-    cells = _cells(family, groups, adopters, covariates)
-    scales = {k: v["scale"] for k, v in resolve_scales(cells, make_study(
-        table="x.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 1}).priors).items()}
+@pytest.mark.parametrize("family,groups,adopters,covariates,rows,drift", CASES)
+def test_registry_names_exactly_the_priors_the_graph_reads(family, groups, adopters, covariates, rows, drift):
+    cells, study = _cells(family, groups, adopters, covariates, rows, drift)
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, study.priors).items()}
     model, spec = build_model(cells, scales, family)
     logp = model.logp()
     used = {v.name.removeprefix("prior_") for v in ancestors([logp]) if getattr(v, "name", None)

@@ -33,6 +33,8 @@ for _k in STUDY_KEYS["sampler"]:
 for _k in STUDY_KEYS["crosscheck"]:
     READ_BY[("crosscheck", _k)] = rf"\bx\.{_k}\b|crosscheck\.{_k}\b"
 READ_BY[("decision", "threshold")] = r"decision\.threshold\b"
+READ_BY[("decision", "level")] = r"decision\.level\b"
+READ_BY[("trends", "multiples")] = r"trends\.multiples\b"
 for _k in STUDY_KEYS["priors"]:
     READ_BY[("priors", _k)] = rf"S\[\"{_k}\"\]"  # the model reads each scale by name
 for _k in STUDY_KEYS["wording"]:
