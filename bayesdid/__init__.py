@@ -9,7 +9,7 @@ Typical use::
     write_run(an, "runs/first")
 """
 
-__version__ = "0.1.0"
+from .version import __version__  # noqa: E402
 
 # The compile cache folder must be chosen before PyTensor or numba is imported (they read their
 # folders at import); the command line may choose another one with --cache-dir before its first

@@ -248,7 +248,8 @@ def cmd_trends(args, argv):
     import os
 
     from .run import dump_json
-    from .trends import trends_from_run, write_trends
+    from .trends import write_trends
+    from .trends_rerun import trends_from_run
 
     mult = None
     if args.multiples is not None:

@@ -199,7 +199,7 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     cols = study.columns
     if len(frame) == 0:
         raise DataRoleError("the table has no rows; the study needs rows for every jurisdiction and period.")
-    from .model.covariates import required_columns
+    from .covariates import required_columns
 
     used = cols.used() + [c for c in required_columns(study.model.covariates) if c not in cols.used()]
     missing_cols = [c for c in used if c not in frame.columns]
@@ -404,7 +404,7 @@ def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
                                 "Drop rows with no person-time, or fix the values.")
         out[cols.exposure] = ex
 
-    from .model.covariates import required_columns
+    from .covariates import required_columns
 
     covs = required_columns(study.model.covariates)
     if covs:

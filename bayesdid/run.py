@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from . import __version__
+from .version import __version__
 from .cells import Cells, collapse
 from .crosscheck import cross_check, cross_check_not_applicable
 from .contracts import run_id
@@ -259,7 +259,7 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
-    from .model.families import pointwise_loglik
+    from .model.registry import pointwise_loglik
 
     from .effects import att_weights
     from .sensitivity import log_prior_dataset

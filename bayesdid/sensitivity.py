@@ -103,7 +103,7 @@ def log_prior_dataset(fit) -> xr.Dataset:
 
 def log_likelihood_dataset(fit) -> xr.Dataset:
     """Pointwise log-likelihood per (jurisdiction, period), dims (chain, draw, jurisdiction, period)."""
-    from .model.families import pointwise_loglik
+    from .model.registry import pointwise_loglik
 
     post = fit.posterior
     cells = fit.cells

@@ -74,7 +74,7 @@ from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
-from . import __version__
+from .version import __version__
 from .contracts import SWEEP_SUMMARY_COLUMNS, SweepVerdict, run_id
 from .errors import BayesDidError, SweepError
 from .model.registry import study_priors

@@ -12,7 +12,8 @@ from bayesdid import make_study
 from bayesdid.cells import collapse
 from bayesdid.cli import main
 from bayesdid.model.registry import model_priors
-from bayesdid.model.terms import build_model, resolve_scales
+from bayesdid.model.registry import build_model
+from bayesdid.model.terms import resolve_scales
 from bayesdid.simulate import Scenario, simulate
 from bayesdid.simulate_families import CountScenario, simulate_family
 from bayesdid.study import PRIOR_NAMES

@@ -1,4 +1,8 @@
-"""What each outcome family's model has, in one place: its priors and its natural-scale measures.
+"""The family registry: how each outcome family's model is built, what it has, and what it reports.
+
+:func:`build_model` dispatches on the family (Gaussian on cells, the others on records) and
+:func:`pointwise_loglik` likewise; the tables below say which priors and natural-scale measures each
+family has, so nothing outside ``model/`` needs to branch on the family's name for these.
 
 The model of every family shares the hierarchical terms (:mod:`.terms`); which prior scales it then
 reads depends on the family and the design:
@@ -16,9 +20,18 @@ A prior the fitted model does not have is neither listed in summary.json nor acc
 
 from __future__ import annotations
 
-from ..study import FAMILIES, PRIOR_NAMES
+import numpy as np
+import pymc as pm
 
-__all__ = ["FAMILY_PRIORS", "model_priors", "study_priors", "NATURAL_MEASURES"]
+from ..cells import Cells
+from ..study import FAMILIES, PRIOR_NAMES
+from . import gaussian
+from .families import FAMILY_BUILDERS, build_family
+from .families import pointwise_loglik as _records_loglik
+from .gaussian import build_gaussian
+from .terms import ModelSpec, coords_of, model_spec
+
+__all__ = ["FAMILY_PRIORS", "model_priors", "study_priors", "NATURAL_MEASURES", "build_model", "pointwise_loglik"]
 
 #: Priors of each family beyond the shared ones (see the module docstring).
 FAMILY_PRIORS = {"gaussian": ("residual",), "binomial": (), "poisson": (), "negbinomial": ("dispersion",)}
@@ -59,3 +72,26 @@ def study_priors(study) -> tuple[str, ...]:
     """:func:`model_priors` of a :class:`~bayesdid.study.Study` (read from its settings, no data)."""
     return model_priors(study.model.family, "DDD" if study.columns.group else "DiD", len(study.policy.adopters),
                         bool(study.model.covariates), drift=bool(getattr(study.model, "gap_drift", False)))
+
+
+def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
+                event_times: tuple | None = None, event_pooled: bool = False) -> tuple[pm.Model, ModelSpec]:
+    """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
+    spec = model_spec(cells, family, effects=effects, event_times=event_times, event_pooled=event_pooled)
+    terms = ({"drift": True} if spec.drift else {}) if spec.effects == "att" else {
+        "effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
+    if family == "gaussian":
+        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
+                              residual=spec.residual, **terms), spec
+    if family in FAMILY_BUILDERS:
+        return build_family(cells, scales, coords_of(cells), family), spec
+    raise NotImplementedError(f"family '{family}' is not built yet")
+
+
+def pointwise_loglik(fit) -> np.ndarray:
+    """Log-likelihood of each jurisdiction-period for every draw: (S, J, T). Gaussian: the shock and gap
+    noise integrated out (:func:`bayesdid.model.gaussian.pointwise_loglik`); other families: given the
+    latent fields (:func:`bayesdid.model.families.pointwise_loglik`)."""
+    if fit.spec.family == "gaussian":
+        return gaussian.pointwise_loglik(fit)
+    return _records_loglik(fit)
