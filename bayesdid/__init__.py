@@ -11,6 +11,10 @@ Typical use::
 
 from .version import __version__  # noqa: E402
 
+from .lifeline import arm_from_env as _arm_from_env  # noqa: E402
+
+_arm_from_env()  # a sweep's worker binds itself to the sweep before its heavy imports (bayesdid.lifeline)
+
 # The compile cache folder must be chosen before PyTensor or numba is imported (they read their
 # folders at import); the command line may choose another one with --cache-dir before its first
 # heavy import, which is why the names of .run are imported lazily below.

@@ -98,8 +98,11 @@ def configure(override: str | os.PathLike | None = None) -> CacheDir:
     if "pytensor" not in sys.modules:
         compiledir = path / "pytensor" if writable else Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
         flags = [f for f in os.environ.get("PYTENSOR_FLAGS", "").split(",")
-                 if f and not f.strip().startswith("base_compiledir")]
-        os.environ["PYTENSOR_FLAGS"] = ",".join([*flags, f"base_compiledir={compiledir}"])
+                 if f and not f.strip().startswith(("base_compiledir", "generated_src_dir"))]
+        # generated_src_dir: without it PyTensor writes the Python source it generates for each
+        # compiled function into a new file of the system's temporary folder and never removes it
+        os.environ["PYTENSOR_FLAGS"] = ",".join([*flags, f"base_compiledir={compiledir}",
+                                                 f"generated_src_dir={compiledir / 'generated_src'}"])
     if "numba" not in sys.modules and writable:
         os.environ["NUMBA_CACHE_DIR"] = str(path / "numba")
     return _CURRENT

@@ -90,6 +90,9 @@ def read_table(path: str | Path) -> pd.DataFrame:
         raise DataRoleError(f"table '{path}' is a folder, not a file; 'data.table' must name one CSV or Parquet "
                             "file (a path relative to the study file).")
     if not path.is_file():
+        if path.is_symlink() and not path.exists():
+            raise DataRoleError(f"table '{path}' is a symbolic link that leads nowhere (its target is missing, or the "
+                                "link loops); point it at the table, or name the table itself in 'data.table'.")
         raise DataRoleError(f"table '{path}' does not exist; fix 'data.table' in the study file "
                             "(a path relative to the study file).")
     suffix = path.suffix.lower()
@@ -204,9 +207,13 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     used = cols.used() + [c for c in required_columns(study.model.covariates) if c not in cols.used()]
     missing_cols = [c for c in used if c not in frame.columns]
     if missing_cols:
+        sep = next((c for c in (";", "\t", "|") if len(frame.columns) == 1 and c in str(frame.columns[0])), None)
+        hint = (f" Its header reads as one column holding {sep!r}: the file seems to separate fields with {sep!r}; "
+                "save it with commas as separators (in a spreadsheet: CSV, comma-delimited)." if sep else "")
         raise DataRoleError(
             f"column(s) {missing_cols} named in the study are not in the table; it has "
-            f"{list(frame.columns)[:20]}. Fix the names under [data] or [model] covariates, or the table's header.")
+            f"{list(frame.columns)[:20]}. Fix the names under [data] or [model] covariates, or the table's header."
+            + hint)
     out = frame[used].copy()
 
     for role in ("jurisdiction", "period", "group"):

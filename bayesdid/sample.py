@@ -9,8 +9,10 @@ once, by any process, loads in about a second. :data:`COMPILES` counts real comp
 
 from __future__ import annotations
 
+import threading
 import time
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -23,7 +25,8 @@ from .model.registry import build_model
 from .model.terms import design_data, model_spec
 from .study import SamplerSettings
 
-__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "LOADS", "THRESHOLDS", "clear_cache", "compile_exact"]
+__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "LOADS", "THRESHOLDS", "clear_cache", "compile_exact",
+           "Stopped", "stop_when"]
 
 #: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
 THRESHOLDS = {"rhat_max": 1.01, "ess_bulk_min": 400, "ess_tail_min": 400, "divergences": 0}
@@ -40,6 +43,58 @@ _CACHE: dict[tuple, tuple] = {}
 
 def clear_cache() -> None:
     _CACHE.clear()
+
+
+class Stopped(RuntimeError):
+    """Raised inside :func:`stop_when` once its check says the work is no longer wanted."""
+
+
+_STOP = threading.local()
+#: seconds between two looks at a :func:`stop_when` check while sampling
+STOP_POLL = 0.1
+
+
+@contextmanager
+def stop_when(check):
+    """In this thread, within the block: no compile starts and sampling is cancelled once ``check()`` is true.
+
+    Both raise :class:`Stopped` (sampling within :data:`STOP_POLL` seconds; a compile already under way
+    finishes first and stays cached). Sweeps on Dask use it to end a variant whose sweep was killed:
+    the cluster's worker processes are not the sweep's to end, but its work on them is. Outside such
+    a block sampling is the plain blocking call.
+    """
+    prev = getattr(_STOP, "check", None)
+    _STOP.check = check
+    try:
+        yield
+    finally:
+        _STOP.check = prev
+
+
+def _stop_if_asked() -> None:
+    check = getattr(_STOP, "check", None)
+    if check is not None and check():
+        raise Stopped("stopped: the process that asked for this work is gone")
+
+
+def _sample(compiled, **kw):
+    """nutpie.sample, or, inside :func:`stop_when`, the same sampler run in the background and polled."""
+    import nutpie
+
+    check = getattr(_STOP, "check", None)
+    if check is None:
+        return nutpie.sample(compiled, **kw)
+    sampler = nutpie.sample(compiled, blocking=False, **kw)
+    try:
+        while True:
+            try:  # nutpie raises TimeoutError while the sampler still runs (is_finished may too)
+                return sampler.wait(timeout=STOP_POLL)
+            except TimeoutError:
+                if check():
+                    raise Stopped("stopped while sampling: the process that asked for this work is gone") from None
+    except BaseException:
+        sampler.cancel()
+        raise
 
 
 @dataclass
@@ -111,6 +166,7 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         for k, v in upd.items():
             model[k].set_value(np.asarray(v, dtype=model[k].dtype))
         return compiled.with_data(**upd), spec, 0.0
+    _stop_if_asked()
     model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
     compiled, how = compile_cached(model, compile_exact)
@@ -119,7 +175,11 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         COMPILES["count"] += 1
     else:
         LOADS["count"] += 1
-    _CACHE[key] = (compiled, set(model.named_vars), model)
+    # The data containers the compiled functions read: a container the graph no longer uses (the
+    # cell counts of a model without a residual sd, folded away as 0 * x) is not among them, and
+    # nutpie's with_data refuses names it does not know.
+    used = {var.name for var in compiled.shared_var_keys}
+    _CACHE[key] = (compiled, set(model.named_vars) & used, model)
     return compiled, spec, dt
 
 
@@ -142,17 +202,15 @@ def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: 
         The treatment terms (see :func:`bayesdid.model.terms.hierarchical_mean`); the default is the
         per-adopter effect. ``effects="event_time"`` fits one effect per event time.
     """
-    import nutpie
-
     terms = {} if effects == "att" else {"effects": effects, "event_times": event_times,
                                          "event_pooled": event_pooled}
     compiled, spec, compile_s = _compiled_for(cells, scales, family, terms)
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        tree = nutpie.sample(compiled, draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                             cores=min(settings.chains, 2), seed=settings.seed, progress_bar=progress,
-                             save_warmup=False, target_accept=TARGET_ACCEPT)
+        tree = _sample(compiled, draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                       cores=min(settings.chains, 2), seed=settings.seed, progress_bar=progress,
+                       save_warmup=False, target_accept=TARGET_ACCEPT)
     sample_s = time.perf_counter() - t0
     tree = _relabel(tree, cells, spec)
     fit = Fit(cells=cells, tree=tree, spec=spec, scales=dict(scales), settings=settings,

@@ -15,8 +15,12 @@ checks and cells as a table of cell means (``data.summary = "mean"``): the cells
 collapse to rounding. The local and the Dask paths run the same function on the same files and merge
 the results in file order, so their cells are equal bit for bit.
 
-Supported: the Gaussian family without covariates, weights or units (what per-cell count, mean and
-spread carry). Other shapes are refused with the reason; read them in memory.
+Supported: observation rows without covariates, weights or units, in every family. The binomial and
+count families are reduced to per-cell sums of the outcome and of the trials or exposure (exact for
+whole numbers), passed on as one aggregated row per cell; their cells (``n``, ``sum_y`` and the
+likelihood's records) equal the in-memory ones, while ``ss`` and ``sum_y2``, which those families do
+not use, are those of the cell rows. Covariates, weights and units are refused with the reason; read
+such tables in memory.
 """
 
 from __future__ import annotations
@@ -63,6 +67,10 @@ def stream_sources(table: str | Path) -> tuple[list[str], str]:
         raise DataRoleError(f"table '{text}' does not exist; fix 'data.table' (a file, a folder of Parquet files or "
                             "a glob such as 'claims/*.parquet').")
     if not files:
+        if Path(text).is_dir():
+            raise DataRoleError(f"table '{text}' is a folder holding no data file (hidden files and names starting "
+                                "with '_' are skipped); put the Parquet files in it, or name one CSV or Parquet file "
+                                "in 'data.table'.")
         raise DataRoleError(f"table '{text}' matches no file; fix 'data.table' or the folder's contents.")
     kinds = {("parquet" if f.lower().endswith((".parquet", ".pq")) else
               "csv" if f.lower().endswith((".csv", ".csv.gz", ".txt")) else "other") for f in files}
@@ -82,8 +90,6 @@ def stream_sources(table: str | Path) -> tuple[list[str], str]:
 def _check_study(study: Study) -> None:
     c = study.columns
     reasons = []
-    if study.model.family != "gaussian":
-        reasons.append(f"family '{study.model.family}'")
     if study.model.covariates:
         reasons.append("covariates")
     for key in ("weight", "unit"):
@@ -92,9 +98,9 @@ def _check_study(study: Study) -> None:
     if study.summary is not None:
         reasons.append("data.summary")
     if reasons:
-        raise DataRoleError(f"the streaming collapse supports the Gaussian family on observation rows without "
-                            f"covariates, weights or units; this study has {', '.join(reasons)}. Give a single "
-                            "file that fits in memory (without --stream or --cluster).")
+        raise DataRoleError(f"the streaming collapse takes observation rows without covariates, weights or units "
+                            f"(any family); this study has {', '.join(reasons)}. Give a single file that fits in "
+                            "memory (without --stream or --cluster).")
 
 
 def _schemas(files: list[str], kind: str, used: list[str]) -> None:
@@ -161,20 +167,21 @@ def _codes(arr, table: dict, what: str, where: str) -> np.ndarray:
     return local[arr.indices.to_numpy(zero_copy_only=False)]
 
 
-def partial_of_file(path: str, kind: str, roles: dict, log_outcome: bool) -> dict:
+def partial_of_file(path: str, kind: str, roles: dict, log_outcome: bool, family: str = "gaussian") -> dict:
     """Per-cell count, mean and within sum of squares of one file, merged over its batches in order.
 
-    ``roles`` maps 'outcome', 'jurisdiction', 'period' and optionally 'group' to column names. Returns
-    ``{"labels": {role: {text: (code, value)}}, "rows": int, "n", "mean", "ss": flat arrays, "dims"}``
-    in the file's own codes (mapped to global ones by :func:`merge_partials`).
+    ``roles`` maps 'outcome', 'jurisdiction', 'period' and optionally 'group' and 'size' (trials or
+    exposure) to column names. Returns ``{"labels": {role: {text: (code, value)}}, "rows": int, "dims",
+    ...}`` with flat per-cell arrays ``n, mean, ss`` (Gaussian) or ``n, sy, sz`` (rows, sum of the
+    outcome, sum of trials or exposure: the other families), in the file's own codes (mapped to global
+    ones by :func:`merge_partials`).
     """
     keys = [r for r in ("jurisdiction", "group", "period") if roles.get(r)]
-    state = {"labels": {r: {} for r in keys}, "rows": 0,
-             "acc": {"n": np.zeros(0), "mean": np.zeros(0), "ss": np.zeros(0), "dims": (0, 0, 0)}}
-    used = [roles[r] for r in ("outcome", *keys)]
+    state = {"labels": {r: {} for r in keys}, "rows": 0, "acc": {"dims": (0, 0, 0)}}
+    used = [roles[r] for r in ("outcome", *keys)] + ([roles["size"]] if roles.get("size") else [])
     try:
         for batch in _scanner(path, kind, used).to_batches():
-            _add_batch(state, batch, keys, roles, log_outcome, path)
+            _add_batch(state, batch, keys, roles, log_outcome, path, family)
     except DataRoleError:
         raise
     except Exception as exc:  # noqa: BLE001 - pyarrow's readers raise many kinds
@@ -184,25 +191,55 @@ def partial_of_file(path: str, kind: str, roles: dict, log_outcome: bool) -> dic
     return {"labels": state["labels"], "rows": state["rows"], **state["acc"]}
 
 
-def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, path: str) -> None:
-    """Fold one record batch into ``state`` (labels, rows read, per-cell accumulator)."""
+def _numbers(batch, col: str, what: str, where: str) -> np.ndarray:
     import pyarrow as pa
 
+    arr = batch.column(col)
+    if pa.types.is_dictionary(arr.type) or not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)):
+        raise DataRoleError(f"{what} column '{col}' holds {arr.type} values in {where}, where numbers are "
+                            "expected; give numbers (an empty field for a missing value).")
+    if arr.null_count:
+        raise DataRoleError(f"{what} column '{col}' has {arr.null_count} missing value(s) in {where}; drop those "
+                            "rows or fill them before the analysis.")
+    v = arr.to_numpy(zero_copy_only=False).astype(float, copy=False)
+    if not np.isfinite(v).all():
+        raise DataRoleError(f"{what} column '{col}' has infinite values in {where}; replace or drop them.")
+    return v
+
+
+def _count_rows(y: np.ndarray, size: np.ndarray | None, roles: dict, family: str, where: str) -> np.ndarray:
+    """Checks of a batch of binomial or count rows (as the in-memory checks); returns the sizes."""
+    col = roles["outcome"]
+    if family == "binomial" and size is None:
+        if ((y != 0) & (y != 1)).any():
+            raise DataRoleError(f"outcome column '{col}' must be 0 or 1 for family 'binomial' without a trials column; "
+                                f"{where} hold other values. Recode it, or name the trials in 'data.trials'.")
+        return np.ones_like(y)
+    if (y < 0).any() or (y != np.round(y)).any():
+        raise DataRoleError(f"outcome column '{col}' must hold whole, non-negative counts for family '{family}'; "
+                            f"{where} do not.")
+    if family == "binomial":
+        if (size < 1).any() or (size != np.round(size)).any():
+            raise DataRoleError(f"trials column '{roles['size']}' must hold whole numbers of at least 1; {where} "
+                                "do not.")
+        if (y > size).any():
+            raise DataRoleError(f"trials column '{roles['size']}' is below the successes in '{col}' in {where}; "
+                                "check which column is which.")
+    elif (size <= 0).any():
+        raise DataRoleError(f"exposure column '{roles['size']}' must be positive (person-time); {where} hold zero "
+                            "or negative values. Drop rows with no person-time.")
+    return size
+
+
+def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, path: str,
+               family: str = "gaussian") -> None:
+    """Fold one record batch into ``state`` (labels, rows read, per-cell accumulator)."""
     if batch.num_rows == 0:
         return
     rows, labels = state["rows"], state["labels"]
     where = f"rows {rows + 1:,}-{rows + batch.num_rows:,} of '{path}'"
     col = roles["outcome"]
-    yarr = batch.column(col)
-    if pa.types.is_dictionary(yarr.type) or not (pa.types.is_integer(yarr.type) or pa.types.is_floating(yarr.type)):
-        raise DataRoleError(f"outcome column '{col}' holds {yarr.type} values in {where}, where numbers are "
-                            "expected; give numbers (an empty field for a missing value).")
-    if yarr.null_count:
-        raise DataRoleError(f"outcome column '{col}' has {yarr.null_count} missing value(s) in {where}; drop those "
-                            "rows or fill them before the analysis.")
-    y = yarr.to_numpy(zero_copy_only=False).astype(float, copy=False)
-    if not np.isfinite(y).all():
-        raise DataRoleError(f"outcome column '{col}' has infinite values in {where}; replace or drop them.")
+    y = _numbers(batch, col, "outcome", where)
     if log_outcome:
         if (y <= 0).any():
             raise DataRoleError(f"outcome column '{col}' has values at or below zero in {where}, but "
@@ -215,6 +252,14 @@ def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, p
     size = dims[0] * dims[1] * dims[2]
     n_b = np.bincount(idx, minlength=size).astype(float)
     s_b = np.bincount(idx, weights=y, minlength=size)
+    if family != "gaussian":
+        sz = _numbers(batch, roles["size"], "trials" if family == "binomial" else "exposure", where) \
+            if roles.get("size") else None
+        sz = _count_rows(y, sz, roles, family, where)
+        part = {"n": n_b, "sy": s_b, "sz": np.bincount(idx, weights=sz, minlength=size), "dims": dims}
+        state["acc"] = _merge_dense(state["acc"], part)
+        state["rows"] = rows + batch.num_rows
+        return
     m_b = np.where(n_b > 0, s_b / np.where(n_b > 0, n_b, 1.0), 0.0)
     dev = y - m_b[idx]
     ss_b = np.bincount(idx, weights=dev * dev, minlength=size)
@@ -230,9 +275,13 @@ def _grow(a: np.ndarray, old: tuple, new: tuple) -> np.ndarray:
 
 
 def _merge_dense(a: dict, b: dict) -> dict:
-    """Chan's pairwise merge of two per-cell (n, mean, ss) arrays on a common, grown grid."""
+    """Merge two per-cell accumulators on a common, grown grid: Chan's pairwise update of (n, mean, ss)
+    for the Gaussian family, plain sums of (n, sy, sz) otherwise."""
     dims = tuple(max(x, y) for x, y in zip(a["dims"], b["dims"]))
-    na, ma, sa = (_grow(a[k], a["dims"], dims) for k in ("n", "mean", "ss"))
+    if "mean" not in b:
+        return {"dims": dims, **{k: (_grow(a[k], a["dims"], dims) if k in a else np.zeros(dims)).ravel()
+                                 + _grow(b[k], b["dims"], dims).ravel() for k in ("n", "sy", "sz")}}
+    na, ma, sa = (_grow(a[k], a["dims"], dims) if k in a else np.zeros(dims) for k in ("n", "mean", "ss"))
     nb, mb, sb = (_grow(b[k], b["dims"], dims) for k in ("n", "mean", "ss"))
     n = na + nb
     safe = np.where(n > 0, n, 1.0)
@@ -246,7 +295,7 @@ def merge_partials(parts: list[dict]) -> tuple[dict, dict]:
     """Merge per-file partials in order on global label codes; returns (labels, dense accumulator)."""
     keys = ("jurisdiction", "group", "period")
     glob_labels: dict[str, dict] = {k: {} for k in keys}
-    acc = {"n": np.zeros(0), "mean": np.zeros(0), "ss": np.zeros(0), "dims": (0, 0, 0)}
+    acc = {"dims": (0, 0, 0)}
     rows = 0
     for p in parts:
         maps = []
@@ -265,13 +314,16 @@ def merge_partials(parts: list[dict]) -> tuple[dict, dict]:
             maps.append(m)
         dims = tuple(max(len(glob_labels[k]), 1) for k in keys)
         pd_ = p["dims"]
-        if not pd_[0] or not p["n"].size:
+        if not pd_[0] or "n" not in p or not p["n"].size:
             continue
-        n, mean, ss = (np.zeros(dims) for _ in range(3))
-        src = {k: p[k].reshape(pd_) for k in ("n", "mean", "ss")}
+        fields = ("n", "mean", "ss") if "mean" in p else ("n", "sy", "sz")
         jj, gg, tt = np.ix_(maps[0][:pd_[0]], maps[1][:pd_[1]], maps[2][:pd_[2]])
-        n[jj, gg, tt], mean[jj, gg, tt], ss[jj, gg, tt] = src["n"], src["mean"], src["ss"]
-        acc = _merge_dense(acc, {"n": n.ravel(), "mean": mean.ravel(), "ss": ss.ravel(), "dims": dims})
+        part = {"dims": dims}
+        for k in fields:
+            arr = np.zeros(dims)
+            arr[jj, gg, tt] = p[k].reshape(pd_)
+            part[k] = arr.ravel()
+        acc = _merge_dense(acc, part)
         rows += p["rows"]
     acc["rows"] = rows
     return glob_labels, acc
@@ -321,38 +373,50 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
         Unsupported study shapes; no file; files disagreeing on columns or types; missing or non-numeric
         values in a role column (naming the rows and the file); then every check of the cell table.
     """
-    from .cells import collapse
-
     _check_study(study)
     c = study.columns
     files, kind = stream_sources(study.table)
-    roles = {"outcome": c.outcome, "jurisdiction": c.jurisdiction, "period": c.period, "group": c.group}
+    family = study.model.family
+    size_col = c.trials if family == "binomial" else c.exposure if family != "gaussian" else None
+    roles = {"outcome": c.outcome, "jurisdiction": c.jurisdiction, "period": c.period, "group": c.group,
+             "size": size_col}
     roles = {k: v for k, v in roles.items() if v}
     _schemas(files, kind, list(roles.values()))
-    args = [(f, kind, roles, study.model.log_outcome) for f in files]
+    args = [(f, kind, roles, study.model.log_outcome, family) for f in files]
     if cluster:
         parts = _cluster_map(cluster, partial_of_file, args)
     else:
         parts = [partial_of_file(*a) for a in args]
     labels, acc = merge_partials(parts)
+    if "n" not in acc:
+        raise DataRoleError(f"table '{study.table}' has no rows; the study needs rows for every jurisdiction and "
+                            "period.")
     J, G, T = acc["dims"]
-    n, mean, ss = (acc[k].reshape(J, G, T) for k in ("n", "mean", "ss"))
+    n = acc["n"].reshape(J, G, T)
     jv = [v for _, v in sorted(labels["jurisdiction"].values())]
     gv = [v for _, v in sorted(labels["group"].values())]
     tv = [v for _, v in sorted(labels["period"].values())]
     jj, gg, tt = np.nonzero(n > 0)
-    k = n[jj, gg, tt]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sd = np.where(k > 1, np.sqrt(ss[jj, gg, tt] / np.maximum(k - 1, 1)), np.nan)
     table = {c.jurisdiction: [str(v) for v in np.asarray(jv, dtype=object)[jj]],
-             c.period: list(np.asarray(tv, dtype=object)[tt]),
-             c.outcome: mean[jj, gg, tt], "__count": k, "__spread": sd}
+             c.period: list(np.asarray(tv, dtype=object)[tt])}
     if c.group:
         table[c.group] = [str(v) for v in np.asarray(gv, dtype=object)[gg]]
-    frame = pd.DataFrame(table)
-    as_means = study.replace(summary="mean", columns={"count": "__count", "sd": "__spread"},
-                             model={"log_outcome": False})
-    cells = collapse(as_means, frame)
     from dataclasses import replace
 
+    from .cells import collapse
+
+    if family == "gaussian":
+        mean, ss = (acc[k].reshape(J, G, T) for k in ("mean", "ss"))
+        k = n[jj, gg, tt]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sd = np.where(k > 1, np.sqrt(ss[jj, gg, tt] / np.maximum(k - 1, 1)), np.nan)
+        table.update({c.outcome: mean[jj, gg, tt], "__count": k, "__spread": sd})
+        as_cells = study.replace(summary="mean", columns={"count": "__count", "sd": "__spread"},
+                                 model={"log_outcome": False})
+    else:  # one row per cell with the summed outcome and trials or exposure: the families' own aggregated form
+        sy, sz = (acc[k].reshape(J, G, T)[jj, gg, tt] for k in ("sy", "sz"))
+        size_name = size_col or "__trials"
+        table.update({c.outcome: sy, size_name: sz})
+        as_cells = study if size_col else study.replace(columns={"trials": "__trials"})
+    cells = collapse(as_cells, pd.DataFrame(table))
     return replace(cells, log_outcome=study.model.log_outcome, rows=int(acc["rows"])), listing_digest(files)

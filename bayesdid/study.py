@@ -622,6 +622,9 @@ def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
     if path.is_dir():
         raise error(f"{what} '{path}' is a folder, not a file; give the path of the file itself.")
     if not path.exists():
+        if path.is_symlink():
+            raise error(f"{what} '{path}' is a symbolic link that leads nowhere (its target is missing, or the "
+                        "link loops); point it at the file, or give the file's own path.")
         raise error(f"{what} '{path}' does not exist; check the path (relative paths start in the current folder).")
     try:
         data = path.read_bytes()

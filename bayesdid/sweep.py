@@ -77,6 +77,7 @@ import numpy as np
 from .version import __version__
 from .contracts import SWEEP_SUMMARY_COLUMNS, SweepVerdict, run_id
 from .errors import BayesDidError, SweepError
+from .lifeline import workers_end_with_me
 from .model.registry import study_priors
 from .outputs import owner_alive, owner_tag, probe_writable, process_start
 from .study import PRIOR_NAMES, Study, _parse, load_study, study_to_dict
@@ -619,33 +620,11 @@ class _Lock:
 
 
 def _bind_to_parent(parent_pid: int) -> None:
-    """Pool-worker initializer: the worker ends when the sweep's main process does, however it ends.
+    """Pool-worker initializer: the worker ends when the sweep's main process does, however it ends
+    (:func:`bayesdid.lifeline.bind_to_parent`)."""
+    from .lifeline import bind_to_parent
 
-    On Linux the kernel sends SIGKILL to the worker when its parent dies (prctl PR_SET_PDEATHSIG);
-    everywhere a watchdog thread checks the parent pid once a second and ends the worker once it
-    has been handed to another parent.
-    """
-    import signal
-    import threading
-
-    if sys.platform.startswith("linux"):
-        try:
-            import ctypes
-
-            libc = ctypes.CDLL(None, use_errno=True)
-            libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
-        except (OSError, AttributeError):
-            pass
-    if os.getppid() != parent_pid:  # the parent died before the signal was armed
-        os._exit(1)
-
-    def watch():
-        while True:
-            time.sleep(1.0)
-            if os.getppid() != parent_pid:
-                os._exit(1)
-
-    threading.Thread(target=watch, name="bayesdid-parent-watch", daemon=True).start()
+    bind_to_parent(parent_pid)
 
 
 # ---- executors ---------------------------------------------------------------------------------
@@ -680,7 +659,8 @@ def _pool(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     # each worker ends with this process, even when it is killed (_bind_to_parent)
     with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
                              initializer=_bind_to_parent, initargs=(os.getpid(),)) as ex:
-        futs = {ex.submit(fn, t): t for t in tasks}
+        with workers_end_with_me():  # the workers start in submit; they arm the signal while importing
+            futs = {ex.submit(fn, t): t for t in tasks}
         for f in as_completed(futs):
             yield _result_or_failure(f, futs[f], lost)
 
@@ -688,12 +668,16 @@ def _pool(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
 def _dask(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     from distributed import Client, LocalCluster, as_completed
 
+    from .on_dask import EndWithSweep, on_dask
+
     fn = fn or run_variant
     local = None
     if cluster == "local":
-        local = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                             dashboard_address=None, silence_logs=40)
+        with workers_end_with_me():  # the workers start here; they arm the signal while importing
+            local = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                 dashboard_address=None, silence_logs=40)
         client = Client(local)
+        client.register_plugin(EndWithSweep(os.getpid()))
     else:
         try:
             client = Client(cluster, timeout="20s")
@@ -702,7 +686,8 @@ def _dask(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
                              "(dask scheduler) or use --cluster local.") from None
     try:
         token = uuid.uuid4().hex[:8]  # a fresh key per run: a scheduler never hands back an old result
-        futs = {client.submit(fn, t, pure=False, key=f"bayesdid-{_task_key(t, i)}-{token}"): t
+        life = {"owner": owner_tag(), "start": process_start(os.getpid())}
+        futs = {client.submit(on_dask, fn, t, life, pure=False, key=f"bayesdid-{_task_key(t, i)}-{token}"): t
                 for i, t in enumerate(tasks)}
         for f in as_completed(list(futs)):
             yield _result_or_failure(f, futs[f], lost)

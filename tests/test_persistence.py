@@ -242,6 +242,14 @@ def test_castle_one_row_per_cell_fits_cleanly(tmp_path, castle_one_adopter):
     d = df.assign(ly=np.log(df["homicide"]), D=((df["state"] == adopter) & (df["year"] >= 2006)).astype(float))
     ref = smf.ols("ly ~ C(state) + C(year) + D", data=d).fit().params["D"]
     assert an.least_squares["estimate"] == pytest.approx(ref, rel=1e-8)
+    # a placebo on the same panel re-samples the compiled model with new data (no residual-sd
+    # containers in the compiled graph: with_data must not be handed them)
+    from bayesdid import sample
+
+    before = sample.COMPILES["count"]
+    other = sorted(set(df["state"]) - {adopter})[0]
+    pl = analyse(st.replace(policy={"adopters": {other: 2005}}), full_cross_check=False)
+    assert sample.COMPILES["count"] == before and np.isfinite(pl.effects["effect"].summary["mean"])
 
 
 # ---- parallel-trends sensitivity (bayesdid.trends) ------------------------------------------------------

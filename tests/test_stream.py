@@ -101,9 +101,41 @@ def test_stream_refuses_shapes_it_cannot_carry(parts):
     d, _, truth = parts
     st = make_study(table=str(d / "parts"), outcome="y", jurisdiction="region", period="period", group="group",
                     target_group="target", adopters=truth["starts"], covariates="period")
-    with pytest.raises(DataRoleError, match="streaming collapse supports the Gaussian family .* this study has "
-                                            "covariates"):
+    with pytest.raises(DataRoleError, match="streaming collapse takes observation rows without covariates, "
+                                            "weights or units .* this study has covariates"):
         collapse_stream(st)
+
+
+@pytest.mark.parametrize("family", ["binomial", "binomial_trials", "poisson"])
+def test_stream_families_equal_in_memory(parts, tmp_path, family):
+    d, frame, truth = parts
+    rng = np.random.default_rng(4)
+    f = frame.copy()
+    kw = {}
+    if family == "binomial":
+        f["y"] = (rng.random(len(f)) < 0.3).astype(float)
+    elif family == "binomial_trials":
+        f["k"] = rng.integers(1, 9, len(f)).astype(float)
+        f["y"] = rng.binomial(f["k"].astype(int), 0.4).astype(float)
+        kw["trials"] = "k"
+    else:
+        f["t"] = rng.uniform(0.5, 2.0, len(f))
+        f["y"] = rng.poisson(1.5 * f["t"]).astype(float)
+        kw["exposure"] = "t"
+    (tmp_path / "p").mkdir()
+    half = len(f) // 2
+    for i, part in enumerate((f.iloc[:half], f.iloc[half:])):
+        pq.write_table(pa.Table.from_pandas(part, preserve_index=False), tmp_path / "p" / f"{i}.parquet")
+    fam = family.split("_")[0]
+    ref = collapse(_study(tmp_path / "x.csv", truth, family=fam, **kw), f)
+    cells, _ = collapse_stream(_study(str(tmp_path / "p"), truth, family=fam, **kw))
+    assert cells.rows == ref.rows
+    np.testing.assert_array_equal(cells.sum_y, ref.sum_y)
+    np.testing.assert_allclose(cells.n, ref.n, rtol=1e-13)
+    for key in ("cell", "y"):
+        np.testing.assert_array_equal(cells.extra["records"][key], ref.extra["records"][key])
+    np.testing.assert_allclose(cells.extra["records"]["size"], ref.extra["records"]["size"], rtol=1e-13)
+    assert cells.outcome_mean == pytest.approx(ref.outcome_mean, rel=1e-13)
 
 
 def test_cli_bad_folder_exit_2_nothing_written(parts, tmp_path, capsys):
@@ -120,3 +152,13 @@ def test_cli_bad_folder_exit_2_nothing_written(parts, tmp_path, capsys):
     assert main(["fit", str(study), "--out", str(out), "--quiet"]) == 2
     assert "disagree on the type of column 'y'" in capsys.readouterr().err
     assert not out.exists()
+
+
+def test_stream_refuses_a_binomial_outcome_that_is_not_0_or_1(parts, tmp_path):
+    d, frame, truth = parts
+    (tmp_path / "p").mkdir()
+    f = frame.assign(y=(frame["y"] > 1.5).astype(float))
+    f.loc[f.index[-1], "y"] = 2.0
+    pq.write_table(pa.Table.from_pandas(f, preserve_index=False), tmp_path / "p" / "0.parquet")
+    with pytest.raises(DataRoleError, match=r"outcome column 'y' must be 0 or 1 for family 'binomial' .*rows 1-"):
+        collapse_stream(_study(str(tmp_path / "p"), truth, family="binomial"))
