@@ -25,7 +25,7 @@ ROOT = Path(__file__).resolve().parent.parent / "bayesdid"
 LAYERS = [
     ("foundation", ["bayesdid.version", "bayesdid.errors", "bayesdid.contracts", "bayesdid.progress",
                     "bayesdid.outputs", "bayesdid.frames", "bayesdid.cachedir", "bayesdid.modelcache",
-                    "bayesdid.study", "bayesdid.model"]),  # the model package's __init__ imports nothing
+                    "bayesdid.study", "bayesdid.model", "bayesdid.lifeline"]),  # the model package's __init__ imports nothing
     ("data", ["bayesdid.data", "bayesdid.covariates", "bayesdid.panels", "bayesdid.summaries",
               "bayesdid.simulate", "bayesdid.simulate_families"]),
     ("cells", ["bayesdid.fixed_effects", "bayesdid.model.structure", "bayesdid.cells", "bayesdid.stream",
@@ -33,7 +33,7 @@ LAYERS = [
     ("model", ["bayesdid.model.registry", "bayesdid.model.terms",
                "bayesdid.model.gaussian", "bayesdid.model.families", "bayesdid.model.binomial",
                "bayesdid.model.counts", "bayesdid.model.twins"]),
-    ("inference", ["bayesdid.sample"]),
+    ("inference", ["bayesdid.sample", "bayesdid.on_dask"]),
     ("estimands", ["bayesdid.effects", "bayesdid.sensitivity", "bayesdid.trends"]),
     ("pipeline", ["bayesdid.run"]),
     ("checks", ["bayesdid.checks", "bayesdid.checks.base", "bayesdid.checks.event_time", "bayesdid.checks.pretrend",
