@@ -124,8 +124,11 @@ def inverse_link(family: str, eta, xp=NP):
     return binomial.inverse_link(eta, xp) if family == "binomial" else counts.inverse_link(eta, xp)
 
 
-def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str) -> pm.Model:
-    """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``."""
+def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str, **terms) -> pm.Model:
+    """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``.
+
+    ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean` (``effects="event_time"`` with its
+    event times: one effect per event time, for the event-time check)."""
     J, G, T = cells.shape
     arr = data_arrays(cells, family)
     cov = cells.extra.get("covariates")
@@ -185,7 +188,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                     b = (mu[0] + sd * pm.Normal("z_level", 0.0, 1.0, dims=("jurisdiction",)))[:, None]
             return pm.Deterministic("baseline", b, dims=("jurisdiction", "group"))
 
-        m, S = hierarchical_mean(cells, scales, levels=levels)
+        m, S = hierarchical_mean(cells, scales, levels=levels, **terms)
         # only the arrays this family reads: nutpie's with_data rejects names the graph does not use
         keys = ("rec_size", "rec_w") + (("rec_first", "rec_ycell", "rec_cellid") if family == "negbinomial" else ())
         used = ("rec_cell", "rec_jt", "rec_tgt") + (("rec_x",) if K else ()) + keys
