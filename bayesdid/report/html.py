@@ -131,6 +131,8 @@ def _effect_section(run: RunFolder) -> str:
             else "adopting jurisdictions"
         unit = nm["unit"] or "outcome units"
         xlabel = f"change in {nm['outcome']} (%), {who}" if pct else f"change in {nm['outcome']} ({unit}), {who}"
+        if (s.get("model") or {}).get("family", "gaussian") != "gaussian":  # the ATT is on the link scale
+            xlabel = f"effect on {nm['outcome']}, {_model_scale(run)} scale (log of the ratio), {who}"
         out.append(_img(plots.effect_figure(shown, interval=tuple(e.eti_90), threshold=e.threshold,
                                             scale=100.0 if pct else 1.0, xlabel=xlabel, median=e.median),
                         "Posterior distribution of the effect with its 90% interval and the decision threshold"))
