@@ -20,6 +20,7 @@ the run is slower.
 
 from __future__ import annotations
 
+import atexit
 import os
 import shutil
 import sys
@@ -96,7 +97,11 @@ def configure(override: str | os.PathLike | None = None) -> CacheDir:
     _CURRENT = CacheDir(path=path, source=source, writable=writable, reason=reason)
     os.environ[ENV_VAR] = str(path)  # worker processes follow
     if "pytensor" not in sys.modules:
-        compiledir = path / "pytensor" if writable else Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
+        if writable:
+            compiledir = path / "pytensor"
+        else:  # private to this process, and removed when it ends
+            compiledir = Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
+            atexit.register(shutil.rmtree, compiledir, ignore_errors=True)
         flags = [f for f in os.environ.get("PYTENSOR_FLAGS", "").split(",")
                  if f and not f.strip().startswith(("base_compiledir", "generated_src_dir"))]
         # generated_src_dir: without it PyTensor writes the Python source it generates for each
@@ -140,9 +145,12 @@ def info(cache: CacheDir | None = None) -> dict:
     for sub in SUBFOLDERS:
         files, total = _size(c.path / sub) if (c.path / sub).is_dir() else (0, 0)
         parts[sub] = {"files": files, "bytes": total}
+    from .modelcache import entry_ok
+
     entries = sorted(c.models.glob("*.model")) if c.models.is_dir() else []
+    damaged = sum(not entry_ok(e) for e in entries)
     return {"folder": str(c.path), "chosen_by": c.source, "writable": c.writable, "reason": c.reason,
-            "models": len(entries), "parts": parts,
+            "models": len(entries), "damaged": damaged, "parts": parts,
             "bytes": sum(p["bytes"] for p in parts.values())}
 
 

@@ -70,7 +70,7 @@ def _fit_and_write(study, out, args, argv, then=None):
     print(headline_of(summary, json.loads((path / "manifest.json").read_text()).get("study")))
     print(f"results in {path}")
     if then is not None:
-        then(study, path)
+        then(study, path, an)
     diag = an.fit.diagnostics
     if not diag["ok"]:
         _say("WARNING: " + diag["advice"])
@@ -166,14 +166,17 @@ ANALYZE_STEPS = [
 ]
 
 
-def _write_report_step(study, path):
+def _write_report_step(study, path, an=None):
     from .report.html import write_report
 
     print(f"report in {write_report(path)}")
 
 
-def _optional_steps(study, path):
+def _optional_steps(study, path, an=None):
+    """The steps of ANALYZE_STEPS; a step that takes ``cells`` and ``main_fit`` reuses the fit just made
+    (same cells, priors, settings and seed: the same draws it would sample again)."""
     import importlib
+    import inspect
 
     for name, mod, fn in ANALYZE_STEPS:
         try:
@@ -181,8 +184,11 @@ def _optional_steps(study, path):
         except (ImportError, AttributeError):
             _say(f"{name}: not available in this version of bayesdid; the report marks it as absent")
             continue
+        params = inspect.signature(func).parameters
+        reuse = ({"cells": an.cells, "main_fit": an.fit}
+                 if an is not None and "cells" in params and "main_fit" in params else {})
         try:
-            func(study, path)
+            func(study, path, **reuse)
             _say(f"{name}: done")
         except BayesDidError as exc:
             _say(f"{name}: not run ({exc}); the report marks it as absent")
@@ -393,7 +399,8 @@ def cmd_cache(args, argv):
     i = cachedir.info(c)
     print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
     print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
-    print(f"compiled models: {i['models']}")
+    print(f"compiled models: {i['models']}" + (f" ({i['damaged']} damaged: the next run that needs them rebuilds "
+                                               "them)" if i["damaged"] else ""))
     for sub, p in i["parts"].items():
         print(f"  {sub}/: {p['files']} file(s), {p['bytes'] / 1e6:.1f} MB")
     print("clear it with: bayesdid cache clear")

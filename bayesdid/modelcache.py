@@ -49,7 +49,7 @@ from .version import __version__
 __all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS"]
 
 #: Bump when the entry layout or the way models are compiled changes (compile flags, nutpie wrapper).
-FORMAT = 1
+FORMAT = 2
 MAGIC = b"bayesdid compiled model\n"
 #: Compiles, loads from disk and damaged entries met in this process (tests and benchmarks read it).
 STATS = {"compiled": 0, "loaded": 0, "damaged": 0, "store_failed": 0}
@@ -164,9 +164,20 @@ class _DataVar:
         return f"<data {self.name}>"
 
 
+def _external_symbols(library) -> list[str]:
+    """Symbols the machine code of ``library`` takes from the process (numba's runtime and C helpers)."""
+    mod = library._final_module
+    names = {f.name for f in mod.functions if f.is_declaration}
+    names |= {g.name for g in mod.global_variables if g.is_declaration}
+    return sorted(n for n in names if not n.startswith("llvm."))
+
+
 def _payload(compiled, material: dict) -> dict:
     keys = [(var.name, key) for var, key in compiled.shared_var_keys.items()]
+    externals = set(_external_symbols(compiled.compiled_logp_func._library))
+    externals |= set(_external_symbols(compiled.compiled_expand_func._library))
     return {
+        "externals": sorted(externals),
         "material": material,
         "logp": compiled.compiled_logp_func._library.serialize_using_object_code(),
         "logp_name": compiled.compiled_logp_func.native_name,
@@ -233,11 +244,26 @@ def _read_entry(path: Path, material: dict) -> dict:
     return payload
 
 
+def _missing_symbols(names) -> list[str]:
+    import llvmlite.binding as ll
+
+    return [n for n in names if not ll.address_of_symbol(n)]
+
+
 def _functions_from(payload: dict) -> tuple:
     from numba.core.registry import cpu_target
+    from numba.core.runtime import rtsys
 
+    # Every symbol the code calls must be known to the JIT before it is added, or LLVM aborts the
+    # process. Creating numba's CPU context registers its C helpers, rtsys its runtime (NRT_*); the
+    # full refresh (seconds: it imports every lowering registry) only when something is still missing.
     ctx = cpu_target.target_context
-    ctx.refresh()  # numba's runtime symbols (NRT_*) must be registered before code that calls them is added
+    rtsys.initialize(ctx)
+    if _missing_symbols(payload["externals"]):
+        ctx.refresh()
+        missing = _missing_symbols(payload["externals"])
+        if missing:
+            raise DamagedEntry(f"its code needs symbols this process does not provide ({', '.join(missing[:3])})")
     codegen = ctx.codegen()
     logp = _LoadedFunc(codegen.unserialize_library(payload["logp"]), payload["logp_name"])
     expand = _LoadedFunc(codegen.unserialize_library(payload["expand"]), payload["expand_name"])

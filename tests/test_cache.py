@@ -128,13 +128,13 @@ def test_cache_command_info_and_clear(tmp_path, capsys):
 
     folder = tmp_path / "c"
     (folder / "models").mkdir(parents=True)
-    (folder / "models" / "abc.model").write_bytes(b"x" * 100)
+    (folder / "models" / "abc.model").write_bytes(b"x" * 100)  # not a whole entry
     (folder / "keep.txt").write_text("not ours")
     suite_folder = cachedir.current().path
     try:
         assert main(["--cache-dir", str(folder), "cache", "info"]) == 0
         out = capsys.readouterr().out
-        assert f"cache folder: {folder}" in out and "compiled models: 1" in out
+        assert f"cache folder: {folder}" in out and "compiled models: 1 (1 damaged" in out
         assert main(["cache", "clear", "--cache-dir", str(folder)]) == 0
         assert "removed 1 compiled model(s)" in capsys.readouterr().out
         assert not (folder / "models").exists() and (folder / "keep.txt").exists()  # only bayesdid's parts

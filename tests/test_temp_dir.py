@@ -63,3 +63,21 @@ def test_a_cold_fit_writes_nothing_into_the_system_temporary_folder(tmp_path):
     # the compile did write its artefacts, into the cache folder
     assert any(p.is_file() for p in (cache / "pytensor").rglob("*")), sorted(cache.rglob("*"))[:10]
     assert any((cache / "models").iterdir())
+
+
+def test_with_an_unwritable_cache_folder_the_private_compile_folder_goes_with_the_process(tmp_path):
+    """The fallback when the cache folder cannot be written is a private temporary folder for
+    PyTensor; it is removed when the process ends, not left in the system's temporary folder."""
+    system_tmp = tmp_path / "system-tmp"
+    system_tmp.mkdir()
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder")
+    env = {k: v for k, v in os.environ.items() if k not in ("PYTENSOR_FLAGS", "NUMBA_CACHE_DIR", "XDG_CACHE_HOME")}
+    env.update(TMPDIR=str(system_tmp), BAYESDID_CACHE_DIR=str(blocker / "cache"))
+    code = ("import os, bayesdid, pytensor; "
+            "d = pytensor.config.base_compiledir; print(d); assert os.path.isdir(d)")
+    proc = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    used = Path(proc.stdout.strip().splitlines()[-1])
+    assert used.parent == system_tmp and used.name.startswith("bayesdid-pytensor-")  # it was there while running
+    assert sorted(system_tmp.iterdir()) == []

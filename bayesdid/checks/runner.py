@@ -164,8 +164,10 @@ def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False,
     return Path(out)
 
 
-def checks_into_run(study: Study, run_dir: str | Path, log=None) -> Path:
+def checks_into_run(study: Study, run_dir: str | Path, log=None, *, cells: Cells | None = None,
+                    main_fit=None) -> Path:
     """Run every check for ``study`` and write them into ``run_dir/checks`` (for `bayesdid analyze`,
-    whose report reads them from there)."""
-    report = run_checks(study, log=log)
+    whose report reads them from there). ``cells`` and ``main_fit`` pass the run's own collapse and
+    fit, so that neither the table nor the main model is read or sampled twice."""
+    report = run_checks(study, cells=cells, main_fit=main_fit, log=log)
     return write_checks(report, Path(run_dir) / "checks")

@@ -135,7 +135,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
     K = 0 if cov is None else len(cov["names"])
     if K:
         coords = {**coords, "covariate": list(cov["names"])}
-    with pm.Model(coords=coords) as model:
+    with pm.Model(coords=coords, check_bounds=False) as model:
         gap_c, shock_c = fields_centred(cells, family)
         jt = ("jurisdiction", "period")
         Q = zero_sum_basis(T)

@@ -249,7 +249,7 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, *, gap:
     keys = DATA_KEYS
     if K:
         coords = {**coords, "covariate": list(cells.extra["covariates"]["names"])}
-    with pm.Model(coords=coords) as model:
+    with pm.Model(coords=coords, check_bounds=False) as model:
         m, S = hierarchical_mean(cells, scales, **terms)
         dims = ("jurisdiction", "period")
         d = [pm.Data(k, arr[k], dims=dims) for k in keys]
