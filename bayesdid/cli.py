@@ -396,7 +396,9 @@ def cmd_cache(args, argv):
         print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
               f"from {c.path}")
         return EXIT_OK
-    i = cachedir.info(c)
+    from .modelcache import entry_ok
+
+    i = cachedir.info(c, entry_ok=entry_ok)
     print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
     print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
     print(f"compiled models: {i['models']}" + (f" ({i['damaged']} damaged: the next run that needs them rebuilds "
