@@ -54,6 +54,7 @@ different cluster sizes; Webb's six-point weights; the rule of thumb of about fi
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass, field
@@ -715,14 +716,33 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     return out
 
 
-def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202) -> dict:
+def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
+                     designs: dict | None = None) -> dict:
     """The least-squares estimate and its placebo-in-space distribution, without errors or bootstrap.
 
     The same assignments and estimates as :func:`cross_check` (``p_value`` two-sided on |estimate|,
     ``estimates`` of the placebo assignments without the real one), for callers that run it on many
-    simulated data sets (``bayesdid plan``).
+    simulated data sets (``bayesdid plan``). ``designs``: a dict the caller keeps between calls; the
+    fixed-effect basis (a QR of the cells' design, the costly part) depends only on which cells hold
+    rows and how many, so data sets of one layout reuse it (plain cells only: no covariates, sampling
+    weights or panel units).
     """
-    des = _design(cells)
+    des = None
+    plain = not (set(cells.extra or {}) - {"gap"}) and cells.weight is None
+    if designs is not None and plain:
+        key = (cells.shape, int(cells.target), cells.design, np.asarray(cells.n, float).tobytes())
+        if key in designs:
+            base = designs[key]
+            keep = base.keep
+            des = dataclasses.replace(base, cells=cells, ybar=cells.sum_y.ravel()[keep] / base.n,
+                                      ss=cells.ss.ravel()[keep], cache={})
+        else:
+            des = designs[key] = _design(cells)
+            if len(designs) > 64:  # a worker sees few layouts; keep the memory bounded anyway
+                designs.pop(next(iter(designs)))
+            des = dataclasses.replace(des, cache={})
+    if des is None:
+        des = _design(cells)
     f = _fit(des, des.treat_vector(cells.start))
     return {"estimate": f.beta, **_placebo(des, f.beta, placebos, seed)}
 

@@ -259,7 +259,8 @@ _DRIFT = dict(jurisdictions=40, periods=12, groups=1, starts={0: 6}, rows_per_ce
 
 @pytest.mark.slow
 def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
-    """Injected departures of known size (same model structure as the rho test: one compile).
+    """Injected departures of known size, with little noise (cell means within 0.007, gap noise
+    0.005: the largest pre-period change is the construction's 0.2 up to about 0.03).
     The adopter's pre-period gap alternates +-0.1 (period-to-period changes of 0.2) and after the
     start departs by 0.2 (k + 1): the effect (truth 0) reads as 0.2 x mean(k + 1) = 0.7, and the
     bound M x 0.2 x 3.5 reaches it at M = 0.2 / 0.2 = 1 by construction; the 95% interval's own
@@ -267,7 +268,7 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     Without departures the M = 0 row is the main fit's 95% interval (same draws)."""
     from bayesdid import analyse
 
-    sc = Scenario(**_DRIFT, tau=0.0, gap_sd=0.02, pre_wiggle=0.1, post_drift=0.2)
+    sc = Scenario(**{**_DRIFT, "residual_sd": 0.05}, tau=0.0, gap_sd=0.005, pre_wiggle=0.1, post_drift=0.2)
     st, cells, _, _ = sim_study(tmp_path_factory, sc, 8, "drift", draws=400, tune=400, seed=4)
     an = analyse(st, cells=cells, full_cross_check=False)
     tb = an.trends
@@ -408,7 +409,7 @@ def test_drift_recovered_and_effect_freed_of_it(tmp_path_factory):
     and comparisons with small drifts (sd 0.005): without gap drifts the effect absorbs the drift
     (about 0.05 x 6 = 0.3 off the truth -0.1, from the mean event time after minus before); with
     model.gap_drift the adopter's drift, learned from its own 6 pre-periods, is recovered and the 95%
-    interval covers the truth. Same model shapes as the rho test for the drift-free fit."""
+    interval covers the truth (its drift is not pooled toward the comparisons' small ones)."""
     from bayesdid import analyse
 
     sc = Scenario(**_DRIFT, tau=-0.1, gap_sd=0.03, adopter_trend=0.05, trend_sd=0.005)

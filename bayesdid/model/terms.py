@@ -238,7 +238,8 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
     drift : bool
         Pooled jurisdiction-specific linear gap drifts (``model.gap_drift``): the target group's
         mean (a DiD: the jurisdiction's) gets ``g[j] * (t - (T - 1)/2)``, ``g[j] = sigma_drift z[j]``,
-        ``sigma_drift ~ HalfNormal(prior_drift_spread)``. An adopter's drift must be learned from its
+        ``sigma_drift ~ HalfNormal(prior_drift_spread)`` for comparison jurisdictions; an adopter's
+        drift is not pooled, ``g[a] ~ Normal(0, prior_effect^2)``. An adopter's drift must be learned from its
         pre-policy periods only (its post-policy path is what the effect is read from), so each
         adopter's post-policy target cells also get free deviations ``eta[a, t] ~ Normal(0,
         prior_effect^2)``, centred over its post-policy periods: the post-policy cells are then fitted
@@ -300,7 +301,11 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         tt = pt.as_tensor(drift_times(T))
         sig_d = pm.HalfNormal("sigma_drift", S["drift_spread"])
         z_d = pm.Normal("z_drift", 0.0, 1.0, dims=("jurisdiction",))
-        g = pm.Deterministic("gap_drift", sig_d * z_d, dims=("jurisdiction",))
+        # Adopters' drifts are not pooled toward the comparisons' (as their baselines are not): a
+        # place that adopts because its gap was moving must keep its own drift, learned from its own
+        # pre-policy periods; they get the wide prior Normal(0, prior_effect^2) per period.
+        scale_d = is_adopter * S["effect"] + (1.0 - is_adopter) * sig_d
+        g = pm.Deterministic("gap_drift", scale_d * z_d, dims=("jurisdiction",))
         path = g[:, None] * tt[None, :]
         m = m + (pt.stack([pt.zeros((J, T)), path], axis=1) if G == 2 else path[:, None, :])
 
