@@ -52,4 +52,5 @@ def test_each_report_figure_is_a_matplotlib_figure(result):
     assert {"effect", "cross-check"} <= set(figs)
     assert all(isinstance(f, matplotlib.figure.Figure) for f in figs.values())
     assert figs["effect"].axes and figs["effect"].axes[0].get_xlabel().startswith("change in clinic visits")
-    assert res.headline.startswith("In the adopting jurisdiction") and "the walk-in pilot" in res.headline
+    # (150 draws: the headline may open with NOT RELIABLE; the sentence itself follows)
+    assert "In the adopting jurisdiction" in res.headline and "the walk-in pilot" in res.headline
