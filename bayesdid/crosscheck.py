@@ -54,6 +54,7 @@ different cluster sizes; Webb's six-point weights; the rule of thumb of about fi
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass, field
@@ -63,6 +64,7 @@ from scipy import linalg, stats
 from threadpoolctl import threadpool_limits
 
 from .cells import Cells
+from .fixed_effects import _fixed_effects, cell_design
 from .errors import BayesDidError
 
 __all__ = [
@@ -94,54 +96,6 @@ COVARIATE_KEYS = {
 }
 #: Fewer treated clusters than this and CR1 is called unreliable (MacKinnon and Webb 2017, rule of thumb).
 FEW_TREATED = 5
-
-
-# ------------------------------------------------------------------------------------------------
-# the old cell-level dummy design (kept for callers that want the explicit matrix)
-# ------------------------------------------------------------------------------------------------
-def cell_design(cells: Cells, treat: np.ndarray | None = None):
-    """Cell-level design of the saturated regression.
-
-    Returns ``(X, ybar, n, cluster, names, d_col)`` for the non-empty cells: the dummy matrix, the
-    cell means, the cell counts, the jurisdiction index of each cell, column names and the index
-    of the treatment column. ``treat`` (J, G, T) replaces the study's assignment (placebos).
-    """
-    J, G, T = cells.shape
-    D = cells.treated if treat is None else treat
-    jj, gg, tt = np.meshgrid(np.arange(J), np.arange(G), np.arange(T), indexing="ij")
-    keep = (cells.n > 0).ravel()
-    jj, gg, tt = jj.ravel()[keep], gg.ravel()[keep], tt.ravel()[keep]
-    F, names = _fixed_effects(jj, gg, tt, J, G, T, cells.target)
-    X = np.column_stack([F, D.ravel()[keep].astype(float)])
-    names = names + ["treatment"]
-    ybar = cells.sum_y.ravel()[keep] / cells.n.ravel()[keep]
-    return X, ybar, cells.n.ravel()[keep].astype(float), jj, names, len(names) - 1
-
-
-def _fixed_effects(jj, gg, tt, J, G, T, target):
-    """Cell-level dummies: jurisdiction x group, jurisdiction x period (first period absorbed) and
-    target x period (DDD); jurisdiction and period (DiD)."""
-    m = len(jj)
-    rows = np.arange(m)
-    if G == 2:
-        names = [f"jurisdiction:group[{j * G + g}]" for j in range(J) for g in range(G)]
-        names += [f"jurisdiction:period[{j * T + t}]" for j in range(J) for t in range(1, T)]
-        names += [f"target:period[{t}]" for t in range(1, T)]
-        F = np.zeros((m, J * G + J * (T - 1) + (T - 1)))
-        F[rows, jj * G + gg] = 1.0
-        off = J * G
-        later = tt >= 1
-        F[rows[later], off + jj[later] * (T - 1) + tt[later] - 1] = 1.0
-        off += J * (T - 1)
-        tg = later & (gg == target)
-        F[rows[tg], off + tt[tg] - 1] = 1.0
-    else:
-        names = [f"jurisdiction[{j}]" for j in range(J)] + [f"period[{t}]" for t in range(1, T)]
-        F = np.zeros((m, J + T - 1))
-        F[rows, jj] = 1.0
-        later = tt >= 1
-        F[rows[later], J + tt[later] - 1] = 1.0
-    return F, names
 
 
 # ------------------------------------------------------------------------------------------------
@@ -715,14 +669,33 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     return out
 
 
-def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202) -> dict:
+def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
+                     designs: dict | None = None) -> dict:
     """The least-squares estimate and its placebo-in-space distribution, without errors or bootstrap.
 
     The same assignments and estimates as :func:`cross_check` (``p_value`` two-sided on |estimate|,
     ``estimates`` of the placebo assignments without the real one), for callers that run it on many
-    simulated data sets (``bayesdid plan``).
+    simulated data sets (``bayesdid plan``). ``designs``: a dict the caller keeps between calls; the
+    fixed-effect basis (a QR of the cells' design, the costly part) depends only on which cells hold
+    rows and how many, so data sets of one layout reuse it (plain cells only: no covariates, sampling
+    weights or panel units).
     """
-    des = _design(cells)
+    des = None
+    plain = not (set(cells.extra or {}) - {"gap"}) and cells.weight is None
+    if designs is not None and plain:
+        key = (cells.shape, int(cells.target), cells.design, np.asarray(cells.n, float).tobytes())
+        if key in designs:
+            base = designs[key]
+            keep = base.keep
+            des = dataclasses.replace(base, cells=cells, ybar=cells.sum_y.ravel()[keep] / base.n,
+                                      ss=cells.ss.ravel()[keep], cache={})
+        else:
+            des = designs[key] = _design(cells)
+            if len(designs) > 64:  # a worker sees few layouts; keep the memory bounded anyway
+                designs.pop(next(iter(designs)))
+            des = dataclasses.replace(des, cache={})
+    if des is None:
+        des = _design(cells)
     f = _fit(des, des.treat_vector(cells.start))
     return {"estimate": f.beta, **_placebo(des, f.beta, placebos, seed)}
 

@@ -87,7 +87,7 @@ PLAN_KEYS = {"title", "layout", "noise", "effects", "decision", "simulation", "v
 LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name",
                "location"}
 NOISE_KEYS = set(DEFAULT_NOISE) | {"run", "pilot"}
-SIM_KEYS = {"reps", "seed", "draws", "tune", "chains", "placebos", "method"}
+SIM_KEYS = {"reps", "seed", "draws", "tune", "chains", "placebos", "method", "gap_over_time"}
 VARY_KEYS = {"periods", "comparisons"}
 
 
@@ -184,6 +184,7 @@ class Plan:
     chains: int
     placebos: int
     method: str = "shift"  # "shift": one fit per data set, other effects by reweighting; "refit": one fit per effect
+    gap_over_time: str = "persistent"  # the gap noise the analysis will fit (as the study key model.gap_over_time)
     notes: tuple[str, ...] = ()
     path: str | None = None
 
@@ -209,7 +210,7 @@ class Plan:
         """
         d = {"frame": dataclasses.asdict(self.frame), "noise": self.noise.describe(), "threshold": self.threshold,
              "direction": self.direction, "level": self.level, "log": self.log_outcome, "seed": self.seed,
-             "effects": self.effects, "method": self.method, "draws": self.draws, "tune": self.tune, "chains": self.chains,
+             "effects": self.effects, "method": self.method, "gap_over_time": self.gap_over_time, "draws": self.draws, "tune": self.tune, "chains": self.chains,
              "placebos": self.placebos, "location": self.noise.location}
         return hashlib.sha256(json.dumps(d, sort_keys=True, default=str).encode()).hexdigest()
 
@@ -225,7 +226,8 @@ class Plan:
                              "rule": f"conclude when P(effect {'<' if self.direction == 'below' else '>'} "
                                      f"{self.threshold:g}) >= {self.level:g}"},
                 "simulation": {"reps": self.reps, "seed": self.seed, "draws": self.draws, "tune": self.tune,
-                               "chains": self.chains, "placebos": self.placebos, "method": self.method},
+                               "chains": self.chains, "placebos": self.placebos, "method": self.method,
+                               "gap_over_time": self.gap_over_time},
                 "period_name": self.period_name, "notes": list(self.notes), "fingerprint": self.fingerprint()}
 
 
@@ -370,7 +372,7 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     for src in ("run", "pilot"):
         if src not in noise_raw:
             continue
-        given = [k for k in ("gap", "shock", "residual") if k in noise_raw]
+        given = [k for k in ("gap", "shock") if k in noise_raw]
         if given:
             raise PlanError(f"plan keys {['noise.' + k for k in given]} and 'noise.{src}' exclude each other: the "
                             f"{'run folder' if src == 'run' else 'pilot'}'s posterior gives these scales. Remove "
@@ -378,6 +380,14 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         reader = noise_from_run if src == "run" else noise_from_pilot
         noise = reader(noise_raw[src], base_dir, design=design, log_outcome=log_outcome, stated=stated,
                        rho_given="rho" in noise_raw)
+        if noise.pilot is not None:
+            noise = dataclasses.replace(noise, pilot={**noise.pilot, "residual_given": "residual" in noise_raw})
+        if noise.draws is not None and ("residual" in noise_raw or "residual" not in noise.draws):
+            noise = dataclasses.replace(noise, draws={k: v for k, v in noise.draws.items() if k != "residual"})
+            notes.append(f"the residual sd of a row is {'stated' if 'residual' in noise_raw else 'the default'} "
+                         f"({stated['residual'][1]:g}), not drawn from the run folder"
+                         + ("" if "residual" in noise_raw else ": its model had no separate residual sd (too few "
+                            "rows per cell); state noise.residual"))
 
     eff = _section(raw, "effects", {"values"})
     vals = eff.get("values")
@@ -425,32 +435,31 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     tune = _int(sim, "tune", "simulation", 500, low=10, high=1_000_000)
     chains = _int(sim, "chains", "simulation", 2, low=1, high=64)
     placebos = _int(sim, "placebos", "simulation", 199, low=0, high=100_000)
+    gap_fit = sim.get("gap_over_time", "persistent")
+    if gap_fit not in ("persistent", "independent"):
+        raise _err("simulation.gap_over_time", gap_fit, "'persistent' (AR(1), as bayesdid fit by default) or "
+                   "'independent': the gap noise the planned analysis will fit")
     method = sim.get("method", "shift")
     if method not in ("shift", "refit"):
         raise _err("simulation.method", method, "'shift' (one fit per data set, the other effects by exact "
                    "reweighting) or 'refit' (one fit per data set and effect)")
-    if noise.stated["rho"] != 0:
-        notes.append(_rho_note(noise.stated["rho"]))
     return Plan(title=title, base=base, layouts=tuple(layouts), noise=noise, effects=values, threshold=threshold,
                 direction=direction, level=level, log_outcome=log_outcome, period_name=period_name.strip(),
                 reps=reps, seed=seed, draws=draws, tune=tune, chains=chains, placebos=placebos, method=method,
+                gap_over_time=gap_fit,
                 notes=tuple(notes),
                 path=path)
 
 
-def _model_has_rho() -> bool:
-    """Whether the fitted model on this version learns a persistence of the gap noise."""
-    from .study import PRIOR_NAMES
-
-    return any("rho" in k or "persist" in k for k in PRIOR_NAMES)
-
-
-def _rho_note(rho: float) -> str:
-    if _model_has_rho():
-        return f"the gap noise is simulated with AR(1) correlation {rho:g}; the fitted model learns it"
-    return (f"the gap noise is simulated with AR(1) correlation {rho:g}, but the fitted model of this version "
-            "assumes independent gap noise: its intervals are too narrow and the assurance and false-decision "
-            "rate read here are what that model would report, not what an honest analysis would")
+def rho_note(rho_simulated: bool, fitted: set[str]) -> str | None:
+    """What the page says about persistent gap noise, from what was simulated and the forms fitted."""
+    if not rho_simulated:
+        return None
+    if fitted and fitted <= {"persistent"}:
+        return "the gap noise is simulated as persistent (AR(1)); the fitted model learns its correlation rho"
+    return ("the gap noise is simulated as persistent (AR(1)), but the model fitted here assumed independent gap "
+            "noise" + (" in some data sets" if "persistent" in fitted else "") + ": its intervals are too "
+            "narrow, so the assurance and false-decision rate read here are those of an over-confident analysis")
 
 
 def load_plan(path: str | Path) -> Plan:
@@ -538,13 +547,15 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
         other = [d for d in da.dims if d not in ("chain", "draw")]
         return da.stack(sample=("chain", "draw")).transpose("sample", *other).to_numpy()
 
-    need = ["sigma_gap", "sigma"] + (["sigma_shock"] if design == "DDD" else [])
+    need = ["sigma_gap"] + (["sigma_shock"] if design == "DDD" else [])
     missing = [n for n in need if n not in post]
     if missing:
         raise PlanError(f"plan key '{key}': {what} lacks {missing}; it was not written by a Gaussian "
                         "'bayesdid fit' of this version.")
-    sig = flat("sigma")
-    draws = {"gap": flat("sigma_gap"), "residual": sig if sig.ndim == 2 else sig[:, None]}
+    draws = {"gap": flat("sigma_gap")}
+    if "sigma" in post:  # absent when the cells held too few rows for a separate residual sd
+        sig = flat("sigma")
+        draws["residual"] = sig if sig.ndim == 2 else sig[:, None]
     if design == "DDD":
         draws["shock"] = flat("sigma_shock")
     if "sigma_baseline" in post:
@@ -555,7 +566,7 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
         draws["group_period"] = flat("group_period_effect").std(axis=1, ddof=1)
     if "rho" in post and not rho_given:
         draws["rho"] = flat("rho")
-    if draws["residual"].shape[1] == 1:
+    if "residual" in draws and draws["residual"].shape[1] == 1:
         draws["residual"] = np.repeat(draws["residual"], 2, axis=1)
     loc = (0.0, 0.0)
     if "mu_group" in post:
@@ -634,6 +645,11 @@ def resolve_noise(plan: Plan, log=None) -> Plan:
     pilot = {**nz.pilot, "diagnostics_ok": bool(fit.diagnostics.get("ok")),
              "rhat_max": fit.diagnostics.get("rhat_max"), "seed": study.sampler.seed}
     notes = plan.notes
+    if "residual" in draws and nz.pilot.get("residual_given"):
+        draws.pop("residual")
+    if "residual" not in draws:
+        notes = notes + (f"the residual sd of a row is {'stated' if nz.pilot.get('residual_given') else 'the default'} "
+                         f"({nz.stated['residual'][1]:g}), not drawn from the pilot's posterior",)
     if not fit.diagnostics.get("ok"):
         notes = notes + (f"the pilot fit's sampler diagnostics fail ({fit.diagnostics.get('advice')}); the noise "
                          "draws may be unreliable: raise the pilot study's draws",)
@@ -709,10 +725,20 @@ def simulate_cells(plan: Plan, layout: Layout, noise_cells: dict, effect_model: 
     N = float(n.sum())
     m = float(sum_y.sum() / N)
     sd = math.sqrt(max(float(sum_y2.sum()) / N - m * m, 0.0))
-    return Cells(jurisdictions=tuple(_names(J)), groups=("reference", "target") if G == 2 else ("all",),
-                 periods=tuple(range(1, T + 1)), design=frame.design, target=tg, start=start, n=n, sum_y=sum_y,
-                 sum_y2=sum_y2, ss=ss, rows=int(N), log_outcome=plan.log_outcome,
-                 outcome_sd=sd if sd > 0 else 1.0, outcome_mean=m)
+    cells = Cells(jurisdictions=tuple(_names(J)), groups=("reference", "target") if G == 2 else ("all",),
+                  periods=tuple(range(1, T + 1)), design=frame.design, target=tg, start=start, n=n, sum_y=sum_y,
+                  sum_y2=sum_y2, ss=ss, rows=int(N), log_outcome=plan.log_outcome,
+                  outcome_sd=sd if sd > 0 else 1.0, outcome_mean=m)
+    return _with_gap(cells, plan.gap_over_time)
+
+
+def _with_gap(cells, requested: str):
+    """The cells with the gap structure the planned analysis fits (as the collapse records it for a study)."""
+    try:
+        from .model.structure import resolve_gap
+    except ImportError:  # a version without persistent gap noise: independent is all there is
+        return cells
+    return dataclasses.replace(cells, extra={**cells.extra, "gap": resolve_gap(cells, requested, warn=False)})
 
 
 # ---- one rep -------------------------------------------------------------------------------------
@@ -778,6 +804,9 @@ def _wquantile(x: np.ndarray, w: np.ndarray, q) -> np.ndarray:
     return np.interp(q, c, xs)
 
 
+#: Least-squares designs of the layouts this process has seen (see crosscheck.permutation_test).
+_DESIGNS: dict = {}
+
 #: Below this share of effective draws the shifted draws are not used and the effect is refitted.
 MIN_WEIGHT_ESS = 0.5
 
@@ -798,9 +827,11 @@ def _rep(task: RepTask) -> dict:
     from .crosscheck import permutation_test
     from .effects import att_weights
     from .model.terms import resolve_scales
+    from . import sample
     from .sample import COMPILES, fit_cells
     from .study import PriorScales, SamplerSettings
 
+    loads = getattr(sample, "LOADS", {"count": 0})  # compiled models loaded from the disk cache
     plan = task.plan
     layout = plan.layouts[task.layout]
     noise_seed, sampler_seed = task.seeds
@@ -808,7 +839,7 @@ def _rep(task: RepTask) -> dict:
     scales_true = plan.noise.for_rep(rng)
     noise_cells = simulate_noise(plan.frame, scales_true, plan.noise.location, rng)
     settings = SamplerSettings(chains=plan.chains, draws=plan.draws, tune=plan.tune, seed=sampler_seed)
-    before = COMPILES["count"]
+    before, loaded = COMPILES["count"], loads["count"]
     fits = {"compile_s": 0.0, "sample_s": 0.0, "fits": 0}
 
     def fit_at(effect_model: float):
@@ -841,15 +872,16 @@ def _rep(task: RepTask) -> dict:
             w = None
         row = {"effect": effect, "method": how, "weights_ess_share": ess, **_decide(plan, att, w, truth),
                "rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
-               "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"]}
+               "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"],
+               "rho_true": scales_true["rho"], "gap_fitted": getattr(fit.spec, "gap", "independent")}
         if plan.placebos:
-            perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed)
+            perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed, designs=_DESIGNS)
             p1 = _one_sided_p(perm["estimate"], perm["estimates"], plan.direction)
             row.update({"ls_estimate": perm["estimate"], "p_permutation_two_sided": perm["p_value"],
                         "p_permutation": p1, "permutation_assignments": perm["assignments"],
                         "permutation_reject": None if p1 is None else bool(p1 <= 1 - plan.level + 1e-12)})
         rows.append(row)
-    return {"rows": rows, "compiles": COMPILES["count"] - before, **fits}
+    return {"rows": rows, "compiles": COMPILES["count"] - before, "cache_loads": loads["count"] - loaded, **fits}
 
 
 def run_rep(task: RepTask) -> dict:
@@ -1074,21 +1106,25 @@ def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progre
     rows.sort(key=lambda r: (order[r["layout"]], eorder[r["effect"]], r["rep"]))
     table = assurance_table(plan, rows)
     compiles: dict[str, int] = {}
+    cache_loads: dict[str, int] = {}
     for r in new:
         if r.get("ok"):
             compiles[str(r["pid"])] = compiles.get(str(r["pid"]), 0) + int(r.get("compiles", 0))
+            cache_loads[str(r["pid"])] = cache_loads.get(str(r["pid"]), 0) + int(r.get("cache_loads", 0))
     failed = [{"key": r["key"], "error": r["error"]} for r in records if not r.get("ok")]
     ex_name = {"serial": "in-process", "pool": f"process pool ({workers} workers)", "dask": f"dask ({cluster})"}[kind]
+    note = rho_note(plan.noise.stated["rho"] != 0 or bool(plan.noise.draws and "rho" in plan.noise.draws),
+                    {r.get("gap_fitted", "independent") for r in rows})
     summary = {
-        "plan": plan.to_dict(),
+        "plan": plan.to_dict() | ({"notes": list(plan.notes) + [note]} if note else {}),
         "assurance": table,
         "false_decision": [{"layout": t["layout"], "rate": t["false_decision_rate"], "mcse": t["assurance_mcse"],
                             "reps": t["reps"], "bound": 1 - plan.level}
                            for t in table if t["effect"] == 0],
         "failed": failed,
-        "model_learns_rho": _model_has_rho(),
+        "gap_fitted": sorted({r.get("gap_fitted", "independent") for r in rows}),
         "run": {"executor": ex_name, "ran_now": len(new), "kept_from_earlier_run": len(done),
-                "compiles_per_worker": compiles, "wall_s": wall,
+                "compiles_per_worker": compiles, "cache_loads_per_worker": cache_loads, "wall_s": wall,
                 "fits_now": int(sum(r.get("fits", 0) for r in new)),
                 "compile_s_total": float(sum(r.get("compile_s", 0.0) for r in new)),
                 "data_set_wall_s_median": float(np.median([r["wall_s"] for r in new])) if new else None,
@@ -1142,6 +1178,6 @@ def write_plan(result: dict, out: str | Path, *, replace: bool = False, argv=Non
 
 
 def _version() -> str:
-    from . import __version__
+    from .version import __version__
 
     return __version__

@@ -27,7 +27,8 @@ DID = {
     "noise": {"gap": 0.1, "residual": 1.0, "baseline": 0.3, "period": 0.1},
     "effects": {"values": [0.0, -0.2, -1.0]},
     "decision": {"threshold": 0.0, "level": 0.9, "direction": "below"},
-    "simulation": {"reps": 50, "seed": 1603, "draws": 200, "tune": 200, "chains": 2, "placebos": 199},
+    "simulation": {"reps": 50, "seed": 1603, "draws": 200, "tune": 200, "chains": 2, "placebos": 199,
+                   "gap_over_time": "independent"},  # the normal approximation's assumption: independent noise
 }
 SQRT_V = math.sqrt((0.1**2 + 1 / 20) * 0.5 * (1 + 1 / 29))
 
@@ -231,6 +232,24 @@ def test_shifted_draws_agree_with_refits(did_result):
 
 
 @pytest.mark.slow
+def test_shifted_draws_agree_with_refits_two_adopters():
+    """Several adopters: the weights use the prior of their mean effect (sd^2 = s_e^2 + sigma_tau^2 / A)."""
+    raw = {"layout": {"design": "DDD", "comparisons": 8, "periods": 6, "starts": [4, 5], "rows_per_cell": 20},
+           "noise": {"gap": 0.1, "residual": 1.0},
+           "effects": {"values": [0.0, -0.3]}, "decision": {"threshold": 0.0, "level": 0.9},
+           "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0}}
+    shift = {(r["effect"], r["rep"]): r for r in run_plan(make_plan(raw), workers=1)["rows"]}
+    refit = {(r["effect"], r["rep"]): r for r in
+             run_plan(make_plan(with_(raw, "simulation", method="refit")), workers=1)["rows"]}
+    for i in range(3):
+        a, b = shift[(-0.3, i)], refit[(-0.3, i)]
+        assert a["method"] == "shift" and b["method"] == "refit"
+        # as in the one-adopter test: independent draw sets, 4 standard errors on the mean, 15% on the sd
+        assert abs(a["posterior_mean"] - b["posterior_mean"]) < 0.4 * b["posterior_sd"]
+        assert a["posterior_sd"] == pytest.approx(b["posterior_sd"], rel=0.15)
+
+
+@pytest.mark.slow
 def test_command_writes_its_folder_resumes_and_shares_one_structure(tmp_path, did_result, capsys):
     """`bayesdid plan` end to end, with a [vary] grid that changes comparisons and periods."""
     from bayesdid import sample
@@ -319,3 +338,31 @@ def test_noise_from_a_pilot_run_folder(tmp_path, did_result, capsys):
     # the pilot's gap noise was simulated with sd 0.2: its posterior median is near it
     assert 0.1 < s["posterior_medians"]["gap"] < 0.35
     assert len({r["gap_sd_true"] for r in res["rows"]}) == 3  # one draw per data set
+
+
+def test_rho_note_follows_what_was_fitted():
+    from bayesdid.plan import rho_note
+
+    assert rho_note(False, {"independent"}) is None
+    assert "over-confident" in rho_note(True, {"independent"})
+    assert "some data sets" in rho_note(True, {"independent", "persistent"})
+    assert "learns its correlation" in rho_note(True, {"persistent"})
+
+
+def test_permutation_reuses_the_design_of_a_layout_exactly():
+    """The fixed-effect basis is reused across data sets of one layout: same estimates as a fresh design."""
+    from bayesdid.crosscheck import permutation_test
+
+    plan = make_plan(with_(DID, "vary", comparisons=[9, 29]))
+    rng = np.random.default_rng(5)
+    designs: dict = {}
+    for lay in plan.layouts:
+        for effect in (0.0, -0.4):
+            cells = simulate_cells(plan, lay, simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng),
+                                   effect)
+            a = permutation_test(cells, placebos=19, seed=3, designs=designs)
+            b = permutation_test(cells, placebos=19, seed=3)
+            assert a["estimate"] == pytest.approx(b["estimate"], abs=1e-12)
+            assert a["p_value"] == b["p_value"]
+            assert np.allclose(a["estimates"], b["estimates"], atol=1e-12)
+    assert len(designs) == 2  # one per layout

@@ -53,6 +53,7 @@ def bench_plan(*, quick: bool = False, reps: int | None = None, workers: int = 2
             "data_sets_x_effects": n * len(s["plan"]["effects"]), "workers": workers, "cpus": os.cpu_count(),
             "load_avg_1min": os.getloadavg()[0], "method": s["plan"]["simulation"]["method"],
             "fits": run["fits_now"], "compiles_per_worker": run["compiles_per_worker"],
+            "cache_loads_per_worker": run.get("cache_loads_per_worker"),
             "wall_s": round(wall, 1), "target_s": TARGET_S, "ratio_wall_to_target": round(wall / TARGET_S, 3),
             "compile_s_per_worker": round(compile_wall, 1),
             "ratio_wall_without_compile_to_target": round((wall - compile_wall) / TARGET_S, 3),

@@ -102,7 +102,8 @@ def plot_assurance(summary: dict, path: str | Path) -> Path:
         na = [(xx, r["normal_assurance"]) for xx, r in zip(x, rows) if r.get("normal_assurance") is not None]
         if na:
             ax.plot(*zip(*na), color=c, lw=0.9, ls="--")
-    ax.axhline(1 - plan["decision"]["level"], color=PALETTE["reference"], lw=0.8, ls=":")
+    ax.axhline(1 - plan["decision"]["level"], color=PALETTE["reference"], lw=0.8, ls=":",
+               label=f"1 - level = {1 - plan['decision']['level']:g}")
     ax.set_ylim(-0.02, 1.02)
     ax.set_ylabel("assurance (share of data sets concluding)")
     ax.set_xlabel("true effect" + (" (% change)" if plan["effect_scale"].startswith("relative") else ""))
