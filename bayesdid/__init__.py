@@ -9,7 +9,7 @@ Typical use::
     write_run(an, "runs/first")
 """
 
-__version__ = "0.1.0"
+from .version import __version__  # noqa: E402
 
 from .lifeline import arm_from_env as _arm_from_env  # noqa: E402
 

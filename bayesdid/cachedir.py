@@ -138,17 +138,19 @@ def _size(path: Path) -> tuple[int, int]:
     return files, total
 
 
-def info(cache: CacheDir | None = None) -> dict:
-    """What the cache folder holds: compiled-model entries and the size of each part."""
+def info(cache: CacheDir | None = None, *, entry_ok=None) -> dict:
+    """What the cache folder holds: compiled-model entries and the size of each part.
+
+    ``entry_ok`` (:func:`bayesdid.modelcache.entry_ok`, passed by the caller so that this lower module
+    does not import the cache that builds on it) counts the damaged entries; without it ``damaged`` is
+    None (not checked)."""
     c = cache or current()
     parts = {}
     for sub in SUBFOLDERS:
         files, total = _size(c.path / sub) if (c.path / sub).is_dir() else (0, 0)
         parts[sub] = {"files": files, "bytes": total}
-    from .modelcache import entry_ok
-
     entries = sorted(c.models.glob("*.model")) if c.models.is_dir() else []
-    damaged = sum(not entry_ok(e) for e in entries)
+    damaged = sum(not entry_ok(e) for e in entries) if entry_ok is not None else None
     return {"folder": str(c.path), "chosen_by": c.source, "writable": c.writable, "reason": c.reason,
             "models": len(entries), "damaged": damaged, "parts": parts,
             "bytes": sum(p["bytes"] for p in parts.values())}

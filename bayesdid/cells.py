@@ -232,7 +232,7 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
 
     * gaussian with covariates: ``extra["covariates"]`` holds ``names`` (K), ``sx`` (J,G,T,K),
       ``sxx`` (J,G,T,K,K), ``sxy`` (J,G,T,K), the within-cell ``wxx``, ``wxy`` and the centring
-      ``means`` (K), all of the centred covariates (see :mod:`bayesdid.model.covariates`).
+      ``means`` (K), all of the centred covariates (see :mod:`bayesdid.covariates`).
     * binomial: ``n`` = trials and ``sum_y`` = successes per cell; poisson and negbinomial: ``n`` =
       exposure and ``sum_y`` = events per cell. The likelihood reads ``extra["records"]``: one record
       per non-empty cell and covariate pattern (``cell`` flat index, ``y``, ``size`` = trials or
@@ -245,7 +245,8 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
     import warnings
 
     from .errors import RowLevelFallbackWarning
-    from .model.covariates import cell_sums, check_identified, design_matrix
+    from .covariates import cell_sums, design_matrix
+    from .fixed_effects import check_identified
 
     fam = study.model.family
     cols = study.columns
@@ -321,7 +322,7 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
 
 
 def _max_levels() -> int:
-    from .model.covariates import DISCRETE_MAX_LEVELS
+    from .covariates import DISCRETE_MAX_LEVELS
 
     return DISCRETE_MAX_LEVELS
 

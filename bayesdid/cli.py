@@ -57,7 +57,7 @@ def _add_streaming(p):
 
 
 def _fit_and_write(study, out, args, argv, then=None):
-    from .report.words import headline
+    from .report.words import headline_of
     from .run import analyse, atomic_folder, prepare, write_run
     from .sample import warn_if_bad
 
@@ -67,7 +67,7 @@ def _fit_and_write(study, out, args, argv, then=None):
                  full_cross_check=not getattr(args, "no_cross_check", False), prepared=prepared)
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())
-    print(headline(summary))
+    print(headline_of(summary, json.loads((path / "manifest.json").read_text()).get("study")))
     print(f"results in {path}")
     if then is not None:
         then(study, path, an)
@@ -111,7 +111,48 @@ def cmd_demo(args, argv):
         mod.make(args.case)
     study = _overrides(load_study(d / "study.toml"), args)
     _say(f"demo case '{args.case}': {study.title} (invented data)")
-    return _fit_and_write(study, args.out, args, argv, then=_write_report_step)
+    log = None if args.quiet else _say
+    return _fit_and_write(study, args.out, args, argv, then=lambda st, path: _demo_steps(st, path, log, d / "study.toml"))
+
+
+#: The demo's short sweep: the base study and one variant with the effect prior at a tenth of the
+#: scale the fit used (does the answer lean on the prior?).
+DEMO_SWEEP = """study = {study}
+title = "demo: does the answer lean on the effect prior?"
+
+[sampler]
+chains = {chains}
+draws = {draws}
+tune = {tune}
+seed = {seed}
+
+[[variant]]
+label = "effect prior a tenth as wide"
+priors = {{ effect = {effect} }}
+"""
+
+
+def _demo_steps(study, path, log, study_file):
+    """After the demo's fit: every check, a two-variant sweep (serial, reusing this process's compiled
+    model) and the report, so the first report a newcomer opens is complete."""
+    import tempfile
+
+    from .checks.runner import checks_into_run
+    from .sweep import run_sweep
+
+    say = log or (lambda m: None)
+    say("demo: running every check (progress below)")
+    checks_into_run(study, path, log=log)
+    summary = json.loads((Path(path) / "summary.json").read_text())
+    effect = 0.1 * float(summary["priors"]["effect"]["scale"])
+    sp = study.sampler
+    with tempfile.TemporaryDirectory() as tmp:
+        f = Path(tmp) / "demo_sweep.toml"
+        f.write_text(DEMO_SWEEP.format(study=json.dumps(str(Path(study_file).resolve())), chains=sp.chains, draws=sp.draws,
+                                       tune=sp.tune, seed=sp.seed, effect=effect), encoding="utf-8")
+        say("demo: a short sweep (base and a tighter effect prior)")
+        run_sweep(f, Path(path) / "sweep", executor="serial", log=log)
+    _write_report_step(study, path)
 
 
 # --- report and analyze ------------------------------------------------------------------------
@@ -193,9 +234,9 @@ def cmd_checks(args, argv):
     if tol is not None and not (math.isfinite(tol) and tol > 0):
         raise BayesDidError(f"command-line option --lead-tolerance {tol}: expected a positive finite number (on "
                             "the model scale: log units for a log outcome).")
-    cells, _, _ = prepare(study)
+    cells, digest, _ = prepare(study)
     report = run_checks(study, cells=cells, only=args.only, tolerance=args.lead_tolerance,
-                        pooled=args.pool_event_times, log=None if args.quiet else _say)
+                        pooled=args.pool_event_times, log=None if args.quiet else _say, data_sha256=digest)
     path = write_checks(report, args.out, replace=args.replace, argv=argv)
     for r in report.results.values():
         print(r)
@@ -213,7 +254,8 @@ def cmd_trends(args, argv):
     import os
 
     from .run import dump_json
-    from .trends import trends_from_run, write_trends
+    from .trends import write_trends
+    from .trends_rerun import trends_from_run
 
     mult = None
     if args.multiples is not None:
@@ -354,7 +396,9 @@ def cmd_cache(args, argv):
         print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
               f"from {c.path}")
         return EXIT_OK
-    i = cachedir.info(c)
+    from .modelcache import entry_ok
+
+    i = cachedir.info(c, entry_ok=entry_ok)
     print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
     print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
     print(f"compiled models: {i['models']}" + (f" ({i['damaged']} damaged: the next run that needs them rebuilds "

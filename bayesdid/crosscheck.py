@@ -64,6 +64,7 @@ from scipy import linalg, stats
 from threadpoolctl import threadpool_limits
 
 from .cells import Cells
+from .fixed_effects import _fixed_effects, cell_design
 from .errors import BayesDidError
 
 __all__ = [
@@ -95,54 +96,6 @@ COVARIATE_KEYS = {
 }
 #: Fewer treated clusters than this and CR1 is called unreliable (MacKinnon and Webb 2017, rule of thumb).
 FEW_TREATED = 5
-
-
-# ------------------------------------------------------------------------------------------------
-# the old cell-level dummy design (kept for callers that want the explicit matrix)
-# ------------------------------------------------------------------------------------------------
-def cell_design(cells: Cells, treat: np.ndarray | None = None):
-    """Cell-level design of the saturated regression.
-
-    Returns ``(X, ybar, n, cluster, names, d_col)`` for the non-empty cells: the dummy matrix, the
-    cell means, the cell counts, the jurisdiction index of each cell, column names and the index
-    of the treatment column. ``treat`` (J, G, T) replaces the study's assignment (placebos).
-    """
-    J, G, T = cells.shape
-    D = cells.treated if treat is None else treat
-    jj, gg, tt = np.meshgrid(np.arange(J), np.arange(G), np.arange(T), indexing="ij")
-    keep = (cells.n > 0).ravel()
-    jj, gg, tt = jj.ravel()[keep], gg.ravel()[keep], tt.ravel()[keep]
-    F, names = _fixed_effects(jj, gg, tt, J, G, T, cells.target)
-    X = np.column_stack([F, D.ravel()[keep].astype(float)])
-    names = names + ["treatment"]
-    ybar = cells.sum_y.ravel()[keep] / cells.n.ravel()[keep]
-    return X, ybar, cells.n.ravel()[keep].astype(float), jj, names, len(names) - 1
-
-
-def _fixed_effects(jj, gg, tt, J, G, T, target):
-    """Cell-level dummies: jurisdiction x group, jurisdiction x period (first period absorbed) and
-    target x period (DDD); jurisdiction and period (DiD)."""
-    m = len(jj)
-    rows = np.arange(m)
-    if G == 2:
-        names = [f"jurisdiction:group[{j * G + g}]" for j in range(J) for g in range(G)]
-        names += [f"jurisdiction:period[{j * T + t}]" for j in range(J) for t in range(1, T)]
-        names += [f"target:period[{t}]" for t in range(1, T)]
-        F = np.zeros((m, J * G + J * (T - 1) + (T - 1)))
-        F[rows, jj * G + gg] = 1.0
-        off = J * G
-        later = tt >= 1
-        F[rows[later], off + jj[later] * (T - 1) + tt[later] - 1] = 1.0
-        off += J * (T - 1)
-        tg = later & (gg == target)
-        F[rows[tg], off + tt[tg] - 1] = 1.0
-    else:
-        names = [f"jurisdiction[{j}]" for j in range(J)] + [f"period[{t}]" for t in range(1, T)]
-        F = np.zeros((m, J + T - 1))
-        F[rows, jj] = 1.0
-        later = tt >= 1
-        F[rows[later], J + tt[later] - 1] = 1.0
-    return F, names
 
 
 # ------------------------------------------------------------------------------------------------

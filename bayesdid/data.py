@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from . import frames
 from .errors import DataRoleError
 from .study import Study
 
@@ -18,6 +19,8 @@ __all__ = ["read_table", "file_sha256", "check_roles", "period_levels", "check_f
 
 
 def file_sha256(path: str | Path) -> str:
+    if frames.is_memory(path):  # a data frame given to make_study
+        return frames.sha256_of(path)
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
@@ -80,6 +83,8 @@ def read_table(path: str | Path) -> pd.DataFrame:
         If the path is missing or a folder, the file is of another kind, not UTF-8, unreadable or
         empty, or has two columns of the same name.
     """
+    if frames.is_memory(path):  # a data frame given to make_study(table=...)
+        return frames.frame_of(path)
     path = Path(path)
     if path.is_dir():
         raise DataRoleError(f"table '{path}' is a folder, not a file; 'data.table' must name one CSV or Parquet "
@@ -197,7 +202,7 @@ def check_roles(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     cols = study.columns
     if len(frame) == 0:
         raise DataRoleError("the table has no rows; the study needs rows for every jurisdiction and period.")
-    from .model.covariates import required_columns
+    from .covariates import required_columns
 
     used = cols.used() + [c for c in required_columns(study.model.covariates) if c not in cols.used()]
     missing_cols = [c for c in used if c not in frame.columns]
@@ -406,7 +411,7 @@ def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
                                 "Drop rows with no person-time, or fix the values.")
         out[cols.exposure] = ex
 
-    from .model.covariates import required_columns
+    from .covariates import required_columns
 
     covs = required_columns(study.model.covariates)
     if covs:

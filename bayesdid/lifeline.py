@@ -11,6 +11,11 @@ The signal is armed as early as possible: the parent puts its pid in :data:`ENV`
 workers, and a new process that imports bayesdid and finds its parent's pid there arms it during
 that import (:func:`arm_from_env`), long before the worker's heavy imports and its initializer.
 Only importable standard-library modules are used here.
+
+Linux sends the parent-death signal when the *thread* that started the worker ends, not only the
+process. The pool's workers are started by the thread that submits (the sweep's main thread); a local
+Dask cluster's by a thread of each worker's ``AsyncProcess`` in distributed, which lives as long as
+that worker. Start workers from a thread that outlives them.
 """
 
 from __future__ import annotations

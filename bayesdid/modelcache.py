@@ -43,7 +43,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, cachedir
+from . import cachedir
+from .version import __version__
 
 __all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS"]
 

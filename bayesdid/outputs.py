@@ -24,7 +24,7 @@ import time
 import uuid
 from pathlib import Path
 
-from . import __version__
+from .version import __version__
 from .errors import OutputError
 
 __all__ = ["atomic_folder", "check_output_folder", "is_bayesdid_folder", "clean_leftovers", "owner_tag",

@@ -1178,6 +1178,6 @@ def write_plan(result: dict, out: str | Path, *, replace: bool = False, argv=Non
 
 
 def _version() -> str:
-    from . import __version__
+    from .version import __version__
 
     return __version__

@@ -19,12 +19,14 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from . import __version__
+from .version import __version__
 from .cells import Cells, collapse
 from .crosscheck import cross_check, cross_check_not_applicable
+from .contracts import run_id
 from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, FewAdoptersWarning, PersistenceFallbackWarning
+from .model.registry import model_priors
 from .model.structure import RHO_PRIOR, gap_structure, residual_rule
 from .model.terms import resolve_scales
 from .outputs import atomic_folder
@@ -195,9 +197,23 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         say("least-squares cross-check" + ("" if full_cross_check else " (estimate and standard errors only)"))
     t0 = time.perf_counter()
     x = study.crosscheck
+    ls_cells, ls_note = cells, None
+    if study.model.family != "gaussian" and "covariates" in cells.extra:
+        # Least squares on cells regresses the cells' proportions or rates; the model's covariates act
+        # on the link scale, which a linear regression on cell means cannot reproduce. The cross-check
+        # is then the unadjusted one, and says so.
+        import dataclasses
+
+        ls_cells = dataclasses.replace(cells, extra={k: v for k, v in cells.extra.items() if k != "covariates"})
+        ls_note = (f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
+                   f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
+                   "regression on the cells' " + ("proportions" if study.model.family == "binomial" else "rates")
+                   + " cannot reproduce; read it as the unadjusted difference")
     try:
-        ls = least_squares if least_squares is not None else cross_check(cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
+        ls = least_squares if least_squares is not None else cross_check(ls_cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
                          full=full_cross_check)
+        if ls_note and least_squares is None:
+            ls["covariates_note"] = ls_note
     except BayesDidError as exc:  # the posterior stands; the cross-check says why it cannot run
         ls = cross_check_not_applicable(str(exc))
     crosscheck_s = time.perf_counter() - t0
@@ -234,13 +250,16 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     tb = trend_bounds(fit, multiples=study.trends.multiples, threshold=model_threshold(study, cells),
                       level=study.decision.level)
     timing["trends_s"] = time.perf_counter() - t0
+    has = model_priors(study.model.family, cells.design, len(cells.adopters), "covariates" in cells.extra,
+                       drift=bool(getattr(fit.spec, "drift", False)), residual=bool(getattr(fit.spec, "residual", True)))
+    priors = {k: v for k, v in priors.items() if k in has}  # only the priors the fitted model has
     return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
                     timing=timing, data_sha256=digest, notes=notes, sensitivity=sens, trends=tb)
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
-    from .model.families import pointwise_loglik
+    from .model.registry import pointwise_loglik
 
     from .effects import att_weights
     from .sensitivity import log_prior_dataset
@@ -305,6 +324,8 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
         tree.to_netcdf(tmp / "posterior.nc", engine="h5netcdf")
         summary = an.summary()
         summary["timing"]["write_s"] = time.perf_counter() - t0
+        rid = run_id(an.data_sha256, study_to_dict(an.study))
+        summary["identity"] = {"data_sha256": an.data_sha256, "run_id": rid}
         dump_json(summary, tmp / "summary.json")
         files = ["posterior.nc", "summary.json", "manifest.json"]
         if an.trends is not None and an.trends.rows:
@@ -319,6 +340,7 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
             "sampler": {"name": "nutpie (NUTS)", "chains": an.study.sampler.chains,
                         "draws": an.study.sampler.draws, "tune": an.study.sampler.tune},
             "data_sha256": an.data_sha256,
+            "run_id": rid,
             "table": str(an.study.table),
             "study": study_to_dict(an.study),
             "command": list(argv) if argv is not None else sys.argv,

@@ -21,7 +21,8 @@ import xarray as xr
 from .cells import Cells
 from .errors import DiagnosticsWarning
 from .modelcache import compile_cached
-from .model.terms import build_model, design_data, model_spec
+from .model.registry import build_model
+from .model.terms import design_data, model_spec
 from .study import SamplerSettings
 
 __all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "LOADS", "THRESHOLDS", "clear_cache", "compile_exact",

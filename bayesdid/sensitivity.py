@@ -60,6 +60,7 @@ _PRIORS = {
 }
 
 _MEANING = {
+    "att": "the headline ATT, the adopters' effects weighted by their treated rows (model scale)",
     "tau": "the average effect of the policy (model scale)",
     "sigma_tau": "spread of the effect across adopters",
     "sigma_gap": "structural noise of the group gap per jurisdiction-period",
@@ -102,7 +103,7 @@ def log_prior_dataset(fit) -> xr.Dataset:
 
 def log_likelihood_dataset(fit) -> xr.Dataset:
     """Pointwise log-likelihood per (jurisdiction, period), dims (chain, draw, jurisdiction, period)."""
-    from .model.families import pointwise_loglik
+    from .model.registry import pointwise_loglik
 
     post = fit.posterior
     cells = fit.cells
@@ -155,10 +156,18 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
     """
     import arviz as az
 
+    from .effects import att_weights
+
     lp = log_prior_dataset(fit)
     ll = log_likelihood_dataset(fit)
     names = [n for n in CHECKED_PARAMETERS if n in fit.posterior]
-    tree = xr.DataTree.from_dict({"posterior": fit.posterior[names], "log_prior": lp, "log_likelihood": ll})
+    post = fit.posterior[names]
+    if "tau_adopter" in fit.posterior:  # the headline ATT, sum_j w_j tau[j] (effects.py)
+        w = xr.DataArray(att_weights(fit.cells), dims=("adopter",),
+                         coords={"adopter": fit.posterior["adopter"]})
+        post = post.assign(att=(fit.posterior["tau_adopter"] * w).sum("adopter"))
+        names = ["att", *names]
+    tree = xr.DataTree.from_dict({"posterior": post, "log_prior": lp, "log_likelihood": ll})
     out = {"method": "power-scaling sensitivity, arviz.psense (Kallioinen et al. 2023)",
            "threshold": threshold, "alphas": list(alphas), "priors_scaled": sorted(lp.data_vars),
            "parameters": {}, "flagged": []}
@@ -192,6 +201,9 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
                 note = (f"its own prior's log density varies by only {spread:.1e} over the draws, so power-scaling "
                         "it moves nothing (sensitivity 0)" if own == 0.0 else
                         f"power-scaling its own prior could not be computed ({exc})")
+        elif n == "att":  # a function of tau and the adopters' effects: its prior is the joint one
+            own = joint
+            note = "the ATT has no prior of its own; 'prior' is its sensitivity to power-scaling all priors"
         else:
             own = float("nan")
         code, reading = diagnosis(own, li, threshold=threshold)

@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
+from . import frames
 from .errors import StudyError
 
 __all__ = [
@@ -31,6 +32,7 @@ __all__ = [
     "make_study",
     "study_to_dict",
     "PRIOR_NAMES",
+    "STUDY_KEYS",
     "FAMILIES",
     "SAMPLER_LIMITS",
     "read_text_utf8",
@@ -247,6 +249,22 @@ class CrossCheckSettings:
 
 
 @dataclass(frozen=True)
+class Wording:
+    """How the report and the headline name things (study-file section ``[wording]``, all optional).
+
+    ``policy`` the policy's name ("the copay cap"), ``outcome`` what the outcome is ("out-of-pocket
+    spending"), ``unit`` its unit ("dollars per enrollee-quarter"), ``target`` the target group
+    ("chronic-condition enrollees"). Absent: "the policy", "the outcome (<column>)", none, the
+    target group's level.
+    """
+
+    policy: str | None = None
+    outcome: str | None = None
+    unit: str | None = None
+    target: str | None = None
+
+
+@dataclass(frozen=True)
 class Study:
     """A validated study. Build with :func:`load_study` or :func:`make_study`."""
 
@@ -263,6 +281,7 @@ class Study:
     period_order: tuple | None = None
     placebo_lag: int | None = None
     summary: str | None = None  # what a row holds (SUMMARIES); None: one observation
+    wording: Wording = field(default_factory=Wording)
 
     @property
     def design(self) -> str:
@@ -279,7 +298,8 @@ class Study:
 
 #: Study field -> section of the study file that holds it.
 _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends"}
+                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends",
+                   "wording": "wording"}
 
 
 def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -330,9 +350,20 @@ def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends"}
+_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends",
+             "wording"}
+WORDING_KEYS = ("policy", "outcome", "unit", "target")
+#: Every key the study file accepts, by section ("" = top level); the parser reads its allowed keys
+#: from here, and tests/test_readme_keys.py checks each is documented in the README and read by the code.
+STUDY_KEYS: dict[str, tuple[str, ...]] = {}
 _DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
               "period_order", "summary", "weight", "count", "sd", "se"}
+STUDY_KEYS.update({
+    "": ("title",), "data": tuple(sorted(_DATA_KEYS)), "policy": ("adopters", "target_group"),
+    "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"),
+    "priors": tuple(PRIOR_NAMES), "sampler": ("chains", "draws", "tune", "seed"), "decision": ("threshold", "level"),
+    "trends": ("multiples",),
+    "crosscheck": ("seed", "draws", "weights", "placebos"), "checks": ("placebo_lag",), "wording": WORDING_KEYS})
 
 #: What one row of the table holds (``data.summary``): absent = one observation per row.
 SUMMARIES = {
@@ -361,7 +392,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     _check_keys(data, _DATA_KEYS, "data")
     table = _get_str(data, "table", "data")
     path = Path(table)
-    if not path.is_absolute():
+    if not path.is_absolute() and not frames.is_memory(table):
         path = (base_dir / path).resolve()
     cols = Columns(
         outcome=_get_str(data, "outcome", "data"),
@@ -399,7 +430,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         raise _where("policy", pol, "a [policy] table with 'adopters' (and 'target_group' for DDD)")
     if not isinstance(pol, Mapping):
         raise StudyError("the study needs a [policy] section with 'adopters' (and 'target_group' for DDD).")
-    _check_keys(pol, {"adopters", "target_group"}, "policy")
+    _check_keys(pol, set(STUDY_KEYS["policy"]), "policy")
     adopters = pol.get("adopters")
     if not isinstance(adopters, Mapping) or not adopters:
         raise _where("policy.adopters", adopters,
@@ -407,7 +438,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
                     target_group=_get_str(pol, "target_group", "policy", required=False))
 
-    m = _section(raw, "model", {"family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"})
+    m = _section(raw, "model", set(STUDY_KEYS["model"]))
     model = ModelOptions(
         family=m.get("family", "gaussian"),
         log_outcome=_get_bool(m, "log_outcome", "model", False),
@@ -418,18 +449,18 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
-    s = _section(raw, "sampler", {"chains", "draws", "tune", "seed"})
+    s = _section(raw, "sampler", set(STUDY_KEYS["sampler"]))
     defaults = SamplerSettings()
     sampler = SamplerSettings(**{
         k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
         for k, (lo, hi) in SAMPLER_LIMITS.items()})
-    d = _section(raw, "decision", {"threshold", "level"})
+    d = _section(raw, "decision", set(STUDY_KEYS["decision"]))
     level = _get_float(d, "level", "decision", 0.9)
     if not 0.5 <= level < 1.0:
         raise _where("decision.level", d.get("level"), "a probability from 0.5 up to (not including) 1",
                      "It is the probability at which a decision counts as made, e.g. 0.9.")
     decision = Decision(threshold=_get_float(d, "threshold", "decision", None), level=level)
-    tr = _section(raw, "trends", {"multiples"})
+    tr = _section(raw, "trends", set(STUDY_KEYS["trends"]))
     mult = tr.get("multiples", list(TrendSettings().multiples))
     if (not isinstance(mult, (list, tuple)) or not mult
             or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)):
@@ -438,7 +469,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         raise _where("trends.multiples", mult, "multiples of zero or more",
                      "M scales the largest pre-policy change; a negative multiple has no meaning.")
     trends = TrendSettings(multiples=tuple(sorted(float(v) for v in mult)))
-    x = _section(raw, "crosscheck", {"seed", "draws", "weights", "placebos"})
+    x = _section(raw, "crosscheck", set(STUDY_KEYS["crosscheck"]))
     weights = x.get("weights", "webb")
     if weights not in CROSSCHECK_WEIGHTS:
         raise _where("crosscheck.weights", weights, f"one of {list(CROSSCHECK_WEIGHTS)}")
@@ -448,16 +479,22 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         weights=weights,
         placebos=_get_int(x, "placebos", "crosscheck", 999, minimum=1),
     )
-    c = _section(raw, "checks", {"placebo_lag"})
+    c = _section(raw, "checks", set(STUDY_KEYS["checks"]))
     lag = c.get("placebo_lag")
     if lag is not None:
         lag = _get_int(c, "placebo_lag", "checks", None, minimum=1)
     title = raw.get("title", "bayesdid study")
     if not isinstance(title, str):
         raise _where("title", title, "a string")
+    w = _section(raw, "wording", set(WORDING_KEYS))
+    for k, v in w.items():
+        if not isinstance(v, str) or not v.strip():
+            raise _where(f"wording.{k}", v, "a non-empty string (words for the report)")
+    wording = Wording(**{k: w[k].strip() for k in WORDING_KEYS if k in w})
     return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
                             sampler=sampler, decision=decision, crosscheck=crosscheck, trends=trends, title=title,
-                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary))
+                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary,
+                            wording=wording))
 
 
 def _validated(study: Study) -> Study:
@@ -626,8 +663,13 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
                trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
                chains=2, draws=1000, tune=1000, seed=20261202,
                threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
-               crosscheck=None) -> Study:
-    """Build a validated study in Python, without a file. Arguments mirror the study-file keys."""
+               crosscheck=None, wording=None) -> Study:
+    """Build a validated study in Python, without a file. Arguments mirror the study-file keys.
+
+    ``table`` is a path or a pandas DataFrame (kept in memory, see :mod:`bayesdid.frames`).
+    """
+    if hasattr(table, "dtypes") and hasattr(table, "columns"):  # a data frame (notebook use)
+        table = frames.register(table)
     raw: dict[str, Any] = {
         "title": title,
         "data": {k: v for k, v in dict(table=os.fspath(table) if isinstance(table, os.PathLike) else table, outcome=outcome, jurisdiction=jurisdiction,
@@ -643,6 +685,7 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         "decision": {} if threshold is None else {"threshold": threshold},
         "checks": {} if placebo_lag is None else {"placebo_lag": placebo_lag},
         "crosscheck": dict(crosscheck) if isinstance(crosscheck, Mapping) else (crosscheck or {}),
+        "wording": dict(wording) if isinstance(wording, Mapping) else (wording or {}),
     }
     return _parse(raw, Path.cwd())
 
@@ -671,4 +714,7 @@ def study_to_dict(study: Study) -> dict[str, Any]:
         out["policy"]["target_group"] = study.policy.target_group
     if study.placebo_lag is not None:
         out["checks"] = {"placebo_lag": study.placebo_lag}
+    wording = {k: v for k, v in dataclasses.asdict(study.wording).items() if v is not None}
+    if wording:
+        out["wording"] = wording
     return out

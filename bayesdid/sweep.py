@@ -74,9 +74,11 @@ from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
-from . import __version__
+from .version import __version__
+from .contracts import SWEEP_SUMMARY_COLUMNS, SweepVerdict, run_id
 from .errors import BayesDidError, SweepError
 from .lifeline import workers_end_with_me
+from .model.registry import study_priors
 from .outputs import owner_alive, owner_tag, probe_writable, process_start
 from .study import PRIOR_NAMES, Study, _parse, load_study, study_to_dict
 
@@ -88,13 +90,10 @@ _TOP = {"study", "title", "combine", "sampler", "priors", "comparisons", "covari
 _OPTION_KEYS = {"label", "family", "log_outcome", "missing", "threshold"}
 _VARIANT_KEYS = {"label", "priors", "model", "policy", "outcome", "drop", "threshold"}
 
-#: Columns of DIR/summary.csv, in order. Effect figures are the ATT on the model scale (log units
-#: for a log outcome); ``pct_*`` are the percent change exp(ATT) - 1 when the outcome is logged.
-SUMMARY_COLUMNS = ["id", "label", "status", "overrides", "seed", "effect_mean", "effect_sd",
-                   "eti90_low", "eti90_high", "eti95_low", "eti95_high", "hdi90_low", "hdi90_high",
-                   "prob_gt_0", "prob_lt_0", "threshold", "prob_beyond_threshold", "pct_mean",
-                   "pct_eti90_low", "pct_eti90_high", "diagnostics_ok", "rhat_max", "ess_bulk_min",
-                   "divergences", "sensitivity_ok", "sample_s", "error"]
+#: Columns of DIR/summary.csv, in order (declared in :mod:`bayesdid.contracts`). Effect figures are the
+#: ATT on the model scale (log units for a log outcome); ``pct_*`` are the percent change exp(ATT) - 1
+#: when the outcome is logged.
+SUMMARY_COLUMNS = list(SWEEP_SUMMARY_COLUMNS)
 
 
 def _err(key: str, value: Any, expected: str, fix: str = "") -> SweepError:
@@ -385,6 +384,13 @@ def load_sweep(path: str | Path) -> SweepPlan:
             st = _parse(merged, base_dir)
         except BayesDidError as exc:
             raise SweepError(f"variant '{label}' does not make a valid study: {exc}") from None
+        lacks = sorted(set((ov.get("priors") or {})) - set(study_priors(st)))
+        if lacks:
+            raise SweepError(
+                f"variant '{label}' sets the prior(s) {lacks}, which the model of this study does not have "
+                f"(family {st.model.family}, {'DDD' if st.columns.group else 'DiD'}, "
+                f"{len(st.policy.adopters)} adopter(s), {'with' if st.model.covariates else 'no'} covariates): "
+                f"sweeping it would change nothing. Its priors are {list(study_priors(st))}.")
         tbl = str(st.table)
         if tbl not in shas:
             shas[tbl] = file_sha256(st.table)
@@ -548,12 +554,15 @@ def _write_tables(out: Path, plan: SweepPlan, rows: list[dict], meta: dict) -> d
         w.writerow(r)
     _atomic_write(out / "summary.csv", buf.getvalue())
     ver = verdict(rows)
-    _atomic_write(out / "verdict.json", json.dumps(ver, indent=2, default=str) + "\n")
+    typed = SweepVerdict.from_dict(ver, what="the sweep's verdict")  # the contract the report reads
+    _atomic_write(out / "verdict.json", json.dumps(typed.to_dict(), indent=2, default=str) + "\n")
     by_id = {r["id"]: r for r in rows}
     manifest = {
         "bayesdid": __version__, "kind": "bayesdid sweep", "updated": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         **plan.describe(), "base_study": study_to_dict(plan.base), "base_seed": plan.base.sampler.seed,
-        "data_sha256": plan.data_sha256, "versions": versions(), **meta,
+        "data_sha256": plan.data_sha256, "base_data_sha256": plan.data_sha256.get(str(plan.base.table)),
+        "run_id": run_id(plan.data_sha256.get(str(plan.base.table)), study_to_dict(plan.base)),
+        "versions": versions(), **meta,
         "variants": [{"id": v.id, "label": v.label, "overrides": v.overrides, "seed": v.seed,
                       "status": by_id[v.id]["status"], "folder": f"variants/{v.id}",
                       **({"error": by_id[v.id]["error"]} if by_id[v.id]["error"] else {})}
@@ -896,7 +905,7 @@ def verdict(rows: Iterable[Mapping], *, base_id: str | None = None) -> dict:
     table = []
     for r in done:
         table.append({"id": r["id"], "label": r["label"], "effect_mean": f(r["effect_mean"]), "sign": sign(r),
-                      "interval": side(r),
+                      "interval": side(r), "eti_90": [f(r["eti90_low"]), f(r["eti90_high"])],
                       "prob_beyond_threshold": f(r["prob_beyond_threshold"]) if has_thr and decide(r) is not None else None,
                       "shift_sd": abs(f(r["effect_mean"]) - f(base["effect_mean"])) / sd})
     others = [t for t in table if t["id"] != base["id"]]

@@ -45,7 +45,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["DEFAULT_MULTIPLES", "DECISION_LEVEL", "TrendBounds", "trend_bounds", "trends_from_run",
+__all__ = ["DEFAULT_MULTIPLES", "DECISION_LEVEL", "TrendBounds", "trend_bounds",
            "write_trends", "CSV_COLUMNS"]
 
 DEFAULT_MULTIPLES = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
@@ -84,7 +84,7 @@ class TrendBounds:
 
 def _pre_paths(fit):
     """Per adopter: (Delta draws (S,), c_j) or a reason why it has none."""
-    from .checks.pretrend import replicate_gaps
+    from .model.twins import replicate_gaps
 
     cells = fit.cells
     both = cells.n[:, cells.target, :] > 0
@@ -221,29 +221,3 @@ def model_threshold(study, cells) -> float | None:
     return float(np.log1p(t)) if cells.log_outcome else float(t)
 
 
-def trends_from_run(run_dir, *, multiples=None) -> TrendBounds:
-    """Recompute the bound from a run folder's posterior.nc (the study as run, from its manifest)."""
-    import json
-
-    import xarray as xr
-
-    from .errors import BayesDidError
-    from .model.terms import model_spec
-    from .run import prepare
-    from .sample import Fit
-    from .study import _parse
-
-    run = Path(run_dir)
-    man = run / "manifest.json"
-    if not man.is_file() or not (run / "posterior.nc").is_file():
-        raise BayesDidError(f"'{run}' is not a run folder (needs manifest.json and posterior.nc); make one with "
-                            "'bayesdid fit STUDY --out DIR'.")
-    raw = json.loads(man.read_text(encoding="utf-8"))["study"]
-    study = _parse(raw, run)
-    cells, _, _ = prepare(study)
-    tree = xr.open_datatree(run / "posterior.nc", engine="h5netcdf")
-    post = tree["posterior"].to_dataset().load()
-    fit = Fit(cells=cells, tree=xr.DataTree.from_dict({"posterior": post}), spec=model_spec(cells, study.model.family),
-              scales={}, settings=study.sampler)
-    mult = multiples if multiples is not None else study.trends.multiples
-    return trend_bounds(fit, multiples=mult, threshold=model_threshold(study, cells), level=study.decision.level)

@@ -48,6 +48,12 @@ seed = 4242
 
 [decision]
 threshold = -0.05   # a cut of more than 5% is the level the ministry called meaningful
+
+[wording]           # how the report and the headline name things
+policy = "the copay cap"
+outcome = "out-of-pocket spending"
+unit = "dollars per enrollee-quarter"
+target = "chronic-condition enrollees"
 """
 
 
@@ -106,6 +112,12 @@ seed = 5151
 
 [decision]
 threshold = -0.10   # a rate cut of more than 10% is what the health board called worth the cost
+
+[wording]
+policy = "the nurse advice line"
+outcome = "emergency visits"
+unit = "visits per enrolled quarter"
+target = "enrollees aged 65 and over"
 """
 
 

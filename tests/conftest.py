@@ -48,3 +48,20 @@ def organ_donations() -> pd.DataFrame:
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(scope="session")
+def e2e_run(tmp_path_factory):
+    """Build (once per session) the run folder of an end-to-end case with the real commands
+    (tests/e2e_runs.py): ``e2e_run("poisson_ddd")`` -> dict with run, codes, logs, ..."""
+    from e2e_runs import build_case
+
+    root = tmp_path_factory.mktemp("e2e")
+    built: dict = {}
+
+    def get(name: str) -> dict:
+        if name not in built:
+            built[name] = build_case(name, root)
+        return built[name]
+
+    return get

@@ -10,7 +10,6 @@ import json
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import xarray as xr
 
 SCRIPT_NAME = "<script>alert(1)</script>"
@@ -65,18 +64,20 @@ def fake_summary(kind: str = "clear", *, adopters=("Norvale", "Kestrel Bay"), pe
     return out
 
 
-def write_fake_run(root: Path, *, kind="clear", adopters=("Norvale", "Kestrel Bay"), checks=True, sweep=True,
-                   full_crosscheck=True, comparisons=("Ambermoor", "Brackwater", "Cinderfell", "Duskmere"),
+def write_fake_run(root: Path, *, kind="clear", adopters=("Norvale", "Kestrel Bay"), full_crosscheck=True,
                    title=None) -> Path:
-    """A run folder with summary.json, manifest.json, posterior.nc and (optionally) checks and sweep."""
+    """A run folder with summary.json, manifest.json and posterior.nc, as a fit writes them.
+
+    Checks and sweeps are never typed by hand here: tests that need them use the folders the real
+    commands write (the ``e2e_run`` fixture, tests/e2e_runs.py).
+    """
     root = Path(root)
     root.mkdir(parents=True, exist_ok=True)
     s = fake_summary(kind, adopters=adopters)
     if title is not None:
         s["title"] = title
-    if sweep:
-        s["sensitivity"] = {"parameters": {"tau": {"prior": 0.012, "likelihood": 0.094,
-                                                   "diagnosis": "no prior-data conflict"}}}
+    s["sensitivity"] = {"parameters": {"tau": {"prior": 0.012, "likelihood": 0.094,
+                                               "diagnosis": "no prior-data conflict"}}}
     if full_crosscheck:
         s["least_squares"].update({"se_classical": 0.02, "se_hc1": 0.025, "se_cr1": 0.015, "p_cr1": 0.001,
                                    "ci_wild_95": [-0.16, 0.01], "p_wild": 0.09, "p_permutation": 0.12,
@@ -90,43 +91,7 @@ def write_fake_run(root: Path, *, kind="clear", adopters=("Norvale", "Kestrel Ba
                                    "group": "condition"}}}
     (root / "manifest.json").write_text(json.dumps(manifest), encoding="utf-8")
     rng = np.random.default_rng(11)
-    tau = rng.normal(s["effect"]["median"], 0.03, size=(2, 200, len(adopters)))
-    post = xr.Dataset({"tau_adopter": (("chain", "draw", "adopter"), tau)},
-                      coords={"chain": [0, 1], "draw": np.arange(200), "adopter": list(adopters)})
+    att = rng.normal(s["effect"]["median"], 0.03, size=(2, 200))
+    post = xr.Dataset({"att": (("chain", "draw"), att)}, coords={"chain": [0, 1], "draw": np.arange(200)})
     xr.DataTree.from_dict({"posterior": post}).to_netcdf(root / "posterior.nc", engine="h5netcdf")
-    if checks:
-        d = root / "checks"
-        d.mkdir(exist_ok=True)
-        k = np.arange(-5, 4)
-        pd.DataFrame({"event_time": k, "mean": np.where(k >= 0, -0.07, 0.0) + 0.005 * k,
-                      "lower": np.where(k >= 0, -0.12, -0.04), "upper": np.where(k >= 0, -0.02, 0.04)}
-                     ).to_csv(d / "event_time.csv", index=False)
-        rows = []
-        for a in adopters:
-            for t, per in enumerate(["2023Q1", "2023Q2", "2023Q3", "2023Q4", "2024Q1", "2024Q2"]):
-                rows.append({"adopter": a, "period": per, "observed": 0.01 * t - 0.02, "lower": -0.06,
-                             "upper": 0.06, "predicted": 0.0})
-        pd.DataFrame(rows).to_csv(d / "pretrend.csv", index=False)
-        comp = pd.DataFrame({"jurisdiction": list(comparisons), "mean": np.linspace(-0.03, 0.09, len(comparisons)),
-                             "lower": np.linspace(-0.03, 0.09, len(comparisons)) - 0.04,
-                             "upper": np.linspace(-0.03, 0.09, len(comparisons)) + 0.04,
-                             "flagged": [False] * (len(comparisons) - 1) + [True]})
-        comp.to_csv(d / "comparison.csv", index=False)
-        checks_json = {
-            "event_time": {"status": "ok", "reason": "leads are near zero", "table": "event_time.csv"},
-            "pretrend": {"status": "ok", "reason": "observed slope within the predictive band", "p_value": 0.41},
-            "placebo_time": {"status": "ok", "reason": "no effect at the fake start", "threshold": 0.05},
-            "comparison": {"status": "flag", "reason": "one comparison jurisdiction moves", "offenders":
-                           [comparisons[-1]]},
-            "placebo_space": {"status": "not applicable", "reason": "needs at least 5 comparison jurisdictions"},
-        }
-        (d / "checks.json").write_text(json.dumps(checks_json), encoding="utf-8")
-    if sweep:
-        d = root / "sweep"
-        d.mkdir(exist_ok=True)
-        verdict = {"verdict": "the sign of the effect holds in every variant", "scale": "model",
-                   "rows": [{"label": "defaults", "median": -0.07, "eti_90": [-0.12, -0.02]},
-                            {"label": "effect prior x0.25", "median": -0.05, "eti_90": [-0.09, -0.01]},
-                            {"label": "effect prior x4", "median": -0.08, "eti_90": [-0.14, -0.02]}]}
-        (d / "verdict.json").write_text(json.dumps(verdict), encoding="utf-8")
     return root

@@ -133,3 +133,18 @@ def test_a_failing_check_is_recorded_and_the_others_run(flat, monkeypatch, tmp_p
     out = write_checks(rep, tmp_path / "checks")
     body = json.loads((out / "checks.json").read_text())
     assert body["pretrend"]["status"] == "failed" and body["comparison"]["status"] == "ok"
+
+
+def test_poisson_event_time_check_fits_one_effect_per_event_time(flat):
+    from bayesdid.checks import event_time_check
+
+    _, cells, scales = flat
+    r = event_time_check(cells, scales, SETTINGS, tolerance=0.1, family="poisson")
+    assert r.status in ("ok", "flag"), r.reason
+    table = r.tables["event_time"]
+    assert table["event_time"].tolist() == [-5, -4, -3, -2, -1, 0, 1, 2]
+    ref = table.set_index("event_time").loc[-1]
+    assert ref["mean"] == 0.0 and ref["role"] == "reference"
+    # no drift was simulated: every lead's 90% interval holds 0 or sits near it (log-rate scale)
+    leads = table[table["role"] == "lead"]
+    assert (leads["lower_90"] < 0.15).all() and (leads["upper_90"] > -0.15).all()

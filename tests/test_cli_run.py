@@ -27,7 +27,14 @@ def demo_run(tmp_path_factory):
 def test_demo_writes_complete_run_folder(demo_run, capsys):
     code, out = demo_run
     assert code == 0
-    assert sorted(p.name for p in out.iterdir()) == ["manifest.json", "posterior.nc", "report.html", "summary.json"]
+    # the demo runs the whole analysis: the fit, every check, a two-variant sweep and the report
+    assert sorted(p.name for p in out.iterdir()) == ["checks", "manifest.json", "posterior.nc", "report.html",
+                                                     "summary.json", "sweep"]
+    checks = json.loads((out / "checks" / "checks.json").read_text())
+    assert all(checks[c]["status"] in ("ok", "flag", "not applicable")
+               for c in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"))
+    verdict = json.loads((out / "sweep" / "verdict.json").read_text())
+    assert verdict["status"] == "ok" and len(verdict["rows"]) == 2
     s = json.loads((out / "summary.json").read_text())
     for key in ("mean", "median", "sd", "eti_90", "eti_95", "hdi_90", "prob_gt_0", "prob_lt_0",
                 "prob_beyond_threshold"):

@@ -17,7 +17,8 @@ from scipy import integrate, special, stats
 from bayesdid import make_study
 from bayesdid.cells import collapse
 from bayesdid.model import families, gaussian
-from bayesdid.model.terms import build_model, model_spec, resolve_scales
+from bayesdid.model.registry import build_model
+from bayesdid.model.terms import model_spec, resolve_scales
 from bayesdid.simulate import Scenario, simulate
 from bayesdid.study import PriorScales
 from bayesdid.simulate_families import CountScenario, simulate_family

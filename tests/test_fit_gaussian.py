@@ -11,7 +11,7 @@ from bayesdid import analyse, make_study
 from bayesdid.cells import collapse
 from bayesdid.effects import percent_change
 from bayesdid.model.gaussian import pointwise_loglik
-from bayesdid.model.terms import build_model
+from bayesdid.model.registry import build_model
 from bayesdid.simulate import Scenario
 
 from conftest import sim_study

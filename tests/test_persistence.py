@@ -370,7 +370,8 @@ def test_numpy_twin_matches_the_model_graph(tmp_path, kind):
     """The PyTensor graph (Kalman filter, drifts, no residual sd) and the numpy twin that writes
     posterior.nc's log-likelihood agree at a random point (PyMC's own evaluation as reference)."""
     from bayesdid.model.gaussian import pointwise_loglik
-    from bayesdid.model.terms import build_model, resolve_scales
+    from bayesdid.model.registry import build_model
+    from bayesdid.model.terms import resolve_scales
     from bayesdid.study import PriorScales
 
     rng = np.random.default_rng(5)

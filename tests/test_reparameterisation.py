@@ -18,7 +18,8 @@ import pymc as pm
 import pytest
 from scipy import stats
 
-from bayesdid.model.terms import build_model, default_scales, zero_sum_basis
+from bayesdid.model.registry import build_model
+from bayesdid.model.terms import default_scales, zero_sum_basis
 from bayesdid.simulate import Scenario
 
 from conftest import sim_study

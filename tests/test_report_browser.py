@@ -20,7 +20,8 @@ from cdp_client import Browser, find_chromium
 from report_fixtures import SCRIPT_NAME, write_fake_run
 
 from bayesdid.cli import main
-from bayesdid.report import HEADINGS, headline, write_report
+from bayesdid.report import HEADINGS, write_report
+from bayesdid.report.words import headline_of
 
 CHROMIUM = find_chromium()
 if CHROMIUM is None:
@@ -70,9 +71,10 @@ def test_demo_report_in_chromium(demo_run, capsys):
         assert _network(b, page) == []
         assert b.dialogs() == []
     assert facts["images"] and all(w > 0 and h > 0 and ok for w, h, ok in facts["images"])
-    assert len(facts["images"]) >= 2  # the effect and the posterior-versus-least-squares figures
+    assert len(facts["images"]) >= 7  # the demo runs every check and a sweep: every figure is drawn
     assert facts["headings"] == [h for _, h in HEADINGS]
-    assert " ".join(facts["headline"].split()) == headline(summary, outcome="the outcome (oop_spend)")
+    study = json.loads((demo_run / "manifest.json").read_text())["study"]
+    assert " ".join(facts["headline"].split()).startswith(headline_of(summary, study))
     assert facts["scripts"] == 0
     assert shot.stat().st_size > 50_000 and shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     with capsys.disabled():
@@ -80,9 +82,7 @@ def test_demo_report_in_chromium(demo_run, capsys):
 
 
 def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
-    run = write_fake_run(tmp_path / "xss", adopters=("Norvale", SCRIPT_NAME),
-                         comparisons=("Ambermoor", "Brackwater", "Cinderfell", SCRIPT_NAME),
-                         title=f"Valmora {SCRIPT_NAME}")
+    run = write_fake_run(tmp_path / "xss", adopters=("Norvale", SCRIPT_NAME), title=f"Valmora {SCRIPT_NAME}")
     page = write_report(run)
     with Browser(CHROMIUM) as b:
         b.open(page)
@@ -93,9 +93,10 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
         assert b.errors() == []
         assert _network(b, page) == []
     assert SCRIPT_NAME in facts["text"]  # shown as the literal name
-    assert facts["text"].count(SCRIPT_NAME) >= 4
+    assert facts["text"].count(SCRIPT_NAME) >= 3  # title, per-adopter table, data table
     assert facts["scripts"] == 0 and not facts["pwned"]
-    assert len(facts["images"]) == 6 and all(w > 0 for w, _, _ in facts["images"])
+    # a fit-only folder: the effect and the cross-check figures (checks and sweeps come from the commands)
+    assert len(facts["images"]) == 2 and all(w > 0 for w, _, _ in facts["images"])
     assert facts["headings"] == [h for _, h in HEADINGS]
     assert pdf[:5] == b"%PDF-" and pdf.count(b"/Type /Page") - pdf.count(b"/Type /Pages") >= 3  # prints
 
@@ -111,3 +112,20 @@ def test_the_detectors_see_a_script_a_console_error_and_a_fetch(tmp_path):
         assert any("boom" in e for e in b.errors())
         assert _network(b, page) == ["http://127.0.0.1:9/x.png"]
         assert b.evaluate("document.images[0].naturalWidth") == 0
+
+
+@pytest.mark.parametrize("name", ["poisson_ddd", "gaussian_did"])
+def test_end_to_end_reports_in_chromium(name, e2e_run, capsys):
+    """The reports of the end-to-end matrix (real fit, checks, sweep) open cleanly, every figure drawn."""
+    page = e2e_run(name)["run"] / "report.html"
+    with Browser(CHROMIUM) as b:
+        b.open(page)
+        facts = b.evaluate(PAGE_FACTS)
+        shot = b.screenshot(SCREENS / f"e2e_{name}.png")
+        assert b.errors() == []
+        assert _network(b, page) == []
+    assert len(facts["images"]) >= 7 and all(w > 0 and h > 0 and ok for w, h, ok in facts["images"])
+    assert facts["headings"] == [h for _, h in HEADINGS]
+    assert "could not be drawn" not in facts["text"] and "Not available in this run folder" not in facts["text"]
+    with capsys.disabled():
+        print(f"\nfull-page screenshot of the {name} report: {shot}")

@@ -5,16 +5,34 @@ from __future__ import annotations
 import pytest
 from report_fixtures import fake_summary
 
-from bayesdid.report.words import evidence, headline
+from bayesdid.report.words import check_flags, evidence, headline
 
 
 def test_clear_effect_states_direction_interval_and_probabilities():
     s = fake_summary("clear")
     assert evidence(s) == "clear"
     text = headline(s, outcome="emergency visits", policy="the cap")
-    assert text == ("Across the two adopting jurisdictions the cap most likely lowered emergency visits by 7% "
-                    "(90% interval 2% to 12% lower); the probability of any reduction is 98%, of a reduction "
-                    "larger than 5% is 74%.")
+    assert text == ("Across the two adopting jurisdictions the cap lowered emergency visits by 7% as a central "
+                    "estimate (90% interval 2% to 12% lower); the probability of any reduction is 98%, "
+                    "of a reduction larger than 5% is 74%.")
+    assert "most likely" not in text  # the median is not a mode
+
+
+def test_flagged_checks_reach_the_headline():
+    s = fake_summary("clear")
+    checks = {"pretrend": {"status": "flag", "reason": "drift"},
+              "comparison": {"status": "flag", "reason": "x", "offenders": [{"jurisdiction": "Ambermoor"}]},
+              "placebo_time": {"status": "ok", "reason": "fine"},
+              "event_time": {"status": "failed", "reason": "KeyError"},
+              "placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.077, "rank": 3, "n_placebos": 38}}
+    text = headline(s, flags=check_flags(checks))
+    caution = text[text.index("Caution: "):]
+    assert "pre-trend check" in caution and "Ambermoor" in caution
+    assert "the event time check could not be completed" in caution
+    assert "ranks 3 of 39 by size (permutation p = 0.077)" in caution
+    assert "placebo in time" not in caution  # an ok check is not a caution
+    assert check_flags({"placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.02, "rank": 1,
+                                          "n_placebos": 38}}) == []
 
 
 def test_null_effect_says_no_clear_effect_and_keeps_the_numbers():
@@ -22,7 +40,7 @@ def test_null_effect_says_no_clear_effect_and_keeps_the_numbers():
     assert evidence(s) == "null"
     text = headline(s)
     assert "no clear effect" in text
-    assert "most likely lowered" not in text
+    assert "lowered" not in text.split(":")[0]
     assert "90% interval from -6% to +4%, which includes no change" in text
     assert "the probability of any reduction is 62%" in text
     assert text.endswith("The direction of the effect is not settled by these data.")
@@ -60,7 +78,7 @@ def test_an_increase_reads_as_raised_with_the_probability_of_an_increase():
     e.update(median=0.07, eti_90=[0.02, 0.12], prob_gt_0=0.97, prob_lt_0=0.03, threshold=0.05,
              prob_beyond_threshold=0.7)
     text = headline(s)
-    assert "most likely raised the outcome by 7% (90% interval 2% to 12% higher)" in text
+    assert "raised the outcome by 7% as a central estimate (90% interval 2% to 12% higher)" in text
     assert "the probability of any increase is 97%, of an increase larger than 5% is 70%" in text
 
 
@@ -68,7 +86,7 @@ def test_one_adopter_is_named_and_certainty_is_never_rounded_to_100_percent():
     s = fake_summary("clear", adopters=("Norvale",))
     s["effect_percent"].update(prob_lt_0=0.9995, prob_beyond_threshold=0.996)
     text = headline(s)
-    assert text.startswith("In the adopting jurisdiction, Norvale, the policy most likely lowered")
+    assert text.startswith("In the adopting jurisdiction, Norvale, the policy lowered")
     assert "100%" not in text
     assert "the probability of any reduction is over 99%" in text
 
@@ -98,8 +116,34 @@ def test_count_outcome_headline_reads_the_rate_ratio_not_the_link_scale():
         {"measure": "rate difference per 1,000 units of exposure", "median": -3.1, "eti_90": [-5.2, -0.9]},
     ]
     text = headline(s, outcome="emergency visits")
-    assert "most likely lowered the rate of emergency visits by 12% (90% interval 4% to 19% lower)" in text
+    assert "lowered the rate of emergency visits by 12% as a central estimate (90% interval 4% to 19% lower)" in text
     assert "the probability of any reduction is 99%, of a reduction larger than 5% is 80%" in text
     assert "rate ratio over the treated cells, 0.88" in text
     assert "rate difference per 1,000 units of exposure, -3.1 (90% interval -5.2 to -0.9)" in text
     assert "0.123" not in text and "own units" not in text
+
+
+def test_the_study_wording_names_policy_outcome_unit_and_target(tmp_path):
+    from bayesdid.errors import StudyError
+    from bayesdid.study import make_study, study_to_dict
+
+    from bayesdid.report.words import headline_of
+
+    st = make_study(table="t.csv", outcome="oop_spend", jurisdiction="region", period="quarter", group="condition",
+                    target_group="chronic", adopters={"Norvale": 3},
+                    wording={"policy": "the copay cap", "outcome": "out-of-pocket spending",
+                             "target": "chronic-condition enrollees", "unit": "dollars"})
+    raw = study_to_dict(st)
+    assert raw["wording"]["policy"] == "the copay cap"
+    s = fake_summary("clear", percent=False)
+    text = headline_of(s, raw)
+    assert ("the copay cap lowered out-of-pocket spending of chronic-condition enrollees by 0.7 dollars as a "
+            "central estimate") in text
+    plain = headline_of(s, {"data": {"outcome": "oop_spend"}})
+    assert "the policy lowered the outcome (oop_spend) by 0.7 (in the outcome's own units)" in plain
+    with pytest.raises(StudyError, match=r"wording.outcome"):
+        make_study(table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2},
+                   wording={"outcome": 3})
+    with pytest.raises(StudyError, match=r"unknown key"):
+        make_study(table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2},
+                   wording={"colour": "teal"})

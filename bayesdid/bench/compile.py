@@ -112,7 +112,8 @@ def run_one(name: str) -> dict:
     """Fit one model in this process through the compile cache and time its stages."""
     t_import = time.perf_counter()
     from .. import modelcache, sample
-    from ..model.terms import build_model, event_times_of, resolve_scales
+    from ..model.registry import build_model
+    from ..model.terms import event_times_of, resolve_scales
     from ..run import prepare
     from ..study import load_study
 

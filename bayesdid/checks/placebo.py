@@ -28,6 +28,7 @@ from scipy import stats
 
 from ..cells import Cells
 from ..effects import summarize
+from ..progress import Progress
 from ..sample import fit_cells
 from ..study import SamplerSettings
 from .base import CheckResult, reseed, earliest_start, effect_weights, frame, interval_row, not_applicable, plain, pre_weight
@@ -96,6 +97,7 @@ def placebo_space_check(cells: Cells, scales: dict, settings: SamplerSettings, r
         return not_applicable(SPACE, f"{len(comps)} comparison jurisdiction(s) with target-group rows before and "
                               "after the start; a placebo distribution needs at least 2.", thr)
     rows, means = [], []
+    bar = Progress("placebo in space", len(comps), log=progress)
     for i, c in enumerate(comps):
         pc, slot = placebo_space_cells(cells, c)
         fit = fit_cells(pc, scales, reseed(settings, 100 + i),
@@ -104,8 +106,7 @@ def placebo_space_check(cells: Cells, scales: dict, settings: SamplerSettings, r
         r = interval_row(x)
         rows.append({"jurisdiction": cells.jurisdictions[c], "role": "placebo", **r})
         means.append(r["mean"])
-        if progress:
-            progress(f"placebo in space {i + 1}/{len(comps)}: {cells.jurisdictions[c]}")
+        bar.step(str(cells.jurisdictions[c]))
     real = interval_row(real_att)
     rows.append({"jurisdiction": "+".join(cells.jurisdictions[j] for j in cells.adopters), "role": "real", **real})
     means = np.asarray(means)

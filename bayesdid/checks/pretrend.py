@@ -40,9 +40,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..cells import Cells
-from ..model.families import replicate_gap_path
-from ..model.gaussian import residual_draws
-from ..model.terms import mean_from_draws
+from ..model.twins import replicate_gaps
 from ..sample import fit_cells
 from ..study import SamplerSettings
 from .base import CheckResult, earliest_start, effect_weights, frame, not_applicable, plain, pre_weight, reseed
@@ -63,46 +61,6 @@ def slope(x: np.ndarray, r: np.ndarray) -> np.ndarray:
     """OLS slope of r (..., n) on x (n,) along the last axis."""
     xc = x - x.mean()
     return (r * xc).sum(axis=-1) / (xc * xc).sum()
-
-
-def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
-    """Observed gap, expected gap (S, n) and replicated gap (S, n) of jurisdiction j at ``periods``.
-
-    Gaussian: as in the module docstring. Other families: on the link scale, records replicated from
-    the family itself (:func:`bayesdid.model.families.replicate_gap_path`).
-    """
-    if fit.spec.family != "gaussian":
-        return replicate_gap_path(fit, j, periods, rng)
-    cells = fit.cells
-    m = mean_from_draws(fit)  # (S, J, G, T)
-    sigma = residual_draws(fit)  # (S, G)
-    sg = fit.draws("sigma_gap")
-    S = sigma.shape[0]
-    q = cells.target
-    n_q = cells.n[j, q, periods]
-    mean = cells.mean
-    e = sg[:, None] * rng.standard_normal((S, len(periods)))
-    if getattr(fit.spec, "gap", "independent") == "persistent":
-        # AR(1) gap noise (bayesdid.model.structure): the same normals, chained over the periods
-        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap
-        rho = fit.draws("rho")
-        z = e.copy()
-        for i in range(1, len(periods)):
-            c = rho ** float(periods[i] - periods[i - 1])
-            e[:, i] = c * e[:, i - 1] + np.sqrt(1.0 - c * c) * z[:, i]
-    eps_q = sigma[:, q][:, None] / np.sqrt(n_q)[None, :] * rng.standard_normal((S, len(periods)))
-    if cells.design == "DDD":
-        r = cells.reference
-        n_r = cells.n[j, r, periods]
-        s = fit.draws("sigma_shock")[:, None] * rng.standard_normal((S, len(periods)))
-        eps_r = sigma[:, r][:, None] / np.sqrt(n_r)[None, :] * rng.standard_normal((S, len(periods)))
-        y_q = m[:, j, q, periods] + s + e + eps_q
-        y_r = m[:, j, r, periods] + s + eps_r
-        expected = m[:, j, q, periods] - m[:, j, r, periods]
-        observed = mean[j, q, periods] - mean[j, r, periods]
-        return observed, expected, y_q - y_r
-    expected = m[:, j, q, periods]
-    return mean[j, q, periods], expected, expected + e + eps_q
 
 
 def _pvals(obs, rep):

@@ -23,8 +23,10 @@ from pathlib import Path
 import numpy as np
 
 from ..cells import Cells
+from ..contracts import ordered, run_id
 from ..errors import BayesDidError
 from ..model.terms import resolve_scales
+from ..progress import Progress
 from ..sample import fit_cells
 from ..study import Study, study_to_dict
 from .base import CheckResult, effect_weights, failed
@@ -36,6 +38,11 @@ from .pretrend import pretrend_check
 __all__ = ["CHECKS", "CheckReport", "run_checks", "write_checks", "default_tolerance"]
 
 CHECKS = ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space")
+CHECK_WORDS = {"event_time": "one fit with an effect per event time",
+               "pretrend": "one fit on the pre-policy data",
+               "placebo_time": "one fit with a fake start",
+               "comparison": "reads the main fit; a refit per flagged jurisdiction",
+               "placebo_space": "one fit per comparison jurisdiction"}
 _NEEDS_MAIN = {"comparison", "placebo_space"}
 
 
@@ -56,9 +63,12 @@ class CheckReport:
     cells: Cells
     results: dict
     timing: dict = field(default_factory=dict)
+    data_sha256: str | None = None
 
     def to_dict(self) -> dict:
         out = {"title": self.study.title, "design": self.cells.design,
+               "identity": {"data_sha256": self.data_sha256,
+                            "run_id": run_id(self.data_sha256, study_to_dict(self.study))},
                "sampler": dataclasses.asdict(self.study.sampler), "data": self.cells.describe(),
                "timing": self.timing}
         for name in CHECKS:
@@ -72,7 +82,8 @@ class CheckReport:
 
 
 def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = None,
-               tolerance: float | None = None, pooled: bool = False, main_fit=None, log=None) -> CheckReport:
+               tolerance: float | None = None, pooled: bool = False, main_fit=None, log=None,
+               data_sha256: str | None = None) -> CheckReport:
     """Run the checks (all, or ``only`` one) on a study.
 
     Raises
@@ -87,7 +98,7 @@ def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = N
     if cells is None:
         from ..run import prepare
 
-        cells, _, _ = prepare(study)
+        cells, data_sha256, _ = prepare(study)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, study.priors).items()}
     settings, family = study.sampler, study.model.family
     tol, tol_src = (tolerance, "given") if tolerance is not None else default_tolerance(study, cells)
@@ -101,8 +112,9 @@ def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = N
         except Exception as exc:  # noqa: BLE001 - the checks that do not need it still run
             say(f"the main fit failed: {type(exc).__name__}: {exc}")
         timing["main_fit_s"] = time.perf_counter() - t0
+    steps = Progress("checks", len(names), log=log)
     for name in names:
-        say(f"check: {name}")
+        say(f"check: {name} ({CHECK_WORDS[name]})")
         t0 = time.perf_counter()
         try:
             r = _run_one(name, study, cells, scales, settings, family, tol, tol_src, pooled, main_fit, say)
@@ -111,7 +123,8 @@ def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = N
             say(f"check {name} failed: {type(exc).__name__}: {exc}")
         timing[f"{name}_s"] = time.perf_counter() - t0
         results[name] = r
-    return CheckReport(study=study, cells=cells, results=results, timing=timing)
+        steps.step(f"{name}: {r.status}")
+    return CheckReport(study=study, cells=cells, results=results, timing=timing, data_sha256=data_sha256)
 
 
 def _run_one(name, study, cells, scales, settings, family, tol, tol_src, pooled, main_fit, say) -> CheckResult:
@@ -141,7 +154,7 @@ def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False,
         files = []
         for r in report.results.values():
             for name, table in r.tables.items():
-                table.to_csv(tmp / f"{name}.csv", index=False)
+                ordered(name, table).to_csv(tmp / f"{name}.csv", index=False)
                 files.append(f"{name}.csv")
         body = report.to_dict()
         body["manifest"] = {"versions": versions(), "study": study_to_dict(report.study),

@@ -1,5 +1,7 @@
-"""Model builders, one per outcome family, sharing the hierarchical terms in :mod:`.terms`."""
+"""The model: shared hierarchical terms (:mod:`.terms`), one module per outcome family (:mod:`.gaussian`,
+:mod:`.families` with :mod:`.binomial` and :mod:`.counts`), the structure rules read off the cells
+(:mod:`.structure`), the numpy twins that replicate data (:mod:`.twins`) and the family registry
+(:mod:`.registry`: ``build_model``, ``pointwise_loglik``, the priors each family has).
 
-from .terms import default_scales, ModelSpec, build_model
-
-__all__ = ["default_scales", "ModelSpec", "build_model"]
+Nothing is imported here, so that reading a structure rule does not load PyMC.
+"""

@@ -35,7 +35,7 @@ from scipy import special
 
 from ..cells import Cells
 from . import binomial, counts
-from .terms import hierarchical_mean, mean_from_draws, small_matmul, zero_sum_basis
+from .terms import CENTRE_MARGIN, design_data, fields_centred, hierarchical_mean, mean_from_draws, small_matmul, zero_sum_basis  # noqa: F401 (fields_centred, CENTRE_MARGIN: kept importable here)
 
 __all__ = ["FAMILY_BUILDERS", "build_family", "data_arrays", "record_loglik", "record_eta_draws",
            "pointwise_loglik", "inverse_link", "NP", "PT"]
@@ -124,62 +124,11 @@ def inverse_link(family: str, eta, xp=NP):
     return binomial.inverse_link(eta, xp) if family == "binomial" else counts.inverse_link(eta, xp)
 
 
-#: A field is centred only when the data inform each member this many times better than its spread
-#: does (near a ratio of 1 both forms sample about as well, and a margin keeps similar data sets, and
-#: so sweeps and tests, on one compiled structure).
-CENTRE_MARGIN = 4.0
+def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str, **terms) -> pm.Model:
+    """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``.
 
-def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
-    """Centre the gap-noise and shock fields when the cells measure them better than their spread.
-
-    A non-centred latent field samples well when each member is weakly informed by the data, and
-    makes a narrow curved ridge when the data pin it; the centred form is the opposite (Betancourt
-    and Girolami 2015; Papaspiliopoulos, Roberts and Skold 2007). The rule compares, on the link
-    scale, the sampling variance of one cell's linear predictor (1/events for counts,
-    1/(n p (1 - p)) for binomial; the mean over cells) with the spread of the field read off the
-    cells: the variance of the two-way (jurisdiction, period) residuals of the gap series (target
-    minus reference) and of the reference series, less their sampling part. The gap is informed by
-    two cells (variance 2 v_cell in a DDD, v_cell in a DiD); the shock by the pair (v_cell / 2). A
-    field is centred when that variance, times :data:`CENTRE_MARGIN`, is below the field's spread.
-    It uses neither the start periods nor the adopters, so placebos keep the model's structure; the
-    choice changes no posterior, only the sampler's path, and is recorded in the model structure.
-    """
-    n, y = cells.n, cells.sum_y
-    ok = n > 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        if family == "binomial":
-            p = (y + 0.5) / (n + 1.0)
-            eta = np.log(p / (1.0 - p))
-            var = 1.0 / ((n + 1.0) * p * (1.0 - p))
-        else:
-            eta = np.log((y + 0.5) / n)
-            var = 1.0 / (y + 0.5)
-    eta = np.where(ok, eta, np.nan)
-    if not ok.any():
-        return False, False
-    v_cell = float(np.mean(var[ok]))
-
-    def spread(series):
-        with np.errstate(invalid="ignore"):
-            r = series - np.nanmean(series, axis=1, keepdims=True)
-            r = r - np.nanmean(r, axis=0, keepdims=True)
-            return float(np.nanmean(r * r))
-
-    J, _, T = cells.shape
-    keep = (1.0 - 1.0 / J) * (1.0 - 1.0 / T)  # share of iid noise left in two-way residuals
-    q = eta[:, cells.target, :]
-    m = CENTRE_MARGIN
-    if cells.design == "DDD":
-        ref = eta[:, cells.reference, :]
-        v_gap = spread(q - ref) - keep * 2.0 * v_cell
-        v_shock = spread(ref) - keep * v_cell
-        return bool(m * 2.0 * v_cell < v_gap), bool(m * 0.5 * v_cell < v_shock)
-    v_gap = spread(q) - keep * v_cell
-    return bool(m * v_cell < v_gap), False
-
-
-def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str) -> pm.Model:
-    """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``."""
+    ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean` (``effects="event_time"`` with its
+    event times: one effect per event time, for the event-time check)."""
     J, G, T = cells.shape
     arr = data_arrays(cells, family)
     cov = cells.extra.get("covariates")
@@ -239,7 +188,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                     b = (mu[0] + sd * pm.Normal("z_level", 0.0, 1.0, dims=("jurisdiction",)))[:, None]
             return pm.Deterministic("baseline", b, dims=("jurisdiction", "group"))
 
-        m, S = hierarchical_mean(cells, scales, levels=levels)
+        m, S = hierarchical_mean(cells, scales, levels=levels, **terms)
         # only the arrays this family reads: nutpie's with_data rejects names the graph does not use
         keys = ("rec_size", "rec_w") + (("rec_first", "rec_ycell", "rec_cellid") if family == "negbinomial" else ())
         used = ("rec_cell", "rec_jt", "rec_tgt") + (("rec_x",) if K else ()) + keys
@@ -285,8 +234,6 @@ def record_eta_draws(fit, m: np.ndarray | None = None, *, without_policy: bool =
 
     ``without_policy`` removes tau[j] D[j,g,t]: the counterfactual linear predictor.
     """
-    from .terms import design_data
-
     cells = fit.cells
     d = data_arrays(cells, fit.spec.family)
     m = mean_from_draws(fit) if m is None else m
@@ -305,14 +252,10 @@ def record_eta_draws(fit, m: np.ndarray | None = None, *, without_policy: bool =
 def pointwise_loglik(fit) -> np.ndarray:
     """Log-likelihood of each jurisdiction-period for every draw, given the latent fields: (S, J, T).
 
-    For the Gaussian family the shock and gap noise are integrated out (see
-    :func:`bayesdid.model.gaussian.pointwise_loglik`); here they are conditioned on.
+    Binomial and count families only; :func:`bayesdid.model.registry.pointwise_loglik` dispatches on
+    the family (the Gaussian one integrates the shock and gap noise out).
     """
     family = fit.spec.family
-    if family == "gaussian":
-        from .gaussian import pointwise_loglik as gauss
-
-        return gauss(fit)
     cells = fit.cells
     J, G, T = cells.shape
     d = data_arrays(cells, family)

@@ -181,7 +181,7 @@ def covariate_adjusted(d: dict, theta, ybar_q=None) -> dict:
     """The arrays of :func:`jt_loglik` for ``u = y - x~' theta`` instead of ``y`` (exact).
 
     Per cell ``ubar = ybar - xbar' theta`` and ``SS_u = SS_y - 2 theta' Wxy + theta' Wxx theta``
-    (see :mod:`bayesdid.model.covariates`). ``theta`` is (K,) or, for draws, (S, 1, 1, K): it
+    (see :mod:`bayesdid.covariates`). ``theta`` is (K,) or, for draws, (S, 1, 1, K): it
     broadcasts against the (J, T, K) arrays. Works on numpy and PyTensor alike.
     """
     out = dict(d)

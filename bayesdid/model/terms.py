@@ -27,7 +27,7 @@ from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
 from .structure import gap_structure, residual_rule
 
-__all__ = ["default_scales", "resolve_scales", "ModelSpec", "build_model", "design_data",
+__all__ = ["default_scales", "resolve_scales", "ModelSpec", "design_data",
            "hierarchical_mean", "event_times_of", "event_time_data", "EFFECTS"]
 
 #: The ways the policy enters the mean: one effect per adopter ("att", the default) or one effect per
@@ -371,6 +371,60 @@ def coords_of(cells: Cells, event_times: tuple = ()) -> dict[str, list]:
     return out
 
 
+#: A field is centred only when the data inform each member this many times better than its spread
+#: does (near a ratio of 1 both forms sample about as well, and a margin keeps similar data sets, and
+#: so sweeps and tests, on one compiled structure).
+CENTRE_MARGIN = 4.0
+
+def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
+    """Centre the gap-noise and shock fields when the cells measure them better than their spread.
+
+    A non-centred latent field samples well when each member is weakly informed by the data, and
+    makes a narrow curved ridge when the data pin it; the centred form is the opposite (Betancourt
+    and Girolami 2015; Papaspiliopoulos, Roberts and Skold 2007). The rule compares, on the link
+    scale, the sampling variance of one cell's linear predictor (1/events for counts,
+    1/(n p (1 - p)) for binomial; the mean over cells) with the spread of the field read off the
+    cells: the variance of the two-way (jurisdiction, period) residuals of the gap series (target
+    minus reference) and of the reference series, less their sampling part. The gap is informed by
+    two cells (variance 2 v_cell in a DDD, v_cell in a DiD); the shock by the pair (v_cell / 2). A
+    field is centred when that variance, times :data:`CENTRE_MARGIN`, is below the field's spread.
+    It uses neither the start periods nor the adopters, so placebos keep the model's structure; the
+    choice changes no posterior, only the sampler's path, and is recorded in the model structure.
+    """
+    n, y = cells.n, cells.sum_y
+    ok = n > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if family == "binomial":
+            p = (y + 0.5) / (n + 1.0)
+            eta = np.log(p / (1.0 - p))
+            var = 1.0 / ((n + 1.0) * p * (1.0 - p))
+        else:
+            eta = np.log((y + 0.5) / n)
+            var = 1.0 / (y + 0.5)
+    eta = np.where(ok, eta, np.nan)
+    if not ok.any():
+        return False, False
+    v_cell = float(np.mean(var[ok]))
+
+    def spread(series):
+        with np.errstate(invalid="ignore"):
+            r = series - np.nanmean(series, axis=1, keepdims=True)
+            r = r - np.nanmean(r, axis=0, keepdims=True)
+            return float(np.nanmean(r * r))
+
+    J, _, T = cells.shape
+    keep = (1.0 - 1.0 / J) * (1.0 - 1.0 / T)  # share of iid noise left in two-way residuals
+    q = eta[:, cells.target, :]
+    m = CENTRE_MARGIN
+    if cells.design == "DDD":
+        ref = eta[:, cells.reference, :]
+        v_gap = spread(q - ref) - keep * 2.0 * v_cell
+        v_shock = spread(ref) - keep * v_cell
+        return bool(m * 2.0 * v_cell < v_gap), bool(m * 0.5 * v_cell < v_shock)
+    v_gap = spread(q) - keep * v_cell
+    return bool(m * v_cell < v_gap), False
+
+
 def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", event_times: tuple | None = None,
                event_pooled: bool = False) -> ModelSpec:
     """The structure of the model; ``effects="event_time"`` fixes the event times in the key."""
@@ -382,8 +436,6 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     residual = residual_rule(cells)["separate"] if family == "gaussian" else True
     drift = bool(gap_structure(cells).drift) and family == "gaussian" and effects == "att"
     if family != "gaussian":
-        from .families import fields_centred
-
         fields = fields_centred(cells, family)
     if effects == "event_time":
         ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
@@ -394,24 +446,6 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
                      centred=baseline_centred(cells), fields=fields, gap=gap, residual=residual, drift=drift,
                      K=0 if cov is None else len(cov["names"]))
-
-
-def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
-                event_times: tuple | None = None, event_pooled: bool = False) -> tuple[pm.Model, ModelSpec]:
-    """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
-    spec = model_spec(cells, family, effects=effects, event_times=event_times, event_pooled=event_pooled)
-    terms = ({"drift": True} if spec.drift else {}) if spec.effects == "att" else {
-        "effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
-    if family == "gaussian":
-        from .gaussian import build_gaussian
-
-        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
-                              residual=spec.residual, **terms), spec
-    from .families import FAMILY_BUILDERS, build_family
-
-    if family in FAMILY_BUILDERS:
-        return build_family(cells, scales, coords_of(cells), family), spec
-    raise NotImplementedError(f"family '{family}' is not built yet")
 
 
 def mean_from_draws(fit) -> np.ndarray:

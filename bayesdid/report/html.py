@@ -32,7 +32,8 @@ import numpy as np
 from ..errors import ReportError
 from ..outputs import clean_leftovers, owner_tag
 from . import plots
-from .words import evidence, headline
+from .reader import CHECKS_COMMAND, FIT_COMMAND, SWEEP_COMMAND, RunFolder
+from .words import check_flags, evidence, headline_of, names
 
 __all__ = ["SECTIONS", "HEADINGS", "RunFolder", "render_report", "write_report"]
 
@@ -55,99 +56,9 @@ SECTIONS = [
 #: Every heading on the page, the headline first.
 HEADINGS = [("headline", "What happened"), *SECTIONS]
 
-CHECKS_COMMAND = "bayesdid checks STUDY.toml --out RUN_DIR/checks (or bayesdid analyze STUDY.toml --out RUN_DIR)"
-SWEEP_COMMAND = "bayesdid sweep SWEEP.toml --out RUN_DIR/sweep (or bayesdid analyze STUDY.toml --out RUN_DIR)"
-FIT_COMMAND = "bayesdid fit STUDY.toml --out RUN_DIR"
-
-
 def esc(v) -> str:
     """HTML-escape any value's text (quotes too, so it is safe inside attributes)."""
     return html.escape(str(v), quote=True)
-
-
-# ----------------------------------------------------------------------------------------- reading
-
-
-class RunFolder:
-    """The files of one run folder, read once. Missing optional parts are ``None``."""
-
-    def __init__(self, path: str | Path):
-        self.path = Path(path)
-        if not self.path.is_dir():
-            raise ReportError(f"run folder '{self.path}' does not exist; create it with `{FIT_COMMAND}` and "
-                              "pass that folder to `bayesdid report`.")
-        sp = self.path / "summary.json"
-        if not sp.is_file():
-            raise ReportError(f"run folder '{self.path}' has no summary.json; it is not the output of a fit. "
-                              f"Run `{FIT_COMMAND}` and report that folder.")
-        try:
-            self.summary = json.loads(sp.read_text(encoding="utf-8"))
-        except json.JSONDecodeError as exc:
-            raise ReportError(f"'{sp}' is not valid JSON ({exc.msg} at line {exc.lineno}); rerun the fit "
-                              "to rewrite it.") from None
-        for key in ("effect", "data", "diagnostics"):
-            if key not in self.summary:
-                raise ReportError(f"'{sp}' lacks the '{key}' entry a fit writes; rerun `{FIT_COMMAND}`.")
-        self.manifest = self._json("manifest.json")
-        self.checks = self._json("checks/checks.json")
-        self.verdict = self._json("sweep/verdict.json")
-
-    def _json(self, rel: str):
-        p = self.path / rel
-        if not p.is_file():
-            return None
-        try:
-            return json.loads(p.read_text(encoding="utf-8"))
-        except json.JSONDecodeError:
-            return {"status": "unreadable", "reason": f"{rel} is not valid JSON"}
-
-    def table(self, section: str):
-        """The CSV table of a checks section: named in checks.json, or checks/<section>*.csv."""
-        import pandas as pd
-
-        d = self.path / "checks"
-        if not d.is_dir():
-            return None
-        info = (self.checks or {}).get(section) or {}
-        names = [info.get(k) for k in ("table", "csv", "file") if isinstance(info.get(k), str)]
-        cands = [d / n for n in names] + [d / f"{section}.csv"] + sorted(d.glob(f"{section}*.csv"))
-        for p in cands:
-            if p.is_file():
-                try:
-                    return pd.read_csv(p)
-                except Exception:  # noqa: BLE001 - a bad table is reported, not fatal
-                    return None
-        return None
-
-    def effect_draws(self):
-        """Posterior draws of the headline effect on the model scale, or None.
-
-        Reads ``att`` from the posterior when the fit stored it; otherwise combines ``tau_adopter``
-        with the ATT weights that summary.json records per adopter (the same definition as
-        :func:`bayesdid.effects.compute_effects`); with one adopter this is ``tau``.
-        """
-        p = self.path / "posterior.nc"
-        if not p.is_file():
-            return None
-        try:
-            import xarray as xr
-
-            with xr.open_datatree(p, engine="h5netcdf") as tree:
-                post = tree["posterior"].to_dataset()
-                if "att" in post:
-                    return post["att"].values.reshape(-1)
-                if "tau_adopter" in post:
-                    ta = post["tau_adopter"]
-                    names = [str(a) for a in ta["adopter"].values]
-                    w = {str(r["adopter"]): float(r["weight"]) for r in self.summary.get("per_adopter", [])}
-                    if set(names) <= set(w):
-                        arr = ta.transpose("chain", "draw", "adopter").values.reshape(-1, len(names))
-                        return arr @ np.array([w[n] for n in names])
-                if "tau" in post:
-                    return post["tau"].values.reshape(-1)
-        except Exception:  # noqa: BLE001 - the figure says why it is missing
-            return None
-        return None
 
 
 # ----------------------------------------------------------------------------------------- pieces
@@ -200,18 +111,6 @@ def _pct(v) -> str:
     return "—" if v is None else f"{v * 100:+.1f}%"
 
 
-def _col(df, *names, contains: tuple[str, ...] = ()):
-    cols = {c.lower(): c for c in df.columns}
-    for n in names:
-        if n in cols:
-            return cols[n]
-    for part in contains:
-        for lc, c in cols.items():
-            if part in lc:
-                return c
-    return None
-
-
 def _is_percent(summary) -> bool:
     return "effect_percent" in summary
 
@@ -221,37 +120,41 @@ def _is_percent(summary) -> bool:
 
 def _effect_section(run: RunFolder) -> str:
     s = run.summary
-    pct = _is_percent(s)
-    e = s["effect_percent"] if pct else s["effect"]
+    pct = run.effect_percent is not None
+    e = run.effect_percent if pct else run.effect
     out = []
     draws = run.effect_draws()
     if draws is not None and draws.size > 1:
         shown = np.expm1(draws) if pct else draws  # display scale: percent = exp(ATT) - 1 (effects.py)
-        who = "target group in adopting jurisdictions" if s["data"].get("design") == "DDD" else \
-            "adopting jurisdictions"
-        xlabel = f"change in the outcome (%), {who}" if pct else f"change in the outcome (outcome units), {who}"
-        out.append(_img(plots.effect_figure(shown, interval=tuple(e["eti_90"]), threshold=e.get("threshold"),
-                                            scale=100.0 if pct else 1.0, xlabel=xlabel, median=e["median"]),
+        nm = names((run.manifest or {}).get("study"))
+        who = (nm["target"] or "target group") + " in adopting jurisdictions" if s["data"].get("design") == "DDD" \
+            else "adopting jurisdictions"
+        unit = nm["unit"] or "outcome units"
+        xlabel = f"change in {nm['outcome']} (%), {who}" if pct else f"change in {nm['outcome']} ({unit}), {who}"
+        if (s.get("model") or {}).get("family", "gaussian") != "gaussian":  # the ATT is on the link scale
+            xlabel = f"effect on {nm['outcome']}, {_model_scale(run)} scale (log of the ratio), {who}"
+        out.append(_img(plots.effect_figure(shown, interval=tuple(e.eti_90), threshold=e.threshold,
+                                            scale=100.0 if pct else 1.0, xlabel=xlabel, median=e.median),
                         "Posterior distribution of the effect with its 90% interval and the decision threshold"))
         out.append('<p class="caption">Posterior distribution of the average effect on the treated (ATT). '
                    'Shaded: 90% equal-tailed interval. Solid line: no effect. Dashed: the decision threshold '
                    'from the study file.</p>')
     else:
-        out.append(_absent("posterior draws of the effect (posterior.nc is missing or unreadable), so the "
+        out.append(_absent("posterior draws of the effect (posterior.nc is missing or holds no 'att'), so the "
                            "density figure cannot be drawn; the numbers below come from summary.json.",
                            FIT_COMMAND))
     fmt = _pct if pct else (lambda v: _num(v, 3))
-    rows = [["most likely (median)", fmt(e["median"])], ["mean", fmt(e["mean"])],
-            ["90% interval (equal-tailed)", f"{fmt(e['eti_90'][0])} to {fmt(e['eti_90'][1])}"],
-            ["95% interval (equal-tailed)", f"{fmt(e['eti_95'][0])} to {fmt(e['eti_95'][1])}"],
-            ["90% highest-density interval", f"{fmt(e['hdi_90'][0])} to {fmt(e['hdi_90'][1])}"],
-            ["probability of an increase", f"{e['prob_gt_0']:.1%}"],
-            ["probability of a reduction", f"{e['prob_lt_0']:.1%}"]]
-    if e.get("prob_beyond_threshold") is not None:
-        t = e["threshold"]
+    rows = [["central estimate (posterior median)", fmt(e.median)], ["mean", fmt(e.mean)],
+            ["90% interval (equal-tailed)", f"{fmt(e.eti_90[0])} to {fmt(e.eti_90[1])}"],
+            ["95% interval (equal-tailed)", f"{fmt(e.eti_95[0])} to {fmt(e.eti_95[1])}"],
+            ["90% highest-density interval", f"{fmt(e.hdi_90[0])} to {fmt(e.hdi_90[1])}"],
+            ["probability of an increase", f"{e.prob_gt_0:.1%}"],
+            ["probability of a reduction", f"{e.prob_lt_0:.1%}"]]
+    if e.prob_beyond_threshold is not None:
+        t = e.threshold
         rows.append([f"probability of {'a reduction' if t < 0 else 'an increase'} beyond the threshold "
-                     f"({fmt(t)})", f"{e['prob_beyond_threshold']:.1%}"])
-    out.append(f"<h3>Average effect ({esc(e.get('measure', ''))})</h3>")
+                     f"({fmt(t)})", f"{e.prob_beyond_threshold:.1%}"])
+    out.append(f"<h3>Average effect ({esc(e.measure)})</h3>")
     out.append(_table(["quantity", "value"], rows))
     per = s.get("per_adopter") or []
     if per:
@@ -261,14 +164,21 @@ def _effect_section(run: RunFolder) -> str:
             prow.append([r["adopter"], r.get("start", ""), _num(r.get("weight"), 3), fmt(q["median"]),
                          f"{fmt(q['eti_90'][0])} to {fmt(q['eti_90'][1])}", f"{q['prob_lt_0']:.1%}"])
         out.append("<h3>Each adopting jurisdiction</h3>")
-        out.append(_table(["jurisdiction", "first treated period", "weight in the average", "most likely",
+        out.append(_table(["jurisdiction", "first treated period", "weight in the average", "central estimate",
                            "90% interval", "probability of a reduction"], prow))
-    nat = s.get("effect_natural")
-    if isinstance(nat, dict) and "median" in nat:
-        out.append(f"<h3>On the natural scale ({esc(nat.get('measure', ''))})</h3>")
-        out.append(_table(["most likely", "90% interval", "probability above zero"],
-                          [[_num(nat["median"]), f"{_num(nat['eti_90'][0])} to {_num(nat['eti_90'][1])}",
-                            f"{nat.get('prob_gt_0', float('nan')):.1%}"]]))
+    nat = [n for n in run.natural if n.measure != e.measure]
+    if nat:
+        out.append("<h3>On the natural scale</h3>")
+        nrows = []
+        for n in nat:
+            above, below = n.prob_above_no_effect(), n.prob_below_no_effect()
+            nrows.append([n.measure, _num(n.median), f"{_num(n.eti_90[0])} to {_num(n.eti_90[1])}",
+                          _num(n.no_effect), "—" if above is None else f"{above:.1%}",
+                          "—" if below is None else f"{below:.1%}"])
+        out.append(_table(["measure", "central estimate", "90% interval", "no effect at",
+                           "probability above", "probability below"], nrows))
+        out.append('<p class="caption">From counterfactual predictions over the treated cells, with and without '
+                   'the policy, averaged with the cells\' own trials or exposure.</p>')
     out.extend(_persistence_words(s))
     return "\n".join(out)
 
@@ -292,17 +202,17 @@ def _persistence_words(s: dict) -> list[str]:
     return out
 
 
-def _check_status(run: RunFolder, name: str) -> tuple[dict | None, str]:
+def _check_status(run: RunFolder, name: str):
     sec = (run.checks or {}).get(name)
-    if not isinstance(sec, dict):
+    if sec is None:
         return None, ""
-    bits = [f"<p>Status: {_badge(sec.get('status', 'unknown'))} {esc(sec.get('reason', ''))}</p>"]
+    bits = [f"<p>Status: {_badge(sec.status)} {esc(sec.reason)}</p>"]
     extra = []
-    for k, v in sec.items():
-        if k in ("status", "reason", "table", "csv", "file") or isinstance(v, dict):
+    for k, v in sec.extra.items():
+        if isinstance(v, dict) or (isinstance(v, list) and v and isinstance(v[0], dict)):
             continue
-        if isinstance(v, list) and v and isinstance(v[0], dict):
-            continue
+        if isinstance(v, list) and len(v) > 8:
+            continue  # long lists are drawn, not printed
         extra.append([k.replace("_", " "), _num(v)])
     if extra:
         bits.append(_table(["item", "value"], extra, "compact"))
@@ -312,8 +222,6 @@ def _check_status(run: RunFolder, name: str) -> tuple[dict | None, str]:
 def _why_no_check(run: RunFolder, name: str) -> str:
     if run.checks is None:
         return "the checks have not been run for this folder: there is no checks/checks.json"
-    if run.checks.get("status") == "unreadable":
-        return run.checks.get("reason", "checks/checks.json cannot be read")
     return f"checks/checks.json has no '{name}' section"
 
 
@@ -323,22 +231,18 @@ def _event_time_section(run: RunFolder) -> str:
         return _absent(f"event-time effects ({_why_no_check(run, 'event_time')}).", CHECKS_COMMAND)
     out = [head]
     df = run.table("event_time")
-    if df is not None:
-        k = _col(df, "event_time", "k")
-        m = _col(df, "mean", "median", "estimate")
-        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
-        if k and m and lo and hi:
-            d = df.sort_values(k)
-            out.append(_img(plots.event_time_figure(
-                d[k].to_numpy(float), d[m].to_numpy(float), d[lo].to_numpy(float), d[hi].to_numpy(float),
-                xlabel="event time k (periods since the policy started; k = -1 is the reference)",
-                ylabel="effect (model scale)"),
-                "Effects by event time with intervals"))
-            out.append('<p class="caption">Effect at each event time with its interval. Leads (k &lt; -1) '
-                       'should sit near zero if the groups were on parallel paths before the policy.</p>')
-            return "\n".join(out)
-    out.append(_absent("the event-time table (checks/event_time.csv with event_time or k, and mean, lower, "
-                       "upper columns).", CHECKS_COMMAND))
+    if df is not None and len(df):
+        d = df.sort_values("event_time")
+        out.append(_img(plots.event_time_figure(
+            d["event_time"].to_numpy(float), d["mean"].to_numpy(float), d["lower_90"].to_numpy(float),
+            d["upper_90"].to_numpy(float),
+            xlabel="event time k (periods since the policy started; k = -1 is the reference)",
+            ylabel=f"effect ({_model_scale(run)})"),
+            "Effects by event time with intervals"))
+        out.append('<p class="caption">Effect at each event time with its 90% interval. Leads (k &lt; -1) '
+                   'should sit near zero if the groups were on parallel paths before the policy.</p>')
+        return "\n".join(out)
+    out.append(_absent(f"the event-time table: the check wrote none ({sec.status}).", CHECKS_COMMAND))
     return "\n".join(out)
 
 
@@ -348,40 +252,42 @@ def _pretrend_section(run: RunFolder) -> str:
         return _absent(f"the posterior predictive pre-trend check ({_why_no_check(run, 'pretrend')}).",
                        CHECKS_COMMAND)
     out = [head]
-    df = run.table("pretrend")
-    if df is not None:
-        x = _col(df, "period", "event_time", "k", "t")
-        ob = _col(df, "observed", "gap", "obs", contains=("observed",))
-        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
-        mid = _col(df, "predicted", "median", "mean", contains=("pred",))
-        who = _col(df, "adopter", "jurisdiction")
-        if x and ob and lo and hi:
-            labels = list(dict.fromkeys(df[x].tolist()))
-            import pandas as pd
-
-            numeric = pd.api.types.is_numeric_dtype(df[x])
-            if numeric:
-                labels = sorted(labels)
-            pos = {v: i for i, v in enumerate(labels)}
-            series = []
-            for name, part in (df.groupby(who, sort=True) if who else [("adopters", df)]):
-                part = part.assign(_x=part[x].map(pos)).sort_values("_x")
-                series.append({"label": str(name), "x": part["_x"].to_numpy(float),
-                               "observed": part[ob].to_numpy(float), "lower": part[lo].to_numpy(float),
-                               "upper": part[hi].to_numpy(float),
-                               "mid": part[mid].to_numpy(float) if mid else None})
-            out.append(_img(plots.band_figure(series, xlabel=f"{x.replace('_', ' ')}",
-                                              ylabel="target minus reference gap (model scale)",
-                                              xticks=labels),
-                            "Observed group gap of the adopters against the posterior predictive band"))
-            out.append('<p class="caption">Observed target-minus-reference gap of each adopting jurisdiction '
-                       'before the policy, against the band the model predicts from the comparison '
-                       'jurisdictions. An observed path leaving the band suggests the groups were not on '
-                       'parallel paths.</p>')
-            return "\n".join(out)
-    out.append(_absent("the pre-trend band table (checks/pretrend.csv with period, observed, lower, upper "
-                       "columns).", CHECKS_COMMAND))
+    df = run.table("pretrend_band")
+    if df is not None and len(df):
+        order = df.drop_duplicates("period_index").sort_values("period_index")
+        labels = order["period"].astype(str).tolist()
+        pos = {int(v): i for i, v in enumerate(order["period_index"])}
+        series = []
+        for name, part in df.groupby("adopter", sort=True):
+            part = part.sort_values("period_index")
+            series.append({"label": str(name), "x": part["period_index"].map(pos).to_numpy(float),
+                           "observed": part["observed_gap"].to_numpy(float),
+                           "lower": part["band_lower_90"].to_numpy(float),
+                           "upper": part["band_upper_90"].to_numpy(float),
+                           "mid": part["band_median"].to_numpy(float)})
+        out.append(_img(plots.band_figure(series, xlabel="period",
+                                          ylabel=f"{_gap_words(run)} ({_model_scale(run)})", xticks=labels),
+                        "Observed gap of the adopters against the posterior predictive band"))
+        out.append(f'<p class="caption">Observed {esc(_gap_words(run))} of each adopting jurisdiction before the '
+                   'policy, against the 90% band the model predicts from the comparison jurisdictions. An '
+                   'observed path leaving the band suggests the groups were not on parallel paths.</p>')
+        return "\n".join(out)
+    out.append(_absent(f"the pre-trend band: the check wrote none ({sec.status}).", CHECKS_COMMAND))
     return "\n".join(out)
+
+
+def _model_scale(run: RunFolder) -> str:
+    m = run.summary.get("model") or {}
+    fam = m.get("family", "gaussian")
+    if fam == "binomial":
+        return "log odds"
+    if fam in ("poisson", "negbinomial"):
+        return "log rate"
+    return "log outcome" if m.get("log_outcome") else "outcome units"
+
+
+def _gap_words(run: RunFolder) -> str:
+    return "target minus reference gap" if run.summary["data"].get("design") == "DDD" else "outcome"
 
 
 def _comparison_section(run: RunFolder) -> str:
@@ -391,28 +297,20 @@ def _comparison_section(run: RunFolder) -> str:
                        CHECKS_COMMAND)
     out = [head]
     df = run.table("comparison")
-    if df is not None:
-        nm = _col(df, "jurisdiction", "region", "name")
-        m = _col(df, "mean", "median", "change", "estimate")
-        lo, hi = _col(df, contains=("lower", "low", "q05")), _col(df, contains=("upper", "high", "q95"))
-        fl = _col(df, "flagged", "flag", "outlier")
-        if nm and m:
-            flagged = df[fl].astype(str).str.lower().isin(["true", "1", "yes"]).tolist() if fl else \
-                [False] * len(df)
-            offenders = set(map(str, sec.get("offenders") or []))
-            flagged = [f or str(n) in offenders for f, n in zip(flagged, df[nm])]
-            out.append(_img(plots.comparison_figure(
-                [str(v) for v in df[nm]], df[m].to_numpy(float),
-                df[lo].to_numpy(float) if lo else None, df[hi].to_numpy(float) if hi else None, flagged,
-                xlabel="change in the group gap, before to after the policy start (model scale)"),
-                "Change in each comparison jurisdiction's group gap, flagged ones marked"))
-            out.append('<p class="caption">Each comparison jurisdiction never adopted, so its gap should '
-                       'barely change. Plum diamonds are flagged as unusual.</p>')
-            if any(flagged):
-                out.append("<p>Flagged: " + ", ".join(esc(n) for n, f in zip(df[nm], flagged) if f) + "</p>")
-            return "\n".join(out)
-    out.append(_absent("the comparison table (checks/comparison.csv with jurisdiction, mean, lower, upper, "
-                       "flagged columns).", CHECKS_COMMAND))
+    if df is not None and len(df):
+        flagged = df["flagged"].astype(str).str.lower().eq("true").tolist()
+        out.append(_img(plots.comparison_figure(
+            [str(v) for v in df["jurisdiction"]], df["mean"].to_numpy(float), df["lower_90"].to_numpy(float),
+            df["upper_90"].to_numpy(float), flagged,
+            xlabel=f"change in the {'group gap' if _gap_words(run) != 'outcome' else 'outcome'}, before to after "
+                   f"the policy start ({_model_scale(run)})"),
+            "Change in each comparison jurisdiction's gap, flagged ones marked"))
+        out.append('<p class="caption">Each comparison jurisdiction never adopted, so its gap should '
+                   'barely change. Plum diamonds are flagged as unusual.</p>')
+        if any(flagged):
+            out.append("<p>Flagged: " + ", ".join(esc(n) for n, f in zip(df["jurisdiction"], flagged) if f) + "</p>")
+        return "\n".join(out)
+    out.append(_absent(f"the comparison table: the check wrote none ({sec.status}).", CHECKS_COMMAND))
     return "\n".join(out)
 
 
@@ -422,32 +320,51 @@ def _placebo_section(run: RunFolder) -> str:
                         ("placebo_space", "Placebo in space (each comparison jurisdiction as a fake adopter)")):
         out.append(f"<h3>{esc(title)}</h3>")
         sec, head = _check_status(run, name)
-        out.append(head if sec is not None else
-                   _absent(f"the {name.replace('_', ' ')} check ({_why_no_check(run, name)}).", CHECKS_COMMAND))
+        if sec is None:
+            out.append(_absent(f"the {name.replace('_', ' ')} check ({_why_no_check(run, name)}).", CHECKS_COMMAND))
+            continue
+        out.append(head)
+        if name == "placebo_space":
+            out.append(_placebo_space_body(run, sec))
     return "\n".join(out)
 
 
-def _variant_rows(run: RunFolder):
-    """(label, mid, lower, upper) per sensitivity variant from sweep/verdict.json, tolerant of layout."""
-    v = run.verdict
-    if v is None:
-        return None
-    rows = v.get("rows") or v.get("variants") or v.get("table") if isinstance(v, dict) else v
-    if not isinstance(rows, list):
-        return None
-    out = []
-    for r in rows:
-        if not isinstance(r, dict):
-            continue
-        label = next((r[k] for k in ("label", "variant", "name", "id") if k in r), "variant")
-        mid = next((r[k] for k in ("median", "mean", "estimate") if isinstance(r.get(k), (int, float))), None)
-        iv = next((r[k] for k in ("eti_90", "interval", "ci") if isinstance(r.get(k), list)), None)
-        lo = iv[0] if iv else r.get("lower", r.get("eti_90_lower"))
-        hi = iv[1] if iv else r.get("upper", r.get("eti_90_upper"))
-        if mid is None and lo is None:
-            continue
-        out.append((str(label), mid, lo, hi))
-    return out
+def _placebo_space_body(run: RunFolder, sec) -> str:
+    df = run.table("placebo_space")
+    if df is None or not len(df):
+        return ""
+    plc = df[df["role"] == "placebo"]
+    real = df[df["role"] == "real"]
+    if real.empty or plc.empty:
+        return ""
+    r = float(real["mean"].iloc[0])
+    out = [_img(plots.placebo_figure(plc["mean"].to_numpy(float), r,
+                                     xlabel=f"estimated effect, posterior mean ({_model_scale(run)})"),
+                "Placebo estimates of the comparison jurisdictions with the real estimate marked"),
+           '<p class="caption">Each dot is the effect the model estimates when a comparison jurisdiction, '
+           'which never adopted, is treated as the adopter. The plum line is the real estimate; the shaded '
+           'region holds placebos at least as large in size.</p>']
+    p_bayes = sec.extra.get("permutation_p")
+    ls = run.summary.get("least_squares") or {}
+    e = run.effect
+    below = e.prob_lt_0 if e.median < 0 else e.prob_gt_0
+    parts = [f"<p><strong>Reading the probabilities together.</strong> The posterior gives a "
+             f"{below:.0%} probability that the effect is {'below' if e.median < 0 else 'above'} zero: it "
+             "judges the adopters' change against the gap noise the model learns from every comparison "
+             "jurisdiction and period. The placebo-in-space ranking asks a different question: how often does "
+             "a place without the policy show an estimate at least as large?"]
+    if isinstance(p_bayes, (int, float)):
+        parts.append(f" Here {int(sec.extra.get('rank', 0)) - 1} of {int(sec.extra.get('n_placebos', 0))} "
+                     f"placebos are as large (permutation p = {p_bayes:.3f}, on the posterior means).")
+    if isinstance(ls.get("p_permutation"), (int, float)):
+        parts.append(f" The least-squares cross-check asks the same question of its own estimates "
+                     f"(permutation p = {ls['p_permutation']:.3f}).")
+    parts.append(" With few comparison jurisdictions such p-values can only take coarse values (1/(N+1) "
+                 "steps). A small posterior probability of no effect together with a large placebo p-value "
+                 "means the effect is clear relative to the model's noise but not rare among places without "
+                 "the policy: read it as weaker evidence.</p>")
+    out.append("".join(parts))
+    return "\n".join(out)
 
 
 def _trends_words(run: RunFolder) -> list[str]:
@@ -510,19 +427,31 @@ def _sensitivity_section(run: RunFolder) -> str:
     else:
         out.append(_absent("power-scaling sensitivity (summary.json has no 'sensitivity' entry).", FIT_COMMAND))
     out.append("<h3>Effect interval per prior and specification variant</h3>")
-    rows = _variant_rows(run)
-    if rows:
-        f = 100.0 if isinstance(run.verdict, dict) and run.verdict.get("scale") == "percent" else 1.0
-        nan = float("nan")
-        out.append(_img(plots.interval_figure(
-            [r[0] for r in rows], [nan if r[1] is None else r[1] * f for r in rows],
-            [nan if r[2] is None else r[2] * f for r in rows], [nan if r[3] is None else r[3] * f for r in rows],
-            xlabel="effect: median and 90% interval" + (" (%)" if f == 100.0 else " (model scale)")),
-            "Effect interval per sensitivity variant"))
-        if isinstance(run.verdict, dict) and run.verdict.get("verdict"):
-            out.append(f"<p>Verdict: {esc(run.verdict['verdict'])}</p>")
-    else:
+    v = run.verdict
+    if v is None:
         out.append(_absent("a sweep of prior and specification variants (sweep/verdict.json).", SWEEP_COMMAND))
+    elif v.status != "ok" or not v.rows:
+        out.append(f"<p>The sweep could not be judged: {esc(v.reason or v.status)}.</p>")
+    else:
+        rows = v.rows
+        out.append(_img(plots.interval_figure(
+            [r.label for r in rows], [r.effect_mean for r in rows], [r.eti_90[0] for r in rows],
+            [r.eti_90[1] for r in rows], xlabel=f"effect: mean and 90% interval ({_model_scale(run)})"),
+            "Effect interval per sensitivity variant"))
+        held = []
+        for c in v.checks:
+            if c.get("holds") is None:
+                held.append([c.get("what", c.get("check")), "not applicable", c.get("reason", "")])
+            else:
+                held.append([c.get("what", c.get("check")), "holds" if c["holds"] else "breaks",
+                             f"{c.get('held_by')} of {c.get('of')} variants agree with the base"])
+        out.append(_table(["what is compared with the base study", "result", "detail"], held))
+        if v.moves_most:
+            mm = v.moves_most
+            out.append(f"<p>Moves the effect most: {esc(mm['label'])} ({mm['shift_sd']:.2f} posterior sd of "
+                       "the base).</p>")
+        if v.not_judged:
+            out.append(f'<p class="note">Not judged (failed or unfinished): {esc(", ".join(v.not_judged))}.</p>')
     return "\n".join(out)
 
 
@@ -535,25 +464,64 @@ _LS_LABELS = [("estimate", "least-squares DDD/DiD coefficient"), ("se_classical"
               ("method", "method")]
 
 
+#: family -> (natural measure of the posterior on the least-squares scale, factor from the least-squares
+#: estimate to that measure, axis label). Least squares on cells of a binomial or count outcome
+#: regresses the cells' proportions or rates (weighted by trials or exposure): a risk or rate difference.
+_LS_SCALES = {
+    "binomial": ("risk difference, percentage points", 100.0, "risk difference (percentage points)"),
+    "poisson": ("rate difference per 1,000 units of exposure", 1000.0,
+                "rate difference per 1,000 units of exposure"),
+}
+_LS_SCALES["negbinomial"] = _LS_SCALES["poisson"]
+
+
 def _crosscheck_section(run: RunFolder) -> str:
     s = run.summary
     ls = s.get("least_squares") or {}
+    if ls.get("not_applicable") or ls.get("status") == "not applicable":
+        why = ls.get("not_applicable") or ls.get("reason", "")
+        return f"<p>The least-squares cross-check does not apply to this study: {esc(why)}</p>"
     if "estimate" not in ls:
         return _absent("the least-squares cross-check (summary.json has no least_squares estimate).", FIT_COMMAND)
-    e = s["effect"]
+    fam = (s.get("model") or {}).get("family", "gaussian")
+    e = run.effect
+    f = 1.0
+    if fam in _LS_SCALES:
+        measure, f, axis = _LS_SCALES[fam]
+        nat = next((n for n in run.natural if n.measure == measure), None)
+        if nat is None:
+            return (f"<p>The least-squares estimate ({_num(ls['estimate'] * f, 4)}, {esc(axis)}) cannot be set "
+                    "beside the posterior: this run folder has no posterior "
+                    f"{esc(measure)} (summary.json 'effect_natural').</p>")
+        e = nat
+        scale_note = (f"Both on one scale, the {axis}: the least-squares regression on the cells' "
+                      f"{'proportions' if fam == 'binomial' else 'rates'} (weighted by their "
+                      f"{'trials' if fam == 'binomial' else 'exposure'}) estimates a "
+                      f"{'risk' if fam == 'binomial' else 'rate'} difference, multiplied here by {f:g}; the "
+                      "posterior's is the difference of its counterfactual predictions over the treated cells, "
+                      "with and without the policy.")
+    else:
+        axis = "effect on the model scale" + (" (difference in log outcome)" if _is_percent(s) else
+                                              f" ({names((run.manifest or {}).get('study'))['unit'] or 'outcome units'})")
+        scale_note = "Both on the model scale."
     nan = float("nan")
     labels = ["posterior, 90% interval", "posterior, 95% interval", "least squares, CR1",
               "least squares, wild cluster bootstrap", "least squares, permutation"]
-    mid = [e["median"], e["median"], ls["estimate"], ls["estimate"], ls["estimate"]]
+    est = ls["estimate"] * f
+    mid = [e.median, e.median, est, est, est]
     ci_cr1 = ls.get("ci_cr1_95")
     ci_w = ls.get("ci_wild_95")
-    lower = [e["eti_90"][0], e["eti_95"][0], ci_cr1[0] if ci_cr1 else nan, ci_w[0] if ci_w else nan, nan]
-    upper = [e["eti_90"][1], e["eti_95"][1], ci_cr1[1] if ci_cr1 else nan, ci_w[1] if ci_w else nan, nan]
+
+    def sc(v):
+        return nan if v is None else v * f
+
+    lower = [e.eti_90[0], e.eti_95[0], sc(ci_cr1[0]) if ci_cr1 else nan, sc(ci_w[0]) if ci_w else nan, nan]
+    upper = [e.eti_90[1], e.eti_95[1], sc(ci_cr1[1]) if ci_cr1 else nan, sc(ci_w[1]) if ci_w else nan, nan]
 
     def pnote(key):
         return f"p = {ls[key]:.3f}" if isinstance(ls.get(key), (int, float)) else "not computed"
 
-    labels[2] += f"\n({pnote('p_cr1')}" + (f", s.e. {ls['se_cr1']:.3g})" if "se_cr1" in ls else ")")
+    labels[2] += f"\n({pnote('p_cr1')}" + (f", s.e. {ls['se_cr1'] * f:.3g})" if "se_cr1" in ls else ")")
     labels[3] += f"\n({pnote('p_wild')})"
     labels[4] += f"\n({pnote('p_permutation')}; point estimate only)"
     if not any(k in ls for k in ("se_cr1", "p_cr1", "ci_cr1_95", "p_wild", "ci_wild_95", "p_permutation")):
@@ -563,19 +531,23 @@ def _crosscheck_section(run: RunFolder) -> str:
     n = len(labels)
     fig = plots.interval_figure(
         labels, mid, lower, upper, colors=[P, P, A, A, A][:n], markers=["o", "o", "s", "s", "s"][:n],
-        xlabel="effect on the model scale" + (" (difference in log outcome)" if _is_percent(s) else
-                                              " (outcome units)"),
+        xlabel=axis,
         legend=[("posterior median with interval", P, "o"), ("least-squares estimate with 95% interval", A, "s")])
     out = [_img(fig, "Posterior interval against the least-squares estimate and its three kinds of inference"),
            '<p class="caption">The Bayesian posterior against the least-squares fixed-effects estimate on the '
            'same cells, with cluster-robust (CR1), wild cluster bootstrap and permutation inference. A bar is '
-           'missing where that interval is not in the run folder.</p>']
+           f'missing where that interval is not in the run folder. {esc(scale_note)}</p>']
     rows = [[lab, _num(ls[k], 4)] for k, lab in _LS_LABELS if k in ls]
-    out.append(_table(["quantity", "value"], rows))
+    out.append(_table(["quantity", "value" + (f" (least-squares scale; × {f:g} for the figure)" if f != 1 else "")],
+                      rows))
     missing = [lab for k, lab in _LS_LABELS[:10] if k not in ls and k != "ci_cr1_95"]
     if missing:
-        out.append(_absent("parts of the cross-check: " + "; ".join(missing) + ".", FIT_COMMAND +
-                           " (with the full cross-check)"))
+        why = ls.get("skipped") or {}
+        detail = "; ".join(lab + (f" ({why[k]})" if isinstance(why.get(k), str) else "")
+                           for k, lab in _LS_LABELS[:10] if k not in ls and k != "ci_cr1_95")
+        out.append(_absent("parts of the cross-check: " + detail + ".", FIT_COMMAND + " (with the full cross-check)"))
+    if isinstance(ls.get("covariates_note"), str):
+        out.append(f'<p class="note">Least squares {esc(ls["covariates_note"])}.</p>')
     if ls.get("advice"):
         out.append(f'<p class="note">{esc(ls["advice"])}</p>')
     return "\n".join(out)
@@ -758,13 +730,12 @@ def render_report(run_dir: str | Path) -> str:
     """The report of ``run_dir`` as HTML text (see the module docstring for what it reads)."""
     run = RunFolder(run_dir)
     s = run.summary
-    cols = ((run.manifest or {}).get("study") or {}).get("data") or {}
-    outcome = cols.get("outcome")
-    text = headline(s, outcome=f"the outcome ({outcome})" if outcome else None)
+    text = headline_of(s, (run.manifest or {}).get("study"), flags=check_flags(run.checks, s.get("sensitivity")))
     reading = evidence(s)
     title = s.get("title") or "bayesdid run"
     parts = []
     for anchor, heading in SECTIONS:
+        plots.in_section(anchor)
         try:
             body = _SECTION_FUNCS[anchor](run)
         except Exception as exc:  # noqa: BLE001 - a section that cannot be drawn says why, never vanishes

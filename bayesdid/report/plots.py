@@ -12,6 +12,7 @@ marker shape).
 
 from __future__ import annotations
 
+import contextlib
 import io
 
 import matplotlib
@@ -20,8 +21,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-__all__ = ["PALETTE", "svg_of", "effect_figure", "interval_figure", "event_time_figure", "band_figure", "comparison_figure",
-           "trends_figure"]
+__all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure",
+           "event_time_figure", "band_figure", "comparison_figure", "placebo_figure", "trends_figure"]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
 #: readings, plum for flags, slate for reference lines, a pale blue for bands.
@@ -54,11 +55,35 @@ _RC = {
 }
 
 
+_COLLECTED: list | None = None
+_SECTION = [""]
+
+
+@contextlib.contextmanager
+def collect_figures():
+    """Keep every figure drawn inside the block, open, as (section, matplotlib Figure) pairs (the
+    notebook API reads the report's figures this way; the page itself is unchanged)."""
+    global _COLLECTED
+    prev, _COLLECTED = _COLLECTED, []
+    try:
+        yield _COLLECTED
+    finally:
+        _COLLECTED = prev
+
+
+def in_section(name: str) -> None:
+    """Name the report section the next figures belong to (for :func:`collect_figures`)."""
+    _SECTION[0] = name
+
+
 def svg_of(fig) -> str:
     """The figure as standalone SVG text (no metadata date, so output is reproducible)."""
     buf = io.StringIO()
     fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None, "Creator": "bayesdid"})
-    plt.close(fig)
+    if _COLLECTED is not None:
+        _COLLECTED.append((_SECTION[0], fig))
+    else:
+        plt.close(fig)
     return buf.getvalue()
 
 
@@ -89,7 +114,7 @@ def effect_figure(draws: np.ndarray, *, interval: tuple[float, float], threshold
                 label="posterior of the effect")
         ax.axvline(0, color=PALETTE["reference"], lw=1.2, ls="-", label="no effect")
         if median is not None:
-            ax.axvline(median * scale, color=PALETTE["ink"], lw=1.2, ls=":", label="most likely (median)")
+            ax.axvline(median * scale, color=PALETTE["ink"], lw=1.2, ls=":", label="central estimate (median)")
         if threshold is not None:
             ax.axvline(threshold * scale, color=PALETTE["threshold"], lw=2, ls="--",
                        label="decision threshold")
@@ -217,6 +242,32 @@ def comparison_figure(names: list[str], mid: list[float], lower: list[float] | N
                    Line2D([], [], color=PALETTE["flag"], marker="D", lw=0)],
                   ["comparison jurisdiction", "flagged"], frameon=False, fontsize=8.5,
                   loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        return svg_of(fig)
+
+
+def placebo_figure(placebo: list[float], real: float, *, xlabel: str, names: list[str] | None = None) -> str:
+    """Placebo-in-space estimates as a dot strip (one per comparison jurisdiction, sorted), with the
+    mirror band |x| >= |real| shaded and the real estimate marked: the permutation p-value counts the
+    dots inside the shaded band."""
+    x = np.sort(np.asarray(placebo, dtype=float))
+    with plt.rc_context(_RC):
+        fig, ax = _fig(7.0, 2.6)
+        lo = min(x.min(initial=real), -abs(real)) - 0.05 * (abs(real) + 1e-12)
+        hi = max(x.max(initial=real), abs(real)) + 0.05 * (abs(real) + 1e-12)
+        span = (hi - lo) or 1.0
+        lo, hi = lo - 0.05 * span, hi + 0.05 * span
+        a = abs(real)
+        ax.axvspan(lo, -a, color=PALETTE["band"], alpha=0.6, lw=0, label="as large as the real estimate")
+        ax.axvspan(a, hi, color=PALETTE["band"], alpha=0.6, lw=0)
+        jitter = (np.arange(x.size) % 5 - 2) * 0.12
+        ax.plot(x, jitter, "o", color=PALETTE["reference"], ms=5, alpha=0.85, label="placebo (comparison jurisdiction)")
+        ax.axvline(real, color=PALETTE["flag"], lw=2.2, label="real estimate (adopters)")
+        ax.axvline(0, color=PALETTE["reference"], lw=1)
+        ax.set_xlim(lo, hi)
+        ax.set_ylim(-0.8, 0.8)
+        ax.set_yticks([])
+        ax.set_xlabel(xlabel)
+        ax.legend(frameon=False, fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
         return svg_of(fig)
 
 

@@ -3,7 +3,8 @@
 Three readings of one result, chosen by :func:`evidence`:
 
 * ``"clear"``: the 90% interval of the effect lies on one side of zero and the sampler's
-  diagnostics pass. The headline states the most likely change, its interval and the probabilities.
+  diagnostics pass. The headline states the central estimate (the posterior median: "most likely"
+  would claim a mode), its interval and the probabilities.
 * ``"null"``: the 90% interval includes zero (diagnostics pass). The headline says the data show
   no clear effect, gives the same numbers, and says the direction is not settled.
 * ``"unreliable"``: the diagnostics failed (or are missing). The headline opens with
@@ -12,7 +13,7 @@ Three readings of one result, chosen by :func:`evidence`:
 
 from __future__ import annotations
 
-__all__ = ["headline", "evidence", "count_words"]
+__all__ = ["headline", "headline_of", "names", "evidence", "count_words", "check_flags"]
 
 _NUMBER_WORDS = {1: "one", 2: "two", 3: "three", 4: "four", 5: "five", 6: "six", 7: "seven", 8: "eight",
                  9: "nine", 10: "ten"}
@@ -99,8 +100,33 @@ def _why_unreliable(diag: dict) -> str:
     return "; ".join(problems) if problems else "the sampler's diagnostics did not pass"
 
 
-def headline(summary: dict, *, outcome: str | None = None, policy: str = "the policy") -> str:
-    """One paragraph a stakeholder can read: the most likely effect, its interval, the probabilities.
+def names(study: dict | None) -> dict:
+    """How to name the policy, the outcome, its unit and the target group, from the study as run
+    (``manifest.json["study"]``): the ``[wording]`` section, else plain defaults from the columns."""
+    study = study or {}
+    w = study.get("wording") or {}
+    data = study.get("data") or {}
+    col = data.get("outcome")
+    level = (study.get("policy") or {}).get("target_group")
+    return {"policy": w.get("policy") or "the policy",
+            "outcome": w.get("outcome") or (f"the outcome ({col})" if col else "the outcome"),
+            "unit": w.get("unit"),
+            "target": w.get("target") or (f"the target group ({level})" if level is not None else None),
+            "given": bool(w)}
+
+
+def headline_of(summary: dict, study: dict | None, flags: list[str] | None = None) -> str:
+    """:func:`headline` with the study's own names (:func:`names`)."""
+    n = names(study)
+    what = n["outcome"]
+    if n["target"] and (study or {}).get("wording", {}).get("target"):
+        what = f"{what} of {n['target']}"
+    return headline(summary, outcome=what, policy=n["policy"], unit=n["unit"], flags=flags)
+
+
+def headline(summary: dict, *, outcome: str | None = None, policy: str = "the policy",
+             flags: list[str] | None = None, unit: str | None = None) -> str:
+    """One paragraph a stakeholder can read: the central estimate, its interval, the probabilities.
 
     Parameters
     ----------
@@ -112,13 +138,16 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
         What the outcome is called in the sentence (default "the outcome").
     policy : str
         What the policy is called (default "the policy").
+    flags : list of str, optional
+        What the checks flagged, as phrases (:func:`check_flags`); they follow the numbers in a
+        "Caution:" sentence, so the headline never stays confident when a check has flagged.
 
     Returns
     -------
     str
-        For a clear effect: "<where> <policy> most likely lowered <outcome> by 13% (90% interval
-        5% to 21% lower); the probability of any reduction is 99%, of a reduction larger than 5% is
-        95%." For a null effect the sentence says the data show no clear effect. With failed
+        For a clear effect: "<where> <policy> lowered <outcome> by 13% as a central estimate (90%
+        interval 5% to 21% lower); the probability of any reduction is 99%, of a
+        reduction larger than 5% is 95%." For a null effect the sentence says the data show no clear effect. With failed
         diagnostics it starts with "NOT RELIABLE:" and the reasons.
     """
     data = summary.get("data", {})
@@ -141,15 +170,15 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
         else:
             interval = f"90% interval from {lo * 100:+.{d}f}% to {hi * 100:+.{d}f}%"
     else:
-        size = f"{abs(med):.3g} (in the outcome's own units)"
+        size = f"{abs(med):.3g} {unit}" if unit else f"{abs(med):.3g} (in the outcome's own units)"
         interval = f"90% interval {lo:+.3g} to {hi:+.3g}"
     verb = "lowered" if down else "raised"
     where = _where(data)
     if reading == "null" or (reading == "unreliable" and (lo < 0) != (hi < 0)):
-        main = (f"{where} the data show no clear effect of {policy} on {what}: the most likely change is "
+        main = (f"{where} the data show no clear effect of {policy} on {what}: the central estimate is "
                 f"{'a fall' if down else 'a rise'} of {size} ({interval}, which includes no change)")
     else:
-        main = f"{where} {policy} most likely {verb} {what} by {size} ({interval})"
+        main = f"{where} {policy} {verb} {what} by {size} as a central estimate ({interval})"
     probs = (f"the probability of any reduction is {_prob(e['prob_lt_0'])}" if down
              else f"the probability of any increase is {_prob(e['prob_gt_0'])}")
     if e.get("prob_beyond_threshold") is not None and e.get("threshold") is not None:
@@ -168,7 +197,57 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
         text += "."
     if reading == "null":
         text += " The direction of the effect is not settled by these data."
+    if flags:
+        text += " Caution: " + "; ".join(flags) + "."
     if reading == "unreliable":
         text = ("NOT RELIABLE: " + _why_unreliable(diag) + ". The sampler did not converge well enough for "
                 "these numbers to be trusted; rerun with more draws or chains before using them. " + text)
     return text
+
+
+def check_flags(checks: dict | None, sensitivity: dict | None = None) -> list[str]:
+    """Phrases for the headline's caution: every check that flagged or failed, a placebo-in-space
+    permutation p-value of 0.05 or more (so the probability statements and that p-value are read
+    together), and a prior-data conflict on the ATT.
+
+    ``checks`` maps a check's name to an object with ``status``, ``reason`` and ``extra`` (the
+    typed sections of :class:`bayesdid.report.reader.RunFolder`) or to a plain dict.
+    """
+    out = []
+
+    def get(sec, key, default=None):
+        if isinstance(sec, dict):
+            return sec.get(key, default)
+        return getattr(sec, key, None) if key in ("status", "reason", "offenders") else sec.extra.get(key, default)
+
+    words = {
+        "event_time": "the event-time leads depart from zero before the policy",
+        "pretrend": "the adopters' gap path before the policy is unusual under the model (pre-trend check)",
+        "placebo_time": "a fake start before the real one finds an effect (placebo in time)",
+        "comparison": "some comparison jurisdictions changed unlike the others",
+        "placebo_space": "placebo effects in comparison jurisdictions exclude zero more often than chance allows",
+    }
+    for name, phrase in words.items():
+        sec = (checks or {}).get(name)
+        if sec is None:
+            continue
+        st = get(sec, "status")
+        if st == "flag":
+            if name == "comparison":
+                who = [o.get("jurisdiction") for o in get(sec, "offenders") or [] if isinstance(o, dict)]
+                phrase = f"comparison jurisdiction(s) {', '.join(map(str, who))} changed unlike the others" \
+                    if who else phrase
+            out.append(phrase)
+        elif st == "failed":
+            out.append(f"the {name.replace('_', ' ')} check could not be completed")
+    sp = (checks or {}).get("placebo_space")
+    if sp is not None and get(sp, "status") in ("ok", "flag"):
+        p, rank, n = get(sp, "permutation_p"), get(sp, "rank"), get(sp, "n_placebos")
+        if isinstance(p, (int, float)) and p >= 0.05 and rank is not None and n is not None:
+            out.append(f"with each comparison jurisdiction as a fake adopter, the estimate ranks {rank} of "
+                       f"{n + 1} by size (permutation p = {p:.3f}): an effect this large is not rare among "
+                       "places without the policy")
+    par = ((sensitivity or {}).get("parameters") or {}).get("att") or {}
+    if par.get("diagnosis") in ("prior_data_conflict", "prior_dominates"):
+        out.append(f"power-scaling finds the ATT sensitive to its prior ({par['diagnosis'].replace('_', ' ')})")
+    return out

@@ -26,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..errors import DataRoleError, StudyError
+from .errors import DataRoleError, StudyError
 
 __all__ = ["parse_formula", "required_columns", "design_matrix", "cell_sums", "check_identified",
            "DISCRETE_MAX_LEVELS"]
@@ -119,56 +119,3 @@ def cell_sums(X: np.ndarray, y: np.ndarray, idx: np.ndarray, size: int, n: np.nd
             w = np.bincount(idx, weights=dx[:, k] * dx[:, m], minlength=size)
             wxx[:, k, m] = wxx[:, m, k] = w
     return {"sx": sx, "sxx": sxx, "sxy": sxy, "wxx": wxx, "wxy": wxy, "rows_n": np.asarray(n, dtype=float)}
-
-
-def check_identified(cells, sums: dict, names: list[str], *, rtol: float = 1e-8) -> None:
-    """Refuse a covariate that is constant, or collinear with the fixed structure or earlier covariates.
-
-    The fixed structure is the least-squares cross-check's saturated design (jurisdiction x group,
-    jurisdiction x period and group x period effects and the treatment indicator for a DDD;
-    jurisdiction and period effects and the treatment for a DiD), which is constant within cells. So
-    the residual cross-product of the covariates after those dummies is, from cell sums alone,
-
-        M = sum_c Wxx_c + R' diag(n) R,   R = residual of the cell means sx_c / n_c on the dummies,
-
-    and covariate k is not identified when its share of ``M`` left after the earlier covariates
-    (the Schur complement) falls below ``rtol`` times its total sum of squares.
-
-    Raises
-    ------
-    DataRoleError
-        Naming the covariate column and what it is collinear with.
-    """
-    from ..crosscheck import cell_design
-
-    n = sums["rows_n"]  # rows per cell (flat); the design's cells are those with cells.n > 0
-    keep = cells.n.ravel() > 0
-    total = sums["sxx"][keep].sum(axis=0)  # centred at overall means, so this is the total SS
-    for k, nm in enumerate(names):
-        if total[k, k] <= 1e-12 * max(1.0, np.abs(total).max()):
-            raise DataRoleError(f"covariate column '{nm}' (from 'model.covariates') is constant over the rows "
-                                "used; it carries no information. Remove it from the formula.")
-    X, _, nn, _, _, _ = cell_design(cells)
-    nk = np.maximum(n[keep], 1.0)
-    xbar = sums["sx"][keep] / nk[:, None]
-    sw = np.sqrt(nk)
-    beta, *_ = np.linalg.lstsq(X * sw[:, None], xbar * sw[:, None], rcond=None)
-    R = xbar - X @ beta
-    M = sums["wxx"][keep].sum(axis=0) + (R * nk[:, None]).T @ R
-    K = len(names)
-    for k in range(K):
-        alone = M[k, k] / total[k, k]
-        if alone < rtol:
-            what = ("jurisdiction x group, jurisdiction x period and group x period effects and the treatment"
-                    if cells.design == "DDD" else "jurisdiction and period effects and the treatment")
-            raise DataRoleError(f"covariate column '{names[k]}' (from 'model.covariates') is collinear with the "
-                                f"fixed structure ({what}): it does not vary within those, so its coefficient "
-                                "cannot be told apart from them. Remove it from the formula.")
-        if k:
-            P = M[:k, :k]
-            sol = np.linalg.lstsq(P, M[:k, k], rcond=None)[0]
-            schur = M[k, k] - M[k, :k] @ sol
-            if schur / total[k, k] < rtol:
-                raise DataRoleError(f"covariate column '{names[k]}' (from 'model.covariates') is collinear with "
-                                    f"the earlier covariate(s) {names[:k]} given the fixed structure. Remove "
-                                    "one of them from the formula.")

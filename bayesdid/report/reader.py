@@ -1,0 +1,154 @@
+"""The one reader of run folders: files in, typed results out (:mod:`bayesdid.contracts`).
+
+A run folder (``bayesdid fit``) holds ``summary.json``, ``manifest.json`` and ``posterior.nc``;
+``checks/`` (``bayesdid checks --out RUN_DIR/checks`` or ``analyze``) holds ``checks.json`` and the CSV
+tables declared in :data:`bayesdid.contracts.TABLE_COLUMNS`; ``sweep/`` (``bayesdid sweep --out
+RUN_DIR/sweep``) holds ``verdict.json``, ``summary.csv`` and ``manifest.json``. Nothing here guesses a
+key or a column: a file that lacks what its producer declares is refused with a
+:class:`~bayesdid.errors.ReportError` naming the file, and so are checks or a sweep computed from
+other data than the run (their ``data_sha256`` differs from the run's).
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..contracts import (CHECK_NAMES, CheckSection, ContractError, CrossCheck, Diagnostics, EffectSummary,
+                         SweepVerdict, check_columns)
+from ..errors import ReportError
+
+__all__ = ["RunFolder", "FIT_COMMAND", "CHECKS_COMMAND", "SWEEP_COMMAND"]
+
+CHECKS_COMMAND = "bayesdid checks STUDY.toml --out RUN_DIR/checks (or bayesdid analyze STUDY.toml --out RUN_DIR)"
+SWEEP_COMMAND = "bayesdid sweep SWEEP.toml --out RUN_DIR/sweep (or bayesdid analyze STUDY.toml --out RUN_DIR)"
+FIT_COMMAND = "bayesdid fit STUDY.toml --out RUN_DIR"
+
+
+def _load(path: Path, fix: str):
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as exc:
+        raise ReportError(f"'{path}' is not valid JSON ({exc.msg} at line {exc.lineno}); {fix}") from None
+
+
+def _typed(cls, d, what: str, fix: str):
+    try:
+        return cls.from_dict(d, what=what)
+    except ContractError as exc:
+        raise ReportError(f"{exc} ({fix})") from None
+
+
+class RunFolder:
+    """The files of one run folder, read once into typed results. Optional parts absent are ``None``.
+
+    Attributes: ``summary`` (dict, as written), ``effect`` and ``effect_percent``
+    (:class:`EffectSummary`), ``natural`` (list of :class:`EffectSummary`), ``diagnostics``,
+    ``cross_check``, ``manifest``, ``checks`` (name -> :class:`CheckSection`, or None),
+    ``checks_meta`` (the rest of checks.json), ``verdict`` (:class:`SweepVerdict` or None),
+    ``sweep_manifest``.
+
+    Raises
+    ------
+    ReportError
+        The folder or its summary.json is missing or malformed; checks or a sweep come from other
+        data than the run.
+    """
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        if not self.path.is_dir():
+            raise ReportError(f"run folder '{self.path}' does not exist; create it with `{FIT_COMMAND}` and "
+                              "pass that folder to `bayesdid report`.")
+        sp = self.path / "summary.json"
+        if not sp.is_file():
+            raise ReportError(f"run folder '{self.path}' has no summary.json; it is not the output of a fit. "
+                              f"Run `{FIT_COMMAND}` and report that folder.")
+        fix = f"rerun `{FIT_COMMAND}` to rewrite it."
+        self.summary = _load(sp, fix)
+        for key in ("effect", "data", "diagnostics"):
+            if key not in self.summary:
+                raise ReportError(f"'{sp}' lacks the '{key}' entry a fit writes; {fix}")
+        s = self.summary
+        self.effect = _typed(EffectSummary, s["effect"], f"{sp}: 'effect'", fix)
+        self.effect_percent = (_typed(EffectSummary, s["effect_percent"], f"{sp}: 'effect_percent'", fix)
+                               if "effect_percent" in s else None)
+        nat = s.get("effect_natural") or []
+        if not isinstance(nat, list):
+            raise ReportError(f"'{sp}': 'effect_natural' should be a list of effects; {fix}")
+        self.natural = [_typed(EffectSummary, e, f"{sp}: 'effect_natural'", fix) for e in nat]
+        self.diagnostics = _typed(Diagnostics, s["diagnostics"], f"{sp}: 'diagnostics'", fix)
+        self.cross_check = (_typed(CrossCheck, s["least_squares"], f"{sp}: 'least_squares'", fix)
+                            if isinstance(s.get("least_squares"), dict) else None)
+        mp = self.path / "manifest.json"
+        self.manifest = _load(mp, fix) if mp.is_file() else None
+        self.identity = s.get("identity") or {"data_sha256": (self.manifest or {}).get("data_sha256"),
+                                              "run_id": (self.manifest or {}).get("run_id")}
+        self._read_checks()
+        self._read_sweep()
+
+    # ---- checks ---------------------------------------------------------------------------------
+    def _read_checks(self):
+        self.checks = None
+        self.checks_meta = None
+        cp = self.path / "checks" / "checks.json"
+        if not cp.is_file():
+            return
+        fix = f"rerun `{CHECKS_COMMAND}`."
+        body = _load(cp, fix)
+        self._same_data(body.get("identity") or {}, f"checks/checks.json", CHECKS_COMMAND)
+        self.checks = {}
+        for name in CHECK_NAMES:
+            if name in body:
+                self.checks[name] = _typed(CheckSection, body[name], f"{cp}: '{name}'", fix)
+        self.checks_meta = {k: v for k, v in body.items() if k not in CHECK_NAMES}
+
+    def table(self, name: str) -> pd.DataFrame | None:
+        """The declared CSV table ``checks/<name>.csv``, or None when the check did not write it."""
+        p = self.path / "checks" / f"{name}.csv"
+        if not p.is_file():
+            return None
+        df = pd.read_csv(p)
+        try:
+            return check_columns(name, df, where=str(p))
+        except ContractError as exc:
+            raise ReportError(str(exc)) from None
+
+    # ---- sweep ----------------------------------------------------------------------------------
+    def _read_sweep(self):
+        self.verdict = None
+        self.sweep_manifest = None
+        vp = self.path / "sweep" / "verdict.json"
+        if not vp.is_file():
+            return
+        fix = f"rerun `{SWEEP_COMMAND}`."
+        mp = self.path / "sweep" / "manifest.json"
+        self.sweep_manifest = _load(mp, fix) if mp.is_file() else {}
+        self._same_data(self.sweep_manifest, "sweep/manifest.json", SWEEP_COMMAND)
+        self.verdict = _typed(SweepVerdict, _load(vp, fix), str(vp), fix)
+
+    def _same_data(self, other: dict, rel: str, command: str):
+        mine = self.identity.get("data_sha256")
+        theirs = other.get("base_data_sha256", other.get("data_sha256"))  # a sweep: its base study's table
+        if isinstance(mine, str) and isinstance(theirs, str) and mine != theirs:
+            raise ReportError(
+                f"{rel} in '{self.path}' was computed from other data than the run: its table has SHA-256 "
+                f"{theirs[:12]}..., the run's {mine[:12]}.... A report would mix results of two data sets; "
+                f"rerun `{command}` with the run's study, or report each folder on its own.")
+
+    # ---- posterior ------------------------------------------------------------------------------
+    def effect_draws(self):
+        """Posterior draws of the headline ATT on the model scale (``att`` in posterior.nc), or None."""
+        p = self.path / "posterior.nc"
+        if not p.is_file():
+            return None
+        import xarray as xr
+
+        with xr.open_datatree(p, engine="h5netcdf") as tree:
+            post = tree["posterior"].to_dataset()
+            if "att" not in post:
+                return None
+            return np.asarray(post["att"].values).reshape(-1)

@@ -1,0 +1,88 @@
+"""One analysis end to end, per outcome family and design, through the real commands.
+
+Each case (tests/e2e_runs.py) runs ``fit``, ``checks``, a two-variant ``sweep`` and ``report`` with
+tiny draws on invented data. Every report section must hold real content (a figure, a table or a
+stated result) or a specific reason it cannot apply; never an internal error, a traceback or a
+"not available" gap, since every command ran. ``BAYESDID_E2E_ALL=1`` runs the full matrix of
+families (slow: one compile per family and design).
+"""
+
+from __future__ import annotations
+
+import html
+import json
+import os
+import re
+import shutil
+
+import pytest
+from e2e_runs import CASES, DEFAULT_CASES, quiet_main
+
+from bayesdid.report import HEADINGS
+from bayesdid.report.html import render_report
+
+MATRIX = tuple(CASES) if os.environ.get("BAYESDID_E2E_ALL") == "1" else DEFAULT_CASES
+
+
+def sections(text: str) -> dict:
+    return dict(re.findall(r'<section id="([\w-]+)">(.*?)</section>', text, flags=re.S))
+
+
+@pytest.mark.parametrize("name", MATRIX)
+def test_every_command_succeeds_and_every_section_has_content(name, e2e_run):
+    case = e2e_run(name)
+    assert case["codes"] == {"fit": 0, "checks": 0, "sweep": 0, "report": 0}, case["logs"]
+    text = (case["run"] / "report.html").read_text(encoding="utf-8")
+    assert [html.unescape(h) for h in re.findall(r"<h2>(.*?)</h2>", text)] == [h for _, h in HEADINGS]
+    secs = sections(text)
+    for anchor, body in secs.items():
+        for bad in ("could not be drawn", "Traceback", "Not available in this run folder", "KeyError",
+                    "not valid JSON"):
+            assert bad not in body, (name, anchor, bad)
+    checks = json.loads((case["run"] / "checks" / "checks.json").read_text())
+    for check in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"):
+        st = checks[check]["status"]
+        assert st in ("ok", "flag", "not applicable"), (name, check, checks[check]["reason"])
+        assert checks[check]["reason"]
+    # figures: the effect, event time, pre-trend band, comparison, placebo in space, sweep, cross-check
+    for anchor in ("effect", "event-time", "pretrend", "comparison", "placebo", "sensitivity", "cross-check"):
+        st = {"event-time": "event_time", "pretrend": "pretrend", "comparison": "comparison"}.get(anchor)
+        if st and checks[st]["status"] == "not applicable":
+            assert html.escape(checks[st]["reason"], quote=True)[:40] in secs[anchor]
+            continue
+        assert "<img " in secs[anchor], (name, anchor)
+    assert "tight effect prior" in secs["sensitivity"]
+
+
+@pytest.mark.parametrize("name", MATRIX)
+def test_checks_sweep_and_run_carry_one_identity(name, e2e_run):
+    run = e2e_run(name)["run"]
+    s = json.loads((run / "summary.json").read_text())["identity"]
+    m = json.loads((run / "manifest.json").read_text())
+    c = json.loads((run / "checks" / "checks.json").read_text())["identity"]
+    w = json.loads((run / "sweep" / "manifest.json").read_text())
+    assert len(s["data_sha256"]) == 64 and len(s["run_id"]) == 16
+    assert s == c == {"data_sha256": m["data_sha256"], "run_id": m["run_id"]}
+    assert (w["base_data_sha256"], w["run_id"]) == (s["data_sha256"], s["run_id"])
+
+
+def test_the_report_refuses_checks_from_other_data(e2e_run, tmp_path):
+    a, b = e2e_run("gaussian_ddd"), e2e_run("gaussian_did")
+    mixed = tmp_path / "mixed"
+    shutil.copytree(a["run"], mixed)
+    shutil.rmtree(mixed / "checks")
+    shutil.copytree(b["run"] / "checks", mixed / "checks")
+    code, out, err = quiet_main(["report", str(mixed)])
+    assert code == 2
+    assert "checks/checks.json" in err and "other data than the run" in err
+    assert not (mixed / "report.html").exists() or (mixed / "report.html").read_bytes() == \
+        (a["run"] / "report.html").read_bytes()
+
+
+def test_the_report_reads_a_table_by_its_declared_columns(e2e_run, tmp_path):
+    run = tmp_path / "run"
+    shutil.copytree(e2e_run("gaussian_ddd")["run"], run)
+    (run / "checks" / "event_time.csv").write_text("k,estimate\n-1,0\n")
+    secs = sections(render_report(run))
+    assert "table &#x27;event_time&#x27; should have the columns" in secs["event-time"]
+    assert "missing [&#x27;event_time&#x27;" in secs["event-time"]
