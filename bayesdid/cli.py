@@ -112,7 +112,7 @@ def cmd_demo(args, argv):
     study = _overrides(load_study(d / "study.toml"), args)
     _say(f"demo case '{args.case}': {study.title} (invented data)")
     log = None if args.quiet else _say
-    return _fit_and_write(study, args.out, args, argv, then=lambda st, path: _demo_steps(st, path, log, d / "study.toml"))
+    return _fit_and_write(study, args.out, args, argv, then=lambda st, path, an: _demo_steps(st, path, log, d / "study.toml", an))
 
 
 #: The demo's short sweep: the base study and one variant with the effect prior at a tenth of the
@@ -132,7 +132,7 @@ priors = {{ effect = {effect} }}
 """
 
 
-def _demo_steps(study, path, log, study_file):
+def _demo_steps(study, path, log, study_file, an=None):
     """After the demo's fit: every check, a two-variant sweep (serial, reusing this process's compiled
     model) and the report, so the first report a newcomer opens is complete."""
     import tempfile
@@ -142,7 +142,8 @@ def _demo_steps(study, path, log, study_file):
 
     say = log or (lambda m: None)
     say("demo: running every check (progress below)")
-    checks_into_run(study, path, log=log)
+    reuse = {"cells": an.cells, "main_fit": an.fit} if an is not None else {}
+    checks_into_run(study, path, log=log, **reuse)
     summary = json.loads((Path(path) / "summary.json").read_text())
     effect = 0.1 * float(summary["priors"]["effect"]["scale"])
     sp = study.sampler

@@ -13,7 +13,8 @@ import numpy as np
 import pymc as pm
 import pytest
 
-from bayesdid.model.terms import build_model, event_times_of, resolve_scales
+from bayesdid.model.registry import build_model
+from bayesdid.model.terms import event_times_of, resolve_scales
 from bayesdid.run import prepare
 from bayesdid.study import load_study
 
