@@ -29,7 +29,7 @@ def test_demo_writes_complete_run_folder(demo_run, capsys):
     assert code == 0
     # the demo runs the whole analysis: the fit, every check, a two-variant sweep and the report
     assert sorted(p.name for p in out.iterdir()) == ["checks", "manifest.json", "posterior.nc", "report.html",
-                                                     "summary.json", "sweep"]
+                                                     "summary.json", "sweep", "trends.csv"]
     checks = json.loads((out / "checks" / "checks.json").read_text())
     assert all(checks[c]["status"] in ("ok", "flag", "not applicable")
                for c in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"))

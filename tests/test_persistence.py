@@ -269,7 +269,13 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     from bayesdid import analyse
 
     sc = Scenario(**{**_DRIFT, "residual_sd": 0.05}, tau=0.0, gap_sd=0.005, pre_wiggle=0.1, post_drift=0.2)
-    st, cells, _, _ = sim_study(tmp_path_factory, sc, 8, "drift", draws=400, tune=400, seed=4)
+    st, _, frame, _ = sim_study(tmp_path_factory, sc, 8, "drift", draws=400, tune=400, seed=4)
+    # Independent gap noise: the construction's arithmetic (effect 0.7) holds for it. With the default
+    # AR(1) noise a steady post-policy departure with near-noiseless comparisons is read as a
+    # persistent (rho near 1) gap path and the effect shrinks toward 0.13; the bound's own arithmetic,
+    # which is what this test checks, does not depend on which noise produced the draws.
+    st = st.replace(model={"gap_over_time": "independent"})
+    cells = collapse(st, frame)
     an = analyse(st, cells=cells, full_cross_check=False)
     tb = an.trends
     assert tb.status == "ok"
@@ -423,7 +429,7 @@ def test_drift_recovered_and_effect_freed_of_it(tmp_path_factory):
     an = analyse(st_d, cells=cells_d, full_cross_check=False)
     e = an.effects["effect"].summary
     assert e["eti_95"][0] <= -0.1 <= e["eti_95"][1]
-    g = an.fit.draws("gap_drift")[:, 0]
+    g = an.fit.draws("gap_drift")[:, cells_d.adopters[0]]
     assert abs(np.median(g) - 0.05) < 0.015
     assert an.summary()["model"]["gap_noise"]["drift"] is True
 
