@@ -7,7 +7,6 @@ wrong and how to fix it; nothing written), 3 diagnostics failed under ``--strict
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import json
 import math
 import sys

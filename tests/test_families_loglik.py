@@ -10,7 +10,6 @@ from __future__ import annotations
 from types import SimpleNamespace
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy import integrate, special, stats
 
@@ -198,7 +197,6 @@ def test_gaussian_with_covariates_collapsed_equals_rows(design):
 
 def _fake_fit(model, cells, family, rng):
     """A one-draw 'fit' at a random point of the model, read through PyMC's own graph."""
-    import pymc as pm
 
     ip = model.initial_point()
     point = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ip.items()}
