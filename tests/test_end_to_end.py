@@ -55,6 +55,36 @@ def test_every_command_succeeds_and_every_section_has_content(name, e2e_run):
 
 
 @pytest.mark.parametrize("name", MATRIX)
+def test_raw_paths_adopter_effects_and_rank_plots(name, e2e_run):
+    """The raw-data figure, the per-adopter figure (two adopters in every case) and rank plots exactly when
+    the sampler diagnostics failed; the raw figure's numbers are the cell means the fit wrote."""
+    import numpy as np
+    import xarray as xr
+
+    from bayesdid.report.reader import RunFolder
+
+    case = e2e_run(name)
+    run = case["run"]
+    secs = sections((run / "report.html").read_text(encoding="utf-8"))
+    assert "Each adopter&#x27;s observed path" in secs["data"] or "Each adopter's observed path" in secs["data"]
+    assert "Effect in each adopting jurisdiction" in secs["effect"]
+    ok = json.loads((run / "summary.json").read_text())["diagnostics"]["ok"]
+    assert ("Rank plots of the worst-mixing quantities" in secs["diagnostics"]) is (not ok)
+    folder = RunFolder(run)
+    c = folder.cell_means()
+    with xr.open_datatree(run / "posterior.nc", engine="h5netcdf") as tree:
+        cm = tree["observed_data"]["cell_mean"].values
+        n = tree["constant_data"]["n"].values
+    assert np.array_equal(np.isnan(c["mean"]), n == 0)
+    assert np.allclose(c["mean"][n > 0], cm[n > 0])
+    assert int((c["start"] < len(c["periods"])).sum()) == 2 and len(c["jurisdictions"]) == 12
+    ranks = folder.worst_mixing(3)
+    assert len(ranks) == 3
+    for r in ranks.values():  # a permutation of 0..S-1 over all chains' draws
+        assert np.array_equal(np.sort(r.reshape(-1)), np.arange(r.size))
+
+
+@pytest.mark.parametrize("name", MATRIX)
 def test_checks_sweep_and_run_carry_one_identity(name, e2e_run):
     run = e2e_run(name)["run"]
     s = json.loads((run / "summary.json").read_text())["identity"]

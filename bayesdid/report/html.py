@@ -25,6 +25,7 @@ import json
 import math
 import os
 import tempfile
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -163,6 +164,13 @@ def _effect_section(run: RunFolder) -> str:
             prow.append([r["adopter"], r.get("start", ""), _num(r.get("weight"), 3), fmt(q["median"]),
                          f"{fmt(q['eti_90'][0])} to {fmt(q['eti_90'][1])}", f"{q['prob_lt_0']:.1%}"])
         out.append("<h3>Each adopting jurisdiction</h3>")
+        if len(per) > 1:
+            qs = [r.get("percent", r) if pct else r for r in per]
+            k = 100.0 if pct else 1.0
+            out.append(_img(plots.interval_figure(
+                [str(r["adopter"]) for r in per], [k * q["median"] for q in qs], [k * q["eti_90"][0] for q in qs],
+                [k * q["eti_90"][1] for q in qs], xlabel="effect (%)" if pct else f"effect ({e.measure})"),
+                "Effect in each adopting jurisdiction with its 90% interval"))
         out.append(_table(["jurisdiction", "first treated period", "weight in the average", "central estimate",
                            "90% interval", "probability of a reduction"], prow))
     nat = [n for n in run.natural if n.measure != e.measure]
@@ -571,9 +579,56 @@ def _data_section(run: RunFolder) -> str:
     if starts:
         out.append("<h3>Adopters and their first treated period</h3>")
         out.append(_table(["adopting jurisdiction", "first treated period"], [[k, v] for k, v in starts.items()]))
+    out.extend(_raw_paths(run))
     for n in run.summary.get("notes") or []:
         out.append(f'<p class="note">{esc(n)}</p>')
     return "\n".join(out)
+
+
+#: at most this many adopters get a panel of their own in the raw-data figure
+RAW_PANELS = 6
+
+
+def _raw_paths(run: RunFolder) -> list[str]:
+    """The raw gap (DDD) or outcome (DiD) of each adopter over all periods against the comparison
+    jurisdictions' mean and 10-90% band, from the cell means in posterior.nc."""
+    c = run.cell_means()
+    if c is None:
+        return [_absent("the cell means (posterior.nc is missing), so the raw-data figure cannot be drawn.",
+                        FIT_COMMAND)]
+    mean, start = c["mean"], c["start"]
+    T = mean.shape[2]
+    ddd = mean.shape[1] == 2
+    path = mean[:, 1, :] - mean[:, 0, :] if ddd else mean[:, 0, :]
+    comp = start >= T
+    adopters = [int(j) for j in np.flatnonzero(~comp)]
+    if not comp.any() or not adopters:
+        return []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a period where no comparison has rows
+        cm = np.nanmean(path[comp], axis=0)
+        lo, hi = np.nanpercentile(path[comp], [10, 90], axis=0)
+    series = [{"label": c["jurisdictions"][j], "observed": path[j], "mean": cm, "lower": lo, "upper": hi,
+               "start": int(start[j])} for j in adopters[:RAW_PANELS]]
+    nm = names((run.manifest or {}).get("study"))
+    log = bool((run.summary.get("model") or {}).get("log_outcome"))
+    what = f"log {nm['outcome']}" if log else nm["outcome"]
+    if ddd:
+        grp = c["groups"]
+        ylabel = f"{what}: {grp[1]} minus {grp[0]}"
+    else:
+        ylabel = what
+    out = ["<h3>The raw data</h3>",
+           _img(plots.raw_path_figure(series, xlabel="period", ylabel=ylabel, xticks=c["periods"]),
+                "Each adopter's observed path against the comparison jurisdictions' mean and band")]
+    more = len(adopters) - RAW_PANELS
+    out.append('<p class="caption">Observed cell means, before any model: '
+               + ("the gap between the target and the reference group" if ddd else "the outcome")
+               + " in each adopting jurisdiction (orange) against the mean (dashed) and the 10-90% range (band) "
+               "of the comparison jurisdictions; the dotted line marks the policy start. Levels may differ; "
+               "what the analysis relies on is that the paths move alike before the start."
+               + (f" {more} more adopting jurisdiction(s) are not drawn." if more > 0 else "") + "</p>")
+    return out
 
 
 def _priors_section(run: RunFolder) -> str:
@@ -608,6 +663,14 @@ def _diagnostics_section(run: RunFolder) -> str:
         out.append(f'<p class="caption">Thresholds: {esc(th["source"])}.</p>')
     overall = "pass" if dg.get("ok") else "fail"
     out.append(f"<p>Overall: {_badge(overall)} {esc(dg.get('advice', '')) if not dg.get('ok') else ''}</p>")
+    if not dg.get("ok"):
+        ranks = run.worst_mixing()
+        if ranks:
+            out.append("<h3>Rank plots of the worst-mixing quantities</h3>")
+            out.append(_img(plots.rank_figure(ranks), "Rank histograms per chain of the worst-mixing quantities"))
+            out.append('<p class="caption">Each draw ranked among all chains\' draws; one outline per chain. '
+                       'Chains that explore the same distribution give flat, overlapping outlines; an outline '
+                       'piled at one end is a chain stuck apart (Vehtari et al. 2021).</p>')
     return "\n".join(out)
 
 

@@ -22,7 +22,8 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 __all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure",
-           "event_time_figure", "band_figure", "comparison_figure", "placebo_figure", "trends_figure"]
+           "event_time_figure", "band_figure", "comparison_figure", "placebo_figure", "trends_figure",
+           "raw_path_figure", "rank_figure"]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
 #: readings, plum for flags, slate for reference lines, a pale blue for bands.
@@ -289,4 +290,67 @@ def trends_figure(M: list[float], lower: list[float], upper: list[float], *, bre
                         textcoords="offset points", color=PALETTE["flag"], fontsize=9)
         ax.set_xlabel("M: post-policy departure per period, in multiples of the largest pre-policy change")
         ax.set_ylabel(ylabel)
+        return svg_of(fig)
+
+
+def raw_path_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list) -> str:
+    """Each adopter's observed path against the comparison jurisdictions' mean and 10-90% band.
+
+    Each series: {"label", "observed", "mean", "lower", "upper", "start"} over the periods in ``xticks``;
+    ``start`` is the index of the first treated period (a vertical line just before it).
+    """
+    n = max(1, len(series))
+    cols = min(n, 2)
+    rows = int(np.ceil(n / cols))
+    x = np.arange(len(xticks), dtype=float)
+    with plt.rc_context(_RC):
+        fig, axes = plt.subplots(rows, cols, figsize=(7.0, 2.9 * rows + 0.5), sharex=True, squeeze=False,
+                                 layout="constrained")
+        for i, ax in enumerate(axes.ravel()):
+            if i >= n:
+                ax.set_visible(False)
+                continue
+            s = series[i]
+            ax.set_axisbelow(True)
+            ax.fill_between(x, s["lower"], s["upper"], color=PALETTE["band"], lw=0,
+                            label="comparison jurisdictions, 10-90%")
+            ax.plot(x, s["mean"], color=PALETTE["posterior"], lw=1.5, ls="--", label="comparison mean")
+            ax.plot(x, s["observed"], color=PALETTE["alternative"], lw=2, marker="o", ms=4, label="adopter")
+            ax.axvline(s["start"] - 0.5, color=PALETTE["flag"], lw=1.2, ls=":", label="policy starts")
+            ax.set_title(s["label"], fontsize=10)
+            step = max(1, int(np.ceil(len(xticks) / 12)))
+            ax.set_xticks(x[::step], [str(t) for t in xticks][::step], rotation=45, ha="right", fontsize=8)
+        fig.supxlabel(xlabel, fontsize=10)
+        fig.supylabel(ylabel, fontsize=10)
+        handles, labels = axes.ravel()[0].get_legend_handles_labels()
+        fig.legend(handles, labels, frameon=False, fontsize=8.5, loc="outside upper center", ncols=2)
+        return svg_of(fig)
+
+
+def rank_figure(ranks: dict[str, np.ndarray], *, bins: int = 20) -> str:
+    """Rank histograms: per parameter, the ranks of its draws pooled over chains, one outline per chain.
+
+    ``ranks[name]`` has shape (chains, draws) and holds ranks 0..chains*draws-1. Well-mixed chains give flat,
+    overlapping histograms; a chain stuck apart shows as a histogram piled at one end.
+    """
+    n = max(1, len(ranks))
+    cols = min(n, 2)
+    rows = int(np.ceil(n / cols))
+    with plt.rc_context(_RC):
+        fig, axes = plt.subplots(rows, cols, figsize=(7.0, 2.3 * rows + 0.4), squeeze=False, layout="constrained")
+        for i, ax in enumerate(axes.ravel()):
+            if i >= n:
+                ax.set_visible(False)
+                continue
+            name, r = list(ranks.items())[i]
+            r = np.asarray(r)
+            total = r.size
+            edges = np.linspace(0, total, bins + 1)
+            for c in range(r.shape[0]):
+                h, _ = np.histogram(r[c], bins=edges)
+                ax.stairs(h, edges, lw=1.4, label=f"chain {c + 1}")
+            ax.axhline(r.shape[1] / bins, color=PALETTE["reference"], lw=1, ls="--")
+            ax.set_title(name, fontsize=10)
+            ax.set_yticks([])
+        fig.supxlabel("rank of the draw among all chains' draws (dashed: what mixed chains give)", fontsize=10)
         return svg_of(fig)

@@ -140,6 +140,70 @@ class RunFolder:
                 f"rerun `{command}` with the run's study, or report each folder on its own.")
 
     # ---- posterior ------------------------------------------------------------------------------
+    def cell_means(self):
+        """The observed cell means and layout from posterior.nc, or None when it is absent.
+
+        Returns a dict: ``mean`` (J, G, T) with NaN where a cell holds no rows, ``start`` (J,) index of
+        each jurisdiction's first treated period (T for comparisons), ``jurisdictions``, ``groups``, ``periods``.
+        """
+        p = self.path / "posterior.nc"
+        if not p.is_file():
+            return None
+        import xarray as xr
+
+        with xr.open_datatree(p, engine="h5netcdf") as tree:
+            if "observed_data" not in tree or "constant_data" not in tree:
+                return None
+            obs = tree["observed_data"].to_dataset()
+            const = tree["constant_data"].to_dataset()
+            if "cell_mean" not in obs or "n" not in const or "start_index" not in const:
+                return None
+            mean = np.asarray(obs["cell_mean"].values, dtype=float)
+            n = np.asarray(const["n"].values, dtype=float)
+            return {"mean": np.where(n > 0, mean, np.nan), "start": np.asarray(const["start_index"].values),
+                    "jurisdictions": [str(v) for v in obs["jurisdiction"].values],
+                    "groups": [str(v) for v in obs["group"].values],
+                    "periods": [str(v) for v in obs["period"].values]}
+
+    def worst_mixing(self, most: int = 4):
+        """Ranks of the draws of the ``most`` worst-mixing sampled quantities (largest R-hat, then smallest
+        bulk ESS), for rank plots: {label: (chains, draws) ranks}, or None without posterior.nc or with one
+        chain."""
+        p = self.path / "posterior.nc"
+        if not p.is_file():
+            return None
+        import arviz as az
+        import xarray as xr
+
+        with xr.open_datatree(p, engine="h5netcdf") as tree:
+            post = tree["posterior"].to_dataset().load()
+        if post.sizes.get("chain", 1) < 2:
+            return None
+        rh = az.rhat(post)
+        ess = az.ess(post, method="bulk")
+        scored = []
+        for v in post.data_vars:
+            if v not in rh:
+                continue
+            r = np.asarray(rh[v].values, dtype=float).reshape(-1)
+            e = np.asarray(ess[v].values, dtype=float).reshape(-1)
+            dims = [d for d in post[v].dims if d not in ("chain", "draw")]
+            for i in range(r.size):
+                if not np.isfinite(r[i]):
+                    continue
+                idx = np.unravel_index(i, [post.sizes[d] for d in dims]) if dims else ()
+                label = v + ("[" + ", ".join(str(post[d].values[k]) for d, k in zip(dims, idx)) + "]" if dims else "")
+                scored.append((-r[i], e[i], label, v, dict(zip(dims, idx))))
+        scored.sort(key=lambda t: (t[0], t[1]))
+        out = {}
+        for _, _, label, v, at in scored[:most]:
+            x = np.asarray(post[v].isel(at).transpose("chain", "draw").values, dtype=float)
+            order = np.argsort(x.reshape(-1), kind="stable")
+            ranks = np.empty(x.size)
+            ranks[order] = np.arange(x.size)
+            out[label] = ranks.reshape(x.shape)
+        return out
+
     def effect_draws(self):
         """Posterior draws of the headline ATT on the model scale (``att`` in posterior.nc), or None."""
         p = self.path / "posterior.nc"
