@@ -289,6 +289,14 @@ def _assemble(model, payload: dict, functions: tuple):
     # As nutpie.compile_pymc_model does it: support points with a U(-1, 1) jitter of every free variable.
     ipf = make_initial_point_fn(model=model, overrides=None, default_strategy="support_point",
                                 jitter_rvs=set(model.free_RVs), return_transformed=True)
+    # The sizes of the free variables are baked into the machine code (nutpie's flat parameter vector).
+    # A graph whose sizes all live in data containers and dims has one fingerprint for every size, so
+    # check them: code for other sizes would read and write past the model's parameter vector.
+    point = ipf(0)
+    sizes = [tuple(np.shape(point[n])) for n in free_names]
+    if sizes != [tuple(int(d) for d in s) for s in shapes[:n_free]]:
+        raise DamagedEntry(f"it was compiled for other sizes of the model's variables ({dict(zip(free_names, sizes))} "
+                           "here)")
     ipf = ncp._rv_dict_to_flat_array_wrapper(ncp._wrap_with_lock(ipf), names=list(names[:n_free]),
                                              shapes=list(shapes[:n_free]))
     shared, var_keys = {}, {}
@@ -336,7 +344,17 @@ def _try_load(path: Path, key: str, material: dict, model):
     reported once, removed when possible, and None is returned so that the caller rebuilds."""
     if key in _IN_PROCESS:
         payload, functions = _IN_PROCESS[key]
-        return _assemble(model, payload, functions)
+        try:
+            return _assemble(model, payload, functions)
+        except DamagedEntry as exc:  # sizes differ under one fingerprint: compile this one anew
+            cachedir.warn_once(f"sizes:{key}", f"a compiled model of this process cannot be reused: {exc}. "
+                               "It is compiled again for these sizes.")
+            del _IN_PROCESS[key]
+            try:
+                path.unlink()
+            except OSError:
+                pass
+            return None
     if not path.is_file():
         return None
     try:

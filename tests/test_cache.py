@@ -196,3 +196,41 @@ def test_compile_log_records_and_summary_table(tmp_path, monkeypatch):
     monkeypatch.delenv(modelcache.LOG_ENV)
     modelcache._log(small, ks, "compiled", 1.0)  # unset: nothing is written
     assert len(modelcache.read_log(log)) == 3
+
+
+@pytest.mark.slow
+def test_entry_for_other_sizes_is_not_loaded(tmp_path):
+    """A model whose sizes all live in data containers and dims has one graph fingerprint for every
+    size; the machine code is not size-generic (nutpie's flat parameter vector), so an entry compiled
+    for 3 units must not be loaded for 5: it is compiled again, and the draws have the model's sizes."""
+    import warnings
+
+    import numpy as np
+    import nutpie
+    import pymc as pm
+
+    from bayesdid import sample
+
+    def tiny(n: int):
+        with pm.Model(coords={"unit": [f"u{i}" for i in range(n)]}) as m:
+            y = pm.Data("y", np.linspace(-1.0, 1.0, n), dims="unit")
+            a = pm.Normal("a", 0, 1, dims="unit")
+            pm.Normal("obs", a, 1, observed=y, dims="unit")
+        return m
+
+    suite_folder = cachedir.current().path
+    cachedir.configure(tmp_path / "cache")
+    try:
+        small, large = tiny(3), tiny(5)
+        assert modelcache.fingerprint(small)[0] == modelcache.fingerprint(large)[0]  # one key for both sizes
+        assert modelcache.compile_cached(small, sample.compile_exact)[1] == "compiled"
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            compiled, how = modelcache.compile_cached(large, sample.compile_exact)
+        assert how == "compiled"
+        assert any("other sizes" in str(w.message) for w in caught)
+        tree = nutpie.sample(compiled, draws=50, tune=50, chains=1, seed=1, progress_bar=False)
+        assert tree["posterior"]["a"].shape == (1, 50, 5)
+        assert modelcache.entry_ok(next((tmp_path / "cache" / "models").glob("*.model")))
+    finally:
+        cachedir.configure(suite_folder)
