@@ -6,8 +6,8 @@ clone's ``.cache/bayesdid`` (git-ignored), unless BAYESDID_CACHE_DIR names anoth
 here, before bayesdid (and so PyTensor and numba) is imported.
 
 Every model the suite asks for, in this process or in the processes its tests start, is logged to
-``compile-log.jsonl`` in that folder (BAYESDID_COMPILE_LOG, see bayesdid.modelcache); at the end the
-session prints, per test file, the real compiles with their seconds and the loads from disk."""
+``compile-log-<pid>.jsonl`` in that folder (BAYESDID_COMPILE_LOG, see bayesdid.modelcache); at the end
+the session prints, per test file, the real compiles with their seconds and the loads from disk."""
 
 from __future__ import annotations
 
@@ -17,7 +17,8 @@ import warnings
 from pathlib import Path
 
 os.environ.setdefault("BAYESDID_CACHE_DIR", str(Path(__file__).resolve().parent.parent / ".cache" / "bayesdid"))
-os.environ.setdefault("BAYESDID_COMPILE_LOG", str(Path(os.environ["BAYESDID_CACHE_DIR"]) / "compile-log.jsonl"))
+# One log per session (other sessions may share the cache folder); removed once its table is printed.
+os.environ.setdefault("BAYESDID_COMPILE_LOG", str(Path(os.environ["BAYESDID_CACHE_DIR"]) / f"compile-log-{os.getpid()}.jsonl"))
 
 import numpy as np
 import pandas as pd
@@ -102,7 +103,10 @@ def compile_table(records: list[dict]) -> list[str]:
 def pytest_terminal_summary(terminalreporter):
     from bayesdid.modelcache import read_log
 
-    records = [r for r in read_log(os.environ["BAYESDID_COMPILE_LOG"]) if r.get("time", 0) >= _SESSION_START]
+    log = Path(os.environ["BAYESDID_COMPILE_LOG"])
+    records = [r for r in read_log(log) if r.get("time", 0) >= _SESSION_START]
+    if log.name == f"compile-log-{os.getpid()}.jsonl":
+        log.unlink(missing_ok=True)
     if records:
         terminalreporter.write_sep("=", "compiled models per test file (tests/conftest.py)")
         for line in compile_table(records):
