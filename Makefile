@@ -8,7 +8,7 @@ FIND_PY := for c in $(PYTHON) python3.13 python3.12 python3 $$(ls -d $$HOME/.pye
 	  if command -v $$c >/dev/null 2>&1 && $$c -c 'import sys; sys.exit(0 if sys.version_info >= (3, 12) else 1)' 2>/dev/null; then echo $$c; break; fi; \
 	done
 
-.PHONY: demo test bench clean
+.PHONY: demo test lint bench clean
 
 $(STAMP): pyproject.toml
 	@py=$$($(FIND_PY)); \
@@ -24,6 +24,10 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(PY) -m pytest -q $(PYTEST_ARGS)
+
+# ruff, configured in pyproject.toml ([tool.ruff]); .ci/run calls it before the tests
+lint: $(STAMP)
+	$(VENV)/bin/ruff check bayesdid tests
 
 bench: $(STAMP)
 	$(VENV)/bin/bayesdid bench collapse

@@ -378,7 +378,7 @@ def sbc_prior(scenario: str, base_seed: int) -> dict:
 
 # ---- executors -------------------------------------------------------------------------------------
 
-def _rep_lost(task: "RepTask", exc: BaseException) -> dict:
+def _rep_lost(task: RepTask, exc: BaseException) -> dict:
     return {"kind": task.kind, "scenario": task.scenario, "rep": task.rep, "data_seed": task.seeds[0],
             "sampler_seed": task.seeds[1], "ok": False, "wall_s": float("nan"),
             "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}"}

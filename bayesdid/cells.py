@@ -87,11 +87,11 @@ class Cells:
         J, _, T = self.shape
         return np.ones((J, T)) if self.weight is None else self.weight
 
-    def with_starts(self, start: np.ndarray) -> "Cells":
+    def with_starts(self, start: np.ndarray) -> Cells:
         """The same cells with another assignment of start periods (placebos)."""
         return replace(self, start=np.asarray(start, dtype=int))
 
-    def with_weight(self, weight: np.ndarray) -> "Cells":
+    def with_weight(self, weight: np.ndarray) -> Cells:
         return replace(self, weight=np.asarray(weight, dtype=float))
 
     def describe(self) -> dict:

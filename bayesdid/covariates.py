@@ -28,8 +28,7 @@ import pandas as pd
 
 from .errors import DataRoleError, StudyError
 
-__all__ = ["parse_formula", "required_columns", "design_matrix", "cell_sums", "check_identified",
-           "DISCRETE_MAX_LEVELS"]
+__all__ = ["parse_formula", "required_columns", "design_matrix", "cell_sums", "DISCRETE_MAX_LEVELS"]
 
 #: A design column with at most this many distinct values counts as discrete (collapsible per
 #: pattern); more, and a non-Gaussian family falls back to the row-level likelihood (common practice).

@@ -25,7 +25,7 @@ from .crosscheck import cross_check, cross_check_not_applicable
 from .contracts import run_id
 from .data import file_sha256, read_table
 from .effects import compute_effects
-from .errors import BayesDidError, FewAdoptersWarning, PersistenceFallbackWarning
+from .errors import BayesDidError, PersistenceFallbackWarning
 from .model.registry import model_priors
 from .model.structure import RHO_PRIOR, gap_structure, residual_rule
 from .model.terms import resolve_scales
@@ -121,7 +121,7 @@ def persistence_summary(fit) -> dict | None:
         what = ("the data leave the persistence of the gap noise uncertain; the effect's interval allows for "
                 "both weak and strong persistence")
     return {"rho": {"mean": mean, "sd": float(rho.std()), "eti95": [lo, hi]},
-            "prior": "(rho + 1)/2 ~ Beta(%g, %g)" % (RHO_PRIOR["a"], RHO_PRIOR["b"]),
+            "prior": f"(rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})",
             "sentence": f"Correlation of the gap noise from one period to the next: {mean:.2f} "
                         f"(95% interval {lo:.2f} to {hi:.2f}); {what}."}
 
@@ -300,7 +300,7 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
         "observed_data": observed,
         "constant_data": const,
     }
-    for name, ds in groups.items():
+    for ds in groups.values():
         ds.attrs = {k: (json.dumps(v) if not isinstance(v, (str, int, float)) else v) for k, v in ds.attrs.items()}
     return xr.DataTree.from_dict(groups)
 

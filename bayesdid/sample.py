@@ -102,7 +102,7 @@ class Fit:
     """A posterior with what produced it."""
 
     cells: Cells
-    tree: "xr.DataTree"
+    tree: xr.DataTree
     spec: object
     scales: dict
     settings: SamplerSettings
@@ -151,7 +151,6 @@ def compile_exact(model):
 
 
 def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
-    import nutpie
 
     terms = terms or {}
     spec = model_spec(cells, family, **terms)

@@ -14,7 +14,8 @@ import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 from . import frames
 from .errors import StudyError
@@ -287,7 +288,7 @@ class Study:
     def design(self) -> str:
         return "DiD" if self.columns.group is None else "DDD"
 
-    def replace(self, **changes) -> "Study":
+    def replace(self, **changes) -> Study:
         """A copy with some top-level fields replaced; nested settings take dicts or dataclasses.
 
         The copy is rebuilt from the study-file layout by the same parser as :func:`load_study`, so
@@ -302,7 +303,7 @@ _FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "pri
                    "wording": "wording"}
 
 
-def _raw_with(study: "Study", changes: Mapping[str, Any]) -> dict[str, Any]:
+def _raw_with(study: Study, changes: Mapping[str, Any]) -> dict[str, Any]:
     """The study in study-file layout with ``changes`` (Study field -> value) applied."""
     raw = study_to_dict(study)
     fields = [f.name for f in dataclasses.fields(study)]

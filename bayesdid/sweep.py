@@ -70,7 +70,8 @@ import tomllib
 import uuid
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping
+from typing import Any
+from collections.abc import Callable, Iterable, Mapping
 
 import numpy as np
 
@@ -384,7 +385,7 @@ def load_sweep(path: str | Path) -> SweepPlan:
             st = _parse(merged, base_dir)
         except BayesDidError as exc:
             raise SweepError(f"variant '{label}' does not make a valid study: {exc}") from None
-        lacks = sorted(set((ov.get("priors") or {})) - set(study_priors(st)))
+        lacks = sorted(set(ov.get("priors") or {}) - set(study_priors(st)))
         if lacks:
             raise SweepError(
                 f"variant '{label}' sets the prior(s) {lacks}, which the model of this study does not have "

@@ -10,7 +10,6 @@ from __future__ import annotations
 import base64
 import itertools
 import json
-import os
 import shutil
 import subprocess
 import tempfile

@@ -6,13 +6,11 @@ Every case fails in the table checks or the collapse, before any model is compil
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from bayesdid import make_study
 from bayesdid.cells import collapse
 from bayesdid.cli import main
-from bayesdid.errors import DataRoleError
 from bayesdid.simulate_families import CountScenario, simulate_family
 
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 from types import SimpleNamespace
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy import integrate, linalg, special, stats
 

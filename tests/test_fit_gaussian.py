@@ -8,7 +8,6 @@ import pytest
 import statsmodels.formula.api as smf
 
 from bayesdid import analyse, make_study
-from bayesdid.cells import collapse
 from bayesdid.effects import percent_change
 from bayesdid.model.gaussian import pointwise_loglik
 from bayesdid.model.registry import build_model

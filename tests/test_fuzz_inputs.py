@@ -13,7 +13,6 @@ from __future__ import annotations
 import copy
 import datetime
 import random
-import tomllib
 from pathlib import Path
 
 import numpy as np

@@ -18,7 +18,6 @@ from __future__ import annotations
 import ast
 from pathlib import Path
 
-import pytest
 
 ROOT = Path(__file__).resolve().parent.parent / "bayesdid"
 
@@ -45,7 +44,8 @@ LAYERS = [
     ("interface", ["bayesdid", "bayesdid.notebook", "bayesdid.cli", "bayesdid.bench", "bayesdid.bench.calibration", "bayesdid.bench.collapse",
                    "bayesdid.bench.crosscheck", "bayesdid.bench.families", "bayesdid.bench.large_child",
                    "bayesdid.bench.panel", "bayesdid.bench.placebo", "bayesdid.bench.sweep", "bayesdid.bench.weights",
-                   "bayesdid.bench.compile", "bayesdid.bench.persistence", "bayesdid.bench.plan"]),
+                   "bayesdid.bench.compile", "bayesdid.bench.persistence", "bayesdid.bench.plan",
+                   "bayesdid.bench.analyze"]),
 ]
 FLOOR = {m: i for i, (_, mods) in enumerate(LAYERS) for m in mods}
 

@@ -4,7 +4,6 @@ folders bayesdid wrote, and a setting is checked the same way whatever its sourc
 from __future__ import annotations
 
 import json
-import os
 import signal
 import subprocess
 import sys

@@ -14,7 +14,6 @@ import pandas as pd
 import pytest
 
 from bayesdid.cli import main
-from bayesdid.errors import PlanError
 from bayesdid.plan import (Layout, load_plan, make_plan, normal_assurance, plan_tasks, progress_path, run_plan,
                            simulate_cells, simulate_noise)
 

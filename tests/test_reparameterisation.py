@@ -137,8 +137,8 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
             xr = get["baseline"][i, j, r] + get["shock"][i, j] - get["mu_group"][i, r]
             x = np.concatenate([xr, xq])
             one = np.ones((T, T))
-            I = np.eye(T)
-            cov = np.block([[sb**2 * one + ss**2 * I, ss**2 * I], [ss**2 * I, sb**2 * one + (ss**2 + se**2) * I]])
+            eye = np.eye(T)
+            cov = np.block([[sb**2 * one + ss**2 * eye, ss**2 * eye], [ss**2 * eye, sb**2 * one + (ss**2 + se**2) * eye]])
         else:
             x = xq
             cov = sb**2 * np.ones((T, T)) + se**2 * np.eye(T)

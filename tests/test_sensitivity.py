@@ -95,8 +95,8 @@ def test_log_prior_matches_pymc_densities(demo_default):
     assert "z_baseline" not in lp and "z_tau" not in lp
 
 
-@pytest.mark.parametrize("p,l,code", [(0.1, 0.1, "prior_data_conflict"), (0.1, 0.01, "prior_dominates"),
+@pytest.mark.parametrize("p,lik,code", [(0.1, 0.1, "prior_data_conflict"), (0.1, 0.01, "prior_dominates"),
                                       (0.01, 0.2, "ok"), (0.01, 0.01, "weak_both"),
                                       (float("nan"), 0.1, "not_applicable")])
-def test_diagnosis_reading(p, l, code):
-    assert diagnosis(p, l)[0] == code
+def test_diagnosis_reading(p, lik, code):
+    assert diagnosis(p, lik)[0] == code

@@ -49,7 +49,7 @@ def bench_placebo(*, quick: bool = False, fresh: int | None = None) -> dict:
 
     fresh_s, compile_s = [], []
     comps = [int(c) for c in cells.comparisons][:n_fresh]
-    for i, c in enumerate(comps):
+    for c in comps:
         clear_cache()
         pc, _ = placebo_space_cells(cells, c)
         t1 = time.perf_counter()

@@ -59,7 +59,6 @@ def jt_loglik(d, *, m_r, m_q, sigma_r, sigma_q, sigma_shock, sigma_gap, xp=NP, w
     """
     s2 = sigma_shock**2
     A = sigma_r**2 * d["inv_n_r"] + s2
-    C = sigma_q**2 * d["inv_n_q"] + s2 + sigma_gap**2
     dr = d["ybar_r"] - m_r
     dq = d["ybar_q"] - m_q
     k = d["p_r"] * s2 / A

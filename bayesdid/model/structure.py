@@ -65,7 +65,7 @@ class GapStructure:
         out = asdict(self)
         out["meaning"] = (
             "gap noise follows a stationary AR(1) over periods within each jurisdiction, one correlation "
-            "rho shared by all, prior (rho + 1)/2 ~ Beta(%g, %g)" % (RHO_PRIOR["a"], RHO_PRIOR["b"])
+            f"rho shared by all, prior (rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})"
             if self.over_time == "persistent" else "gap noise independent over periods")
         return out
 

@@ -29,7 +29,6 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import ReportError
 from ..outputs import clean_leftovers, owner_tag
 from . import plots
 from .reader import CHECKS_COMMAND, FIT_COMMAND, SWEEP_COMMAND, RunFolder

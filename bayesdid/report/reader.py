@@ -99,7 +99,7 @@ class RunFolder:
             return
         fix = f"rerun `{CHECKS_COMMAND}`."
         body = _load(cp, fix)
-        self._same_data(body.get("identity") or {}, f"checks/checks.json", CHECKS_COMMAND)
+        self._same_data(body.get("identity") or {}, "checks/checks.json", CHECKS_COMMAND)
         self.checks = {}
         for name in CHECK_NAMES:
             if name in body:
