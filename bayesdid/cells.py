@@ -401,13 +401,9 @@ def _coverage(study: Study, cells: Cells) -> list[str]:
 
 def _gap_of(study: Study, cells: Cells):
     """The gap noise's structure over periods for this study (see :mod:`bayesdid.model.structure`)."""
-    from .model.structure import GapStructure, resolve_gap
+    from .model.structure import resolve_gap
 
     asked = study.model.gap_over_time
-    if study.model.family != "gaussian" and asked == "persistent":
-        return GapStructure(over_time="independent", requested=asked, fallback=(
-            f"the persistent (AR(1)) gap noise is built for the gaussian family only so far; family "
-            f"'{study.model.family}' fits its gap noise as independent over periods."))
     return resolve_gap(cells, asked, study.model.gap_drift, warn=False)  # warned when the model is fitted (run.analyse)
 
 

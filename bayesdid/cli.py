@@ -115,7 +115,8 @@ def cmd_demo(args, argv):
 
 
 #: The demo's short sweep: the base study and one variant with the effect prior at a tenth of the
-#: scale the fit used (does the answer lean on the prior?).
+#: scale the fit used (does the answer lean on the prior?); for a Gaussian study also
+#: :data:`DRIFT_VARIANT` (does it lean on parallel gap trends?).
 DEMO_SWEEP = """study = {study}
 title = "demo: does the answer lean on the effect prior?"
 
@@ -128,6 +129,17 @@ seed = {seed}
 [[variant]]
 label = "effect prior a tenth as wide"
 priors = {{ effect = {effect} }}
+"""
+
+#: The pooled gap drifts of ``model.gap_drift`` as a sweep variant: each jurisdiction's gap may drift
+#: linearly (adopters' drifts learned from their own pre-policy periods). It is run by the demo's sweep
+#: rather than by every ``analyze``: it is a second model structure (one more compile, about as long
+#: as the main fit's), which the demo pays once to show it while ``analyze`` keeps one compile;
+#: a study's own sweep file adds the same two lines (README, "Persistent shocks").
+DRIFT_VARIANT = """
+[[variant]]
+label = "pooled gap drifts (model.gap_drift)"
+model = { gap_drift = true }
 """
 
 
@@ -146,11 +158,15 @@ def _demo_steps(study, path, log, study_file, an=None):
     summary = json.loads((Path(path) / "summary.json").read_text())
     effect = 0.1 * float(summary["priors"]["effect"]["scale"])
     sp = study.sampler
+    text = DEMO_SWEEP.format(study=json.dumps(str(Path(study_file).resolve())), chains=sp.chains, draws=sp.draws,
+                             tune=sp.tune, seed=sp.seed, effect=effect)
+    drift = study.model.family == "gaussian" and not study.model.gap_drift
+    if drift:
+        text += DRIFT_VARIANT
     with tempfile.TemporaryDirectory() as tmp:
         f = Path(tmp) / "demo_sweep.toml"
-        f.write_text(DEMO_SWEEP.format(study=json.dumps(str(Path(study_file).resolve())), chains=sp.chains, draws=sp.draws,
-                                       tune=sp.tune, seed=sp.seed, effect=effect), encoding="utf-8")
-        say("demo: a short sweep (base and a tighter effect prior)")
+        f.write_text(text, encoding="utf-8")
+        say("demo: a short sweep (base, a tighter effect prior" + (", pooled gap drifts)" if drift else ")"))
         run_sweep(f, Path(path) / "sweep", executor="serial", log=log)
     _write_report_step(study, path)
 
@@ -350,7 +366,8 @@ def _add_calibration_options(b):
     c = b.add_argument_group("calibration (bayesdid bench calibration)")
     c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
     c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
-                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo")
+                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo; "
+                                           "bench persistence: copay_cap (default) or nurse_line")
     c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
                                  "(default runs/calibration-SCENARIO)")
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
@@ -369,7 +386,7 @@ def _add_calibration_options(b):
 
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
 _BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
-                  "weights": {"reps", "draws", "tune", "seed"},
+                  "weights": {"reps", "draws", "tune", "seed"}, "persistence": {"scenario"},
                   "panel": {"reps", "draws", "tune", "seed"}, "plan": {"reps", "workers", "cluster"}}
 
 
@@ -485,7 +502,7 @@ def build_parser() -> argparse.ArgumentParser:
     pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
     b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel, plan, compile")
+                                  "weights, panel, plan, compile, analyze")
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)

@@ -46,7 +46,8 @@ import numpy as np
 from . import cachedir
 from .version import __version__
 
-__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS"]
+__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS", "LOG_ENV",
+           "read_log"]
 
 #: Bump when the entry layout or the way models are compiled changes (compile flags, nutpie wrapper).
 FORMAT = 2
@@ -58,6 +59,10 @@ STATS = {"compiled": 0, "loaded": 0, "damaged": 0, "store_failed": 0}
 _IN_PROCESS: dict[str, tuple] = {}
 
 _ADDRESS = re.compile(r" at 0x[0-9a-fA-F]+")
+#: When this environment variable names a file, every model this process asks for appends one JSON
+#: line to it (see :func:`_log`); worker processes inherit it. The test suite sets it to find where
+#: its compile time goes.
+LOG_ENV = "BAYESDID_COMPILE_LOG"
 
 
 def _op_description(op) -> str:
@@ -284,6 +289,14 @@ def _assemble(model, payload: dict, functions: tuple):
     # As nutpie.compile_pymc_model does it: support points with a U(-1, 1) jitter of every free variable.
     ipf = make_initial_point_fn(model=model, overrides=None, default_strategy="support_point",
                                 jitter_rvs=set(model.free_RVs), return_transformed=True)
+    # The sizes of the free variables are baked into the machine code (nutpie's flat parameter vector).
+    # A graph whose sizes all live in data containers and dims has one fingerprint for every size, so
+    # check them: code for other sizes would read and write past the model's parameter vector.
+    point = ipf(0)
+    sizes = [tuple(np.shape(point[n])) for n in free_names]
+    if sizes != [tuple(int(d) for d in s) for s in shapes[:n_free]]:
+        raise DamagedEntry(f"it was compiled for other sizes of the model's variables ({dict(zip(free_names, sizes))} "
+                           "here)")
     ipf = ncp._rv_dict_to_flat_array_wrapper(ncp._wrap_with_lock(ipf), names=list(names[:n_free]),
                                              shapes=list(shapes[:n_free]))
     shared, var_keys = {}, {}
@@ -331,7 +344,17 @@ def _try_load(path: Path, key: str, material: dict, model):
     reported once, removed when possible, and None is returned so that the caller rebuilds."""
     if key in _IN_PROCESS:
         payload, functions = _IN_PROCESS[key]
-        return _assemble(model, payload, functions)
+        try:
+            return _assemble(model, payload, functions)
+        except DamagedEntry as exc:  # sizes differ under one fingerprint: compile this one anew
+            cachedir.warn_once(f"sizes:{key}", f"a compiled model of this process cannot be reused: {exc}. "
+                               "It is compiled again for these sizes.")
+            del _IN_PROCESS[key]
+            try:
+                path.unlink()
+            except OSError:
+                pass
+            return None
     if not path.is_file():
         return None
     try:
@@ -352,28 +375,89 @@ def _try_load(path: Path, key: str, material: dict, model):
     return compiled
 
 
+def _layout(model) -> dict:
+    """The shape-free structure of a model (names of its free variables) and the length of each dim."""
+    names = sorted(model.rvs_to_values[v].name for v in model.free_RVs)
+    dims = {}
+    for name in model.coords:
+        try:
+            dims[name] = int(model.dim_lengths[name].eval())
+        except Exception:  # noqa: BLE001 - a dim without a plain length is left out of the log
+            continue
+    return {"structure": hashlib.sha256(",".join(names).encode()).hexdigest()[:12], "free": names, "dims": dims}
+
+
+def _log(model, key: str, how: str, seconds: float) -> None:
+    """Append one JSON line to the file named by :data:`LOG_ENV` (nothing when it is unset or unwritable).
+
+    Fields: ``time``, ``pid``, ``test`` (pytest's current test, when run under pytest), ``key`` (the
+    cache key), ``how`` ("compiled", "loaded" from disk, or "in-process" when this process had it),
+    ``seconds`` (fingerprint, load or compile), ``structure`` (a digest of the free variables' names:
+    equal for models that differ only in sizes), ``free`` and ``dims`` (coordinate lengths).
+    """
+    target = os.environ.get(LOG_ENV)
+    if not target:
+        return
+    rec = {"time": time.time(), "pid": os.getpid(), "test": os.environ.get("PYTEST_CURRENT_TEST", "").split(" ")[0],
+           "key": key, "how": how, "seconds": round(seconds, 3), **_layout(model)}
+    try:
+        with open(target, "a", encoding="utf-8") as fh:  # one short write per line: appends do not interleave
+            fh.write(json.dumps(rec) + "\n")
+    except OSError:
+        pass
+
+
+def read_log(path) -> list[dict]:
+    """The records of a compile log (see :func:`_log`); lines cut short by a killed process are skipped."""
+    out = []
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError:
+        return out
+    for line in text.splitlines():
+        try:
+            out.append(json.loads(line))
+        except ValueError:
+            continue
+    return out
+
+
 def compile_cached(model, compile_fn) -> tuple[object, str]:
     """Load ``model``'s compiled form from the cache, or compile it with ``compile_fn`` and store it.
 
-    Returns ``(compiled, how)`` with ``how`` one of ``"loaded"`` or ``"compiled"``.
+    Returns ``(compiled, how)`` with ``how`` one of ``"loaded"`` or ``"compiled"``. With
+    :data:`LOG_ENV` set, each call is logged (:func:`_log`).
     """
+    t0 = time.perf_counter()
+    key = None
+    how = "failed"
+    try:
+        compiled, how, key = _compile_cached(model, compile_fn)
+        return compiled, ("compiled" if how == "compiled" else "loaded")
+    finally:
+        if os.environ.get(LOG_ENV):
+            _log(model, key or "", how, time.perf_counter() - t0)
+
+
+def _compile_cached(model, compile_fn) -> tuple[object, str, str]:
     cache = cachedir.current()
     key, material = fingerprint(model)
     path = cache.models / f"{key}.model"
+    in_process = key in _IN_PROCESS
     compiled = _try_load(path, key, material, model)
     if compiled is not None:
-        return compiled, "loaded"
+        return compiled, "in-process" if in_process else "loaded", key
     if not cache.writable:
         cachedir.warn_once("read-only", f"the compile cache folder {cache.path} cannot be written "
                            f"({cache.reason}): compiled models are kept in this process only, so every new "
                            "process compiles again (tens of seconds per model). Set BAYESDID_CACHE_DIR or "
                            "--cache-dir to a writable folder to keep them.")
-        return _compile(model, compile_fn, key, material, None), "compiled"
+        return _compile(model, compile_fn, key, material, None), "compiled", key
     with _locked(cache.models / f"{key}.lock"):
         compiled = _try_load(path, key, material, model)  # written by another process while we waited
         if compiled is not None:
-            return compiled, "loaded"
-        return _compile(model, compile_fn, key, material, path), "compiled"
+            return compiled, "loaded", key
+        return _compile(model, compile_fn, key, material, path), "compiled", key
 
 
 def _compile(model, compile_fn, key: str, material: dict, path: Path | None):

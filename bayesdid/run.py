@@ -143,6 +143,10 @@ def _sampled_as(spec) -> dict:
     if spec.fields:
         gap, shock = spec.fields
         out["gap_noise_deviations"] = "centred" if gap else "non-centred"
+        if spec.gap == "persistent":
+            out["gap_noise_deviations"] = (
+                ("AR(1) paths as parameters (centred)" if gap else "AR(1) paths from non-centred innovations")
+                + "; each path's mean given its deviations folded into the target level")
         if spec.design == "DDD":
             out["shock_deviations"] = "centred" if shock else "non-centred"
     return out

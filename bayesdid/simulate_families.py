@@ -5,6 +5,7 @@ The data-generating process is the non-Gaussian model of :mod:`bayesdid.model.fa
     eta[j,g,t] = b[j,g] + a[t] + s[j,t] + h[t] [g = target] + e[j,t] [g = target] + tau D[j,g,t]
                  + x_i' theta
 
+(e independent over periods, or a stationary AR(1) with ``gap_rho``)
 with binomial (logit) or Poisson / cell-gamma negative binomial (log, exposure offset) rows. The
 truth includes the natural-scale effects over the treated cells computed from the true linear
 predictors with and without the policy, weighted by each record's trials or exposure. Nothing here
@@ -41,6 +42,7 @@ class CountScenario:
     shock_sd: float = 0.05
     group_period_sd: float = 0.03
     gap_sd: float = 0.03
+    gap_rho: float = 0.0  # AR(1) correlation of the gap noise over periods within a region (marginal sd gap_sd)
     covariates: bool = True  # sex (2 levels) and risk band (3 levels), discrete
     theta: tuple = (0.25, 0.4, 0.9)  # sex = male, risk = mid, risk = high
     continuous: bool = False  # add a continuous covariate 'score' (coefficient 0.3)
@@ -62,6 +64,9 @@ def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = N
     s = sc.shock_sd * rng.standard_normal((J, T)) if G == 2 else np.zeros((J, T))
     h = sc.group_period_sd * rng.standard_normal(T)
     e = sc.gap_sd * rng.standard_normal((J, T))
+    if sc.gap_rho:  # stationary AR(1) over periods from the same normals (rho = 0 leaves them as drawn)
+        for t in range(1, T):
+            e[:, t] = sc.gap_rho * e[:, t - 1] + np.sqrt(1.0 - sc.gap_rho**2) * e[:, t]
     eta0 = b[:, :, None] + a[None, None, :] + s[:, None, :]
     eta0[:, tg, :] += e
     if G == 2:

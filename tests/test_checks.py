@@ -253,3 +253,16 @@ def test_run_checks_rejects_unknown_name():
     study, frame, _ = sim(1)
     with pytest.raises(BayesDidError, match="unknown check 'slopes'.*choose one of"):
         run_checks(study, cells=collapse(study, frame), only="slopes")
+
+
+def test_placebo_fits_sample_at_most_placebo_draws():
+    """Placebo-in-space fits use the study's chains and seed with draws and tune capped at PLACEBO_DRAWS
+    (ranks and p-values measured unchanged on both demo cases, see bayesdid/checks/placebo.py)."""
+    from bayesdid.checks.placebo import PLACEBO_DRAWS, placebo_settings
+
+    long = SamplerSettings(chains=4, draws=2000, tune=1000, seed=7)
+    ps = placebo_settings(long)
+    assert (ps.chains, ps.draws, ps.tune, ps.seed) == (4, PLACEBO_DRAWS, PLACEBO_DRAWS, 7)
+    assert placebo_settings(FAST) == FAST  # shorter than the cap: the study's own
+    assert placebo_settings(long, None) == long
+    assert placebo_settings(long, 500) == SamplerSettings(chains=4, draws=500, tune=500, seed=7)

@@ -73,9 +73,11 @@ def test_replicated_gap_matches_the_family_by_simulation(flat):
     """The replicated log-rate gap's spread equals what Poisson sampling plus the gap noise gives.
 
     Reference: the delta-method variance of log(Y/E) for Poisson Y with mean mu is 1/mu (common
-    practice); the gap of two cells adds the two and the gap noise's variance sigma_gap^2 (1 - 1/T)
-    of a zero-sum deviation. Tolerance 15%: the Monte Carlo error of a variance over 600 draws is
-    about sqrt(2/600) = 6%, plus the delta method's error at 60 to 90 events.
+    practice); the gap of two cells adds the two and the gap noise's variance at period t of a
+    deviation from the path's mean, sigma_gap^2 (A R A')_tt with R the AR(1) correlation rho^|t-s|
+    and A = I - 11'/T (the persistent default; sigma_gap^2 (1 - 1/T) at rho = 0), averaged over draws.
+    Tolerance 15%: the Monte Carlo error of a variance over 600 draws is about sqrt(2/600) = 6%, plus
+    the delta method's error at 60 to 90 events.
     """
     _, cells, scales = flat
     fit = fit_cells(cells, scales, SETTINGS, family="poisson")
@@ -85,7 +87,11 @@ def test_replicated_gap_matches_the_family_by_simulation(flat):
     assert obs.shape == (5,) and exp_.shape == rep.shape == (600, 5)
     resid = rep - exp_
     T = cells.shape[2]
-    sg2 = np.mean(fit.draws("sigma_gap") ** 2) * (1 - 1 / T)
+    assert fit.spec.gap == "persistent"
+    k = np.abs(np.subtract.outer(np.arange(T), np.arange(T)))
+    A = np.eye(T) - 1.0 / T
+    R = fit.draws("rho")[:, None, None] ** k  # (S, T, T)
+    sg2 = np.mean(fit.draws("sigma_gap")[:, None] ** 2 * np.einsum("ts,nsu,tu->nt", A, R, A), axis=0)[per]
     ev = cells.sum_y[0][:, per]  # observed events of both cells, close to their expected counts
     predicted = (1 / ev).sum(axis=0) + sg2
     got = resid.var(axis=0)

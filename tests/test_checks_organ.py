@@ -56,4 +56,5 @@ def test_organ_all_checks_run(organ_report):
     assert res["placebo_time"].threshold["lag"] == 1
     sp = res["placebo_space"]
     assert sp.details["n_placebos"] == 26
+    assert (sp.threshold["placebo_draws"], sp.threshold["placebo_tune"]) == (300, 300)  # the study's 400 capped
     assert 1 <= sp.details["rank"] <= 27 and 1 / 27 <= sp.details["permutation_p"] <= 1

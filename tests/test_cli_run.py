@@ -26,14 +26,27 @@ def demo_run(tmp_path_factory):
 def test_demo_writes_complete_run_folder(demo_run, capsys):
     code, out = demo_run
     assert code == 0
-    # the demo runs the whole analysis: the fit, every check, a two-variant sweep and the report
+    # the demo runs the whole analysis: the fit, every check, a three-variant sweep and the report
     assert sorted(p.name for p in out.iterdir()) == ["checks", "manifest.json", "posterior.nc", "report.html",
                                                      "summary.json", "sweep", "trends.csv"]
     checks = json.loads((out / "checks" / "checks.json").read_text())
     assert all(checks[c]["status"] in ("ok", "flag", "not applicable")
                for c in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"))
     verdict = json.loads((out / "sweep" / "verdict.json").read_text())
-    assert verdict["status"] == "ok" and len(verdict["rows"]) == 2
+    assert verdict["status"] == "ok" and len(verdict["rows"]) == 3
+    # the pooled-drift variant (a Gaussian case) ran as its own structure and shows in the report
+    drift = next(r for r in verdict["rows"] if r["label"] == "pooled gap drifts (model.gap_drift)")
+    sweep_rows = {r["label"]: r for r in json.loads((out / "sweep" / "manifest.json").read_text())["variants"]}
+    vdir = out / "sweep" / "variants" / drift["id"]
+    vs = json.loads((vdir / "summary.json").read_text())
+    assert vs["model"]["gap_noise"]["drift"] is True and "drift_spread" in vs["priors"]
+    assert drift["effect_mean"] == pytest.approx(vs["effect"]["mean"])
+    base = verdict["rows"][0]
+    base_sd = json.loads((out / "sweep" / "variants" / base["id"] / "summary.json").read_text())["effect"]["sd"]
+    assert drift["shift_sd"] == pytest.approx(abs(drift["effect_mean"] - base["effect_mean"]) / base_sd, rel=1e-6)
+    html = (out / "report.html").read_text()
+    assert "pooled gap drifts (model.gap_drift)" in html and "shift from the base" in html
+    assert "pooled gap drifts (model.gap_drift)" in sweep_rows
     s = json.loads((out / "summary.json").read_text())
     for key in ("mean", "median", "sd", "eti_90", "eti_95", "hdi_90", "prob_gt_0", "prob_lt_0",
                 "prob_beyond_threshold"):

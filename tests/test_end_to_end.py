@@ -52,6 +52,12 @@ def test_every_command_succeeds_and_every_section_has_content(name, e2e_run):
             continue
         assert "<img " in secs[anchor], (name, anchor)
     assert "tight effect prior" in secs["sensitivity"]
+    # every family fits the persistent (AR(1)) gap noise by default (8 periods, first start at index 5)
+    # and says so: summary.json's gap-noise form, rho's posterior, and the report's sentence
+    s = json.loads((case["run"] / "summary.json").read_text())
+    assert s["model"]["gap_noise"]["over_time"] == "persistent" and not s["model"]["gap_noise"]["fallback"]
+    assert -1 < s["persistence"]["rho"]["mean"] < 1
+    assert html.escape(s["persistence"]["sentence"][:40], quote=True) in text
 
 
 @pytest.mark.parametrize("name", MATRIX)

@@ -11,7 +11,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-from scipy import integrate, special, stats
+from scipy import integrate, linalg, special, stats
 
 from bayesdid import make_study
 from bayesdid.cells import collapse
@@ -197,11 +197,11 @@ def test_gaussian_with_covariates_collapsed_equals_rows(design):
 
 def _fake_fit(model, cells, family, rng):
     """A one-draw 'fit' at a random point of the model, read through PyMC's own graph."""
-
     ip = model.initial_point()
     point = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ip.items()}
     names = [n for n in ("baseline", "period_effect", "group_period_effect", "tau_adopter", "gap", "shock",
-                         "theta", "phi", "sigma", "sigma_gap", "sigma_shock") if n in model.named_vars]
+                         "theta", "phi", "sigma", "sigma_gap", "sigma_shock", "rho", "z_gap_innovation",
+                         "gap_path") if n in model.named_vars]
     outs = model.replace_rvs_by_values([model[n] for n in names])  # evaluate at the point, not sample
     fn = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore", point_fn=True)
     vals = dict(zip(names, fn(point)))
@@ -213,22 +213,151 @@ def _fake_fit(model, cells, family, rng):
     return fake, float(logp)
 
 
-@pytest.mark.parametrize("family", ["binomial", "poisson", "negbinomial", "gaussian"])
-def test_numpy_twin_matches_pytensor_graph(family):
-    """The model's observed-variable log density (PyTensor) equals the numpy twin used for draws."""
+@pytest.mark.parametrize("family,gap", [("binomial", "independent"), ("poisson", "independent"),
+                                        ("negbinomial", "independent"), ("gaussian", "independent"),
+                                        ("binomial", "persistent"), ("poisson", "persistent"),
+                                        ("negbinomial", "persistent")])
+@pytest.mark.parametrize("gap_centred", [False, True])
+def test_numpy_twin_matches_pytensor_graph(family, gap, gap_centred, monkeypatch):
+    """The model's observed-variable log density (PyTensor) equals the numpy twin used for draws; with
+    persistent gap noise the graph's gap deviations also equal the numpy AR(1) twin
+    (:func:`families.ar1_gap_deviations`) of the point's rho, sigma_gap and innovations."""
     rng = np.random.default_rng(21)
+    if gap_centred and family == "gaussian":
+        pytest.skip("the gaussian family has no latent gap field")
+    monkeypatch.setattr(families, "fields_centred", lambda cells, fam: (gap_centred, gap_centred))
     if family == "gaussian":
         frame, truth = simulate(Scenario(jurisdictions=5, periods=4, starts={0: 2}, rows_per_cell=6), 4)
         frame["age"] = rng.normal(40, 8, len(frame))
         cells = collapse(_study(frame, truth, family, "age"), frame)
     else:
-        frame, truth = simulate_family(CountScenario(family=family, jurisdictions=5, periods=4,
-                                                     starts={0: 2, 1: 3}, rows_per_cell=8), 9)
+        # persistent needs 3 pre-policy periods (else the independent form is fitted)
+        T, starts = (4, {0: 2, 1: 3}) if gap == "independent" else (6, {0: 3, 1: 4})
+        frame, truth = simulate_family(CountScenario(family=family, jurisdictions=5, periods=T,
+                                                     starts=starts, rows_per_cell=8), 9)
         kw = {"exposure": "exposure"} if family != "binomial" else {}
         cells = collapse(_study(frame, truth, family, "C(sex) + C(risk)", **kw), frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
-    model, _ = build_model(cells, scales, family)
+    model, spec = build_model(cells, scales, family)
+    assert spec.gap == gap
     fake, logp = _fake_fit(model, cells, family, rng)
     ll = pointwise_loglik(fake)
     assert ll.shape == (1, cells.shape[0], cells.shape[2])
     assert ll.sum() == pytest.approx(logp, rel=1e-9)
+    if gap == "persistent":
+        sg, rho, gap_ = fake.draws("sigma_gap"), fake.draws("rho"), fake.draws("gap")
+        if gap_centred:
+            path = fake.draws("gap_path")
+            np.testing.assert_allclose(gap_, path - path.mean(axis=-1, keepdims=True), rtol=1e-12, atol=1e-14)
+        else:
+            twin = families.ar1_gap_deviations(sg, rho, fake.draws("z_gap_innovation"))
+            np.testing.assert_allclose(gap_, twin, rtol=1e-10, atol=1e-14)
+
+
+def _ar1_cov(T, sg, rho):
+    """Stationary AR(1) covariance sg^2 rho^|t-s| (scipy.linalg.toeplitz; textbook autocovariance)."""
+    return sg**2 * linalg.toeplitz(rho ** np.arange(T))
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.6, -0.4, 0.95])
+def test_ar1_factor_is_the_recursion_and_the_stationary_covariance(rho):
+    """numpy and PyTensor factors agree; L z follows e[t] = rho e[t-1] + sqrt(1 - rho^2) z[t] from
+    e[0] = z[0]; L L' is the stationary AR(1) correlation rho^|t-s| (textbook)."""
+    import pytensor.tensor as pt
+
+    T = 7
+    L = families.ar1_factor(np.array(rho), T)
+    np.testing.assert_allclose(L @ L.T, _ar1_cov(T, 1.0, rho), atol=1e-12)
+    z = np.random.default_rng(3).standard_normal(T)
+    e = np.empty(T)
+    e[0] = z[0]
+    for t in range(1, T):
+        e[t] = rho * e[t - 1] + np.sqrt(1 - rho**2) * z[t]
+    np.testing.assert_allclose(L @ z, e, rtol=1e-12, atol=1e-14)
+    r = pt.dscalar("r")
+    np.testing.assert_allclose(families.ar1_factor(r, T, families.PT).eval({r: rho}), L, rtol=1e-12, atol=1e-15)
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.5, 0.9, -0.6])
+def test_ar1_mean_folding_is_the_exact_joint_law(rho):
+    """The model's construction of an AR(1) path's mean and deviations has the true joint law.
+
+    Construction (bayesdid.model.families): d = e - mean(e) with e = sg L z, z ~ N(0, I_T); the mean
+    drawn from its conditional given d, shift(z) + sqrt(v) xi, xi ~ N(0, 1). Both sides are linear in
+    Gaussians, so the check is exact on covariances: B B' of the construction equals A Sigma A' of the
+    true path (A: the mean row over the centring matrix; Sigma the AR(1) covariance). Reference:
+    Gaussian conditioning (textbook), scipy.linalg.toeplitz for Sigma."""
+    T, sg = 6, 0.7
+    Z = np.eye(T)  # each row one unit innovation
+    E = sg * Z @ families.ar1_factor(np.array(rho), T).T
+    shift, v = families.ar1_mean_given_deviations(Z, E, sg, rho)
+    D = E - E.mean(axis=1, keepdims=True)
+    B = np.zeros((T + 1, T + 1))  # rows: (mean, d_0..d_T-1); columns: (z_0..z_T-1, xi)
+    B[0, :T], B[0, T] = shift, np.sqrt(v)
+    B[1:, :T] = D.T
+    A = np.vstack([np.full((1, T), 1.0 / T), np.eye(T) - 1.0 / T])
+    np.testing.assert_allclose(B @ B.T, A @ _ar1_cov(T, sg, rho) @ A.T, atol=1e-12)
+    if rho == 0.0:  # the independent folding: no shift, variance sg^2 / T
+        assert np.allclose(shift, 0.0, atol=1e-15) and v == pytest.approx(sg**2 / T, rel=1e-14)
+
+
+def test_fresh_ar1_deviations_have_the_ar1_law():
+    """The numpy twin that draws fresh gap noise (replicate_gap_path) gives deviations with covariance
+    A Sigma A' (as above); tolerance 4 Monte Carlo sd of a sample covariance over S draws,
+    sqrt((s_ii s_jj + s_ij^2) / S) (Wishart variance, textbook)."""
+    rng = np.random.default_rng(8)
+    S, T, sg, rho = 40000, 8, 0.3, 0.7
+    d = families.ar1_gap_deviations(np.full(S, sg), np.full(S, rho), rng.standard_normal((S, T)))
+    A = np.eye(T) - 1.0 / T
+    want = A @ _ar1_cov(T, sg, rho) @ A.T
+    got = d.T @ d / S
+    mc = np.sqrt((np.outer(np.diag(want), np.diag(want)) + want**2) / S)
+    assert np.all(np.abs(got - want) < 4 * mc)
+    np.testing.assert_allclose(d.sum(axis=1), 0.0, atol=1e-12)
+
+
+@pytest.mark.parametrize("gap_centred", [False, True])
+def test_rho_zero_equals_the_independent_field_log_density(gap_centred, monkeypatch):
+    """At rho = 0 the persistent model's joint log density is the independent model's exactly (to
+    rounding), at matched points, after removing the two terms the persistent form adds: rho's own
+    prior and the one direction of the gap innovations that reaches no likelihood (at rho = 0 the
+    jurisdiction mean of the innovations; centred: of the path). Matched points: the same values of
+    every shared parameter; innovations z = z_gap Q' + xi 1/sqrt(T) (Q the zero-sum basis)."""
+    from scipy import stats as st
+
+    from bayesdid.model.structure import GapStructure
+    from bayesdid.model.terms import zero_sum_basis
+
+    monkeypatch.setattr(families, "fields_centred", lambda cells, fam: (gap_centred, gap_centred))
+    frame, truth = simulate_family(CountScenario(family="poisson", jurisdictions=5, periods=6,
+                                                 starts={0: 3, 1: 4}, rows_per_cell=8), 9)
+    cells = collapse(_study(frame, truth, "poisson", "C(sex) + C(risk)", exposure="exposure"), frame)
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
+    J, _, T = cells.shape
+    cells.extra["gap"] = GapStructure(over_time="independent", requested="independent")
+    ind, _ = build_model(cells, scales, "poisson")
+    cells.extra["gap"] = GapStructure()
+    per, spec = build_model(cells, scales, "poisson")
+    assert spec.gap == "persistent"
+    rng = np.random.default_rng(5)
+    p_ind = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ind.initial_point().items()}
+    Q = zero_sum_basis(T)
+    xi = rng.normal(size=J)
+    p_per = {k: v for k, v in p_ind.items() if k not in ("z_gap", "gap_basis")}
+    p_per["rho_unit_logodds__"] = np.array(0.0)  # rho_unit = 1/2: rho = 0
+    sg = float(np.exp(p_ind["sigma_gap_log__"]))
+    if gap_centred:
+        p_per["gap_path"] = p_ind["gap_basis"] @ Q.T + xi[:, None] / np.sqrt(T)
+        extra = st.norm.logpdf(xi, 0.0, sg).sum()  # |path|^2 = |basis|^2 + xi^2
+    else:
+        p_per["z_gap_innovation"] = p_ind["z_gap"] @ Q.T + xi[:, None] / np.sqrt(T)
+        extra = st.norm.logpdf(xi).sum()
+    assert set(p_per) == set(per.initial_point())
+    total_ind = float(ind.compile_logp()(p_ind))
+    total_per = float(per.compile_logp()(p_per))
+    rho_term = float(per.compile_logp(vars=[per["rho_unit"]])(p_per))
+    assert total_per - rho_term - extra == pytest.approx(total_ind, rel=1e-12, abs=1e-9)
+    # and rho away from 0 changes it (the test can fail)
+    p_per["rho_unit_logodds__"] = np.array(1.0)
+    assert abs(float(per.compile_logp()(p_per)) - float(per.compile_logp(vars=[per["rho_unit"]])(p_per))
+               - extra - total_ind) > 1e-3

@@ -44,7 +44,8 @@ LAYERS = [
     ("interface", ["bayesdid", "bayesdid.notebook", "bayesdid.cli", "bayesdid.bench", "bayesdid.bench.calibration", "bayesdid.bench.collapse",
                    "bayesdid.bench.crosscheck", "bayesdid.bench.families", "bayesdid.bench.large_child",
                    "bayesdid.bench.panel", "bayesdid.bench.placebo", "bayesdid.bench.sweep", "bayesdid.bench.weights",
-                   "bayesdid.bench.compile", "bayesdid.bench.persistence", "bayesdid.bench.plan"]),
+                   "bayesdid.bench.compile", "bayesdid.bench.persistence", "bayesdid.bench.plan",
+                   "bayesdid.bench.analyze"]),
 ]
 FLOOR = {m: i for i, (_, mods) in enumerate(LAYERS) for m in mods}
 

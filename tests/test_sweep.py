@@ -293,8 +293,11 @@ def test_stale_lock_is_taken_over_but_a_live_one_refuses(tmp_path, serial_run):
 def test_case_file_sweep_validates():
     plan = load_sweep(ROOT / "case_files" / "copay_cap" / "sweep.toml")
     labels = [v.label for v in plan.variants]
-    # base + 2 x 2 prior grid + 2 comparison subsets + 1 option + 1 placebo
-    assert len(plan.variants) == 9 and labels[0] == "base" and "spending in levels" in labels
+    # base + 2 x 2 prior grid + 2 comparison subsets + 1 option + 1 placebo + pooled gap drifts
+    assert len(plan.variants) == 10 and labels[0] == "base" and "spending in levels" in labels
+    drift = next(v for v in plan.variants if v.label == "pooled gap drifts (model.gap_drift)")
+    assert drift.overrides == {"model": {"gap_drift": True}} and drift.raw["model"]["gap_drift"] is True
+    assert not plan.base.model.gap_drift
     assert plan.base.sampler.draws == 500
     assert any(v.overrides.get("drop") == ["Ambermoor", "Bellcrest"] for v in plan.variants)
 

@@ -23,6 +23,7 @@ REGISTRY = {
     "panel": ("bayesdid.bench.panel", "bench_panel"),
     "plan": ("bayesdid.bench.plan", "bench_plan"),
     "compile": ("bayesdid.bench.compile", "bench_compile"),
+    "analyze": ("bayesdid.bench.analyze", "bench_analyze"),
 }
 
 

@@ -11,13 +11,31 @@ noise ``e`` cannot be integrated out in closed form; they stay latent fields,
     s[j,t] ~ Normal(0, sigma_s[j]^2)      (DDD only; a DiD has no within-jurisdiction contrast;
                                            sigma_s = sigma_shock for comparisons, the period scale
                                            for adopters, whose reference group identifies them),
-    e[j,t] ~ Normal(0, sigma_gap^2).
+    e[j,t] ~ Normal(0, sigma_gap^2)       (gap_over_time = "independent"), or, by default, a
+                                           stationary AR(1) within each jurisdiction (below).
 
 Each field's mean over periods enters the likelihood only beside the baseline, so it is integrated
 into the baselines exactly (they become the identified levels b + mean_t s (+ mean_t e on the target
 group)) and the fields keep their zero-sum deviations; each part is centred or non-centred by a
 data rule (:func:`fields_centred`, ``baseline_centred``). Nothing of the model changes, only the
 coordinates the sampler moves in.
+
+**Persistent gap noise** (:mod:`bayesdid.model.structure`; the shock stays independent). Per
+jurisdiction ``e = sigma_gap L z``, ``z ~ Normal(0, I_T)`` (non-centred innovations), with ``L`` the
+lower-triangular AR(1) factor ``L[t,s] = rho^(t-s) w_s`` (``w_0 = 1``, ``w_s = sqrt(1 - rho^2)``):
+``e[0] = sigma_gap z[0]``, ``e[t] = rho e[t-1] + sigma_gap sqrt(1 - rho^2) z[t]``, written as one
+broadcast product (no loop over periods in the graph). Under AR(1) the mean ``ebar`` of the path is
+no longer independent of its deviations ``d = e - ebar``, so the folding changes but stays exact:
+the map ``z -> d`` has one null direction, ``n = L^-1 1 ∝ (1, c, ..., c)``, ``c = sqrt((1 - rho) /
+(1 + rho))``, and since ``ebar = a'z`` with ``a = L'1 / T`` and ``a'n = sigma_gap``,
+
+    ebar | d ~ Normal(ebar(z) - sigma_gap n'z / |n|^2,  sigma_gap^2 / |n|^2),  |n|^2 = 1 + (T-1) c^2.
+
+The target level is folded with this conditional law (its mean shifted, its variance
+``sigma_gap^2 / |n|^2`` in place of ``sigma_gap^2 / T``), and the component of z along n reaches no
+likelihood (a prior-only standard normal). At rho = 0, n ∝ 1 and this is the independent folding
+exactly. When the data pin the gap (:func:`fields_centred`), the path e itself is the parameter
+(the AR(1) density, z = L^-1 e by differences) and the same conditional law is used.
 
 The gap noise is what the effect is judged against, and it gives every treated cell over-dispersion
 on the link scale. The likelihood of each family is in :mod:`.binomial` and :mod:`.counts`; it is
@@ -35,10 +53,12 @@ from scipy import special
 
 from ..cells import Cells
 from . import binomial, counts
+from .structure import RHO_PRIOR
 from .terms import CENTRE_MARGIN, design_data, fields_centred, hierarchical_mean, mean_from_draws, small_matmul, zero_sum_basis  # noqa: F401 (fields_centred, CENTRE_MARGIN: kept importable here)
 
 __all__ = ["FAMILY_BUILDERS", "build_family", "data_arrays", "record_loglik", "record_eta_draws",
-           "pointwise_loglik", "inverse_link", "NP", "PT"]
+           "pointwise_loglik", "inverse_link", "NP", "PT", "ar1_factor", "ar1_mean_given_deviations",
+           "ar1_gap_deviations"]
 
 
 def _np_segment_sum(v, index, size):
@@ -63,6 +83,54 @@ NP = SimpleNamespace(log=np.log, exp=np.exp, softplus=lambda x: np.logaddexp(0.0
                      take_last=lambda a, i: a[..., i])
 PT = SimpleNamespace(log=pt.log, exp=pt.exp, softplus=pt.softplus, expit=pt.sigmoid, gammaln=pt.gammaln,
                      segment_sum=_pt_segment_sum, take_last=lambda a, i: a[i])
+
+
+def ar1_factor(rho, T: int, xp=NP):
+    """The AR(1) factor ``L[t,s] = rho^(t-s) w_s`` for t >= s (0 above), ``w_0 = 1``,
+    ``w_s = sqrt(1 - rho^2)``, so that ``sigma L z`` is a stationary AR(1) path of marginal sd sigma
+    for ``z ~ Normal(0, I)``. numpy: ``rho`` of any shape, result (..., T, T); PyTensor: scalar rho."""
+    lag = np.subtract.outer(np.arange(T), np.arange(T))
+    lower = (lag >= 0).astype(float)
+    idx = np.maximum(lag, 0)
+    if xp is PT:
+        # one elementwise expression of constants and rho (PyTensor fuses it into a single op); the
+        # powers' gradient k rho^(k-1) is finite except at rho = 0 exactly, which rho's Beta prior
+        # never proposes
+        first = np.zeros((T, T))
+        first[:, 0] = 1.0
+        return (rho ** pt.as_tensor(idx.astype(float)) * pt.as_tensor(lower)
+                * (pt.as_tensor(first) + pt.as_tensor(1.0 - first) * pt.sqrt(1.0 - rho * rho)))
+    rho = np.asarray(rho, dtype=float)
+    pw = rho[..., None] ** np.arange(T)
+    w = np.concatenate([np.ones(rho.shape + (1,)), np.repeat(np.sqrt(1.0 - rho * rho)[..., None], T - 1, -1)], -1)
+    return pw[..., idx] * lower * w[..., None, :]
+
+
+def ar1_mean_given_deviations(z, e, sigma_gap, rho, xp=NP):
+    """Conditional law of a path's mean given its zero-sum deviations (module docstring).
+
+    ``z`` (..., J, T) the innovations, ``e = sigma_gap L z`` the path; ``sigma_gap`` and ``rho``
+    broadcast against (..., J). Returns (mean shift (..., J), variance) of ``ebar | e - ebar``.
+    """
+    T = e.shape[-1]
+    c2 = (1.0 - rho) / (1.0 + rho)
+    n2 = 1.0 + (T - 1) * c2
+    c = pt.sqrt(c2) if xp is PT else np.sqrt(c2)
+    nz = z[..., 0] + c * z[..., 1:].sum(axis=-1)
+    return e.mean(axis=-1) - sigma_gap * nz / n2, sigma_gap**2 / n2
+
+
+def ar1_gap_deviations(sigma_gap, rho, z):
+    """numpy: zero-sum deviations over periods of AR(1) paths ``sigma_gap L(rho) z``.
+
+    ``sigma_gap`` and ``rho`` (S,), ``z`` (S, ..., T): returns (S, ..., T)."""
+    sg, rho = np.asarray(sigma_gap, dtype=float), np.asarray(rho, dtype=float)
+    L = ar1_factor(rho, z.shape[-1])  # (S, T, T)
+    extra = z.ndim - 2
+    L = L.reshape(L.shape[:1] + (1,) * extra + L.shape[1:])
+    e = sg.reshape(sg.shape + (1,) * (extra + 1)) * (z[..., None, :] * L).sum(axis=-1)
+    return e - e.mean(axis=-1, keepdims=True)
+
 
 FAMILY_BUILDERS = ("binomial", "poisson", "negbinomial")
 #: Record arrays every non-Gaussian model reads (``pm.Data`` names; shapes follow the data).
@@ -124,12 +192,34 @@ def inverse_link(family: str, eta, xp=NP):
     return binomial.inverse_link(eta, xp) if family == "binomial" else counts.inverse_link(eta, xp)
 
 
-def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str, **terms) -> pm.Model:
+def _ar1_innovations(path, sigma_gap, rho):
+    """PyTensor: the innovations z of AR(1) paths e (J, T) (``e = sigma_gap L z`` inverted by differences)."""
+    s = pt.sqrt(1.0 - rho * rho)
+    z0 = path[:, :1] / sigma_gap
+    rest = (path[:, 1:] - rho * path[:, :-1]) / (sigma_gap * s)
+    return pt.concatenate([z0, rest], axis=1)
+
+
+def _ar1_path_logp(value, sigma_gap, rho):
+    """Log density of stationary AR(1) paths (J, T), marginal sd sigma_gap, as elementwise terms: that of
+    the innovations minus log |det sigma_gap L| = T log sigma_gap + (T - 1)/2 log(1 - rho^2) per path
+    (spread as log sigma_gap on every period and the second part on periods 1..T-1)."""
+    z = _ar1_innovations(value, sigma_gap, rho)
+    later = pt.concatenate([pt.zeros((1,)), pt.ones((value.shape[-1] - 1,))])
+    return (-0.5 * z * z - 0.5 * np.log(2 * np.pi) - pt.log(sigma_gap)
+            - 0.5 * pt.log(1.0 - rho * rho) * later[None, :])
+
+
+def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str, *, gap: str = "independent",
+                 **terms) -> pm.Model:
     """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``.
 
+    ``gap`` is ``"persistent"`` (AR(1) gap noise over periods, module docstring; ``rho = 2 u - 1``,
+    ``u ~ Beta(prior_rho_a, prior_rho_b)`` as in the Gaussian family) or ``"independent"``.
     ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean` (``effects="event_time"`` with its
     event times: one effect per event time, for the event-time check)."""
     J, G, T = cells.shape
+    persistent = gap == "persistent"
     arr = data_arrays(cells, family)
     cov = cells.extra.get("covariates")
     K = 0 if cov is None else len(cov["names"])
@@ -146,16 +236,31 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
             # Only b[j,g] + mean_t s[j,t] (+ mean_t e[j,t] on the target group) reaches the
             # likelihood, so the per-jurisdiction means of the two fields are integrated into the
             # baselines exactly: per jurisdiction the pair of levels is bivariate normal with
-            #   var_r = v_b + v_s / T,  cov = v_s / T,  var_q = v_b + v_s / T + v_e / T,
-            # written as level_r ~ N(mu_r, var_r), level_q | level_r ~ N(mu_q + k (level_r - mu_r),
-            # var_q - k cov), k = cov / var_r. The fields keep only their zero-sum deviations over
+            #   var_r = v_b + v_s / T,  cov = v_s / T,  var_q = v_b + v_s / T + v_e,
+            # written as level_r ~ N(mu_r, var_r), level_q | level_r ~ N(mu_q + shift + k (level_r - mu_r),
+            # var_q - k cov), k = cov / var_r; independent gap noise: v_e = sigma_gap^2 / T, shift 0;
+            # persistent: the law of the path's mean given its deviations (module docstring). The fields keep only their zero-sum deviations over
             # periods, s_dev = Q u with u ~ N(0, v_s I) (Q orthonormal, zero-sum), the exact law of
             # s - mean(s). Without this the mean of a field and the baseline form a ridge that only the
             # priors close. "baseline" then reports these identified levels.
             sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
             v_b = scale_j[:, 0] ** 2
-            v_e = sigma_gap**2
             fields["sigma_gap"] = sigma_gap
+            if persistent:
+                # the AR(1) path and the conditional law of its mean given its deviations (docstring)
+                u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))
+                rho = pm.Deterministic("rho", 2.0 * u - 1.0)
+                if gap_c:
+                    path = pm.CustomDist("gap_path", sigma_gap, rho, logp=_ar1_path_logp, shape=(J, T),
+                                         support_point=lambda rv, size, *a: pt.zeros((J, T)))
+                    zz = _ar1_innovations(path, sigma_gap, rho)
+                else:
+                    zz = pm.Normal("z_gap_innovation", 0.0, 1.0, shape=(J, T))
+                    path = sigma_gap * (zz[:, None, :] * ar1_factor(rho, T, PT)[None, :, :]).sum(axis=-1)
+                shift, v_e = ar1_mean_given_deviations(zz, path, sigma_gap, rho, PT)
+                fields["gap_deviations"] = path - path.mean(axis=1, keepdims=True)
+            else:
+                shift, v_e = 0.0, sigma_gap**2 / T
             if ddd:
                 sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
                 # As in the Gaussian family: adopters' own shocks are identified by their reference
@@ -166,26 +271,27 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                 v_s = sd_s**2
                 var_r = v_b + v_s / T
                 cov = v_s / T
-                var_q = var_r + v_e / T
+                var_q = var_r + v_e
                 k = cov / var_r
                 sd_r, sd_q = pt.sqrt(var_r), pt.sqrt(var_q - k * cov)
                 r, q = cells.reference, cells.target
                 if centred:
                     lev_r = pm.Normal("level_reference", mu[r], sd_r, dims=("jurisdiction",))
-                    lev_q = pm.Normal("level_target", mu[q] + k * (lev_r - mu[r]), sd_q, dims=("jurisdiction",))
+                    lev_q = pm.Normal("level_target", mu[q] + shift + k * (lev_r - mu[r]), sd_q,
+                                      dims=("jurisdiction",))
                 else:
                     z = pm.Normal("z_level", 0.0, 1.0, shape=(J, 2))
                     lev_r = mu[r] + sd_r * z[:, 0]
-                    lev_q = mu[q] + k * (lev_r - mu[r]) + sd_q * z[:, 1]
+                    lev_q = mu[q] + shift + k * (lev_r - mu[r]) + sd_q * z[:, 1]
                 cols = [None, None]
                 cols[r], cols[q] = lev_r, lev_q
                 b = pt.stack(cols, axis=1)
             else:
-                sd = pt.sqrt(v_b + v_e / T)
+                sd = pt.sqrt(v_b + v_e)
                 if centred:
-                    b = pm.Normal("level_target", mu[0], sd, dims=("jurisdiction",))[:, None]
+                    b = pm.Normal("level_target", mu[0] + shift, sd, dims=("jurisdiction",))[:, None]
                 else:
-                    b = (mu[0] + sd * pm.Normal("z_level", 0.0, 1.0, dims=("jurisdiction",)))[:, None]
+                    b = (mu[0] + shift + sd * pm.Normal("z_level", 0.0, 1.0, dims=("jurisdiction",)))[:, None]
             return pm.Deterministic("baseline", b, dims=("jurisdiction", "group"))
 
         m, S = hierarchical_mean(cells, scales, levels=levels, **terms)
@@ -204,7 +310,10 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                 u = sd * pm.Normal(f"z_{name}", 0.0, 1.0, shape=(J, T - 1))
             return pm.Deterministic(name, small_matmul(u, Q.T), dims=jt)
 
-        gap = deviations("gap", fields["sigma_gap"], gap_c)
+        if persistent:
+            gap = pm.Deterministic("gap", fields["gap_deviations"], dims=jt)
+        else:
+            gap = deviations("gap", fields["sigma_gap"], gap_c)
         eta = pt.reshape(m, (-1,))[d["rec_cell"]] + pt.reshape(gap, (-1,))[d["rec_jt"]] * d["rec_tgt"]
         if ddd:
             shock = deviations("shock", fields["sd_shock"], shock_c)
@@ -280,9 +389,10 @@ def replicate_gap_path(fit, j: int, periods: np.ndarray, rng: np.random.Generato
     The twin of the Gaussian replication in :mod:`bayesdid.checks.pretrend` for the families whose
     shock and gap noise stay latent. Per posterior draw: fresh gap-noise deviations ``e = Q u``,
     ``u ~ N(0, sigma_gap^2 I)`` (the model's own law of the zero-sum deviations; the mean is in the
-    baselines), the shock and covariate terms as drawn, then every record of the cells is replicated
-    from the family (binomial successes of its trials; Poisson events of its exposure; for
-    negbinomial a Gamma(phi, phi) multiplier per cell first). Each cell is summarised by its empirical
+    baselines; persistent gap noise: fresh AR(1) paths of each draw's rho and sigma_gap with their
+    mean over periods removed, :func:`ar1_gap_deviations`), the shock and covariate terms as drawn,
+    then every record of the cells is replicated from the family (binomial successes of its trials;
+    Poisson events of its exposure; for negbinomial a Gamma(phi, phi) multiplier per cell first). Each cell is summarised by its empirical
     link value (:func:`_link_of_cell`); the gap is target minus reference (DDD) or the target cell
     itself (DiD). The expected gap is the link of the cell's expected totals without the gap noise.
 
@@ -311,8 +421,12 @@ def replicate_gap_path(fit, j: int, periods: np.ndarray, rng: np.random.Generato
         eta0 = eta0 + fit.draws("shock")[:, j, :][:, rt[idx]]
     if d["rec_x"].shape[1]:
         eta0 = eta0 + fit.draws("theta") @ d["rec_x"][idx].T
-    u = fit.draws("sigma_gap")[:, None] * rng.standard_normal((S, T - 1))
-    e = u @ zero_sum_basis(T).T  # (S, T)
+    if getattr(fit.spec, "gap", "independent") == "persistent":
+        # fresh AR(1) paths of the fitted rho and sigma_gap, their mean removed (it is in the levels)
+        e = ar1_gap_deviations(fit.draws("sigma_gap"), fit.draws("rho"), rng.standard_normal((S, T)))
+    else:
+        u = fit.draws("sigma_gap")[:, None] * rng.standard_normal((S, T - 1))
+        e = u @ zero_sum_basis(T).T  # (S, T)
     eta = eta0 + e[:, rt[idx]] * tgt
     inv = NP.expit if family == "binomial" else np.exp
     mu = size * inv(eta)

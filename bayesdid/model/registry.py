@@ -84,7 +84,7 @@ def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian"
         return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
                               residual=spec.residual, **terms), spec
     if family in FAMILY_BUILDERS:
-        return build_family(cells, scales, coords_of(cells, spec.event_times), family,
+        return build_family(cells, scales, coords_of(cells, spec.event_times), family, gap=spec.gap,
                             **{k: v for k, v in terms.items() if k != "drift"}), spec
     raise NotImplementedError(f"family '{family}' is not built yet")
 

@@ -431,8 +431,7 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
     fields = ()
-    # The AR(1) form is built for the Gaussian family; the others keep independent gap noise.
-    gap = gap_structure(cells).over_time if family == "gaussian" else "independent"
+    gap = gap_structure(cells).over_time
     residual = residual_rule(cells)["separate"] if family == "gaussian" else True
     drift = bool(gap_structure(cells).drift) and family == "gaussian" and effects == "att"
     if family != "gaussian":

@@ -445,6 +445,9 @@ def _sensitivity_section(run: RunFolder) -> str:
             [r.label for r in rows], [r.effect_mean for r in rows], [r.eti_90[0] for r in rows],
             [r.eti_90[1] for r in rows], xlabel=f"effect: mean and 90% interval ({_model_scale(run)})"),
             "Effect interval per sensitivity variant"))
+        out.append(_table(["variant", "effect mean", "90% interval", "shift from the base (base posterior sd)"],
+                          [[r.label, _num(r.effect_mean), f"{_num(r.eti_90[0])} to {_num(r.eti_90[1])}",
+                            _num(r.shift_sd)] for r in rows]))
         held = []
         for c in v.checks:
             if c.get("holds") is None:
