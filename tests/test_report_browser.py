@@ -95,8 +95,9 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
     assert SCRIPT_NAME in facts["text"]  # shown as the literal name
     assert facts["text"].count(SCRIPT_NAME) >= 3  # title, per-adopter table, data table
     assert facts["scripts"] == 0 and not facts["pwned"]
-    # a fit-only folder: the effect and the cross-check figures (checks and sweeps come from the commands)
-    assert len(facts["images"]) == 2 and all(w > 0 for w, _, _ in facts["images"])
+    # a fit-only folder: the effect, per-adopter (two adopters) and cross-check figures (checks and sweeps
+    # come from the commands; this posterior.nc holds no cell means, so no raw-data figure)
+    assert len(facts["images"]) == 3 and all(w > 0 for w, _, _ in facts["images"])
     assert facts["headings"] == [h for _, h in HEADINGS]
     assert pdf[:5] == b"%PDF-" and pdf.count(b"/Type /Page") - pdf.count(b"/Type /Pages") >= 3  # prints
 

@@ -52,7 +52,8 @@ def test_absent_results_keep_their_section_and_name_the_command(tmp_path):
     assert "bayesdid sweep SWEEP.toml" in sections["sensitivity"]
     assert "cluster-robust s.e. (CR1)" in sections["cross-check"]  # named as missing
     assert "Not available" in sections["cross-check"]
-    assert text.count("<img ") == 2  # the effect and the posterior-versus-least-squares figures remain
+    # the effect, per-adopter (two adopters) and posterior-versus-least-squares figures remain
+    assert text.count("<img ") == 3
 
 
 def test_strings_from_data_and_study_are_escaped(tmp_path):
