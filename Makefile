@@ -25,9 +25,10 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(PY) -m pytest -q $(PYTEST_ARGS)
 
-# ruff, configured in pyproject.toml ([tool.ruff]); .ci/run calls it before the tests
+# ruff, configured in pyproject.toml ([tool.ruff]): lint and format; .ci/run calls it before the tests
 lint: $(STAMP)
 	$(VENV)/bin/ruff check bayesdid tests
+	$(VENV)/bin/ruff format --check bayesdid tests
 
 bench: $(STAMP)
 	$(VENV)/bin/bayesdid bench collapse

@@ -9,9 +9,8 @@ Typical use::
     write_run(an, "runs/first")
 """
 
-from .version import __version__  # noqa: E402
-
 from .lifeline import arm_from_env as _arm_from_env  # noqa: E402
+from .version import __version__  # noqa: E402
 
 _arm_from_env()  # a sweep's worker binds itself to the sweep before its heavy imports (bayesdid.lifeline)
 
@@ -22,10 +21,9 @@ from . import cachedir as _cachedir  # noqa: E402
 
 _cachedir.configure()
 
-from .errors import (BayesDidError, DataRoleError, DiagnosticsWarning, FewAdoptersWarning,  # noqa: E402
-                     StudyError)
-from .study import Study, load_study, make_study  # noqa: E402
 from .cells import Cells, collapse  # noqa: E402
+from .errors import BayesDidError, DataRoleError, DiagnosticsWarning, FewAdoptersWarning, StudyError  # noqa: E402
+from .study import Study, load_study, make_study  # noqa: E402
 
 
 def __getattr__(name):
@@ -36,6 +34,19 @@ def __getattr__(name):
     raise AttributeError(f"module 'bayesdid' has no attribute {name!r}")
 
 
-__all__ = ["__version__", "BayesDidError", "DataRoleError", "DiagnosticsWarning", "FewAdoptersWarning",
-           "StudyError", "Study", "load_study", "make_study", "Cells", "collapse", "Analysis", "analyse",
-           "write_run"]
+__all__ = [
+    "__version__",
+    "BayesDidError",
+    "DataRoleError",
+    "DiagnosticsWarning",
+    "FewAdoptersWarning",
+    "StudyError",
+    "Study",
+    "load_study",
+    "make_study",
+    "Cells",
+    "collapse",
+    "Analysis",
+    "analyse",
+    "write_run",
+]

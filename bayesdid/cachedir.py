@@ -102,12 +102,16 @@ def configure(override: str | os.PathLike | None = None) -> CacheDir:
         else:  # private to this process, and removed when it ends
             compiledir = Path(tempfile.mkdtemp(prefix="bayesdid-pytensor-"))
             atexit.register(shutil.rmtree, compiledir, ignore_errors=True)
-        flags = [f for f in os.environ.get("PYTENSOR_FLAGS", "").split(",")
-                 if f and not f.strip().startswith(("base_compiledir", "generated_src_dir"))]
+        flags = [
+            f
+            for f in os.environ.get("PYTENSOR_FLAGS", "").split(",")
+            if f and not f.strip().startswith(("base_compiledir", "generated_src_dir"))
+        ]
         # generated_src_dir: without it PyTensor writes the Python source it generates for each
         # compiled function into a new file of the system's temporary folder and never removes it
-        os.environ["PYTENSOR_FLAGS"] = ",".join([*flags, f"base_compiledir={compiledir}",
-                                                 f"generated_src_dir={compiledir / 'generated_src'}"])
+        os.environ["PYTENSOR_FLAGS"] = ",".join(
+            [*flags, f"base_compiledir={compiledir}", f"generated_src_dir={compiledir / 'generated_src'}"]
+        )
     if "numba" not in sys.modules and writable:
         os.environ["NUMBA_CACHE_DIR"] = str(path / "numba")
     return _CURRENT
@@ -151,9 +155,16 @@ def info(cache: CacheDir | None = None, *, entry_ok=None) -> dict:
         parts[sub] = {"files": files, "bytes": total}
     entries = sorted(c.models.glob("*.model")) if c.models.is_dir() else []
     damaged = sum(not entry_ok(e) for e in entries) if entry_ok is not None else None
-    return {"folder": str(c.path), "chosen_by": c.source, "writable": c.writable, "reason": c.reason,
-            "models": len(entries), "damaged": damaged, "parts": parts,
-            "bytes": sum(p["bytes"] for p in parts.values())}
+    return {
+        "folder": str(c.path),
+        "chosen_by": c.source,
+        "writable": c.writable,
+        "reason": c.reason,
+        "models": len(entries),
+        "damaged": damaged,
+        "parts": parts,
+        "bytes": sum(p["bytes"] for p in parts.values()),
+    }
 
 
 def clear(cache: CacheDir | None = None) -> dict:
@@ -166,6 +177,8 @@ def clear(cache: CacheDir | None = None) -> dict:
             try:
                 shutil.rmtree(p)
             except OSError as exc:
-                raise BayesDidError(f"cannot clear the cache folder {p}: {exc.strerror or exc}. Check its "
-                                    f"permissions, or remove it by hand.") from None
+                raise BayesDidError(
+                    f"cannot clear the cache folder {p}: {exc.strerror or exc}. Check its "
+                    f"permissions, or remove it by hand."
+                ) from None
     return before

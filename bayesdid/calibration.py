@@ -49,8 +49,21 @@ import pandas as pd
 from .errors import BayesDidError
 from .simulate import Scenario, simulate
 
-__all__ = ["SCENARIOS", "CalibrationScenario", "RepTask", "run_rep", "make_executor", "run_calibration",
-           "coverage_table", "sbc_table", "ecdf_band", "plot_sbc", "write_calibration", "LEVELS", "SBC_DRAWS"]
+__all__ = [
+    "SCENARIOS",
+    "CalibrationScenario",
+    "RepTask",
+    "run_rep",
+    "make_executor",
+    "run_calibration",
+    "coverage_table",
+    "sbc_table",
+    "ecdf_band",
+    "plot_sbc",
+    "write_calibration",
+    "LEVELS",
+    "SBC_DRAWS",
+]
 
 #: Interval levels whose coverage is measured.
 LEVELS = (0.5, 0.9, 0.95)
@@ -78,67 +91,120 @@ class CalibrationScenario:
 
 
 def _sc(**kw) -> Scenario:
-    base = dict(jurisdictions=31, periods=8, groups=2, starts={0: 4}, rows_per_cell=8.0, tau=-0.2,
-                gap_sd=0.2, shock_sd=0.1, residual_sd=1.0)
+    base = dict(
+        jurisdictions=31,
+        periods=8,
+        groups=2,
+        starts={0: 4},
+        rows_per_cell=8.0,
+        tau=-0.2,
+        gap_sd=0.2,
+        shock_sd=0.1,
+        residual_sd=1.0,
+    )
     base.update(kw)
     return Scenario(**base)
 
 
 SCENARIOS: dict[str, CalibrationScenario] = {
     "one_adopter": CalibrationScenario(
-        "one_adopter", _sc(),
+        "one_adopter",
+        _sc(),
         "DDD, one adopter and 30 comparison jurisdictions, 8 periods (start at the 5th), about 8 rows "
         "per cell, Gaussian structural gap noise sd 0.2 (larger than a cell mean's sampling error, "
-        "1/sqrt(8) = 0.35, would suggest it is negligible), effect -0.2"),
+        "1/sqrt(8) = 0.35, would suggest it is negligible), effect -0.2",
+    ),
     "staggered": CalibrationScenario(
-        "staggered", _sc(jurisdictions=33, starts={0: 3, 1: 4, 2: 5}),
+        "staggered",
+        _sc(jurisdictions=33, starts={0: 3, 1: 4, 2: 5}),
         "DDD, three adopters starting in periods 4, 5 and 6, 30 comparison jurisdictions, otherwise as "
-        "one_adopter; the same effect in every adopter"),
+        "one_adopter; the same effect in every adopter",
+    ),
     "did": CalibrationScenario(
-        "did", _sc(groups=1),
-        "DiD (no group split), one adopter and 30 comparison jurisdictions, otherwise as one_adopter"),
+        "did",
+        _sc(groups=1),
+        "DiD (no group split), one adopter and 30 comparison jurisdictions, otherwise as one_adopter",
+    ),
     "heavy_tails": CalibrationScenario(
-        "heavy_tails", _sc(gap_df=3.0),
+        "heavy_tails",
+        _sc(gap_df=3.0),
         "as one_adopter, but the gap noise is Student t with 3 degrees of freedom (same sd 0.2), heavier-"
-        "tailed than the model's Normal", model_assumes=False),
+        "tailed than the model's Normal",
+        model_assumes=False,
+    ),
 }
 
 
 def _ar1(**kw) -> Scenario:
     """Persistent gap noise dominating the cells (as in the issue's table): 40 jurisdictions, 12 periods,
     one adopter from period 7, gap sd 0.2, about 400 rows per cell, effect -0.1."""
-    base = dict(jurisdictions=40, periods=12, groups=2, starts={0: 6}, rows_per_cell=400.0, tau=-0.1,
-                gap_sd=0.2, shock_sd=0.1, residual_sd=1.0)
+    base = dict(
+        jurisdictions=40,
+        periods=12,
+        groups=2,
+        starts={0: 6},
+        rows_per_cell=400.0,
+        tau=-0.1,
+        gap_sd=0.2,
+        shock_sd=0.1,
+        residual_sd=1.0,
+    )
     base.update(kw)
     return Scenario(**base)
 
 
-SCENARIOS.update({
-    "ar1_ddd_0": CalibrationScenario(
-        "ar1_ddd_0", _ar1(gap_rho=0.0),
-        "DDD, 40 jurisdictions x 12 periods, one adopter from period 7, about 400 rows per cell, gap noise "
-        "sd 0.2 independent over periods (rho 0), effect -0.1"),
-    "ar1_ddd_05": CalibrationScenario(
-        "ar1_ddd_05", _ar1(gap_rho=0.5), "as ar1_ddd_0 with AR(1) gap noise, rho 0.5"),
-    "ar1_ddd_08": CalibrationScenario(
-        "ar1_ddd_08", _ar1(gap_rho=0.8), "as ar1_ddd_0 with AR(1) gap noise, rho 0.8"),
-    "ar1_did_08": CalibrationScenario(
-        "ar1_did_08", _ar1(groups=1, gap_rho=0.8), "DiD version of ar1_ddd_08 (jurisdiction-period noise AR(1), rho 0.8)"),
-    "ar1_staggered_08": CalibrationScenario(
-        "ar1_staggered_08", _ar1(jurisdictions=42, starts={0: 5, 1: 6, 2: 7}, gap_rho=0.8),
-        "as ar1_ddd_08 with three adopters starting in periods 6, 7 and 8"),
-    "one_row_did": CalibrationScenario(
-        "one_row_did", Scenario(jurisdictions=50, periods=16, groups=1, starts={0: 8}, rows_per_cell=1,
-                                fixed_cells=True, tau=-0.1, gap_sd=0.1, gap_rho=0.5, residual_sd=0.05),
-        "DiD with one row per jurisdiction-period, as state-year data come: 50 jurisdictions, 16 periods, one "
-        "adopter from period 9, AR(1) jurisdiction-period noise sd 0.1 with rho 0.5 plus row noise sd 0.05, effect -0.1"),
-    "castle_placebo": CalibrationScenario(
-        "castle_placebo", Scenario(groups=1, tau=0.0),
-        "placebo laws on the castle-doctrine state panel of the causaldata package (2000-2010, one row per "
-        "state and year, outcome log homicide rate): the states that ever adopted are dropped, each rep gives "
-        "one random remaining state a fake policy from a random year 2003-2009; the truth is no effect, so "
-        "coverage is one minus the false-positive rate", source="castle_placebo"),
-})
+SCENARIOS.update(
+    {
+        "ar1_ddd_0": CalibrationScenario(
+            "ar1_ddd_0",
+            _ar1(gap_rho=0.0),
+            "DDD, 40 jurisdictions x 12 periods, one adopter from period 7, about 400 rows per cell, gap noise "
+            "sd 0.2 independent over periods (rho 0), effect -0.1",
+        ),
+        "ar1_ddd_05": CalibrationScenario(
+            "ar1_ddd_05", _ar1(gap_rho=0.5), "as ar1_ddd_0 with AR(1) gap noise, rho 0.5"
+        ),
+        "ar1_ddd_08": CalibrationScenario(
+            "ar1_ddd_08", _ar1(gap_rho=0.8), "as ar1_ddd_0 with AR(1) gap noise, rho 0.8"
+        ),
+        "ar1_did_08": CalibrationScenario(
+            "ar1_did_08",
+            _ar1(groups=1, gap_rho=0.8),
+            "DiD version of ar1_ddd_08 (jurisdiction-period noise AR(1), rho 0.8)",
+        ),
+        "ar1_staggered_08": CalibrationScenario(
+            "ar1_staggered_08",
+            _ar1(jurisdictions=42, starts={0: 5, 1: 6, 2: 7}, gap_rho=0.8),
+            "as ar1_ddd_08 with three adopters starting in periods 6, 7 and 8",
+        ),
+        "one_row_did": CalibrationScenario(
+            "one_row_did",
+            Scenario(
+                jurisdictions=50,
+                periods=16,
+                groups=1,
+                starts={0: 8},
+                rows_per_cell=1,
+                fixed_cells=True,
+                tau=-0.1,
+                gap_sd=0.1,
+                gap_rho=0.5,
+                residual_sd=0.05,
+            ),
+            "DiD with one row per jurisdiction-period, as state-year data come: 50 jurisdictions, 16 periods, one "
+            "adopter from period 9, AR(1) jurisdiction-period noise sd 0.1 with rho 0.5 plus row noise sd 0.05, effect -0.1",
+        ),
+        "castle_placebo": CalibrationScenario(
+            "castle_placebo",
+            Scenario(groups=1, tau=0.0),
+            "placebo laws on the castle-doctrine state panel of the causaldata package (2000-2010, one row per "
+            "state and year, outcome log homicide rate): the states that ever adopted are dropped, each rep gives "
+            "one random remaining state a fake policy from a random year 2003-2009; the truth is no effect, so "
+            "coverage is one minus the false-positive rate",
+            source="castle_placebo",
+        ),
+    }
+)
 
 
 def castle_placebo_frame(seed: int):
@@ -152,8 +218,13 @@ def castle_placebo_frame(seed: int):
     states = sorted(set(keep["sid"]))
     fake = int(rng.choice(states))
     year = int(rng.integers(2003, 2010))
-    frame = pd.DataFrame({"region": "S" + keep["sid"].astype(int).astype(str), "period": keep["year"].astype(int),
-                          "y": np.log(keep["homicide"].to_numpy(float))})
+    frame = pd.DataFrame(
+        {
+            "region": "S" + keep["sid"].astype(int).astype(str),
+            "period": keep["year"].astype(int),
+            "y": np.log(keep["homicide"].to_numpy(float)),
+        }
+    )
     return frame, {"tau": 0.0, "tau_adopter": {f"S{fake}": 0.0}, "starts": {f"S{fake}": year}}
 
 
@@ -197,9 +268,15 @@ def _cells_of(frame, sc: Scenario, truth: dict):
     from .study import make_study
 
     ddd = sc.groups == 2
-    study = make_study(table="invented.csv", outcome="y", jurisdiction="region", period="period",
-                       group="group" if ddd else None, target_group="target" if ddd else None,
-                       adopters=truth["starts"])
+    study = make_study(
+        table="invented.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters=truth["starts"],
+    )
     return collapse_frame(study, frame)
 
 
@@ -239,17 +316,22 @@ def _coverage_rep(task: RepTask) -> dict:
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
     fit = fit_cells(cells, scales, _settings(task, sampler_seed))
     att = fit.draws("tau_adopter") @ w
-    row = {"truth": att_true, "posterior_mean": float(att.mean()), "posterior_sd": float(att.std(ddof=1)),
-           "rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
-           "diagnostics_ok": bool(fit.diagnostics.get("ok")), "sample_s": fit.timing["sample_s"],
-           "compile_s": fit.timing["compile_s"]}
+    row = {
+        "truth": att_true,
+        "posterior_mean": float(att.mean()),
+        "posterior_sd": float(att.std(ddof=1)),
+        "rhat_max": fit.diagnostics.get("rhat_max"),
+        "divergences": fit.diagnostics.get("divergences"),
+        "diagnostics_ok": bool(fit.diagnostics.get("ok")),
+        "sample_s": fit.timing["sample_s"],
+        "compile_s": fit.timing["compile_s"],
+    }
     for a in LEVELS:
         lo, hi = np.quantile(att, [(1 - a) / 2, (1 + a) / 2])
         row[f"posterior_cover_{_pct(a)}"] = bool(lo <= att_true <= hi)
         row[f"posterior_width_{_pct(a)}"] = float(hi - lo)
     # Least squares on the cells with the truth taken out: every test below is of the true null.
-    xc = cross_check(_shift_treated(cells, effect_j), seed=sampler_seed, draws=task.cross_check_draws,
-                     placebos=999)
+    xc = cross_check(_shift_treated(cells, effect_j), seed=sampler_seed, draws=task.cross_check_draws, placebos=999)
     est = xc["estimate"] + att_true
     se, C = xc["se_cr1"], xc["clusters"]
     row.update({"ls_estimate": est, "se_cr1": se, "clusters": C})
@@ -261,7 +343,7 @@ def _coverage_rep(task: RepTask) -> dict:
         row[f"wild_cover_{_pct(a)}"] = None if p_w is None else bool(p_w >= 1 - a)
         row[f"permutation_cover_{_pct(a)}"] = None if p_p is None else bool(p_p >= 1 - a)
     lo, hi = xc["ci_wild_95"] or (None, None)
-    row["wild_width_95"] = (math.inf if lo is None or hi is None else float(hi - lo))
+    row["wild_width_95"] = math.inf if lo is None or hi is None else float(hi - lo)
     row["p_wild_at_truth"] = xc["p_wild"]
     row["p_permutation_at_truth"] = xc["p_permutation"]
     return row
@@ -335,12 +417,22 @@ def _sbc_rep(task: RepTask) -> dict:
     n = template.n
     ybar = mean + sd / np.sqrt(np.maximum(n, 1.0)) * rng.standard_normal(n.shape)
     ss = sd**2 * rng.chisquare(np.maximum(n - 1.0, 1.0)) * (n > 1)
-    cells = dataclasses.replace(template, sum_y=n * ybar, sum_y2=ss + n * ybar**2, ss=ss,
-                                outcome_mean=task.sbc_prior["location"], outcome_sd=task.sbc_prior["sd"])
+    cells = dataclasses.replace(
+        template,
+        sum_y=n * ybar,
+        sum_y2=ss + n * ybar**2,
+        ss=ss,
+        outcome_mean=task.sbc_prior["location"],
+        outcome_sd=task.sbc_prior["sd"],
+    )
     fit = fit_cells(cells, task.sbc_prior["scales"], _settings(task, sampler_seed))
-    row = {"rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
-           "diagnostics_ok": bool(fit.diagnostics.get("ok")), "sample_s": fit.timing["sample_s"],
-           "compile_s": fit.timing["compile_s"]}
+    row = {
+        "rhat_max": fit.diagnostics.get("rhat_max"),
+        "divergences": fit.diagnostics.get("divergences"),
+        "diagnostics_ok": bool(fit.diagnostics.get("ok")),
+        "sample_s": fit.timing["sample_s"],
+        "compile_s": fit.timing["compile_s"],
+    }
     for name in SBC_PARAMETERS:
         if name not in truth:
             continue
@@ -354,8 +446,13 @@ def _sbc_rep(task: RepTask) -> dict:
 def run_rep(task: RepTask) -> dict:
     """Run one rep; never raises: a failure comes back as ``ok = False`` with the error text."""
     t0 = time.perf_counter()
-    base = {"kind": task.kind, "scenario": task.scenario, "rep": task.rep, "data_seed": task.seeds[0],
-            "sampler_seed": task.seeds[1]}
+    base = {
+        "kind": task.kind,
+        "scenario": task.scenario,
+        "rep": task.rep,
+        "data_seed": task.seeds[0],
+        "sampler_seed": task.seeds[1],
+    }
     try:
         with np.errstate(all="ignore"):
             row = _coverage_rep(task) if task.kind == "coverage" else _sbc_rep(task)
@@ -378,10 +475,18 @@ def sbc_prior(scenario: str, base_seed: int) -> dict:
 
 # ---- executors -------------------------------------------------------------------------------------
 
+
 def _rep_lost(task: RepTask, exc: BaseException) -> dict:
-    return {"kind": task.kind, "scenario": task.scenario, "rep": task.rep, "data_seed": task.seeds[0],
-            "sampler_seed": task.seeds[1], "ok": False, "wall_s": float("nan"),
-            "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}"}
+    return {
+        "kind": task.kind,
+        "scenario": task.scenario,
+        "rep": task.rep,
+        "data_seed": task.seeds[0],
+        "sampler_seed": task.seeds[1],
+        "ok": False,
+        "wall_s": float("nan"),
+        "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}",
+    }
 
 
 class _SweepExecutor:
@@ -390,8 +495,9 @@ class _SweepExecutor:
 
     def __init__(self, kind: str, workers: int, cluster: str | None):
         self.kind, self.workers, self.cluster = kind, workers, cluster
-        self.name = {"serial": "in-process", "pool": f"process pool ({workers} workers)",
-                     "dask": f"dask ({cluster})"}[kind]
+        self.name = {"serial": "in-process", "pool": f"process pool ({workers} workers)", "dask": f"dask ({cluster})"}[
+            kind
+        ]
 
     def map(self, fn, tasks):
         from .sweep import EXECUTORS
@@ -418,6 +524,7 @@ def make_executor(workers: int = 2, cluster: str | None = None):
 
 # ---- summaries -----------------------------------------------------------------------------------
 
+
 def _pct(a: float) -> str:
     return str(int(round(a * 100)))
 
@@ -442,21 +549,29 @@ def coverage_table(rows: list[dict]) -> dict:
             w = [r.get(f"{m}_width_{_pct(a)}") for r in ok if r.get(f"{m}_width_{_pct(a)}") is not None]
             if w:
                 arr = np.asarray(w, float)
-                widths[f"width_{_pct(a)}"] = {"mean": float(np.mean(arr)) if np.all(np.isfinite(arr)) else None,
-                                              "median": float(np.median(arr)),
-                                              "unbounded_share": float(np.mean(~np.isfinite(arr)))}
+                widths[f"width_{_pct(a)}"] = {
+                    "mean": float(np.mean(arr)) if np.all(np.isfinite(arr)) else None,
+                    "median": float(np.median(arr)),
+                    "unbounded_share": float(np.mean(~np.isfinite(arr))),
+                }
         res.update(widths)
         out[m] = res
     if ok:
         err_b = np.array([r["posterior_mean"] - r["truth"] for r in ok])
         err_l = np.array([r["ls_estimate"] - r["truth"] for r in ok])
         N = len(ok)
-        out["posterior"]["bias"] = {"mean": float(err_b.mean()), "mcse": float(err_b.std(ddof=1) / math.sqrt(N))
-                                    if N > 1 else None, "rmse": float(np.sqrt(np.mean(err_b**2)))}
+        out["posterior"]["bias"] = {
+            "mean": float(err_b.mean()),
+            "mcse": float(err_b.std(ddof=1) / math.sqrt(N)) if N > 1 else None,
+            "rmse": float(np.sqrt(np.mean(err_b**2))),
+        }
         for m in ("cr1", "wild", "permutation"):
-            out[m]["bias"] = {"mean": float(err_l.mean()), "mcse": float(err_l.std(ddof=1) / math.sqrt(N))
-                              if N > 1 else None, "rmse": float(np.sqrt(np.mean(err_l**2))),
-                              "note": "the least-squares estimate (shared by the three least-squares methods)"}
+            out[m]["bias"] = {
+                "mean": float(err_l.mean()),
+                "mcse": float(err_l.std(ddof=1) / math.sqrt(N)) if N > 1 else None,
+                "rmse": float(np.sqrt(np.mean(err_l**2))),
+                "note": "the least-squares estimate (shared by the three least-squares methods)",
+            }
         out["posterior"]["diagnostics_ok_share"] = float(np.mean([r["diagnostics_ok"] for r in ok]))
     return out
 
@@ -466,9 +581,13 @@ def sbc_table(rows: list[dict]) -> dict:
     from scipy import stats
 
     ok = [r for r in rows if r.get("ok")]
-    out = {"draws_ranked": SBC_DRAWS, "bins": SBC_BINS, "reps": len(ok),
-           "method": "rank of the prior draw among 99 thinned posterior draws (Talts et al. 2018); Pearson "
-                     "chi-square of the bin counts against equal expected counts, SBC_BINS - 1 degrees of freedom"}
+    out = {
+        "draws_ranked": SBC_DRAWS,
+        "bins": SBC_BINS,
+        "reps": len(ok),
+        "method": "rank of the prior draw among 99 thinned posterior draws (Talts et al. 2018); Pearson "
+        "chi-square of the bin counts against equal expected counts, SBC_BINS - 1 degrees of freedom",
+    }
     for name in SBC_PARAMETERS:
         ranks = np.array([r[f"{name}_rank"] for r in ok if f"{name}_rank" in r], int)
         if ranks.size == 0:
@@ -476,12 +595,20 @@ def sbc_table(rows: list[dict]) -> dict:
             continue
         counts = np.bincount(ranks * SBC_BINS // (SBC_DRAWS + 1), minlength=SBC_BINS)
         chi = stats.chisquare(counts)
-        out[name] = {"p_value": float(chi.pvalue), "chi2": float(chi.statistic), "counts": counts.tolist(),
-                     "expected_per_bin": ranks.size / SBC_BINS, "mean_rank": float(ranks.mean()),
-                     "share_at_extremes": float(np.mean((ranks == 0) | (ranks == SBC_DRAWS))),
-                     "uniform_at_0.01": bool(chi.pvalue > 0.01),
-                     "note": ("fewer than 5 reps expected per bin: the chi-square approximation is rough"
-                              if ranks.size / SBC_BINS < 5 else "")}
+        out[name] = {
+            "p_value": float(chi.pvalue),
+            "chi2": float(chi.statistic),
+            "counts": counts.tolist(),
+            "expected_per_bin": ranks.size / SBC_BINS,
+            "mean_rank": float(ranks.mean()),
+            "share_at_extremes": float(np.mean((ranks == 0) | (ranks == SBC_DRAWS))),
+            "uniform_at_0.01": bool(chi.pvalue > 0.01),
+            "note": (
+                "fewer than 5 reps expected per bin: the chi-square approximation is rough"
+                if ranks.size / SBC_BINS < 5
+                else ""
+            ),
+        }
     return out
 
 
@@ -542,10 +669,21 @@ def plot_sbc(rows: list[dict], path: Path, title: str) -> Path:
 
 # ---- the study ---------------------------------------------------------------------------------------
 
-def run_calibration(*, scenario: str = "one_adopter", reps: int = 200, sbc_reps: int | None = None,
-                    draws: int = 500, tune: int = 500, chains: int = 2, seed: int = 20261202, workers: int = 2,
-                    cluster: str | None = None, cross_check_draws: int = 999,
-                    progress_path: str | Path | None = None) -> dict:
+
+def run_calibration(
+    *,
+    scenario: str = "one_adopter",
+    reps: int = 200,
+    sbc_reps: int | None = None,
+    draws: int = 500,
+    tune: int = 500,
+    chains: int = 2,
+    seed: int = 20261202,
+    workers: int = 2,
+    cluster: str | None = None,
+    cross_check_draws: int = 999,
+    progress_path: str | Path | None = None,
+) -> dict:
     """Run the coverage and SBC reps of one scenario; return the summary and the per-rep rows.
 
     Returns
@@ -557,15 +695,21 @@ def run_calibration(*, scenario: str = "one_adopter", reps: int = 200, sbc_reps:
     """
     cs = _scenario(scenario)
     sbc_reps = reps if sbc_reps is None else sbc_reps
-    for key, v, low in (("--reps", reps, 1), ("--sbc-reps", sbc_reps, 0), ("--draws", draws, 100),
-                        ("--tune", tune, 50), ("--chains", chains, 1)):
+    for key, v, low in (
+        ("--reps", reps, 1),
+        ("--sbc-reps", sbc_reps, 0),
+        ("--draws", draws, 100),
+        ("--tune", tune, 50),
+        ("--chains", chains, 1),
+    ):
         if isinstance(v, bool) or not isinstance(v, int) or v < low:
             raise BayesDidError(f"{key}: expected a whole number of at least {low}, found {v!r}.")
     if (draws * chains) < SBC_DRAWS and sbc_reps:
         raise BayesDidError(f"--draws x --chains must be at least {SBC_DRAWS} for the SBC ranks.")
     prior = sbc_prior(scenario, seed) if sbc_reps else {}
-    common = dict(scenario=scenario, base_seed=seed, draws=draws, tune=tune, chains=chains,
-                  cross_check_draws=cross_check_draws)
+    common = dict(
+        scenario=scenario, base_seed=seed, draws=draws, tune=tune, chains=chains, cross_check_draws=cross_check_draws
+    )
     tasks = [RepTask(kind="coverage", rep=i, **common) for i in range(reps)]
     tasks += [RepTask(kind="sbc", rep=i, sbc_prior=prior, **common) for i in range(sbc_reps)]
     ex = make_executor(workers, cluster)
@@ -588,16 +732,29 @@ def run_calibration(*, scenario: str = "one_adopter", reps: int = 200, sbc_reps:
     sbc_rows = [r for r in results if r["kind"] == "sbc"]
     failed = [{"kind": r["kind"], "rep": r["rep"], "error": r["error"]} for r in results if not r["ok"]]
     summary = {
-        "scenario": scenario, "about": cs.about, "model_assumes": cs.model_assumes,
-        "truth_tau": cs.scenario.tau, "scenario_parameters": dataclasses.asdict(cs.scenario),
-        "reps": reps, "sbc_reps": sbc_reps, "failed": failed,
-        "settings": {"draws": draws, "tune": tune, "chains": chains, "seed": seed,
-                     "cross_check_draws": cross_check_draws, "executor": ex.name},
+        "scenario": scenario,
+        "about": cs.about,
+        "model_assumes": cs.model_assumes,
+        "truth_tau": cs.scenario.tau,
+        "scenario_parameters": dataclasses.asdict(cs.scenario),
+        "reps": reps,
+        "sbc_reps": sbc_reps,
+        "failed": failed,
+        "settings": {
+            "draws": draws,
+            "tune": tune,
+            "chains": chains,
+            "seed": seed,
+            "cross_check_draws": cross_check_draws,
+            "executor": ex.name,
+        },
         "coverage": coverage_table(rows),
-        "coverage_note": ("share of reps whose interval holds the true ATT; mcse = sqrt(p (1 - p) / N). "
-                          "Posterior: equal-tailed intervals of the ATT. cr1: estimate +- t(G-1) x CR1 se. wild "
-                          "and permutation: covered at level a when the test of the true effect has p >= 1 - a "
-                          "(restricted wild cluster bootstrap, Webb weights; placebo-in-space permutation)."),
+        "coverage_note": (
+            "share of reps whose interval holds the true ATT; mcse = sqrt(p (1 - p) / N). "
+            "Posterior: equal-tailed intervals of the ATT. cr1: estimate +- t(G-1) x CR1 se. wild "
+            "and permutation: covered at level a when the test of the true effect has p >= 1 - a "
+            "(restricted wild cluster bootstrap, Webb weights; placebo-in-space permutation)."
+        ),
         "sbc": sbc_table(sbc_rows) if sbc_reps else {"reason": "not run (--sbc-reps 0)"},
         "sbc_prior": prior,
         "timing": {"wall_s": wall, "rep_wall_s_median": float(np.median([r["wall_s"] for r in results]))},

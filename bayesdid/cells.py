@@ -16,8 +16,8 @@ import numpy as np
 import pandas as pd
 
 from .data import check_roles, period_levels
-from .study import Study
 from .panels import check_units, within_units
+from .study import Study
 from .summaries import as_count_rows, check_summary_rows, check_weights, mean_sums, weighted_sums
 
 __all__ = ["Cells", "collapse", "collapse_frame"]
@@ -169,13 +169,17 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
         rows = len(frame)
         if panel is not None:
             # priors scaled by the outcome itself, as without the unit role; centred means sit at 0
-            _, raw_sd = _overall(n, np.bincount(idx, weights=y, minlength=size),
-                                 _within(y, idx, n, size))
+            _, raw_sd = _overall(n, np.bincount(idx, weights=y, minlength=size), _within(y, idx, n, size))
             ss_ls = ss
             ss = np.bincount(idx, weights=panel["scale"] * dev * dev, minlength=size)
             jg = np.unique(idx // T)
-            panel = {"column": cols.unit, "units": panel["units"], "absorbed": panel["units"] - len(jg),
-                     "ss_ls": ss_ls.reshape(J, G, T), "outcome_sd": raw_sd}
+            panel = {
+                "column": cols.unit,
+                "units": panel["units"],
+                "absorbed": panel["units"] - len(jg),
+                "ss_ls": ss_ls.reshape(J, G, T),
+                "outcome_sd": raw_sd,
+            }
 
     start = np.full(J, T, dtype=int)
     for a, s in study.policy.adopters:
@@ -184,23 +188,45 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
     if weighted is None and study.summary is None and cols.unit is not None:
         mean, sd = 0.0, panel["outcome_sd"]
     cells = Cells(
-        jurisdictions=tuple(jur_labels), groups=groups, periods=tuple(_plain(v) for v in levels),
-        design=study.design, target=target, start=start,
-        n=n.reshape(J, G, T), sum_y=s1.reshape(J, G, T), sum_y2=s2.reshape(J, G, T), ss=ss.reshape(J, G, T),
-        rows=rows, log_outcome=study.model.log_outcome,
-        outcome_sd=sd if sd > 0 else 1.0, outcome_mean=mean,
+        jurisdictions=tuple(jur_labels),
+        groups=groups,
+        periods=tuple(_plain(v) for v in levels),
+        design=study.design,
+        target=target,
+        start=start,
+        n=n.reshape(J, G, T),
+        sum_y=s1.reshape(J, G, T),
+        sum_y2=s2.reshape(J, G, T),
+        ss=ss.reshape(J, G, T),
+        rows=rows,
+        log_outcome=study.model.log_outcome,
+        outcome_sd=sd if sd > 0 else 1.0,
+        outcome_mean=mean,
     )
     if cols.unit is not None and panel is not None:
-        return replace(cells, extra={"family": "gaussian", "panel": panel,
-                                     "likelihood": "exact on cells of the outcome centred within units (unit fixed "
-                                                   "effects; balanced panel), within-cell spread scaled by T/(T-1)"})
+        return replace(
+            cells,
+            extra={
+                "family": "gaussian",
+                "panel": panel,
+                "likelihood": "exact on cells of the outcome centred within units (unit fixed "
+                "effects; balanced panel), within-cell spread scaled by T/(T-1)",
+            },
+        )
     if weighted is not None:
         shape = (J, G, T)
-        return replace(cells, extra={"family": "gaussian", "weights": {
-            "column": cols.weight, **{k: weighted[k].reshape(shape) for k in
-                                      ("sum_w", "ss_w", "rows", "sum_w2", "w2_dev", "w2_dev2")}},
-            "likelihood": "exact on cells for the Hajek means with Kish effective sizes (jurisdiction-period shock "
-                          "and gap noise integrated out); within-cell spread by moment match"})
+        return replace(
+            cells,
+            extra={
+                "family": "gaussian",
+                "weights": {
+                    "column": cols.weight,
+                    **{k: weighted[k].reshape(shape) for k in ("sum_w", "ss_w", "rows", "sum_w2", "w2_dev", "w2_dev2")},
+                },
+                "likelihood": "exact on cells for the Hajek means with Kish effective sizes (jurisdiction-period shock "
+                "and gap noise integrated out); within-cell spread by moment match",
+            },
+        )
     if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
         return cells
     return attach_family(study, frame, cells, idx, y)
@@ -244,8 +270,8 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
     """
     import warnings
 
-    from .errors import RowLevelFallbackWarning
     from .covariates import cell_sums, design_matrix
+    from .errors import RowLevelFallbackWarning
     from .fixed_effects import check_identified
 
     fam = study.model.family
@@ -262,12 +288,18 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
             check_identified(cells, sums, cov["names"])
             K = len(cov["names"])
             extra["covariates"] = {
-                "names": cov["names"], "means": cov["means"], "discrete": cov["discrete"],
-                "sx": sums["sx"].reshape(J, G, T, K), "sxx": sums["sxx"].reshape(J, G, T, K, K),
-                "sxy": sums["sxy"].reshape(J, G, T, K), "wxx": sums["wxx"].reshape(J, G, T, K, K),
-                "wxy": sums["wxy"].reshape(J, G, T, K)}
-        extra["likelihood"] = ("exact on cells (jurisdiction-period shock and gap noise integrated out"
-                               + ("; covariates through per-cell sums of x, xx' and xy)" if cov else ")"))
+                "names": cov["names"],
+                "means": cov["means"],
+                "discrete": cov["discrete"],
+                "sx": sums["sx"].reshape(J, G, T, K),
+                "sxx": sums["sxx"].reshape(J, G, T, K, K),
+                "sxy": sums["sxy"].reshape(J, G, T, K),
+                "wxx": sums["wxx"].reshape(J, G, T, K, K),
+                "wxy": sums["wxy"].reshape(J, G, T, K),
+            }
+        extra["likelihood"] = "exact on cells (jurisdiction-period shock and gap noise integrated out" + (
+            "; covariates through per-cell sums of x, xx' and xy)" if cov else ")"
+        )
         return replace(cells, extra=extra)
 
     yr = frame[cols.outcome].to_numpy(dtype=float)
@@ -284,9 +316,11 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
         check_identified(new, sums, cov["names"])
         extra["covariates"] = {"names": cov["names"], "means": cov["means"], "discrete": cov["discrete"]}
     if cov is not None and not cov["discrete"]:
-        msg = (f"covariates '{study.model.covariates}' include a continuous column (more than "
-               f"{_max_levels()} distinct values), so family '{fam}' cannot be collapsed exactly per cell and "
-               f"covariate pattern; the likelihood is evaluated on the {len(frame):,} rows (exact, slower).")
+        msg = (
+            f"covariates '{study.model.covariates}' include a continuous column (more than "
+            f"{_max_levels()} distinct values), so family '{fam}' cannot be collapsed exactly per cell and "
+            f"covariate pattern; the likelihood is evaluated on the {len(frame):,} rows (exact, slower)."
+        )
         warnings.warn(msg, RowLevelFallbackWarning, stacklevel=3)
         rec = {"cell": idx.astype(np.int64), "y": yr, "size": sz, "x": cov["X"]}
         extra["likelihood"] = "row-level (continuous covariate: no exact collapse); " + msg
@@ -300,17 +334,29 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
         _, pat = np.unique(codes, return_inverse=True)
         key = idx.astype(np.int64) * (int(pat.max()) + 1) + pat
         uk, first, inv = np.unique(key, return_index=True, return_inverse=True)
-        rec = {"cell": idx[first].astype(np.int64), "y": np.bincount(inv, weights=yr),
-               "size": np.bincount(inv, weights=sz), "x": X[first]}
-        extra["likelihood"] = (f"exact on {len(uk):,} records (cell x covariate pattern), "
-                               "jurisdiction-period shock and gap noise as non-centred latent terms")
+        rec = {
+            "cell": idx[first].astype(np.int64),
+            "y": np.bincount(inv, weights=yr),
+            "size": np.bincount(inv, weights=sz),
+            "x": X[first],
+        }
+        extra["likelihood"] = (
+            f"exact on {len(uk):,} records (cell x covariate pattern), "
+            "jurisdiction-period shock and gap noise as non-centred latent terms"
+        )
     else:
         cell_ids = np.flatnonzero(n > 0)
-        rec = {"cell": cell_ids.astype(np.int64), "y": sum_y[cell_ids], "size": n[cell_ids],
-               "x": np.zeros((len(cell_ids), 0))}
-        extra["likelihood"] = ("exact on cells (successes and trials per cell)" if fam == "binomial" else
-                               "exact on cells (events and exposure per cell)") + \
-            ", jurisdiction-period shock and gap noise as non-centred latent terms"
+        rec = {
+            "cell": cell_ids.astype(np.int64),
+            "y": sum_y[cell_ids],
+            "size": n[cell_ids],
+            "x": np.zeros((len(cell_ids), 0)),
+        }
+        extra["likelihood"] = (
+            "exact on cells (successes and trials per cell)"
+            if fam == "binomial"
+            else "exact on cells (events and exposure per cell)"
+        ) + ", jurisdiction-period shock and gap noise as non-centred latent terms"
     extra["records"] = rec
     Y, N = float(yr.sum()), float(sz.sum())
     if fam == "binomial":
@@ -338,25 +384,33 @@ def _refuse_constant(study: Study, frame: pd.DataFrame, cells: Cells) -> None:
         trials = frame[study.columns.trials].to_numpy(dtype=float) if study.columns.trials else np.ones(len(y))
         if y.sum() == 0 or y.sum() == trials.sum():
             what = "no success" if y.sum() == 0 else "only successes"
-            raise DataRoleError(f"outcome column '{col}' holds {what} in every row, so family 'binomial' has nothing "
-                                "to estimate an effect from. Check that the outcome column is the right one.")
+            raise DataRoleError(
+                f"outcome column '{col}' holds {what} in every row, so family 'binomial' has nothing "
+                "to estimate an effect from. Check that the outcome column is the right one."
+            )
         return
     if fam in ("poisson", "negbinomial"):
         if y.sum() == 0:
-            raise DataRoleError(f"outcome column '{col}' is 0 in every row: there are no events to estimate an effect "
-                                "from. Check that the outcome column is the right one.")
+            raise DataRoleError(
+                f"outcome column '{col}' is 0 in every row: there are no events to estimate an effect "
+                "from. Check that the outcome column is the right one."
+            )
         return
     if y.min() == y.max():
-        raise DataRoleError(f"outcome column '{col}' has the same value ({y[0]:g}) in every row: there is nothing to "
-                            "estimate. Check that the outcome column is the right one.")
+        raise DataRoleError(
+            f"outcome column '{col}' has the same value ({y[0]:g}) in every row: there is nothing to "
+            "estimate. Check that the outcome column is the right one."
+        )
     comp = cells.comparisons
     jur = frame[study.columns.jurisdiction].astype(str).to_numpy()
     in_comp = np.isin(jur, [cells.jurisdictions[j] for j in comp])
     yc = y[in_comp]
     if yc.size and yc.min() == yc.max():
-        raise DataRoleError(f"outcome column '{col}' has the same value ({yc[0]:g}) in every row of the comparison "
-                            "jurisdictions, so they say nothing about how the outcome varies without the policy. "
-                            "Check the outcome column and the rows of the comparison jurisdictions.")
+        raise DataRoleError(
+            f"outcome column '{col}' has the same value ({yc[0]:g}) in every row of the comparison "
+            "jurisdictions, so they say nothing about how the outcome varies without the policy. "
+            "Check the outcome column and the rows of the comparison jurisdictions."
+        )
     n, ss = cells.n[comp], cells.ss[comp]
     several = n >= 2
     if several.any() and study.summary is None:
@@ -368,7 +422,8 @@ def _refuse_constant(study: Study, frame: pd.DataFrame, cells: Cells) -> None:
                 f"outcome column '{col}' does not vary within any comparison cell (jurisdiction, group, period) that "
                 "holds several rows: it looks like one value per cell copied onto every row (say a region's rate "
                 "on each of its people), which would count each copy as a new observation. Give one row per "
-                "cell, or the row-level outcome.")
+                "cell, or the row-level outcome."
+            )
 
 
 def _coverage(study: Study, cells: Cells) -> list[str]:
@@ -387,14 +442,17 @@ def _coverage(study: Study, cells: Cells) -> list[str]:
             raise DataRoleError(
                 f"adopter '{cells.jurisdictions[j]}' is observed {how}in {pre} period(s) before its start "
                 f"({cells.periods[s]!r}) and {post} from it on; it needs at least one of each to inform the effect. "
-                f"Add its rows to the table, or remove it from 'policy.adopters'.")
+                f"Add its rows to the table, or remove it from 'policy.adopters'."
+            )
     sparse = [(cells.jurisdictions[j], int(seen[j].sum())) for j in cells.comparisons if seen[j].sum() < 2]
     if not sparse:
         return []
     shown = ", ".join(f"'{name}' ({k} period{'s' if k != 1 else ''})" for name, k in sparse[:8])
     more = f" and {len(sparse) - 8} more" if len(sparse) > 8 else ""
-    msg = (f"comparison jurisdiction(s) {shown}{more} are observed {how}in fewer than 2 periods, so they contribute "
-           "nothing to the comparison of changes (they are kept in the fit). Check the table for missing rows.")
+    msg = (
+        f"comparison jurisdiction(s) {shown}{more} are observed {how}in fewer than 2 periods, so they contribute "
+        "nothing to the comparison of changes (they are kept in the fit). Check the table for missing rows."
+    )
     warnings.warn(msg, SparseJurisdictionWarning, stacklevel=3)
     return [msg]
 
@@ -438,8 +496,10 @@ def collapse(study: Study, frame: pd.DataFrame) -> Cells:
         tgt = cells.n[j, cells.target]
         s = cells.start[j]
         if tgt[:s].sum() == 0 or tgt[s:].sum() == 0:
-            raise DataRoleError(f"adopter '{cells.jurisdictions[j]}' has no rows in the target group "
-                                "before or after its start; it cannot inform the effect.")
+            raise DataRoleError(
+                f"adopter '{cells.jurisdictions[j]}' has no rows in the target group "
+                "before or after its start; it cannot inform the effect."
+            )
     _refuse_constant(study, checked, cells)
     cells = replace(cells, extra={**cells.extra, "gap": _gap_of(study, cells)})
     notes = _coverage(study, cells)

@@ -50,8 +50,11 @@ def _add_sampling(p):
 
 
 def _add_streaming(p):
-    p.add_argument("--stream", action="store_true", help="collapse the table without reading it into memory "
-                                                         "(implied when data.table is a folder or a glob)")
+    p.add_argument(
+        "--stream",
+        action="store_true",
+        help="collapse the table without reading it into memory (implied when data.table is a folder or a glob)",
+    )
     p.add_argument("--cluster", help="collapse on Dask: a scheduler address (tcp://host:8786) or 'local'")
 
 
@@ -62,8 +65,13 @@ def _fit_and_write(study, out, args, argv, then=None):
 
     atomic_folder(out, replace=args.replace).check()  # before any work: the folder, then the table
     prepared = prepare(study, stream=getattr(args, "stream", False), cluster=getattr(args, "cluster", None))
-    an = analyse(study, progress=not args.quiet, log=None if args.quiet else _say,
-                 full_cross_check=not getattr(args, "no_cross_check", False), prepared=prepared)
+    an = analyse(
+        study,
+        progress=not args.quiet,
+        log=None if args.quiet else _say,
+        full_cross_check=not getattr(args, "no_cross_check", False),
+        prepared=prepared,
+    )
     path = write_run(an, out, replace=args.replace, argv=argv)
     summary = json.loads((path / "summary.json").read_text())
     print(headline_of(summary, json.loads((path / "manifest.json").read_text()).get("study")))
@@ -98,8 +106,7 @@ def cmd_demo(args, argv):
     gen = d.parent / "make_cases.py"
     if not (d / "study.toml").is_file() or not load_study(d / "study.toml").table.exists():
         if not gen.is_file():
-            raise BayesDidError(f"demo case '{args.case}' not found under {d.parent}; known cases are in "
-                                "case_files/.")
+            raise BayesDidError(f"demo case '{args.case}' not found under {d.parent}; known cases are in case_files/.")
         import importlib.util
 
         spec = importlib.util.spec_from_file_location("bayesdid_cases", gen)
@@ -111,7 +118,9 @@ def cmd_demo(args, argv):
     study = _overrides(load_study(d / "study.toml"), args)
     _say(f"demo case '{args.case}': {study.title} (invented data)")
     log = None if args.quiet else _say
-    return _fit_and_write(study, args.out, args, argv, then=lambda st, path, an: _demo_steps(st, path, log, d / "study.toml", an))
+    return _fit_and_write(
+        study, args.out, args, argv, then=lambda st, path, an: _demo_steps(st, path, log, d / "study.toml", an)
+    )
 
 
 #: The demo's short sweep: the base study and one variant with the effect prior at a tenth of the
@@ -158,8 +167,14 @@ def _demo_steps(study, path, log, study_file, an=None):
     summary = json.loads((Path(path) / "summary.json").read_text())
     effect = 0.1 * float(summary["priors"]["effect"]["scale"])
     sp = study.sampler
-    text = DEMO_SWEEP.format(study=json.dumps(str(Path(study_file).resolve())), chains=sp.chains, draws=sp.draws,
-                             tune=sp.tune, seed=sp.seed, effect=effect)
+    text = DEMO_SWEEP.format(
+        study=json.dumps(str(Path(study_file).resolve())),
+        chains=sp.chains,
+        draws=sp.draws,
+        tune=sp.tune,
+        seed=sp.seed,
+        effect=effect,
+    )
     drift = study.model.family == "gaussian" and not study.model.gap_drift
     if drift:
         text += DRIFT_VARIANT
@@ -201,8 +216,11 @@ def _optional_steps(study, path, an=None):
             _say(f"{name}: not available in this version of bayesdid; the report marks it as absent")
             continue
         params = inspect.signature(func).parameters
-        reuse = ({"cells": an.cells, "main_fit": an.fit}
-                 if an is not None and "cells" in params and "main_fit" in params else {})
+        reuse = (
+            {"cells": an.cells, "main_fit": an.fit}
+            if an is not None and "cells" in params and "main_fit" in params
+            else {}
+        )
         try:
             func(study, path, **reuse)
             _say(f"{name}: done")
@@ -238,9 +256,8 @@ def cmd_bench(args, argv):
 def cmd_checks(args, argv):
     from .checks import CHECKS as CHECK_NAMES
     from .checks import run_checks, write_checks
-    from .study import load_study
-
     from .run import atomic_folder, prepare
+    from .study import load_study
 
     study = _overrides(load_study(args.study), args)
     atomic_folder(args.out, replace=args.replace, kind="checks").check()
@@ -248,11 +265,20 @@ def cmd_checks(args, argv):
         raise BayesDidError(f"unknown check '{args.only}' for --only; choose one of {list(CHECK_NAMES)}.")
     tol = args.lead_tolerance
     if tol is not None and not (math.isfinite(tol) and tol > 0):
-        raise BayesDidError(f"command-line option --lead-tolerance {tol}: expected a positive finite number (on "
-                            "the model scale: log units for a log outcome).")
+        raise BayesDidError(
+            f"command-line option --lead-tolerance {tol}: expected a positive finite number (on "
+            "the model scale: log units for a log outcome)."
+        )
     cells, digest, _ = prepare(study)
-    report = run_checks(study, cells=cells, only=args.only, tolerance=args.lead_tolerance,
-                        pooled=args.pool_event_times, log=None if args.quiet else _say, data_sha256=digest)
+    report = run_checks(
+        study,
+        cells=cells,
+        only=args.only,
+        tolerance=args.lead_tolerance,
+        pooled=args.pool_event_times,
+        log=None if args.quiet else _say,
+        data_sha256=digest,
+    )
     path = write_checks(report, args.out, replace=args.replace, argv=argv)
     for r in report.results.values():
         print(r)
@@ -278,11 +304,15 @@ def cmd_trends(args, argv):
         try:
             mult = [float(v) for v in args.multiples.split(",") if v.strip()]
         except ValueError:
-            raise BayesDidError(f"command-line option --multiples {args.multiples!r}: expected numbers separated by "
-                                "commas, e.g. 0,0.5,1,2.") from None
+            raise BayesDidError(
+                f"command-line option --multiples {args.multiples!r}: expected numbers separated by "
+                "commas, e.g. 0,0.5,1,2."
+            ) from None
         if not mult or any(not math.isfinite(v) or v < 0 for v in mult):
-            raise BayesDidError(f"command-line option --multiples {args.multiples!r} (trends.multiples): expected "
-                                "zero or positive finite numbers; M scales the largest pre-policy change.")
+            raise BayesDidError(
+                f"command-line option --multiples {args.multiples!r} (trends.multiples): expected "
+                "zero or positive finite numbers; M scales the largest pre-policy change."
+            )
         mult = sorted(mult)
     run = Path(args.run_dir)
     tb = trends_from_run(run, multiples=mult)
@@ -299,8 +329,10 @@ def cmd_trends(args, argv):
         return EXIT_OK
     print("M      95% interval of the effect (model scale)   P(reduction)  P(increase)")
     for r in tb.rows:
-        print(f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
-              f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}")
+        print(
+            f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
+            f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}"
+        )
     print(tb.sentence)
     print(f"written to {run / 'trends.csv'} and summary.json (parallel_trends)")
     return EXIT_OK
@@ -310,25 +342,47 @@ def cmd_sweep(args, argv):
     from .sweep import check_sweep_folder, load_sweep, run_sweep
 
     if args.cluster and args.serial:
-        raise BayesDidError("--serial and --cluster exclude each other: --serial runs every variant in this "
-                            "process, --cluster sends them to Dask. Give one of them.")
+        raise BayesDidError(
+            "--serial and --cluster exclude each other: --serial runs every variant in this "
+            "process, --cluster sends them to Dask. Give one of them."
+        )
     check_sweep_folder(args.out)  # before reading the sweep's table
     executor = "serial" if args.serial else ("dask" if args.cluster else "pool")
     plan = load_sweep(args.sweep)
-    rep = run_sweep(plan, args.out, executor=executor, workers=args.workers, cluster=args.cluster,
-                    progress=not args.quiet, log=None if args.quiet else _say)
+    rep = run_sweep(
+        plan,
+        args.out,
+        executor=executor,
+        workers=args.workers,
+        cluster=args.cluster,
+        progress=not args.quiet,
+        log=None if args.quiet else _say,
+    )
     v = rep["verdict"]
     done = sum(r["status"] == "done" for r in rep["rows"])
-    print(f"{done} of {len(rep['rows'])} variant(s) done ({len(rep['ran'])} run now, {len(rep['skipped'])} "
-          f"already done, {len(rep['failed'])} failed); results in {args.out}")
+    print(
+        f"{done} of {len(rep['rows'])} variant(s) done ({len(rep['ran'])} run now, {len(rep['skipped'])} "
+        f"already done, {len(rep['failed'])} failed); results in {args.out}"
+    )
     if v.get("status") == "ok":
-        held = "; ".join(f"{c['check']}: {'holds' if c['holds'] else 'breaks in ' + str(len(c['breaks']))}"
-                         for c in v["checks"] if c["holds"] is not None)
-        print(f"verdict: {held}" + (f"; moves most: {v['moves_most']['label']} "
-                                    f"({v['moves_most']['shift_sd']:.2f} base sd)" if v.get("moves_most") else ""))
+        held = "; ".join(
+            f"{c['check']}: {'holds' if c['holds'] else 'breaks in ' + str(len(c['breaks']))}"
+            for c in v["checks"]
+            if c["holds"] is not None
+        )
+        print(
+            f"verdict: {held}"
+            + (
+                f"; moves most: {v['moves_most']['label']} ({v['moves_most']['shift_sd']:.2f} base sd)"
+                if v.get("moves_most")
+                else ""
+            )
+        )
     if rep["failed"]:
-        _say(f"{len(rep['failed'])} variant(s) failed; their errors are in {args.out}/manifest.json. "
-             "Rerun the same command to retry them (finished variants are kept).")
+        _say(
+            f"{len(rep['failed'])} variant(s) failed; their errors are in {args.out}/manifest.json. "
+            "Rerun the same command to retry them (finished variants are kept)."
+        )
         return EXIT_VARIANTS_FAILED
     return EXIT_OK
 
@@ -342,52 +396,90 @@ def cmd_plan(args, argv):
     atomic_folder(args.out, replace=args.replace, kind="plan").check()  # before any work
     progress = progress_path(args.out)
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)
-    result = run_plan(plan, workers=args.workers, cluster=args.cluster, progress_file=progress,
-                      progress=not args.quiet, log=None if args.quiet else _say)
+    result = run_plan(
+        plan,
+        workers=args.workers,
+        cluster=args.cluster,
+        progress_file=progress,
+        progress=not args.quiet,
+        log=None if args.quiet else _say,
+    )
     path = write_plan(result, args.out, replace=args.replace, argv=argv)
     for line in plan_sentences(result["summary"]):
         print(line)
     print(f"plan results in {path}")
     failed = result["summary"]["failed"]
     if failed:
-        _say(f"{len(failed)} rep(s) failed (errors in {path}/plan.json); the tables use the others. The finished "
-             f"reps are kept in {progress}: rerun the same command with --replace to retry the failed ones.")
+        _say(
+            f"{len(failed)} rep(s) failed (errors in {path}/plan.json); the tables use the others. The finished "
+            f"reps are kept in {progress}: rerun the same command with --replace to retry the failed ones."
+        )
         return EXIT_VARIANTS_FAILED
     progress.unlink(missing_ok=True)
     return EXIT_OK
 
 
 # ---- bench calibration options (issue 8) ----
-_CALIBRATION_OPTIONS = ("reps", "scenario", "out", "workers", "cluster", "sbc_reps", "draws", "tune", "seed",
-                        "replace", "large", "rows")
+_CALIBRATION_OPTIONS = (
+    "reps",
+    "scenario",
+    "out",
+    "workers",
+    "cluster",
+    "sbc_reps",
+    "draws",
+    "tune",
+    "seed",
+    "replace",
+    "large",
+    "rows",
+)
 
 
 def _add_calibration_options(b):
     c = b.add_argument_group("calibration (bayesdid bench calibration)")
     c.add_argument("--reps", type=int, help="simulated data sets for coverage (default 200; 4 with --quick)")
-    c.add_argument("--scenario", help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
-                                           "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo; "
-                                           "bench persistence: copay_cap (default) or nurse_line")
-    c.add_argument("--out", help="folder for calibration.json, the per-rep CSVs and the SBC plot "
-                                 "(default runs/calibration-SCENARIO)")
+    c.add_argument(
+        "--scenario",
+        help="one_adopter (default), staggered, did, heavy_tails, ar1_ddd_0, ar1_ddd_05, "
+        "ar1_ddd_08, ar1_did_08, ar1_staggered_08, one_row_did, castle_placebo; "
+        "bench persistence: copay_cap (default) or nurse_line",
+    )
+    c.add_argument(
+        "--out",
+        help="folder for calibration.json, the per-rep CSVs and the SBC plot (default runs/calibration-SCENARIO)",
+    )
     c.add_argument("--workers", type=int, help="local worker processes (default 2; 1 runs in this process)")
-    c.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local' "
-                                     "for a local Dask cluster of --workers processes")
+    c.add_argument(
+        "--cluster",
+        help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local' "
+        "for a local Dask cluster of --workers processes",
+    )
     c.add_argument("--sbc-reps", type=int, help="simulation-based calibration reps (default: as --reps; 0 skips)")
     c.add_argument("--draws", type=int, help="draws per chain (default 500)")
     c.add_argument("--tune", type=int, help="tuning steps per chain (default 500)")
     c.add_argument("--seed", type=int, help="base seed; each rep's seeds derive from it and the rep index")
     c.add_argument("--replace", action="store_true", help="replace an existing, non-empty --out folder")
     k = b.add_argument_group("large tables (bayesdid bench collapse --large)")
-    k.add_argument("--large", action="store_true", help="write a Parquet data set in parts and stream-collapse it "
-                                                        "(time, peak memory, Dask equality)")
-    k.add_argument("--rows", type=int, help="rows of the --large data set (default 200,000,000; 2,000,000 with --quick)")
+    k.add_argument(
+        "--large",
+        action="store_true",
+        help="write a Parquet data set in parts and stream-collapse it (time, peak memory, Dask equality)",
+    )
+    k.add_argument(
+        "--rows", type=int, help="rows of the --large data set (default 200,000,000; 2,000,000 with --quick)"
+    )
 
 
 #: Options each benchmark takes beyond --quick (the calibration benchmark takes them all).
-_BENCH_OPTIONS = {"calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"}, "collapse": {"large", "rows"},
-                  "weights": {"reps", "draws", "tune", "seed"}, "persistence": {"scenario"},
-                  "panel": {"reps", "draws", "tune", "seed"}, "plan": {"reps", "workers", "cluster"}}
+_BENCH_OPTIONS = {
+    "calibration": set(_CALIBRATION_OPTIONS) - {"large", "rows"},
+    "collapse": {"large", "rows"},
+    "weights": {"reps", "draws", "tune", "seed"},
+    "persistence": {"scenario"},
+    "panel": {"reps", "draws", "tune", "seed"},
+    "plan": {"reps", "workers", "cluster"},
+}
 
 
 def _calibration_kwargs(args) -> dict:
@@ -398,9 +490,11 @@ def _calibration_kwargs(args) -> dict:
     if extra:
         opts = ", ".join("--" + k.replace("_", "-") for k in extra)
         takers = sorted(n for n, o in _BENCH_OPTIONS.items() if set(extra) <= o)
-        raise BayesDidError(f"{opts}: 'bayesdid bench {args.name}' does not take "
-                            f"{'this option' if len(extra) == 1 else 'these options'}"
-                            + (f"; {', '.join(takers)} do{'es' if len(takers) == 1 else ''}." if takers else "."))
+        raise BayesDidError(
+            f"{opts}: 'bayesdid bench {args.name}' does not take "
+            f"{'this option' if len(extra) == 1 else 'these options'}"
+            + (f"; {', '.join(takers)} do{'es' if len(takers) == 1 else ''}." if takers else ".")
+        )
     return given
 
 
@@ -410,16 +504,20 @@ def cmd_cache(args, argv):
     c = cachedir.current()
     if args.action == "clear":
         before = cachedir.clear(c)
-        print(f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
-              f"from {c.path}")
+        print(
+            f"removed {before['models']} compiled model(s) and {before['bytes'] / 1e6:.1f} MB of compile files "
+            f"from {c.path}"
+        )
         return EXIT_OK
     from .modelcache import entry_ok
 
     i = cachedir.info(c, entry_ok=entry_ok)
     print(f"cache folder: {i['folder']} (chosen by {i['chosen_by']})")
     print(f"writable: {'yes' if i['writable'] else 'no, ' + i['reason']}")
-    print(f"compiled models: {i['models']}" + (f" ({i['damaged']} damaged: the next run that needs them rebuilds "
-                                               "them)" if i["damaged"] else ""))
+    print(
+        f"compiled models: {i['models']}"
+        + (f" ({i['damaged']} damaged: the next run that needs them rebuilds them)" if i["damaged"] else "")
+    )
     for sub, p in i["parts"].items():
         print(f"  {sub}/: {p['files']} file(s), {p['bytes'] / 1e6:.1f} MB")
     print("clear it with: bayesdid cache clear")
@@ -427,9 +525,13 @@ def cmd_cache(args, argv):
 
 
 def _add_cache_dir(p, top: bool = False):
-    p.add_argument("--cache-dir", metavar="FOLDER", default=None if top else argparse.SUPPRESS,
-                   help="compile cache folder (default: $BAYESDID_CACHE_DIR, else $XDG_CACHE_HOME/bayesdid, "
-                        "else ~/.cache/bayesdid)")
+    p.add_argument(
+        "--cache-dir",
+        metavar="FOLDER",
+        default=None if top else argparse.SUPPRESS,
+        help="compile cache folder (default: $BAYESDID_CACHE_DIR, else $XDG_CACHE_HOME/bayesdid, "
+        "else ~/.cache/bayesdid)",
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -439,7 +541,8 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=textwrap.dedent("""\
             exit codes: 0 done, 2 bad input (nothing written), 3 diagnostics failed with --strict,
-            4 some sweep variants or plan reps failed (recorded; rerun to retry)"""))
+            4 some sweep variants or plan reps failed (recorded; rerun to retry)"""),
+    )
     _add_cache_dir(p, top=True)
     sub = p.add_subparsers(dest="command", required=True)
     f = sub.add_parser("fit", help="fit a study and write a run folder")
@@ -447,9 +550,12 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--out", required=True, help="run folder to create")
     _add_sampling(f)
     _add_streaming(f)
-    f.add_argument("--no-cross-check", action="store_true",
-                   help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
-                        "wild cluster bootstrap and the placebo permutation")
+    f.add_argument(
+        "--no-cross-check",
+        action="store_true",
+        help="least squares: keep the estimate and its classical, HC1 and CR1 errors, skip the "
+        "wild cluster bootstrap and the placebo permutation",
+    )
     f.set_defaults(func=cmd_fit)
     d = sub.add_parser("demo", help="generate (if needed) and fit an invented demo case, then write its report")
     d.add_argument("--out", default="runs/demo", help="run folder to create (default runs/demo)")
@@ -477,21 +583,30 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("sweep", help="sweep file (TOML) naming the base study and its variants")
     w.add_argument("--out", required=True, help="results folder (reused on a rerun: finished variants are kept)")
     w.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2)")
-    w.add_argument("--cluster", help="run on Dask: a scheduler address (tcp://host:8786) or 'local' for a "
-                                     "LocalCluster on 127.0.0.1")
+    w.add_argument(
+        "--cluster",
+        help="run on Dask: a scheduler address (tcp://host:8786) or 'local' for a LocalCluster on 127.0.0.1",
+    )
     w.add_argument("--serial", action="store_true", help="run the variants one after another in this process")
     w.add_argument("--quiet", action="store_true", help="no progress display")
     w.set_defaults(func=cmd_sweep)
-    t = sub.add_parser("trends", help="how far parallel trends may fail before the conclusion changes "
-                                      "(relative-magnitudes bound over a grid of M) for a run folder")
+    t = sub.add_parser(
+        "trends",
+        help="how far parallel trends may fail before the conclusion changes "
+        "(relative-magnitudes bound over a grid of M) for a run folder",
+    )
     t.add_argument("run_dir", metavar="RUN_DIR", help="run folder written by fit, analyze or demo")
     t.add_argument("--multiples", help="grid of M, comma-separated (default: the study's trends.multiples)")
     t.set_defaults(func=cmd_trends)
     pl = sub.add_parser("plan", help="assurance before the data: simulate and fit a proposed evaluation's layout")
     pl.add_argument("plan", help="plan file (TOML): layout, noise, true effects, decision rule")
     pl.add_argument("--out", required=True, help="folder for plan.json, the CSV tables, the figure and report.html")
-    pl.add_argument("--workers", type=int, default=2, help="worker processes (local pool or local Dask; default 2; "
-                                                          "1 runs in this process)")
+    pl.add_argument(
+        "--workers",
+        type=int,
+        default=2,
+        help="worker processes (local pool or local Dask; default 2; 1 runs in this process)",
+    )
     pl.add_argument("--cluster", help="run the reps on Dask: a scheduler address (tcp://host:8786) or 'local'")
     pl.add_argument("--reps", type=int, help="data sets per layout and effect (overrides simulation.reps)")
     pl.add_argument("--draws", type=int, help="draws per chain (overrides simulation.draws)")
@@ -501,8 +616,11 @@ def build_parser() -> argparse.ArgumentParser:
     pl.add_argument("--quiet", action="store_true", help="no progress display")
     pl.set_defaults(func=cmd_plan)
     b = sub.add_parser("bench", help="benchmarks that print one JSON line of measured ratios")
-    b.add_argument("name", help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
-                                  "weights, panel, plan, compile, analyze")
+    b.add_argument(
+        "name",
+        help="benchmark name: collapse, crosscheck, families, placebo, sweep, calibration, "
+        "weights, panel, plan, compile, analyze",
+    )
     b.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
     _add_calibration_options(b)
     b.set_defaults(func=cmd_bench)
@@ -532,8 +650,10 @@ def _use_cache_dir(folder: str) -> None:
     from . import cachedir
 
     if "pytensor" in sys.modules and cachedir.current().path != cachedir.resolve(folder)[0]:
-        _say(f"--cache-dir {folder}: PyTensor is already loaded in this process, so only bayesdid's compiled "
-             "models go there; PyTensor's own files stay in " + str(cachedir.current().path))
+        _say(
+            f"--cache-dir {folder}: PyTensor is already loaded in this process, so only bayesdid's compiled "
+            "models go there; PyTensor's own files stay in " + str(cachedir.current().path)
+        )
     cachedir.configure(folder)
 
 

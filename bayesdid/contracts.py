@@ -24,9 +24,23 @@ from dataclasses import asdict, dataclass, field, fields
 
 import pandas as pd
 
-__all__ = ["ContractError", "TABLE_COLUMNS", "SWEEP_SUMMARY_COLUMNS", "ordered", "check_columns", "run_id",
-           "EffectSummary", "CrossCheck", "Diagnostics", "CheckSection", "VariantRow", "SweepVerdict",
-           "CHECK_NAMES", "CHECK_STATUSES", "RunIdentity"]
+__all__ = [
+    "ContractError",
+    "TABLE_COLUMNS",
+    "SWEEP_SUMMARY_COLUMNS",
+    "ordered",
+    "check_columns",
+    "run_id",
+    "EffectSummary",
+    "CrossCheck",
+    "Diagnostics",
+    "CheckSection",
+    "VariantRow",
+    "SweepVerdict",
+    "CHECK_NAMES",
+    "CHECK_STATUSES",
+    "RunIdentity",
+]
 
 
 class ContractError(ValueError):
@@ -39,23 +53,73 @@ CHECK_STATUSES = ("ok", "flag", "not applicable", "failed")
 #: Columns of every CSV table a command writes, in order.
 TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
     "event_time": ("event_time", "role", "mean", "sd", "lower_90", "upper_90", "prob_gt_0", "adopters"),
-    "pretrend_band": ("adopter", "period", "period_index", "event_time", "observed_gap", "expected_gap",
-                      "band_median", "band_lower_90", "band_upper_90"),
-    "pretrend_stats": ("adopter", "statistic", "observed_mean", "replicated_lower_90", "replicated_upper_90",
-                       "p_value"),
+    "pretrend_band": (
+        "adopter",
+        "period",
+        "period_index",
+        "event_time",
+        "observed_gap",
+        "expected_gap",
+        "band_median",
+        "band_lower_90",
+        "band_upper_90",
+    ),
+    "pretrend_stats": (
+        "adopter",
+        "statistic",
+        "observed_mean",
+        "replicated_lower_90",
+        "replicated_upper_90",
+        "p_value",
+    ),
     "placebo_time": ("lag", "fake_start", "mean", "sd", "lower_90", "upper_90", "prob_gt_0"),
     "placebo_space": ("jurisdiction", "role", "mean", "sd", "lower_90", "upper_90", "prob_gt_0", "rank"),
-    "comparison": ("jurisdiction", "mean", "sd", "lower_90", "upper_90", "prob_gt_0", "robust_z", "flagged",
-                   "loo_effect_mean", "loo_lower_90", "loo_upper_90"),
+    "comparison": (
+        "jurisdiction",
+        "mean",
+        "sd",
+        "lower_90",
+        "upper_90",
+        "prob_gt_0",
+        "robust_z",
+        "flagged",
+        "loo_effect_mean",
+        "loo_lower_90",
+        "loo_upper_90",
+    ),
 }
 
 #: Columns of a sweep's summary.csv. Effect figures are the ATT on the model scale (log units for a
 #: log outcome); ``pct_*`` are the percent change exp(ATT) - 1 when the outcome is logged.
-SWEEP_SUMMARY_COLUMNS = ("id", "label", "status", "overrides", "seed", "effect_mean", "effect_sd",
-                         "eti90_low", "eti90_high", "eti95_low", "eti95_high", "hdi90_low", "hdi90_high",
-                         "prob_gt_0", "prob_lt_0", "threshold", "prob_beyond_threshold", "pct_mean",
-                         "pct_eti90_low", "pct_eti90_high", "diagnostics_ok", "rhat_max", "ess_bulk_min",
-                         "divergences", "sensitivity_ok", "sample_s", "error")
+SWEEP_SUMMARY_COLUMNS = (
+    "id",
+    "label",
+    "status",
+    "overrides",
+    "seed",
+    "effect_mean",
+    "effect_sd",
+    "eti90_low",
+    "eti90_high",
+    "eti95_low",
+    "eti95_high",
+    "hdi90_low",
+    "hdi90_high",
+    "prob_gt_0",
+    "prob_lt_0",
+    "threshold",
+    "prob_beyond_threshold",
+    "pct_mean",
+    "pct_eti90_low",
+    "pct_eti90_high",
+    "diagnostics_ok",
+    "rhat_max",
+    "ess_bulk_min",
+    "divergences",
+    "sensitivity_ok",
+    "sample_s",
+    "error",
+)
 TABLE_COLUMNS["sweep_summary"] = SWEEP_SUMMARY_COLUMNS
 
 
@@ -75,10 +139,13 @@ def check_columns(name: str, frame: pd.DataFrame, *, where: str) -> pd.DataFrame
     missing = [c for c in want if c not in have]
     extra = [c for c in have if c not in want]
     if missing or extra:
-        raise ContractError(f"{where}: table '{name}' should have the columns {list(want)}; "
-                            + (f"missing {missing}" if missing else "")
-                            + ("; " if missing and extra else "") + (f"unexpected {extra}" if extra else "")
-                            + ". It was written by another version of bayesdid: rerun the command that made it.")
+        raise ContractError(
+            f"{where}: table '{name}' should have the columns {list(want)}; "
+            + (f"missing {missing}" if missing else "")
+            + ("; " if missing and extra else "")
+            + (f"unexpected {extra}" if extra else "")
+            + ". It was written by another version of bayesdid: rerun the command that made it."
+        )
     return frame
 
 
@@ -96,8 +163,9 @@ def _need(d, keys, what):
         raise ContractError(f"{what}: expected an object, found {type(d).__name__}")
     missing = [k for k in keys if k not in d]
     if missing:
-        raise ContractError(f"{what} lacks {missing}; it was written by another version of bayesdid: "
-                            "rerun the command that made it.")
+        raise ContractError(
+            f"{what} lacks {missing}; it was written by another version of bayesdid: rerun the command that made it."
+        )
 
 
 class _Typed:

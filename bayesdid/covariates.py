@@ -40,14 +40,18 @@ def parse_formula(spec: str):
     import formulaic
 
     if "~" in spec:
-        raise StudyError(f"study key 'model.covariates': {spec!r} has a left-hand side ('~'); give only the "
-                         "covariate terms, e.g. \"age + C(sex)\" (the outcome is 'data.outcome').")
+        raise StudyError(
+            f"study key 'model.covariates': {spec!r} has a left-hand side ('~'); give only the "
+            "covariate terms, e.g. \"age + C(sex)\" (the outcome is 'data.outcome')."
+        )
     try:
         formula = formulaic.Formula(spec)
     except Exception as exc:  # formulaic raises several syntax error types
         first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise StudyError(f"study key 'model.covariates': {spec!r} is not a formula formulaic can read "
-                         f"({first}). Write terms joined by '+', e.g. \"age + C(sex)\".") from None
+        raise StudyError(
+            f"study key 'model.covariates': {spec!r} is not a formula formulaic can read "
+            f"({first}). Write terms joined by '+', e.g. \"age + C(sex)\"."
+        ) from None
     return formula
 
 
@@ -76,17 +80,22 @@ def design_matrix(spec: str, frame: pd.DataFrame) -> dict:
 
     missing = [c for c in required_columns(spec) if c not in frame.columns]
     if missing:
-        raise DataRoleError(f"column(s) {missing} named in 'model.covariates' are not in the table; fix the "
-                            "formula or the table's header.")
+        raise DataRoleError(
+            f"column(s) {missing} named in 'model.covariates' are not in the table; fix the "
+            "formula or the table's header."
+        )
     try:
         mm = formulaic.model_matrix(spec, frame, na_action="raise")
     except Exception as exc:
-        raise DataRoleError(f"'model.covariates' = {spec!r} could not be evaluated on the table "
-                            f"({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}).") from None
+        raise DataRoleError(
+            f"'model.covariates' = {spec!r} could not be evaluated on the table "
+            f"({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})."
+        ) from None
     names = [c for c in mm.columns if c != "Intercept"]
     if not names:
-        raise StudyError(f"study key 'model.covariates': {spec!r} gives no covariate column; drop the key "
-                         "or name a column.")
+        raise StudyError(
+            f"study key 'model.covariates': {spec!r} gives no covariate column; drop the key or name a column."
+        )
     X = np.asarray(mm[names], dtype=float)
     means = X.mean(axis=0)
     Xc = X - means

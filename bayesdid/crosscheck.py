@@ -64,8 +64,8 @@ from scipy import linalg, stats
 from threadpoolctl import threadpool_limits
 
 from .cells import Cells
-from .fixed_effects import _fixed_effects, cell_design
 from .errors import BayesDidError
+from .fixed_effects import _fixed_effects, cell_design
 
 __all__ = [
     "cell_design",
@@ -92,7 +92,7 @@ COVARIATE_KEYS = {
     "sxx": "(J, G, T, K, K) per-cell sums of x x'",
     "sxy": "(J, G, T, K) per-cell sums of x * y",
     "moment4": "optional, (J, G, T, P, P, P, P) per-cell sums of v(x)v(x)v(x)v with v = (1, y, x_1..x_K), "
-               "P = K + 2; needed only for the HC1 error with covariates",
+    "P = K + 2; needed only for the HC1 error with covariates",
 }
 #: Fewer treated clusters than this and CR1 is called unreliable (MacKinnon and Webb 2017, rule of thumb).
 FEW_TREATED = 5
@@ -175,8 +175,9 @@ def _design(cells: Cells) -> _Design:
         n = np.asarray(sampling["sum_w"], dtype=float).ravel()[keep]
         ss = np.asarray(sampling["ss_w"], dtype=float).ravel()[keep]
         nobs = float(np.asarray(sampling["rows"]).ravel()[keep].sum())
-        hc1_parts = tuple(np.asarray(sampling[k], dtype=float).ravel()[keep] for k in ("sum_w2", "w2_dev", "w2_dev2")
-                          if k in sampling)
+        hc1_parts = tuple(
+            np.asarray(sampling[k], dtype=float).ravel()[keep] for k in ("sum_w2", "w2_dev", "w2_dev2") if k in sampling
+        )
     panel = cells.extra.get("panel") if cells.extra else None
     absorbed = 0
     if panel is not None:  # unit fixed effects by centring: the regression with unit dummies
@@ -195,15 +196,32 @@ def _design(cells: Cells) -> _Design:
     code[cj] = np.arange(len(cj))
     assert np.all(np.diff(jj) >= 0)  # cells are ordered jurisdiction-major
     bounds = np.flatnonzero(np.r_[True, np.diff(jj) > 0])
-    des = _Design(cells=cells, keep=keep, jj=jj, gg=gg, tt=tt, cluster=code[jj], cluster_jur=cj, n=n,
-                  ybar=ybar, ss=ss, U=u[:, :r], rank=r + absorbed, columns=F.shape[1], bounds=bounds, nobs=nobs,
-                  weighted_hc1=hc1_parts if len(hc1_parts) == 3 else None)
+    des = _Design(
+        cells=cells,
+        keep=keep,
+        jj=jj,
+        gg=gg,
+        tt=tt,
+        cluster=code[jj],
+        cluster_jur=cj,
+        n=n,
+        ybar=ybar,
+        ss=ss,
+        U=u[:, :r],
+        rank=r + absorbed,
+        columns=F.shape[1],
+        bounds=bounds,
+        nobs=nobs,
+        weighted_hc1=hc1_parts if len(hc1_parts) == 3 else None,
+    )
     cov = cells.extra.get("covariates") if cells.extra else None
     if cov:
         missing = [k for k in ("names", "sx", "sxx", "sxy") if k not in cov]
         if missing:
-            raise BayesDidError(f"cells.extra['covariates'] lacks {missing}; the cross-check needs "
-                                f"{ {k: v for k, v in COVARIATE_KEYS.items() if k != 'moment4'} }.")
+            raise BayesDidError(
+                f"cells.extra['covariates'] lacks {missing}; the cross-check needs "
+                f"{ {k: v for k, v in COVARIATE_KEYS.items() if k != 'moment4'} }."
+            )
         names = tuple(cov["names"])
         K = len(names)
         P = K + 2
@@ -214,8 +232,10 @@ def _design(cells: Cells) -> _Design:
                 continue
             arr = np.asarray(cov[key], dtype=float)
             if arr.shape != shape:
-                raise BayesDidError(f"cells.extra['covariates']['{key}'] has shape {arr.shape}; expected {shape} "
-                                    f"for {K} covariate(s) {list(names)} on {J} x {G} x {T} cells.")
+                raise BayesDidError(
+                    f"cells.extra['covariates']['{key}'] has shape {arr.shape}; expected {shape} "
+                    f"for {K} covariate(s) {list(names)} on {J} x {G} x {T} cells."
+                )
             arrays[key] = arr.reshape(J * G * T, *shape[3:])[keep]
         sx, sxx, sxy = arrays["sx"], arrays["sxx"], arrays["sxy"]
         sy = cells.sum_y.ravel()[keep]
@@ -265,17 +285,21 @@ def _fit(des: _Design, d: np.ndarray) -> _Fit:
         rhs[1:] += des.sxy_w.sum(0)
     scale = float((des.n * d * d).sum())
     if scale == 0 or A[0, 0] <= 1e-10 * scale:
-        raise BayesDidError("the treatment indicator is absorbed by the fixed effects (no adopter has target-group "
-                            "cells both before and after its start next to comparison cells); the least-squares "
-                            "estimate is not identified.")
+        raise BayesDidError(
+            "the treatment indicator is absorbed by the fixed effects (no adopter has target-group "
+            "cells both before and after its start next to comparison cells); the least-squares "
+            "estimate is not identified."
+        )
     if des.K:
         # scaled by the raw second moments, a (near) zero eigenvalue means a covariate is collinear
         raw = np.sqrt(np.r_[scale, np.maximum(np.einsum("ckk->k", _raw_sxx(des)), 1e-300)])
         collinear = np.linalg.eigvalsh(A / np.outer(raw, raw)).min() < 1e-9
     if des.K and collinear:
-        raise BayesDidError(f"the covariates {list(des.covariates)} are collinear with each other, the treatment or "
-                            "the fixed effects (for example a covariate constant within jurisdiction-periods); "
-                            "drop or combine them in model.covariates.")
+        raise BayesDidError(
+            f"the covariates {list(des.covariates)} are collinear with each other, the treatment or "
+            "the fixed effects (for example a covariate constant within jurisdiction-periods); "
+            "drop or combine them in model.covariates."
+        )
     coef = np.linalg.solve(A, rhs)
     theta = coef[1:]
     rbar = c["yt"] - Wt @ coef
@@ -283,15 +307,23 @@ def _fit(des: _Design, d: np.ndarray) -> _Fit:
     if des.K:
         within += -2 * des.sxy_w @ theta + np.einsum("cab,a,b->c", des.sxx_w, theta, theta)
     k = des.rank + 1 + des.K
-    return _Fit(beta=float(coef[0]), theta=theta, A=A, Ainv=np.linalg.inv(A), Wt=Wt, rbar=rbar,
-                within_ssr=within, dof=des.rows - k)
+    return _Fit(
+        beta=float(coef[0]),
+        theta=theta,
+        A=A,
+        Ainv=np.linalg.inv(A),
+        Wt=Wt,
+        rbar=rbar,
+        within_ssr=within,
+        dof=des.rows - k,
+    )
 
 
 def _errors(des: _Design, f: _Fit) -> dict:
     """Classical, HC1 and CR1 standard errors of beta (see the module docstring)."""
     n, N, C = des.n, des.rows, des.clusters
     a = f.Ainv[:, 0]
-    ssr = float((f.within_ssr + n * f.rbar ** 2).sum())
+    ssr = float((f.within_ssr + n * f.rbar**2).sum())
     out = {"se_classical": math.sqrt(ssr / f.dof * f.Ainv[0, 0])}
     # cluster scores S_j = sum_{i in j} w~_i e_i
     score = f.Wt * (n * f.rbar)[:, None]
@@ -299,20 +331,22 @@ def _errors(des: _Design, f: _Fit) -> dict:
         score[:, 1:] += des.sxy_w - des.sxx_w @ f.theta
     s_j = des.cluster_sum(score @ a)
     cr1 = C / (C - 1) * (N - 1) / f.dof if C > 1 else float("nan")
-    out["se_cr1"] = math.sqrt(cr1 * float((s_j ** 2).sum())) if C > 1 else None
+    out["se_cr1"] = math.sqrt(cr1 * float((s_j**2).sum())) if C > 1 else None
     out["factor_cr1"] = cr1
     out["factor_hc1"] = N / f.dof
     out["hc1_reason"] = None
     if des.nobs is not None and des.weighted_hc1 is None:
         out["se_hc1"] = None
-        out["hc1_reason"] = ("not computed: the cells lack the per-cell sums of w^2, w^2 e and w^2 e^2 that its meat "
-                             "needs; CR1 and the wild cluster bootstrap are weighted")
+        out["hc1_reason"] = (
+            "not computed: the cells lack the per-cell sums of w^2, w^2 e and w^2 e^2 that its meat "
+            "needs; CR1 and the wild cluster bootstrap are weighted"
+        )
     elif des.nobs is not None:  # weighted rows: sum_i w_i^2 e_i^2 with e_i = (y_i - ybar_c) + rbar_c
         sw2, w2d, w2d2 = des.weighted_hc1
-        e2 = w2d2 + 2 * f.rbar * w2d + f.rbar ** 2 * sw2
+        e2 = w2d2 + 2 * f.rbar * w2d + f.rbar**2 * sw2
         out["se_hc1"] = math.sqrt(N / f.dof * float((e2 * (a[0] * f.Wt[:, 0]) ** 2).sum()))
     elif not des.K:
-        e2 = f.within_ssr + n * f.rbar ** 2
+        e2 = f.within_ssr + n * f.rbar**2
         out["se_hc1"] = math.sqrt(N / f.dof * float((e2 * (a[0] * f.Wt[:, 0]) ** 2).sum()))
     elif des.moment4 is not None:
         th, az = f.theta, a[1:]
@@ -324,9 +358,11 @@ def _errors(des: _Design, f: _Fit) -> dict:
         out["se_hc1"] = math.sqrt(N / f.dof * float(meat))
     else:
         out["se_hc1"] = None
-        out["hc1_reason"] = ("not available with covariates unless the cells carry per-cell fourth moments "
-                             "(cells.extra['covariates']['moment4']); the HC1 meat sum_i e_i^2 (a'w_i)^2 is a "
-                             "quartic in the row values")
+        out["hc1_reason"] = (
+            "not available with covariates unless the cells carry per-cell fourth moments "
+            "(cells.extra['covariates']['moment4']); the HC1 meat sum_i e_i^2 (a'w_i)^2 is a "
+            "quartic in the row values"
+        )
     return out
 
 
@@ -424,7 +460,7 @@ class _Wild:
         for sign in (-1.0, 1.0):
             inside, out = self.f.beta, None
             for k in range(40):
-                cand = self.f.beta + sign * step * 2.0 ** k
+                cand = self.f.beta + sign * step * 2.0**k
                 if self.pvalue(cand) < alpha:
                     out = cand
                     break
@@ -509,25 +545,32 @@ def _placebo(des: _Design, beta: float, limit: int, seed: int) -> dict:
     usable = int(valid.sum())
     extreme = int((np.abs(est[valid]) >= abs(beta) * (1 - 1e-10)).sum())
     names = cells.jurisdictions
-    placebos = [{"adopters": [names[j] for j in combo], "estimate": float(e), "real": bool(real)}
-                for (combo, _, real), e, v in zip(plan, est, valid) if v]
+    placebos = [
+        {"adopters": [names[j] for j in combo], "estimate": float(e), "real": bool(real)}
+        for (combo, _, real), e, v in zip(plan, est, valid)
+        if v
+    ]
     result = {
         "p_value": extreme / usable if usable else None,
         "assignments": usable,
         "possible": int(count),
         "sampled": sampled,
         "skipped_not_identified": int((~valid).sum()),
-        "rule": ("the adopters' start periods given in turn to other jurisdictions "
-                 + ("(all combinations)" if not sampled else f"({usable} drawn at random of {count})")
-                 + "; the real adopters return to the comparison pool; p = share of assignments, the real one "
-                   "included, whose |estimate| is at least the real |estimate|"),
+        "rule": (
+            "the adopters' start periods given in turn to other jurisdictions "
+            + ("(all combinations)" if not sampled else f"({usable} drawn at random of {count})")
+            + "; the real adopters return to the comparison pool; p = share of assignments, the real one "
+            "included, whose |estimate| is at least the real |estimate|"
+        ),
         "estimates": [p["estimate"] for p in placebos if not p["real"]],
     }
     if len(placebos) <= 200:
         result["placebos"] = [p for p in placebos if not p["real"]]
     if usable < 20:
-        result["note"] = (f"only {usable} assignments: the smallest attainable p-value is {1 / max(usable, 1):.3f}, "
-                          "so the test cannot reject at 5%")
+        result["note"] = (
+            f"only {usable} assignments: the smallest attainable p-value is {1 / max(usable, 1):.3f}, "
+            "so the test cannot reject at 5%"
+        )
     return result
 
 
@@ -536,19 +579,31 @@ def _placebo(des: _Design, beta: float, limit: int, seed: int) -> dict:
 # ------------------------------------------------------------------------------------------------
 def _advice(treated: int, clusters: int) -> str:
     if treated < FEW_TREATED:
-        return (f"Only {treated} treated cluster(s) of {clusters}: the CR1 standard error and its p-value are "
-                f"unreliable here (cluster-robust errors over-reject with fewer than about {FEW_TREATED} treated "
-                "clusters; MacKinnon and Webb 2017, rule of thumb; Conley and Taber 2011). Trust the placebo-in-"
-                "space permutation p-value and the posterior instead; the restricted wild cluster bootstrap is "
-                "safer than CR1 but tends to under-reject, with wide or unbounded intervals, when one or two "
-                "clusters are treated.")
-    return (f"{treated} treated clusters of {clusters}: CR1 is usually adequate at this number (MacKinnon and Webb "
-            "2017, rule of thumb); the restricted wild cluster bootstrap p-value is the safer check and should "
-            "agree with it, and the permutation p-value and the posterior are there to confirm.")
+        return (
+            f"Only {treated} treated cluster(s) of {clusters}: the CR1 standard error and its p-value are "
+            f"unreliable here (cluster-robust errors over-reject with fewer than about {FEW_TREATED} treated "
+            "clusters; MacKinnon and Webb 2017, rule of thumb; Conley and Taber 2011). Trust the placebo-in-"
+            "space permutation p-value and the posterior instead; the restricted wild cluster bootstrap is "
+            "safer than CR1 but tends to under-reject, with wide or unbounded intervals, when one or two "
+            "clusters are treated."
+        )
+    return (
+        f"{treated} treated clusters of {clusters}: CR1 is usually adequate at this number (MacKinnon and Webb "
+        "2017, rule of thumb); the restricted wild cluster bootstrap p-value is the safer check and should "
+        "agree with it, and the permutation p-value and the posterior are there to confirm."
+    )
 
 
-def cross_check(cells: Cells, *, seed: int = 20261202, draws: int = 999, weights: str = "webb",
-                full: bool = True, placebos: int = 999, level: float = 0.95) -> dict:
+def cross_check(
+    cells: Cells,
+    *,
+    seed: int = 20261202,
+    draws: int = 999,
+    weights: str = "webb",
+    full: bool = True,
+    placebos: int = 999,
+    level: float = 0.95,
+) -> dict:
     """The least-squares cross-check of a study's cells.
 
     Parameters
@@ -589,8 +644,7 @@ def cross_check(cells: Cells, *, seed: int = 20261202, draws: int = 999, weights
     # The matrices here have one row per cell, so they are small: a multithreaded BLAS only adds
     # overhead, and on a shared CPU it was measured 10-20 times slower than one thread.
     with threadpool_limits(limits=1, user_api="blas"):
-        return _cross_check(cells, seed=seed, draws=draws, weights=weights, full=full, placebos=placebos,
-                            level=level)
+        return _cross_check(cells, seed=seed, draws=draws, weights=weights, full=full, placebos=placebos, level=level)
 
 
 def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
@@ -603,8 +657,11 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     tq = stats.t.ppf(0.5 + level / 2, C - 1) if C > 1 else float("nan")
     se = err["se_cr1"]
     p_cr1 = float(2 * stats.t.sf(abs(f.beta / se), C - 1)) if se else None
-    design_text = ("jurisdiction x group, jurisdiction x period and group x period fixed effects"
-                   if cells.design == "DDD" else "jurisdiction and period fixed effects (two-way)")
+    design_text = (
+        "jurisdiction x group, jurisdiction x period and group x period fixed effects"
+        if cells.design == "DDD"
+        else "jurisdiction and period fixed effects (two-way)"
+    )
     pct = int(round(level * 100))
     out = {
         "estimate": f.beta,
@@ -625,11 +682,11 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
         "covariates": list(des.covariates),
         "method": {
             "regression": f"OLS on the rows with {design_text} and the treatment indicator"
-                          + (f", covariates {list(des.covariates)}" if des.K else "")
-                          + "; solved exactly from per-cell statistics (Frisch-Waugh-Lovell on cells)",
+            + (f", covariates {list(des.covariates)}" if des.K else "")
+            + "; solved exactly from per-cell statistics (Frisch-Waugh-Lovell on cells)",
             "se_classical": "s^2 (X'X)^-1 with s^2 = SSR / (N - k)",
             "se_hc1": "HC1: N / (N - k) x sum_i e_i^2 x_i x_i' sandwich"
-                      + (f"; {err['hc1_reason']}" if err["hc1_reason"] else ""),
+            + (f"; {err['hc1_reason']}" if err["hc1_reason"] else ""),
             "se_cr1": "CR1 clustered by jurisdiction: G / (G - 1) x (N - 1) / (N - k) small-sample factor",
             "p_cr1": "two-sided, Student t with G - 1 degrees of freedom",
             "factor_hc1": err["factor_hc1"],
@@ -653,14 +710,18 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
         out["p_wild"] = wild.pvalue(0.0)
         out[f"ci_wild_{pct}"] = [lo, hi]  # None marks a side that is unbounded
         out["wild"] = {
-            "weights": weights, "weights_text": WEIGHT_KINDS[weights], "draws": int(V.shape[1]),
-            "enumerated": enumerated, "seed": seed,
+            "weights": weights,
+            "weights_text": WEIGHT_KINDS[weights],
+            "draws": int(V.shape[1]),
+            "enumerated": enumerated,
+            "seed": seed,
             "method": "restricted (null imposed) wild cluster bootstrap of the CR1 t statistic, symmetric "
-                      "p-value P(|t*| >= |t|); interval by inverting the test over beta0 with the same weights",
+            "p-value P(|t*| >= |t|); interval by inverting the test over beta0 with the same weights",
         }
         if lo is None or hi is None:
-            out["wild"]["note"] = ("the interval is unbounded on at least one side (given as null; common with one "
-                                   "treated cluster)")
+            out["wild"]["note"] = (
+                "the interval is unbounded on at least one side (given as null; common with one treated cluster)"
+            )
     perm = _placebo(des, f.beta, placebos, seed)
     out["p_permutation"] = perm["p_value"]
     out["permutation"] = perm
@@ -669,8 +730,7 @@ def _cross_check(cells, *, seed, draws, weights, full, placebos, level):
     return out
 
 
-def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
-                     designs: dict | None = None) -> dict:
+def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202, designs: dict | None = None) -> dict:
     """The least-squares estimate and its placebo-in-space distribution, without errors or bootstrap.
 
     The same assignments and estimates as :func:`cross_check` (``p_value`` two-sided on |estimate|,
@@ -687,8 +747,9 @@ def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
         if key in designs:
             base = designs[key]
             keep = base.keep
-            des = dataclasses.replace(base, cells=cells, ybar=cells.sum_y.ravel()[keep] / base.n,
-                                      ss=cells.ss.ravel()[keep], cache={})
+            des = dataclasses.replace(
+                base, cells=cells, ybar=cells.sum_y.ravel()[keep] / base.n, ss=cells.ss.ravel()[keep], cache={}
+            )
         else:
             des = designs[key] = _design(cells)
             if len(designs) > 64:  # a worker sees few layouts; keep the memory bounded anyway
@@ -702,13 +763,27 @@ def permutation_test(cells: Cells, *, placebos: int = 999, seed: int = 20261202,
 
 def cross_check_not_applicable(reason: str) -> dict:
     """The cross-check's keys, all empty, with the reason it could not run."""
-    keys = ("estimate", "se_classical", "se_hc1", "se_cr1", "p_cr1", "p_wild", "ci_wild_95", "p_permutation",
-            "clusters", "treated_clusters")
+    keys = (
+        "estimate",
+        "se_classical",
+        "se_hc1",
+        "se_cr1",
+        "p_cr1",
+        "p_wild",
+        "ci_wild_95",
+        "p_permutation",
+        "clusters",
+        "treated_clusters",
+    )
     return {**{k: None for k in keys}, "advice": f"not applicable: {reason}", "not_applicable": reason}
 
 
 def least_squares_estimate(cells: Cells) -> dict:
     """Point estimate of the saturated fixed-effects regression (equals row-level OLS)."""
     out = cross_check(cells, full=False)
-    return {"estimate": out["estimate"], "regressors": out["regressors"], "cells": out["cells"],
-            "method": out["method"]["regression"]}
+    return {
+        "estimate": out["estimate"],
+        "regressors": out["regressors"],
+        "cells": out["cells"],
+        "method": out["method"]["regression"],
+    }

@@ -18,8 +18,18 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["summarize", "hdi", "Effect", "att_weights", "compute_effects", "beyond_text", "percent_change",
-           "NaturalEffects", "natural_effects", "counterfactual_means"]
+__all__ = [
+    "summarize",
+    "hdi",
+    "Effect",
+    "att_weights",
+    "compute_effects",
+    "beyond_text",
+    "percent_change",
+    "NaturalEffects",
+    "natural_effects",
+    "counterfactual_means",
+]
 
 
 def hdi(x: np.ndarray, prob: float = 0.9) -> tuple[float, float]:
@@ -86,14 +96,20 @@ class Effect:
         def f(v):
             return f"{v * 100:+.1f}%" if pct else f"{v:+.4g}"
 
-        lines = [f"{self.name} ({self.measure}): mean {f(s['mean'])}, 90% interval {f(s['eti_90'][0])} to "
-                 f"{f(s['eti_90'][1])}",
-                 (f"  probability the ratio is above 1: {s['prob_gt_1']:.0%}; below 1: {s['prob_lt_1']:.0%}"
-                  if "prob_gt_1" in s else
-                  f"  probability the effect is positive: {s['prob_gt_0']:.0%}; negative: {s['prob_lt_0']:.0%}")]
+        lines = [
+            f"{self.name} ({self.measure}): mean {f(s['mean'])}, 90% interval {f(s['eti_90'][0])} to "
+            f"{f(s['eti_90'][1])}",
+            (
+                f"  probability the ratio is above 1: {s['prob_gt_1']:.0%}; below 1: {s['prob_lt_1']:.0%}"
+                if "prob_gt_1" in s
+                else f"  probability the effect is positive: {s['prob_gt_0']:.0%}; negative: {s['prob_lt_0']:.0%}"
+            ),
+        ]
         if s["prob_beyond_threshold"] is not None and self.scale == "ratio":
-            lines.append(f"  probability the ratio is {'below' if s['threshold'] < 1 else 'above'} "
-                         f"{s['threshold']:g}: {s['prob_beyond_threshold']:.0%}")
+            lines.append(
+                f"  probability the ratio is {'below' if s['threshold'] < 1 else 'above'} "
+                f"{s['threshold']:g}: {s['prob_beyond_threshold']:.0%}"
+            )
         elif s["prob_beyond_threshold"] is not None:
             lines.append(f"  probability of {beyond_text(s['threshold'], pct)}: {s['prob_beyond_threshold']:.0%}")
         return "\n".join(lines)
@@ -126,7 +142,7 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     att = tau_a @ w
     family = getattr(getattr(fit, "spec", None), "family", "gaussian")
     log = cells.log_outcome or family != "gaussian"
-    thr_model = (np.log1p(threshold) if (log and threshold is not None) else threshold)
+    thr_model = np.log1p(threshold) if (log and threshold is not None) else threshold
     measure = MODEL_MEASURES.get(family) or ("difference in log outcome" if log else "difference in outcome")
     out = {"effect": Effect("ATT", measure, "model", att, thr_model)}
     if cells.log_outcome:
@@ -135,11 +151,16 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     per = []
     for a, j in enumerate(cells.adopters):
         e = Effect(cells.jurisdictions[j], measure, "model", tau_a[:, a], thr_model)
-        row = {"adopter": cells.jurisdictions[j], "start": _plain(cells.periods[cells.start[j]]),
-               "weight": float(w[a]), **e.summary}
+        row = {
+            "adopter": cells.jurisdictions[j],
+            "start": _plain(cells.periods[cells.start[j]]),
+            "weight": float(w[a]),
+            **e.summary,
+        }
         if cells.log_outcome:
-            row["percent"] = Effect(cells.jurisdictions[j], "percent change", "percent",
-                                    percent_change(tau_a[:, a]), threshold).summary
+            row["percent"] = Effect(
+                cells.jurisdictions[j], "percent change", "percent", percent_change(tau_a[:, a]), threshold
+            ).summary
         per.append(row)
     out["per_adopter"] = per
     return out
@@ -237,21 +258,25 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
         if att is None:
             att = fit.draws("tau_adopter") @ att_weights(cells)
         if cells.log_outcome:
-            return NaturalEffects([Effect("ATT", "percent change, exp(ATT) - 1", "percent", np.expm1(att),
-                                          threshold)])
-        return NaturalEffects([Effect("ATT", "difference in outcome (natural scale = model scale)", "model",
-                                      att, threshold)])
+            return NaturalEffects([Effect("ATT", "percent change, exp(ATT) - 1", "percent", np.expm1(att), threshold)])
+        return NaturalEffects(
+            [Effect("ATT", "difference in outcome (natural scale = model scale)", "model", att, threshold)]
+        )
     p1, p0, w = counterfactual_means(fit)
     W = w.sum()
     m1, m0 = p1 @ w / W, p0 @ w / W
     if family == "binomial":
-        return NaturalEffects([
-            _difference_effect("ATT", "risk difference, percentage points", 100.0 * (m1 - m0)),
-            _ratio_effect("ATT", "risk ratio", m1 / m0, threshold),
-        ])
-    return NaturalEffects([
-        _ratio_effect("ATT", "rate ratio", m1 / m0, threshold),
-        _difference_effect("ATT", "rate difference per 1,000 units of exposure", 1000.0 * (m1 - m0)),
-        _difference_effect("ATT", "events averted per 1,000 units of exposure", 1000.0 * (m0 - m1)),
-        _difference_effect("ATT", "events averted in the treated cells (total)", W * (m0 - m1)),
-    ])
+        return NaturalEffects(
+            [
+                _difference_effect("ATT", "risk difference, percentage points", 100.0 * (m1 - m0)),
+                _ratio_effect("ATT", "risk ratio", m1 / m0, threshold),
+            ]
+        )
+    return NaturalEffects(
+        [
+            _ratio_effect("ATT", "rate ratio", m1 / m0, threshold),
+            _difference_effect("ATT", "rate difference per 1,000 units of exposure", 1000.0 * (m1 - m0)),
+            _difference_effect("ATT", "events averted per 1,000 units of exposure", 1000.0 * (m0 - m1)),
+            _difference_effect("ATT", "events averted in the treated cells (total)", W * (m0 - m1)),
+        ]
+    )

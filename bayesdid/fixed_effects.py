@@ -85,8 +85,10 @@ def check_identified(cells, sums: dict, names: list[str], *, rtol: float = 1e-8)
     total = sums["sxx"][keep].sum(axis=0)  # centred at overall means, so this is the total SS
     for k, nm in enumerate(names):
         if total[k, k] <= 1e-12 * max(1.0, np.abs(total).max()):
-            raise DataRoleError(f"covariate column '{nm}' (from 'model.covariates') is constant over the rows "
-                                "used; it carries no information. Remove it from the formula.")
+            raise DataRoleError(
+                f"covariate column '{nm}' (from 'model.covariates') is constant over the rows "
+                "used; it carries no information. Remove it from the formula."
+            )
     X, _, nn, _, _, _ = cell_design(cells)
     nk = np.maximum(n[keep], 1.0)
     xbar = sums["sx"][keep] / nk[:, None]
@@ -98,16 +100,23 @@ def check_identified(cells, sums: dict, names: list[str], *, rtol: float = 1e-8)
     for k in range(K):
         alone = M[k, k] / total[k, k]
         if alone < rtol:
-            what = ("jurisdiction x group, jurisdiction x period and group x period effects and the treatment"
-                    if cells.design == "DDD" else "jurisdiction and period effects and the treatment")
-            raise DataRoleError(f"covariate column '{names[k]}' (from 'model.covariates') is collinear with the "
-                                f"fixed structure ({what}): it does not vary within those, so its coefficient "
-                                "cannot be told apart from them. Remove it from the formula.")
+            what = (
+                "jurisdiction x group, jurisdiction x period and group x period effects and the treatment"
+                if cells.design == "DDD"
+                else "jurisdiction and period effects and the treatment"
+            )
+            raise DataRoleError(
+                f"covariate column '{names[k]}' (from 'model.covariates') is collinear with the "
+                f"fixed structure ({what}): it does not vary within those, so its coefficient "
+                "cannot be told apart from them. Remove it from the formula."
+            )
         if k:
             P = M[:k, :k]
             sol = np.linalg.lstsq(P, M[:k, k], rcond=None)[0]
             schur = M[k, k] - M[k, :k] @ sol
             if schur / total[k, k] < rtol:
-                raise DataRoleError(f"covariate column '{names[k]}' (from 'model.covariates') is collinear with "
-                                    f"the earlier covariate(s) {names[:k]} given the fixed structure. Remove "
-                                    "one of them from the formula.")
+                raise DataRoleError(
+                    f"covariate column '{names[k]}' (from 'model.covariates') is collinear with "
+                    f"the earlier covariate(s) {names[:k]} given the fixed structure. Remove "
+                    "one of them from the formula."
+                )

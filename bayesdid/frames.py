@@ -41,8 +41,10 @@ def _get(path):
     except KeyError:
         from .errors import DataRoleError
 
-        raise DataRoleError(f"table '{path}' was a data frame held in another Python process; it is not in this "
-                            "one. Pass the frame to make_study again, or save it to a CSV or Parquet file.") from None
+        raise DataRoleError(
+            f"table '{path}' was a data frame held in another Python process; it is not in this "
+            "one. Pass the frame to make_study again, or save it to a CSV or Parquet file."
+        ) from None
 
 
 def frame_of(path):

@@ -46,8 +46,7 @@ import numpy as np
 from . import cachedir
 from .version import __version__
 
-__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS", "LOG_ENV",
-           "read_log"]
+__all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS", "LOG_ENV", "read_log"]
 
 #: Bump when the entry layout or the way models are compiled changes (compile flags, nutpie wrapper).
 FORMAT = 2
@@ -130,12 +129,23 @@ def _material(model) -> dict:
     triple, cpu, features = cpu_target.target_context.codegen().magic_tuple()
     return {
         "format": FORMAT,
-        "versions": {"python": platform.python_version(), "numpy": np.__version__, "pytensor": pytensor.__version__,
-                     "numba": numba.__version__, "llvmlite": llvmlite.__version__, "nutpie": nutpie.__version__,
-                     "pymc": pymc.__version__, "bayesdid": __version__},
+        "versions": {
+            "python": platform.python_version(),
+            "numpy": np.__version__,
+            "pytensor": pytensor.__version__,
+            "numba": numba.__version__,
+            "llvmlite": llvmlite.__version__,
+            "nutpie": nutpie.__version__,
+            "pymc": pymc.__version__,
+            "bayesdid": __version__,
+        },
         "target": {"triple": triple, "cpu": cpu, "features": features},
-        "flags": {"backend": "numba", "fastmath": False, "numba_opt": str(numba.config.OPT),
-                  "floatX": pytensor.config.floatX},
+        "flags": {
+            "backend": "numba",
+            "fastmath": False,
+            "numba_opt": str(numba.config.OPT),
+            "floatX": pytensor.config.floatX,
+        },
         "graph": graph_fingerprint(model),
     }
 
@@ -222,7 +232,7 @@ def _checked_body(raw: bytes) -> bytes:
     """The payload of an entry's bytes after its header and checksum are verified."""
     if not raw.startswith(MAGIC):
         raise DamagedEntry("it does not start with bayesdid's header")
-    rest = raw[len(MAGIC):]
+    rest = raw[len(MAGIC) :]
     digest, sep, body = rest[:64], rest[64:65], rest[65:]
     if sep != b"\n" or hashlib.sha256(body).hexdigest().encode() != digest:
         raise DamagedEntry(f"its checksum does not match ({len(raw):,} bytes; truncated or altered)")
@@ -287,18 +297,25 @@ def _assemble(model, payload: dict, functions: tuple):
     if list(names[:n_free]) != free_names:
         raise DamagedEntry("its variables do not match the model's")
     # As nutpie.compile_pymc_model does it: support points with a U(-1, 1) jitter of every free variable.
-    ipf = make_initial_point_fn(model=model, overrides=None, default_strategy="support_point",
-                                jitter_rvs=set(model.free_RVs), return_transformed=True)
+    ipf = make_initial_point_fn(
+        model=model,
+        overrides=None,
+        default_strategy="support_point",
+        jitter_rvs=set(model.free_RVs),
+        return_transformed=True,
+    )
     # The sizes of the free variables are baked into the machine code (nutpie's flat parameter vector).
     # A graph whose sizes all live in data containers and dims has one fingerprint for every size, so
     # check them: code for other sizes would read and write past the model's parameter vector.
     point = ipf(0)
     sizes = [tuple(np.shape(point[n])) for n in free_names]
     if sizes != [tuple(int(d) for d in s) for s in shapes[:n_free]]:
-        raise DamagedEntry(f"it was compiled for other sizes of the model's variables ({dict(zip(free_names, sizes))} "
-                           "here)")
-    ipf = ncp._rv_dict_to_flat_array_wrapper(ncp._wrap_with_lock(ipf), names=list(names[:n_free]),
-                                             shapes=list(shapes[:n_free]))
+        raise DamagedEntry(
+            f"it was compiled for other sizes of the model's variables ({dict(zip(free_names, sizes))} here)"
+        )
+    ipf = ncp._rv_dict_to_flat_array_wrapper(
+        ncp._wrap_with_lock(ipf), names=list(names[:n_free]), shapes=list(shapes[:n_free])
+    )
     shared, var_keys = {}, {}
     for name, key in payload["data_keys"]:
         if name not in model.named_vars:
@@ -311,12 +328,22 @@ def _assemble(model, payload: dict, functions: tuple):
     ncp.update_user_data(user_data, shared)
     dims, coords = ncp._prepare_dims_and_coords(model, payload["shape_info"], payload["reparameterized"])
     return ncp.CompiledPyMCModel(
-        _n_dim=payload["n_dim"], dims=dims, _coords=coords,
+        _n_dim=payload["n_dim"],
+        dims=dims,
+        _coords=coords,
         _shapes={n: tuple(s) for n, _, s in zip(*payload["shape_info"])},
-        compiled_logp_func=logp, compiled_expand_func=expand, initial_point_func=ipf,
-        shared_data=shared, shared_var_keys=var_keys, user_data=user_data, n_expanded=payload["n_expanded"],
-        shape_info=payload["shape_info"], logp_func=None, expand_func=None,
-        reparameterized_names=payload["reparameterized"])
+        compiled_logp_func=logp,
+        compiled_expand_func=expand,
+        initial_point_func=ipf,
+        shared_data=shared,
+        shared_var_keys=var_keys,
+        user_data=user_data,
+        n_expanded=payload["n_expanded"],
+        shape_info=payload["shape_info"],
+        logp_func=None,
+        expand_func=None,
+        reparameterized_names=payload["reparameterized"],
+    )
 
 
 @contextmanager
@@ -347,8 +374,10 @@ def _try_load(path: Path, key: str, material: dict, model):
         try:
             return _assemble(model, payload, functions)
         except DamagedEntry as exc:  # sizes differ under one fingerprint: compile this one anew
-            cachedir.warn_once(f"sizes:{key}", f"a compiled model of this process cannot be reused: {exc}. "
-                               "It is compiled again for these sizes.")
+            cachedir.warn_once(
+                f"sizes:{key}",
+                f"a compiled model of this process cannot be reused: {exc}. It is compiled again for these sizes.",
+            )
             del _IN_PROCESS[key]
             try:
                 path.unlink()
@@ -363,8 +392,9 @@ def _try_load(path: Path, key: str, material: dict, model):
         compiled = _assemble(model, payload, functions)
     except (DamagedEntry, OSError, KeyError, ValueError, TypeError, RuntimeError) as exc:
         STATS["damaged"] += 1
-        cachedir.warn_once(f"damaged:{key}", f"the compile cache entry {path} cannot be used: {exc}. It is "
-                           "rebuilt now (one compile).")
+        cachedir.warn_once(
+            f"damaged:{key}", f"the compile cache entry {path} cannot be used: {exc}. It is rebuilt now (one compile)."
+        )
         try:
             path.unlink()
         except OSError:
@@ -398,8 +428,15 @@ def _log(model, key: str, how: str, seconds: float) -> None:
     target = os.environ.get(LOG_ENV)
     if not target:
         return
-    rec = {"time": time.time(), "pid": os.getpid(), "test": os.environ.get("PYTEST_CURRENT_TEST", "").split(" ")[0],
-           "key": key, "how": how, "seconds": round(seconds, 3), **_layout(model)}
+    rec = {
+        "time": time.time(),
+        "pid": os.getpid(),
+        "test": os.environ.get("PYTEST_CURRENT_TEST", "").split(" ")[0],
+        "key": key,
+        "how": how,
+        "seconds": round(seconds, 3),
+        **_layout(model),
+    }
     try:
         with open(target, "a", encoding="utf-8") as fh:  # one short write per line: appends do not interleave
             fh.write(json.dumps(rec) + "\n")
@@ -448,10 +485,13 @@ def _compile_cached(model, compile_fn) -> tuple[object, str, str]:
     if compiled is not None:
         return compiled, "in-process" if in_process else "loaded", key
     if not cache.writable:
-        cachedir.warn_once("read-only", f"the compile cache folder {cache.path} cannot be written "
-                           f"({cache.reason}): compiled models are kept in this process only, so every new "
-                           "process compiles again (tens of seconds per model). Set BAYESDID_CACHE_DIR or "
-                           "--cache-dir to a writable folder to keep them.")
+        cachedir.warn_once(
+            "read-only",
+            f"the compile cache folder {cache.path} cannot be written "
+            f"({cache.reason}): compiled models are kept in this process only, so every new "
+            "process compiles again (tens of seconds per model). Set BAYESDID_CACHE_DIR or "
+            "--cache-dir to a writable folder to keep them.",
+        )
         return _compile(model, compile_fn, key, material, None), "compiled", key
     with _locked(cache.models / f"{key}.lock"):
         compiled = _try_load(path, key, material, model)  # written by another process while we waited
@@ -471,14 +511,19 @@ def _compile(model, compile_fn, key: str, material: dict, path: Path | None):
             _write_entry(path, payload)
         except OSError as exc:
             STATS["store_failed"] += 1
-            cachedir.warn_once("store", f"the compiled model could not be written to the cache folder "
-                               f"{path.parent} ({exc.strerror or exc}): the next process compiles it again.")
+            cachedir.warn_once(
+                "store",
+                f"the compiled model could not be written to the cache folder "
+                f"{path.parent} ({exc.strerror or exc}): the next process compiles it again.",
+            )
     return compiled
 
 
 def describe(path: Path) -> dict:
     """Size and age of an entry (for ``bayesdid cache info``)."""
     st = path.stat()
-    return {"entry": path.name, "bytes": st.st_size, "written": time.strftime("%Y-%m-%d %H:%M:%S",
-                                                                              time.localtime(st.st_mtime))}
-
+    return {
+        "entry": path.name,
+        "bytes": st.st_size,
+        "written": time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(st.st_mtime)),
+    }

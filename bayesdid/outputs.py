@@ -24,11 +24,20 @@ import time
 import uuid
 from pathlib import Path
 
-from .version import __version__
 from .errors import OutputError
+from .version import __version__
 
-__all__ = ["atomic_folder", "check_output_folder", "is_bayesdid_folder", "clean_leftovers", "owner_tag",
-           "owner_alive", "process_start", "probe_writable", "MANIFEST"]
+__all__ = [
+    "atomic_folder",
+    "check_output_folder",
+    "is_bayesdid_folder",
+    "clean_leftovers",
+    "owner_tag",
+    "owner_alive",
+    "process_start",
+    "probe_writable",
+    "MANIFEST",
+]
 
 MANIFEST = "manifest.json"
 
@@ -126,8 +135,9 @@ def _listing(folder: Path, limit: int = 4) -> str:
     return f" (it holds {shown})" if names else ""
 
 
-def check_output_folder(target: str | Path, *, replace: bool = False, option: str = "--out",
-                        what: str = "run folder") -> Path:
+def check_output_folder(
+    target: str | Path, *, replace: bool = False, option: str = "--out", what: str = "run folder"
+) -> Path:
     """Refuse, before any work, an output folder that cannot or may not be written.
 
     Refused: ``target`` is a file (never replaced, with or without ``replace``); a non-empty folder
@@ -144,31 +154,41 @@ def check_output_folder(target: str | Path, *, replace: bool = False, option: st
     if t.is_symlink() and not t.exists():
         raise OutputError(f"{option} '{t}' is a broken symbolic link; remove it or choose another {option}.")
     if t.exists() and not t.is_dir():
-        raise OutputError(f"{option} '{t}' is a file, not a folder: bayesdid writes a {what} there and never "
-                          f"replaces a file (not even with --replace). Choose another {option}.")
+        raise OutputError(
+            f"{option} '{t}' is a file, not a folder: bayesdid writes a {what} there and never "
+            f"replaces a file (not even with --replace). Choose another {option}."
+        )
     if t.is_dir():
         try:
             full = any(t.iterdir())
         except OSError as exc:
-            raise OutputError(f"{option} '{t}' cannot be read ({type(exc).__name__}: {exc.strerror or exc}); "
-                              f"choose another {option}.") from None
+            raise OutputError(
+                f"{option} '{t}' cannot be read ({type(exc).__name__}: {exc.strerror or exc}); choose another {option}."
+            ) from None
         if full and not is_bayesdid_folder(t):
             raise OutputError(
                 f"{option} '{t}' already exists and holds files bayesdid did not write{_listing(t)}: it has no "
                 f"manifest.json of bayesdid, so it is never replaced, not even with --replace. Choose another "
-                f"{option}.")
+                f"{option}."
+            )
         if full and not replace:
-            raise OutputError(f"{option} '{t}' already exists and is not empty: it holds a bayesdid {what}. Choose "
-                              f"another {option}, or pass --replace to swap it for the new results once they are "
-                              "complete.")
+            raise OutputError(
+                f"{option} '{t}' already exists and is not empty: it holds a bayesdid {what}. Choose "
+                f"another {option}, or pass --replace to swap it for the new results once they are "
+                "complete."
+            )
     anchor = _nearest_existing(t.parent if t.name else t)
     if not anchor.is_dir():
-        raise OutputError(f"{option} '{t}': '{anchor}' is a file, not a folder, so the {what} cannot be created "
-                          f"under it. Choose another {option}.")
+        raise OutputError(
+            f"{option} '{t}': '{anchor}' is a file, not a folder, so the {what} cannot be created "
+            f"under it. Choose another {option}."
+        )
     why = probe_writable(anchor)
     if why is not None:
-        raise OutputError(f"{option} '{t}': nothing can be written in folder '{anchor}' ({why}). Choose an "
-                          f"{option} in a folder you can write to.")
+        raise OutputError(
+            f"{option} '{t}': nothing can be written in folder '{anchor}' ({why}). Choose an "
+            f"{option} in a folder you can write to."
+        )
     return t
 
 
@@ -254,10 +274,18 @@ class atomic_folder:
         t = self.target
         try:
             if not (self.tmp / MANIFEST).is_file():
-                (self.tmp / MANIFEST).write_text(json.dumps(
-                    {"bayesdid": __version__, "kind": self.kind,
-                     "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, indent=2) + "\n",
-                    encoding="utf-8")
+                (self.tmp / MANIFEST).write_text(
+                    json.dumps(
+                        {
+                            "bayesdid": __version__,
+                            "kind": self.kind,
+                            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                        },
+                        indent=2,
+                    )
+                    + "\n",
+                    encoding="utf-8",
+                )
             # the target may have appeared or changed while the work ran: check it again
             check_output_folder(t, replace=self.replace, option=self.option, what=f"{self.kind} folder")
         except BaseException:

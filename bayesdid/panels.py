@@ -59,8 +59,10 @@ def check_units(study: Study, frame: pd.DataFrame) -> None:
     u = frame[c.unit]
     miss = u.isna().to_numpy()
     if miss.any():
-        raise DataRoleError(f"unit column '{c.unit}' has {_rows_text(miss)} missing; every row of a panel needs its "
-                            "unit. Fill or drop those rows, or leave out data.unit for a pooled analysis.")
+        raise DataRoleError(
+            f"unit column '{c.unit}' has {_rows_text(miss)} missing; every row of a panel needs its "
+            "unit. Fill or drop those rows, or leave out data.unit for a pooled analysis."
+        )
     key = u.astype(str)
     for role in ("jurisdiction", "group"):
         col = getattr(c, role)
@@ -70,13 +72,15 @@ def check_units(study: Study, frame: pd.DataFrame) -> None:
         moved = k[k > 1]
         if len(moved):
             ex = frame.loc[key.isin(moved.index[:3]), [c.unit, col]].astype(str).drop_duplicates()
-            detail = "; ".join(f"{uid!r}: {', '.join(sorted(ex.loc[ex[c.unit] == uid, col]))}"
-                               for uid in moved.index[:3])
+            detail = "; ".join(
+                f"{uid!r}: {', '.join(sorted(ex.loc[ex[c.unit] == uid, col]))}" for uid in moved.index[:3]
+            )
             raise DataRoleError(
                 f"{len(moved)} unit(s) of column '{c.unit}' appear in more than one {role} (column '{col}'), e.g. "
                 f"{detail}. Unit fixed effects need each unit in one {role} throughout: a unit that moves mixes "
                 f"two {role}s' conditions. Drop those units' rows, or assign each to one {role} by a rule stated "
-                "in your protocol (say, its first period's).")
+                "in your protocol (say, its first period's)."
+            )
     per = frame.groupby([key, frame[c.period].astype(str)], sort=False).size()
     dup = per[per > 1]
     if len(dup):
@@ -84,7 +88,8 @@ def check_units(study: Study, frame: pd.DataFrame) -> None:
         raise DataRoleError(
             f"{len(ids)} unit(s) of column '{c.unit}' have more than one row in a period (e.g. {_ids(ids, 3)}). "
             "A panel here holds one row per unit and period: aggregate each unit's rows per period first (a sum "
-            "or a mean, as the outcome means), or leave out data.unit for a pooled analysis.")
+            "or a mean, as the outcome means), or leave out data.unit for a pooled analysis."
+        )
     cell = frame[c.jurisdiction].astype(str)
     if c.group is not None:
         cell = cell + "\x1f" + frame[c.group].astype(str)
@@ -99,13 +104,15 @@ def check_units(study: Study, frame: pd.DataFrame) -> None:
             f"{' and group' if c.group else ''} (e.g. {_ids(short)}): the panel is unbalanced. bayesdid's unit fixed "
             "effects need a balanced panel (with attrition the centred cell means would mix units differently "
             "in each period). Keep the units observed throughout, or leave out data.unit for the pooled analysis "
-            "(same estimand, wider intervals when units differ a lot).")
+            "(same estimand, wider intervals when units differ a lot)."
+        )
     single = periods_of_cell[periods_of_cell < 2]
     if len(single):
         raise DataRoleError(
             f"{len(single)} jurisdiction(s){'/group(s)' if c.group else ''} are observed in a single period "
             f"(e.g. {_ids([s.replace(chr(31), '/') for s in single.index])}); with unit fixed effects their units "
-            "carry no information. Drop their rows, or leave out data.unit.")
+            "carry no information. Drop their rows, or leave out data.unit."
+        )
 
 
 def within_units(units: pd.Series, y: np.ndarray) -> dict:

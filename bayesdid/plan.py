@@ -51,33 +51,51 @@ import sys
 import time
 import tomllib
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
-from collections.abc import Mapping
 
 import numpy as np
 
 from .errors import PlanError
 
-__all__ = ["Layout", "Noise", "Plan", "RepTask", "load_plan", "make_plan", "simulate_cells", "run_rep",
-           "run_plan", "assurance_table", "shift_log_weights", "flat_rows", "resolve_noise", "with_overrides", "progress_path", "normal_assurance", "write_plan", "plan_tasks", "DEFAULT_NOISE"]
+__all__ = [
+    "Layout",
+    "Noise",
+    "Plan",
+    "RepTask",
+    "load_plan",
+    "make_plan",
+    "simulate_cells",
+    "run_rep",
+    "run_plan",
+    "assurance_table",
+    "shift_log_weights",
+    "flat_rows",
+    "resolve_noise",
+    "with_overrides",
+    "progress_path",
+    "normal_assurance",
+    "write_plan",
+    "plan_tasks",
+    "DEFAULT_NOISE",
+]
 
 #: Stated noise scales (model scale) and their defaults: the data-generating process of DESIGN.md.
 DEFAULT_NOISE = {
-    "gap": 0.05,           # sd of the structural gap noise e[j,t] (target group)
-    "shock": 0.1,          # sd of the jurisdiction-period shock s[j,t] shared by the groups (DDD)
-    "residual": 1.0,       # sd of a row around its cell mean (a number, or [reference, target])
-    "baseline": 0.3,       # sd of the jurisdiction-group baselines around the group means
-    "period": 0.1,         # sd of the common period effects
+    "gap": 0.05,  # sd of the structural gap noise e[j,t] (target group)
+    "shock": 0.1,  # sd of the jurisdiction-period shock s[j,t] shared by the groups (DDD)
+    "residual": 1.0,  # sd of a row around its cell mean (a number, or [reference, target])
+    "baseline": 0.3,  # sd of the jurisdiction-group baselines around the group means
+    "period": 0.1,  # sd of the common period effects
     "group_period": 0.05,  # sd of the target group's own period effects (DDD)
-    "rho": 0.0,            # AR(1) correlation of the gap noise over periods within a jurisdiction
+    "rho": 0.0,  # AR(1) correlation of the gap noise over periods within a jurisdiction
 }
 NOISE_MEANING = {
     "gap": "sd of the structural gap noise of each jurisdiction-period (the target group's; what the effect "
-           "is judged against)",
-    "shock": "sd of the jurisdiction-period shock shared by both groups (DDD only; the triple difference "
-             "removes it)",
+    "is judged against)",
+    "shock": "sd of the jurisdiction-period shock shared by both groups (DDD only; the triple difference removes it)",
     "residual": "sd of one row around its cell mean",
     "baseline": "sd of the jurisdiction-group baselines",
     "period": "sd of the common period effects",
@@ -85,14 +103,14 @@ NOISE_MEANING = {
     "rho": "correlation of the gap noise from one period to the next within a jurisdiction (AR(1))",
 }
 PLAN_KEYS = {"title", "layout", "noise", "effects", "decision", "simulation", "vary"}
-LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name",
-               "location"}
+LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name", "location"}
 NOISE_KEYS = set(DEFAULT_NOISE) | {"run", "pilot"}
 SIM_KEYS = {"reps", "seed", "draws", "tune", "chains", "placebos", "method", "gap_over_time"}
 VARY_KEYS = {"periods", "comparisons"}
 
 
 # ---- the plan --------------------------------------------------------------------------------------
+
 
 @dataclass(frozen=True)
 class Layout:
@@ -157,8 +175,10 @@ class Noise:
             out["scales"] = {k: (list(v) if isinstance(v, tuple) else v) for k, v in self.stated.items()}
         else:
             out["posterior_draws"] = len(self.draws["gap"])
-            out["posterior_medians"] = {k: (np.median(np.asarray(v), axis=0).tolist() if np.ndim(v) == 2
-                                            else float(np.median(v))) for k, v in self.draws.items()}
+            out["posterior_medians"] = {
+                k: (np.median(np.asarray(v), axis=0).tolist() if np.ndim(v) == 2 else float(np.median(v)))
+                for k, v in self.draws.items()
+            }
             out["fixed"] = {k: v for k, v in self.stated.items() if k not in self.draws}
         out["meaning"] = NOISE_MEANING
         return out
@@ -200,8 +220,11 @@ class Plan:
     @property
     def frame(self) -> Layout:
         """The largest layout: every layout is simulated inside it."""
-        return dataclasses.replace(self.base, comparisons=max(lay.comparisons for lay in self.layouts),
-                                   periods=max(lay.periods for lay in self.layouts))
+        return dataclasses.replace(
+            self.base,
+            comparisons=max(lay.comparisons for lay in self.layouts),
+            periods=max(lay.periods for lay in self.layouts),
+        )
 
     def fingerprint(self) -> str:
         """SHA-256 of everything that changes a rep's result besides its key (layout, effect, rep).
@@ -209,27 +232,65 @@ class Plan:
         Not the title, the wording, the number of reps, or which layouts are asked for: a rerun with more
         reps, or more layouts inside the same largest layout, keeps the data sets already done.
         """
-        d = {"frame": dataclasses.asdict(self.frame), "noise": self.noise.describe(), "threshold": self.threshold,
-             "direction": self.direction, "level": self.level, "log": self.log_outcome, "seed": self.seed,
-             "effects": self.effects, "method": self.method, "gap_over_time": self.gap_over_time, "draws": self.draws, "tune": self.tune, "chains": self.chains,
-             "placebos": self.placebos, "location": self.noise.location}
+        d = {
+            "frame": dataclasses.asdict(self.frame),
+            "noise": self.noise.describe(),
+            "threshold": self.threshold,
+            "direction": self.direction,
+            "level": self.level,
+            "log": self.log_outcome,
+            "seed": self.seed,
+            "effects": self.effects,
+            "method": self.method,
+            "gap_over_time": self.gap_over_time,
+            "draws": self.draws,
+            "tune": self.tune,
+            "chains": self.chains,
+            "placebos": self.placebos,
+            "location": self.noise.location,
+        }
         return hashlib.sha256(json.dumps(d, sort_keys=True, default=str).encode()).hexdigest()
 
     def to_dict(self) -> dict:
-        return {"title": self.title, "path": self.path,
-                "layouts": [{**dataclasses.asdict(x), "adopters": x.adopters, "pre_periods": x.pre_periods,
-                             "post_periods": x.post_periods, "key": x.key} for x in self.layouts],
-                "noise": self.noise.describe(), "effects": list(self.effects),
-                "effects_model_scale": [self.model_effect(v) for v in self.effects],
-                "effect_scale": "relative change (log outcome)" if self.log_outcome else "outcome units",
-                "decision": {"threshold": self.threshold, "threshold_model_scale": self.model_threshold,
-                             "direction": self.direction, "level": self.level,
-                             "rule": f"conclude when P(effect {'<' if self.direction == 'below' else '>'} "
-                                     f"{self.threshold:g}) >= {self.level:g}"},
-                "simulation": {"reps": self.reps, "seed": self.seed, "draws": self.draws, "tune": self.tune,
-                               "chains": self.chains, "placebos": self.placebos, "method": self.method,
-                               "gap_over_time": self.gap_over_time},
-                "period_name": self.period_name, "notes": list(self.notes), "fingerprint": self.fingerprint()}
+        return {
+            "title": self.title,
+            "path": self.path,
+            "layouts": [
+                {
+                    **dataclasses.asdict(x),
+                    "adopters": x.adopters,
+                    "pre_periods": x.pre_periods,
+                    "post_periods": x.post_periods,
+                    "key": x.key,
+                }
+                for x in self.layouts
+            ],
+            "noise": self.noise.describe(),
+            "effects": list(self.effects),
+            "effects_model_scale": [self.model_effect(v) for v in self.effects],
+            "effect_scale": "relative change (log outcome)" if self.log_outcome else "outcome units",
+            "decision": {
+                "threshold": self.threshold,
+                "threshold_model_scale": self.model_threshold,
+                "direction": self.direction,
+                "level": self.level,
+                "rule": f"conclude when P(effect {'<' if self.direction == 'below' else '>'} "
+                f"{self.threshold:g}) >= {self.level:g}",
+            },
+            "simulation": {
+                "reps": self.reps,
+                "seed": self.seed,
+                "draws": self.draws,
+                "tune": self.tune,
+                "chains": self.chains,
+                "placebos": self.placebos,
+                "method": self.method,
+                "gap_over_time": self.gap_over_time,
+            },
+            "period_name": self.period_name,
+            "notes": list(self.notes),
+            "fingerprint": self.fingerprint(),
+        }
 
 
 def _err(key: str, value: Any, expected: str, fix: str = "") -> PlanError:
@@ -242,8 +303,10 @@ def _section(raw: Mapping, name: str, allowed: set[str]) -> Mapping:
         raise _err(name, sec, f"a [{name}] table with keys {sorted(allowed)}")
     unknown = sorted(str(k) for k in set(sec) - allowed)
     if unknown:
-        raise PlanError(f"unknown key(s) {unknown} in [{name}] of the plan; allowed keys are {sorted(allowed)}. "
-                        "Check the spelling or remove them.")
+        raise PlanError(
+            f"unknown key(s) {unknown} in [{name}] of the plan; allowed keys are {sorted(allowed)}. "
+            "Check the spelling or remove them."
+        )
     return sec
 
 
@@ -286,8 +349,10 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         raise _err("top level", raw, "a table of sections ([layout], [noise], [effects], [decision])")
     unknown = sorted(str(k) for k in set(raw) - PLAN_KEYS)
     if unknown:
-        raise PlanError(f"unknown key(s) {unknown} at the top of the plan; allowed are {sorted(PLAN_KEYS)}. "
-                        "Check the spelling or remove them.")
+        raise PlanError(
+            f"unknown key(s) {unknown} at the top of the plan; allowed are {sorted(PLAN_KEYS)}. "
+            "Check the spelling or remove them."
+        )
     title = raw.get("title", "bayesdid plan")
     if not isinstance(title, str):
         raise _err("title", title, "text")
@@ -297,24 +362,46 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     design = lay.get("design", "DDD")
     if design not in ("DDD", "DiD"):
         raise _err("layout.design", design, "'DDD' (target and reference groups) or 'DiD' (no group split)")
-    comparisons = _int(lay, "comparisons", "layout", None, low=1,
-                       fix="The comparison jurisdictions never adopt; an evaluation needs at least one.")
+    comparisons = _int(
+        lay,
+        "comparisons",
+        "layout",
+        None,
+        low=1,
+        fix="The comparison jurisdictions never adopt; an evaluation needs at least one.",
+    )
     periods = _int(lay, "periods", "layout", None, low=2, high=200)
     if "starts" not in lay:
-        raise PlanError("plan key 'layout.starts' is missing; give the first treated period (1 = the first "
-                        "period) of each adopter, for example starts = [9].")
+        raise PlanError(
+            "plan key 'layout.starts' is missing; give the first treated period (1 = the first "
+            "period) of each adopter, for example starts = [9]."
+        )
     starts = _int_list(lay["starts"], "layout.starts", 1)
     if len(starts) > 50:
         raise _err("layout.starts", list(starts), "at most 50 adopters")
     if min(starts) < 2:
-        raise _err("layout.starts", list(starts), "first treated periods of at least 2",
-                   "A start at period 1 leaves no pre-period: the change cannot be measured. Add periods "
-                   "before the start.")
+        raise _err(
+            "layout.starts",
+            list(starts),
+            "first treated periods of at least 2",
+            "A start at period 1 leaves no pre-period: the change cannot be measured. Add periods before the start.",
+        )
     if max(starts) > periods:
-        raise _err("layout.starts", list(starts), f"first treated periods within the {periods} periods "
-                   "(layout.periods)", "Move the start or add periods.")
-    rows = _int(lay, "rows_per_cell", "layout", 50, low=2, high=10_000_000,
-                fix="Rows within a cell are what the residual sd is learned from; give at least 2.")
+        raise _err(
+            "layout.starts",
+            list(starts),
+            f"first treated periods within the {periods} periods (layout.periods)",
+            "Move the start or add periods.",
+        )
+    rows = _int(
+        lay,
+        "rows_per_cell",
+        "layout",
+        50,
+        low=2,
+        high=10_000_000,
+        fix="Rows within a cell are what the residual sd is learned from; give at least 2.",
+    )
     log_outcome = lay.get("log_outcome", False)
     if not isinstance(log_outcome, bool):
         raise _err("layout.log_outcome", log_outcome, "true or false")
@@ -322,8 +409,11 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     if not isinstance(period_name, str) or not period_name.strip():
         raise _err("layout.period_name", period_name, "a word such as 'quarter'")
     loc = lay.get("location", 0.0)
-    location = (_num(loc, "layout.location"),) * 2 if not isinstance(loc, list) else \
-        tuple(_num(x, "layout.location") for x in loc)
+    location = (
+        (_num(loc, "layout.location"),) * 2
+        if not isinstance(loc, list)
+        else tuple(_num(x, "layout.location") for x in loc)
+    )
     if len(location) != 2:
         raise _err("layout.location", loc, "a number or [reference, target] (mean level of each group)")
     base = Layout(design=design, comparisons=comparisons, periods=periods, starts=starts, rows_per_cell=rows)
@@ -331,13 +421,21 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     vary = _section(raw, "vary", VARY_KEYS)
     vp = _int_list(vary["periods"], "vary.periods", 2) if "periods" in vary else (periods,)
     if max(starts) > min(vp):
-        raise _err("vary.periods", list(vp), f"numbers of periods of at least the last start ({max(starts)})",
-                   "Every layout needs each adopter's start within its periods.")
+        raise _err(
+            "vary.periods",
+            list(vp),
+            f"numbers of periods of at least the last start ({max(starts)})",
+            "Every layout needs each adopter's start within its periods.",
+        )
     if max(vp) > 200:
         raise _err("vary.periods", list(vp), "at most 200 periods")
-    vc = _int_list(vary["comparisons"], "vary.comparisons", 1,
-                   "Every layout needs at least one comparison jurisdiction.") if "comparisons" in vary \
+    vc = (
+        _int_list(
+            vary["comparisons"], "vary.comparisons", 1, "Every layout needs at least one comparison jurisdiction."
+        )
+        if "comparisons" in vary
         else (comparisons,)
+    )
     if max(vc) > 2000:
         raise _err("vary.comparisons", list(vc), "at most 2000 comparison jurisdictions")
     layouts = [base]
@@ -368,27 +466,42 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         raise _err("noise.gap", 0, "a positive number")
     noise = Noise(stated=stated, location=location)
     if "run" in noise_raw and "pilot" in noise_raw:
-        raise PlanError("plan keys 'noise.run' and 'noise.pilot' exclude each other: give the posterior of a run "
-                        "folder or a pilot study to fit, not both.")
+        raise PlanError(
+            "plan keys 'noise.run' and 'noise.pilot' exclude each other: give the posterior of a run "
+            "folder or a pilot study to fit, not both."
+        )
     for src in ("run", "pilot"):
         if src not in noise_raw:
             continue
         given = [k for k in ("gap", "shock") if k in noise_raw]
         if given:
-            raise PlanError(f"plan keys {['noise.' + k for k in given]} and 'noise.{src}' exclude each other: the "
-                            f"{'run folder' if src == 'run' else 'pilot'}'s posterior gives these scales. Remove "
-                            "one of them.")
+            raise PlanError(
+                f"plan keys {['noise.' + k for k in given]} and 'noise.{src}' exclude each other: the "
+                f"{'run folder' if src == 'run' else 'pilot'}'s posterior gives these scales. Remove "
+                "one of them."
+            )
         reader = noise_from_run if src == "run" else noise_from_pilot
-        noise = reader(noise_raw[src], base_dir, design=design, log_outcome=log_outcome, stated=stated,
-                       rho_given="rho" in noise_raw)
+        noise = reader(
+            noise_raw[src],
+            base_dir,
+            design=design,
+            log_outcome=log_outcome,
+            stated=stated,
+            rho_given="rho" in noise_raw,
+        )
         if noise.pilot is not None:
             noise = dataclasses.replace(noise, pilot={**noise.pilot, "residual_given": "residual" in noise_raw})
         if noise.draws is not None and ("residual" in noise_raw or "residual" not in noise.draws):
             noise = dataclasses.replace(noise, draws={k: v for k, v in noise.draws.items() if k != "residual"})
-            notes.append(f"the residual sd of a row is {'stated' if 'residual' in noise_raw else 'the default'} "
-                         f"({stated['residual'][1]:g}), not drawn from the run folder"
-                         + ("" if "residual" in noise_raw else ": its model had no separate residual sd (too few "
-                            "rows per cell); state noise.residual"))
+            notes.append(
+                f"the residual sd of a row is {'stated' if 'residual' in noise_raw else 'the default'} "
+                f"({stated['residual'][1]:g}), not drawn from the run folder"
+                + (
+                    ""
+                    if "residual" in noise_raw
+                    else ": its model had no separate residual sd (too few rows per cell); state noise.residual"
+                )
+            )
 
     eff = _section(raw, "effects", {"values"})
     vals = eff.get("values")
@@ -410,8 +523,12 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         raise _err("decision.threshold", threshold, "a relative change above -1 (log outcome)")
     level = dec.get("level", 0.9)
     if isinstance(level, bool) or not isinstance(level, numbers.Real) or not 0 < float(level) < 1:
-        raise _err("decision.level", level, "a probability strictly between 0 and 1, such as 0.9",
-                   "The rule concludes when P(effect beyond the threshold) is at least this level.")
+        raise _err(
+            "decision.level",
+            level,
+            "a probability strictly between 0 and 1, such as 0.9",
+            "The rule concludes when P(effect beyond the threshold) is at least this level.",
+        )
     level = float(level)
     direction = dec.get("direction")
     if direction is None:
@@ -422,8 +539,10 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
         elif all(v >= 0 for v in values):
             direction = "above"
         else:
-            raise PlanError("plan key 'decision.direction' is missing: with threshold 0 and effects of both signs, "
-                            "say whether the rule asks for an effect 'below' or 'above' the threshold.")
+            raise PlanError(
+                "plan key 'decision.direction' is missing: with threshold 0 and effects of both signs, "
+                "say whether the rule asks for an effect 'below' or 'above' the threshold."
+            )
     if direction not in ("below", "above"):
         raise _err("decision.direction", direction, "'below' or 'above'")
     if (threshold < 0 and direction == "above") or (threshold > 0 and direction == "below"):
@@ -438,18 +557,42 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     placebos = _int(sim, "placebos", "simulation", 199, low=0, high=100_000)
     gap_fit = sim.get("gap_over_time", "persistent")
     if gap_fit not in ("persistent", "independent"):
-        raise _err("simulation.gap_over_time", gap_fit, "'persistent' (AR(1), as bayesdid fit by default) or "
-                   "'independent': the gap noise the planned analysis will fit")
+        raise _err(
+            "simulation.gap_over_time",
+            gap_fit,
+            "'persistent' (AR(1), as bayesdid fit by default) or "
+            "'independent': the gap noise the planned analysis will fit",
+        )
     method = sim.get("method", "shift")
     if method not in ("shift", "refit"):
-        raise _err("simulation.method", method, "'shift' (one fit per data set, the other effects by exact "
-                   "reweighting) or 'refit' (one fit per data set and effect)")
-    return Plan(title=title, base=base, layouts=tuple(layouts), noise=noise, effects=values, threshold=threshold,
-                direction=direction, level=level, log_outcome=log_outcome, period_name=period_name.strip(),
-                reps=reps, seed=seed, draws=draws, tune=tune, chains=chains, placebos=placebos, method=method,
-                gap_over_time=gap_fit,
-                notes=tuple(notes),
-                path=path)
+        raise _err(
+            "simulation.method",
+            method,
+            "'shift' (one fit per data set, the other effects by exact "
+            "reweighting) or 'refit' (one fit per data set and effect)",
+        )
+    return Plan(
+        title=title,
+        base=base,
+        layouts=tuple(layouts),
+        noise=noise,
+        effects=values,
+        threshold=threshold,
+        direction=direction,
+        level=level,
+        log_outcome=log_outcome,
+        period_name=period_name.strip(),
+        reps=reps,
+        seed=seed,
+        draws=draws,
+        tune=tune,
+        chains=chains,
+        placebos=placebos,
+        method=method,
+        gap_over_time=gap_fit,
+        notes=tuple(notes),
+        path=path,
+    )
 
 
 def rho_note(rho_simulated: bool, fitted: set[str]) -> str | None:
@@ -458,9 +601,11 @@ def rho_note(rho_simulated: bool, fitted: set[str]) -> str | None:
         return None
     if fitted and fitted <= {"persistent"}:
         return "the gap noise is simulated as persistent (AR(1)); the fitted model learns its correlation rho"
-    return ("the gap noise is simulated as persistent (AR(1)), but the model fitted here assumed independent gap "
-            "noise" + (" in some data sets" if "persistent" in fitted else "") + ": its intervals are too "
-            "narrow, so the assurance and false-decision rate read here are those of an over-confident analysis")
+    return (
+        "the gap noise is simulated as persistent (AR(1)), but the model fitted here assumed independent gap "
+        "noise" + (" in some data sets" if "persistent" in fitted else "") + ": its intervals are too "
+        "narrow, so the assurance and false-decision rate read here are those of an over-confident analysis"
+    )
 
 
 def load_plan(path: str | Path) -> Plan:
@@ -485,8 +630,10 @@ def with_overrides(plan: Plan, **given) -> Plan:
             continue
         lo, hi = limits[k]
         if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
-            raise PlanError(f"command-line option --{k} {v!r}: expected a whole number from {lo} to {hi:,} "
-                            f"(it replaces simulation.{k} of the plan).")
+            raise PlanError(
+                f"command-line option --{k} {v!r}: expected a whole number from {lo} to {hi:,} "
+                f"(it replaces simulation.{k} of the plan)."
+            )
         upd[k] = v
     return dataclasses.replace(plan, **upd) if upd else plan
 
@@ -496,8 +643,7 @@ def make_plan(raw: Mapping, base_dir: str | Path = ".") -> Plan:
     return _parse(raw, Path(base_dir).resolve(), None)
 
 
-def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, stated: dict,
-                   rho_given: bool) -> Noise:
+def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, stated: dict, rho_given: bool) -> Noise:
     """Noise scales from the posterior of a run folder written by ``bayesdid fit`` (key ``noise.run``).
 
     Reads ``sigma_gap``, ``sigma_shock`` (DDD), ``sigma`` (per group) and ``sigma_baseline`` draws, and
@@ -510,8 +656,10 @@ def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, 
         raise _err("noise.run", run, "the path of a run folder written by 'bayesdid fit'")
     folder = Path(run) if Path(run).is_absolute() else base_dir / run
     if not folder.is_dir() or not (folder / "summary.json").is_file() or not (folder / "posterior.nc").is_file():
-        raise PlanError(f"plan key 'noise.run': '{folder}' is not a run folder (it needs summary.json and "
-                        "posterior.nc, as 'bayesdid fit STUDY.toml --out DIR' writes them). Fit the pilot first.")
+        raise PlanError(
+            f"plan key 'noise.run': '{folder}' is not a run folder (it needs summary.json and "
+            "posterior.nc, as 'bayesdid fit STUDY.toml --out DIR' writes them). Fit the pilot first."
+        )
     try:
         summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
@@ -519,23 +667,30 @@ def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, 
     model = summary.get("model", {})
     fam = model.get("family", "gaussian")
     if fam != "gaussian":
-        raise PlanError(f"plan key 'noise.run': the run folder '{folder}' fitted the {fam} family; a plan simulates "
-                        "the Gaussian model. Use a Gaussian pilot fit or state the noise scales.")
+        raise PlanError(
+            f"plan key 'noise.run': the run folder '{folder}' fitted the {fam} family; a plan simulates "
+            "the Gaussian model. Use a Gaussian pilot fit or state the noise scales."
+        )
     if model.get("design") != design:
-        raise PlanError(f"plan key 'noise.run': the run folder '{folder}' is a {model.get('design')} but the plan's "
-                        f"layout.design is {design}: a pilot of a different design has different noise terms. "
-                        "Use a pilot of the same design or state the noise scales.")
+        raise PlanError(
+            f"plan key 'noise.run': the run folder '{folder}' is a {model.get('design')} but the plan's "
+            f"layout.design is {design}: a pilot of a different design has different noise terms. "
+            "Use a pilot of the same design or state the noise scales."
+        )
     if bool(model.get("log_outcome", False)) != log_outcome:
-        raise PlanError(f"plan key 'noise.run': the run folder '{folder}' analysed the outcome "
-                        f"{'on the log scale' if model.get('log_outcome') else 'in its units'}, the plan's "
-                        f"layout.log_outcome is {str(log_outcome).lower()}: the scales would be on another scale. "
-                        "Make them agree.")
+        raise PlanError(
+            f"plan key 'noise.run': the run folder '{folder}' analysed the outcome "
+            f"{'on the log scale' if model.get('log_outcome') else 'in its units'}, the plan's "
+            f"layout.log_outcome is {str(log_outcome).lower()}: the scales would be on another scale. "
+            "Make them agree."
+        )
     try:
         with xr.open_datatree(folder / "posterior.nc", engine="h5netcdf") as tree:
             post = tree["posterior"].to_dataset().load()
     except Exception as exc:  # noqa: BLE001 - any unreadable file is the same bad input
-        raise PlanError(f"plan key 'noise.run': cannot read {folder / 'posterior.nc'} "
-                        f"({type(exc).__name__}: {exc}).") from None
+        raise PlanError(
+            f"plan key 'noise.run': cannot read {folder / 'posterior.nc'} ({type(exc).__name__}: {exc})."
+        ) from None
     draws, loc = _noise_draws(post, design, rho_given, "noise.run", f"the posterior in '{folder}'")
     return Noise(stated=stated, source="run folder", run=str(folder), draws=draws, location=loc)
 
@@ -551,8 +706,10 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
     need = ["sigma_gap"] + (["sigma_shock"] if design == "DDD" else [])
     missing = [n for n in need if n not in post]
     if missing:
-        raise PlanError(f"plan key '{key}': {what} lacks {missing}; it was not written by a Gaussian "
-                        "'bayesdid fit' of this version.")
+        raise PlanError(
+            f"plan key '{key}': {what} lacks {missing}; it was not written by a Gaussian "
+            "'bayesdid fit' of this version."
+        )
     draws = {"gap": flat("sigma_gap")}
     if "sigma" in post:  # absent when the cells held too few rows for a separate residual sd
         sig = flat("sigma")
@@ -576,8 +733,9 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
     return draws, loc
 
 
-def noise_from_pilot(pilot: Any, base_dir: Path, *, design: str, log_outcome: bool, stated: dict,
-                     rho_given: bool) -> Noise:
+def noise_from_pilot(
+    pilot: Any, base_dir: Path, *, design: str, log_outcome: bool, stated: dict, rho_given: bool
+) -> Noise:
     """Check a pilot study (key ``noise.pilot``) against the plan; its fit waits for :func:`resolve_noise`.
 
     The pilot is a study file whose table holds the pilot data; its [policy] names the adopters as in
@@ -595,16 +753,22 @@ def noise_from_pilot(pilot: Any, base_dir: Path, *, design: str, log_outcome: bo
     try:
         study = load_study(path)
         if study.model.family != "gaussian":
-            raise PlanError(f"plan key 'noise.pilot': the pilot study '{path}' uses the {study.model.family} "
-                            "family; a plan simulates the Gaussian model. Use a Gaussian pilot or state the noise.")
+            raise PlanError(
+                f"plan key 'noise.pilot': the pilot study '{path}' uses the {study.model.family} "
+                "family; a plan simulates the Gaussian model. Use a Gaussian pilot or state the noise."
+            )
         if study.design != design:
-            raise PlanError(f"plan key 'noise.pilot': the pilot study '{path}' is a {study.design} but the plan's "
-                            f"layout.design is {design}: a pilot of a different design has different noise terms. "
-                            "Use a pilot of the same design or state the noise scales.")
+            raise PlanError(
+                f"plan key 'noise.pilot': the pilot study '{path}' is a {study.design} but the plan's "
+                f"layout.design is {design}: a pilot of a different design has different noise terms. "
+                "Use a pilot of the same design or state the noise scales."
+            )
         if bool(study.model.log_outcome) != log_outcome:
-            raise PlanError(f"plan key 'noise.pilot': the pilot study '{path}' has log_outcome = "
-                            f"{str(study.model.log_outcome).lower()}, the plan's layout.log_outcome is "
-                            f"{str(log_outcome).lower()}: the scales would be on another scale. Make them agree.")
+            raise PlanError(
+                f"plan key 'noise.pilot': the pilot study '{path}' has log_outcome = "
+                f"{str(study.model.log_outcome).lower()}, the plan's layout.log_outcome is "
+                f"{str(log_outcome).lower()}: the scales would be on another scale. Make them agree."
+            )
         cells, digest, _ = prepare(study)
     except PlanError:
         raise
@@ -616,9 +780,14 @@ def noise_from_pilot(pilot: Any, base_dir: Path, *, design: str, log_outcome: bo
         if isinstance(exc, BayesDidError):
             raise PlanError(f"plan key 'noise.pilot': the pilot table of '{path}': {exc}") from None
         raise
-    return Noise(stated=stated, source="pilot table", run=str(path), draws=None,
-                 location=(float(cells.outcome_mean),) * 2, pilot={"study": str(path), "data_sha256": digest,
-                                                                  "rho_given": rho_given})
+    return Noise(
+        stated=stated,
+        source="pilot table",
+        run=str(path),
+        draws=None,
+        location=(float(cells.outcome_mean),) * 2,
+        pilot={"study": str(path), "data_sha256": digest, "rho_given": rho_given},
+    )
 
 
 def resolve_noise(plan: Plan, log=None) -> Plan:
@@ -641,24 +810,33 @@ def resolve_noise(plan: Plan, log=None) -> Plan:
         log(f"fitting the pilot study {nz.pilot['study']} for the noise scales")
     scales = {k: v["scale"] for k, v in resolve_scales(cells, study.priors).items()}
     fit = fit_cells(cells, scales, study.sampler)
-    draws, loc = _noise_draws(fit.posterior, cells.design, nz.pilot["rho_given"], "noise.pilot",
-                              f"the pilot fit of '{nz.pilot['study']}'")
-    pilot = {**nz.pilot, "diagnostics_ok": bool(fit.diagnostics.get("ok")),
-             "rhat_max": fit.diagnostics.get("rhat_max"), "seed": study.sampler.seed}
+    draws, loc = _noise_draws(
+        fit.posterior, cells.design, nz.pilot["rho_given"], "noise.pilot", f"the pilot fit of '{nz.pilot['study']}'"
+    )
+    pilot = {
+        **nz.pilot,
+        "diagnostics_ok": bool(fit.diagnostics.get("ok")),
+        "rhat_max": fit.diagnostics.get("rhat_max"),
+        "seed": study.sampler.seed,
+    }
     notes = plan.notes
     if "residual" in draws and nz.pilot.get("residual_given"):
         draws.pop("residual")
     if "residual" not in draws:
-        notes = notes + (f"the residual sd of a row is {'stated' if nz.pilot.get('residual_given') else 'the default'} "
-                         f"({nz.stated['residual'][1]:g}), not drawn from the pilot's posterior",)
+        notes = notes + (
+            f"the residual sd of a row is {'stated' if nz.pilot.get('residual_given') else 'the default'} "
+            f"({nz.stated['residual'][1]:g}), not drawn from the pilot's posterior",
+        )
     if not fit.diagnostics.get("ok"):
-        notes = notes + (f"the pilot fit's sampler diagnostics fail ({fit.diagnostics.get('advice')}); the noise "
-                         "draws may be unreliable: raise the pilot study's draws",)
-    return dataclasses.replace(plan, noise=dataclasses.replace(nz, draws=draws, location=loc, pilot=pilot),
-                               notes=notes)
+        notes = notes + (
+            f"the pilot fit's sampler diagnostics fail ({fit.diagnostics.get('advice')}); the noise "
+            "draws may be unreliable: raise the pilot study's draws",
+        )
+    return dataclasses.replace(plan, noise=dataclasses.replace(nz, draws=draws, location=loc, pilot=pilot), notes=notes)
 
 
 # ---- simulation ------------------------------------------------------------------------------------
+
 
 def _names(J: int) -> list[str]:
     from .simulate import region_names
@@ -680,7 +858,9 @@ def simulate_noise(frame: Layout, scales: dict, location: tuple, rng: np.random.
     G = 2 if frame.design == "DDD" else 1
     tg = G - 1
     n = frame.rows_per_cell
-    b = np.asarray(location[-G:] if G == 1 else location, float)[None, :] + scales["baseline"] * rng.standard_normal((J, G))
+    b = np.asarray(location[-G:] if G == 1 else location, float)[None, :] + scales["baseline"] * rng.standard_normal(
+        (J, G)
+    )
     a = scales["period"] * rng.standard_normal(T)
     mean = b[:, :, None] + a[None, None, :]
     if G == 2:
@@ -726,10 +906,22 @@ def simulate_cells(plan: Plan, layout: Layout, noise_cells: dict, effect_model: 
     N = float(n.sum())
     m = float(sum_y.sum() / N)
     sd = math.sqrt(max(float(sum_y2.sum()) / N - m * m, 0.0))
-    cells = Cells(jurisdictions=tuple(_names(J)), groups=("reference", "target") if G == 2 else ("all",),
-                  periods=tuple(range(1, T + 1)), design=frame.design, target=tg, start=start, n=n, sum_y=sum_y,
-                  sum_y2=sum_y2, ss=ss, rows=int(N), log_outcome=plan.log_outcome,
-                  outcome_sd=sd if sd > 0 else 1.0, outcome_mean=m)
+    cells = Cells(
+        jurisdictions=tuple(_names(J)),
+        groups=("reference", "target") if G == 2 else ("all",),
+        periods=tuple(range(1, T + 1)),
+        design=frame.design,
+        target=tg,
+        start=start,
+        n=n,
+        sum_y=sum_y,
+        sum_y2=sum_y2,
+        ss=ss,
+        rows=int(N),
+        log_outcome=plan.log_outcome,
+        outcome_sd=sd if sd > 0 else 1.0,
+        outcome_mean=m,
+    )
     return _with_gap(cells, plan.gap_over_time)
 
 
@@ -743,6 +935,7 @@ def _with_gap(cells, requested: str):
 
 
 # ---- one rep -------------------------------------------------------------------------------------
+
 
 @dataclass(frozen=True)
 class RepTask:
@@ -819,16 +1012,21 @@ def _decide(plan: Plan, att: np.ndarray, w: np.ndarray | None, truth: float) -> 
     prob = float(np.sum(w * beyond))
     lo, hi = _wquantile(att, w, [0.025, 0.975])
     mean = float(np.sum(w * att))
-    return {"prob_beyond": prob, "decide": bool(prob >= plan.level), "posterior_mean": mean,
-            "posterior_sd": float(math.sqrt(max(np.sum(w * (att - mean) ** 2), 0.0))), "width_95": float(hi - lo),
-            "cover_95": bool(lo <= truth <= hi)}
+    return {
+        "prob_beyond": prob,
+        "decide": bool(prob >= plan.level),
+        "posterior_mean": mean,
+        "posterior_sd": float(math.sqrt(max(np.sum(w * (att - mean) ** 2), 0.0))),
+        "width_95": float(hi - lo),
+        "cover_95": bool(lo <= truth <= hi),
+    }
 
 
 def _rep(task: RepTask) -> dict:
+    from . import sample
     from .crosscheck import permutation_test
     from .effects import att_weights
     from .model.terms import resolve_scales
-    from . import sample
     from .sample import COMPILES, fit_cells
     from .study import PriorScales, SamplerSettings
 
@@ -871,16 +1069,30 @@ def _rep(task: RepTask) -> dict:
         if how == "refit":
             fit, _, att = fit_at(truth)
             w = None
-        row = {"effect": effect, "method": how, "weights_ess_share": ess, **_decide(plan, att, w, truth),
-               "rhat_max": fit.diagnostics.get("rhat_max"), "divergences": fit.diagnostics.get("divergences"),
-               "diagnostics_ok": bool(fit.diagnostics.get("ok")), "gap_sd_true": scales_true["gap"],
-               "rho_true": scales_true["rho"], "gap_fitted": getattr(fit.spec, "gap", "independent")}
+        row = {
+            "effect": effect,
+            "method": how,
+            "weights_ess_share": ess,
+            **_decide(plan, att, w, truth),
+            "rhat_max": fit.diagnostics.get("rhat_max"),
+            "divergences": fit.diagnostics.get("divergences"),
+            "diagnostics_ok": bool(fit.diagnostics.get("ok")),
+            "gap_sd_true": scales_true["gap"],
+            "rho_true": scales_true["rho"],
+            "gap_fitted": getattr(fit.spec, "gap", "independent"),
+        }
         if plan.placebos:
             perm = permutation_test(cells, placebos=plan.placebos, seed=sampler_seed, designs=_DESIGNS)
             p1 = _one_sided_p(perm["estimate"], perm["estimates"], plan.direction)
-            row.update({"ls_estimate": perm["estimate"], "p_permutation_two_sided": perm["p_value"],
-                        "p_permutation": p1, "permutation_assignments": perm["assignments"],
-                        "permutation_reject": None if p1 is None else bool(p1 <= 1 - plan.level + 1e-12)})
+            row.update(
+                {
+                    "ls_estimate": perm["estimate"],
+                    "p_permutation_two_sided": perm["p_value"],
+                    "p_permutation": p1,
+                    "permutation_assignments": perm["assignments"],
+                    "permutation_reject": None if p1 is None else bool(p1 <= 1 - plan.level + 1e-12),
+                }
+            )
         rows.append(row)
     return {"rows": rows, "compiles": COMPILES["count"] - before, "cache_loads": loads["count"] - loaded, **fits}
 
@@ -889,8 +1101,14 @@ def run_rep(task: RepTask) -> dict:
     """Run one data set of one layout at every effect; never raises: a failure comes back as ``ok = False``."""
     t0 = time.perf_counter()
     plan = task.plan
-    base = {"layout": plan.layouts[task.layout].key, "rep": task.rep, "key": task.key,
-            "noise_seed": task.seeds[0], "sampler_seed": task.seeds[1], "pid": os.getpid()}
+    base = {
+        "layout": plan.layouts[task.layout].key,
+        "rep": task.rep,
+        "key": task.key,
+        "noise_seed": task.seeds[0],
+        "sampler_seed": task.seeds[1],
+        "pid": os.getpid(),
+    }
     try:
         with np.errstate(all="ignore"), warnings.catch_warnings():
             # empty jurisdictions and periods of smaller layouts make the rule of baseline_centred
@@ -899,15 +1117,29 @@ def run_rep(task: RepTask) -> dict:
             out = _rep(task)
         return {**base, "ok": True, "error": "", **out, "wall_s": time.perf_counter() - t0}
     except Exception as exc:  # noqa: BLE001 - a failing rep is reported, not allowed to stop the plan
-        return {**base, "ok": False, "error": f"{type(exc).__name__}: {exc}", "rows": [],
-                "wall_s": time.perf_counter() - t0}
+        return {
+            **base,
+            "ok": False,
+            "error": f"{type(exc).__name__}: {exc}",
+            "rows": [],
+            "wall_s": time.perf_counter() - t0,
+        }
 
 
 def _rep_lost(task: RepTask, exc: BaseException) -> dict:
     plan = task.plan
-    return {"layout": plan.layouts[task.layout].key, "rep": task.rep, "key": task.key,
-            "noise_seed": task.seeds[0], "sampler_seed": task.seeds[1], "pid": "lost", "ok": False, "rows": [],
-            "wall_s": float("nan"), "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}"}
+    return {
+        "layout": plan.layouts[task.layout].key,
+        "rep": task.rep,
+        "key": task.key,
+        "noise_seed": task.seeds[0],
+        "sampler_seed": task.seeds[1],
+        "pid": "lost",
+        "ok": False,
+        "rows": [],
+        "wall_s": float("nan"),
+        "error": f"the worker running this rep stopped: {type(exc).__name__}: {exc}",
+    }
 
 
 def plan_tasks(plan: Plan) -> list[RepTask]:
@@ -928,6 +1160,7 @@ def flat_rows(records: list[dict]) -> list[dict]:
 
 
 # ---- the normal approximation -------------------------------------------------------------------
+
 
 def normal_assurance(plan: Plan, layout: Layout, effect: float) -> dict:
     """Assurance and 95% width under a normal approximation with known variance components.
@@ -984,11 +1217,16 @@ def normal_assurance(plan: Plan, layout: Layout, effect: float) -> dict:
     tau = plan.model_effect(effect)
     z = stats.norm.ppf(plan.level)
     x = (plan.model_threshold - tau) / sdv if plan.direction == "below" else (tau - plan.model_threshold) / sdv
-    return {"assurance": float(stats.norm.cdf(x - z)), "width_95": float(2 * stats.norm.ppf(0.975) * sdv),
-            "sd": sdv, "reason": ""}
+    return {
+        "assurance": float(stats.norm.cdf(x - z)),
+        "width_95": float(2 * stats.norm.ppf(0.975) * sdv),
+        "sd": sdv,
+        "reason": "",
+    }
 
 
 # ---- summaries -------------------------------------------------------------------------------------
+
 
 def _share(values) -> tuple[float | None, float | None, int]:
     v = [bool(x) for x in values if x is not None]
@@ -1010,23 +1248,37 @@ def assurance_table(plan: Plan, rows: list[dict]) -> list[dict]:
             pw, pse, pN = _share(r.get("permutation_reject") for r in rs)
             cov, cse, _ = _share(r["cover_95"] for r in rs)
             na = normal_assurance(plan, layout, effect)
-            out.append({
-                "layout": layout.key, "adopters": layout.adopters, "comparisons": layout.comparisons,
-                "periods": layout.periods, "pre_periods": layout.pre_periods, "post_periods": layout.post_periods,
-                "effect": effect, "effect_model_scale": plan.model_effect(effect), "reps": N,
-                "assurance": p, "assurance_mcse": se,
-                "false_decision_rate": p if effect == 0 else None,
-                "width_95_mean": float(w.mean()) if N else None,
-                "width_95_mcse": float(w.std(ddof=1) / math.sqrt(N)) if N > 1 else None,
-                "coverage_95": cov, "coverage_95_mcse": cse,
-                "permutation_power": pw, "permutation_power_mcse": pse, "permutation_reps": pN,
-                "normal_assurance": na["assurance"], "normal_width_95": na["width_95"],
-                "diagnostics_ok_share": float(np.mean([r["diagnostics_ok"] for r in rs])) if N else None,
-            })
+            out.append(
+                {
+                    "layout": layout.key,
+                    "adopters": layout.adopters,
+                    "comparisons": layout.comparisons,
+                    "periods": layout.periods,
+                    "pre_periods": layout.pre_periods,
+                    "post_periods": layout.post_periods,
+                    "effect": effect,
+                    "effect_model_scale": plan.model_effect(effect),
+                    "reps": N,
+                    "assurance": p,
+                    "assurance_mcse": se,
+                    "false_decision_rate": p if effect == 0 else None,
+                    "width_95_mean": float(w.mean()) if N else None,
+                    "width_95_mcse": float(w.std(ddof=1) / math.sqrt(N)) if N > 1 else None,
+                    "coverage_95": cov,
+                    "coverage_95_mcse": cse,
+                    "permutation_power": pw,
+                    "permutation_power_mcse": pse,
+                    "permutation_reps": pN,
+                    "normal_assurance": na["assurance"],
+                    "normal_width_95": na["width_95"],
+                    "diagnostics_ok_share": float(np.mean([r["diagnostics_ok"] for r in rs])) if N else None,
+                }
+            )
     return out
 
 
 # ---- the whole plan ------------------------------------------------------------------------------
+
 
 def progress_path(out: str | Path) -> Path:
     t = Path(out)
@@ -1057,14 +1309,23 @@ class _Bar:
         self.done += 1
         self.failed += not rec.get("ok")
         if self.enabled and (self.done == self.total or self.done % max(1, self.total // 50) == 0):
-            sys.stderr.write(f"\rbayesdid: plan reps {self.done}/{self.total} run, {self.failed} failed, "
-                             f"{self.skipped} already done, {time.perf_counter() - self.t0:.0f}s"
-                             + ("\n" if self.done == self.total else ""))
+            sys.stderr.write(
+                f"\rbayesdid: plan reps {self.done}/{self.total} run, {self.failed} failed, "
+                f"{self.skipped} already done, {time.perf_counter() - self.t0:.0f}s"
+                + ("\n" if self.done == self.total else "")
+            )
             sys.stderr.flush()
 
 
-def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progress_file: str | Path | None = None,
-             progress: bool = False, log=None) -> dict:
+def run_plan(
+    plan: Plan,
+    *,
+    workers: int = 2,
+    cluster: str | None = None,
+    progress_file: str | Path | None = None,
+    progress: bool = False,
+    log=None,
+) -> dict:
     """Run every rep not already in ``progress_file``; return the summary and the per-rep rows.
 
     Executors as for sweeps: ``cluster`` (a Dask scheduler address, or "local") wins; else ``workers``
@@ -1114,33 +1375,51 @@ def run_plan(plan: Plan, *, workers: int = 2, cluster: str | None = None, progre
             cache_loads[str(r["pid"])] = cache_loads.get(str(r["pid"]), 0) + int(r.get("cache_loads", 0))
     failed = [{"key": r["key"], "error": r["error"]} for r in records if not r.get("ok")]
     ex_name = {"serial": "in-process", "pool": f"process pool ({workers} workers)", "dask": f"dask ({cluster})"}[kind]
-    note = rho_note(plan.noise.stated["rho"] != 0 or bool(plan.noise.draws and "rho" in plan.noise.draws),
-                    {r.get("gap_fitted", "independent") for r in rows})
+    note = rho_note(
+        plan.noise.stated["rho"] != 0 or bool(plan.noise.draws and "rho" in plan.noise.draws),
+        {r.get("gap_fitted", "independent") for r in rows},
+    )
     summary = {
         "plan": plan.to_dict() | ({"notes": list(plan.notes) + [note]} if note else {}),
         "assurance": table,
-        "false_decision": [{"layout": t["layout"], "rate": t["false_decision_rate"], "mcse": t["assurance_mcse"],
-                            "reps": t["reps"], "bound": 1 - plan.level}
-                           for t in table if t["effect"] == 0],
+        "false_decision": [
+            {
+                "layout": t["layout"],
+                "rate": t["false_decision_rate"],
+                "mcse": t["assurance_mcse"],
+                "reps": t["reps"],
+                "bound": 1 - plan.level,
+            }
+            for t in table
+            if t["effect"] == 0
+        ],
         "failed": failed,
         "gap_fitted": sorted({r.get("gap_fitted", "independent") for r in rows}),
-        "run": {"executor": ex_name, "ran_now": len(new), "kept_from_earlier_run": len(done),
-                "compiles_per_worker": compiles, "cache_loads_per_worker": cache_loads, "wall_s": wall,
-                "fits_now": int(sum(r.get("fits", 0) for r in new)),
-                "compile_s_total": float(sum(r.get("compile_s", 0.0) for r in new)),
-                "data_set_wall_s_median": float(np.median([r["wall_s"] for r in new])) if new else None,
-                "sample_s_per_fit_median": float(np.median([r["sample_s"] / r["fits"] for r in new
-                                                            if r.get("ok") and r.get("fits")]))
-                if any(r.get("ok") and r.get("fits") for r in new) else None},
+        "run": {
+            "executor": ex_name,
+            "ran_now": len(new),
+            "kept_from_earlier_run": len(done),
+            "compiles_per_worker": compiles,
+            "cache_loads_per_worker": cache_loads,
+            "wall_s": wall,
+            "fits_now": int(sum(r.get("fits", 0) for r in new)),
+            "compile_s_total": float(sum(r.get("compile_s", 0.0) for r in new)),
+            "data_set_wall_s_median": float(np.median([r["wall_s"] for r in new])) if new else None,
+            "sample_s_per_fit_median": float(
+                np.median([r["sample_s"] / r["fits"] for r in new if r.get("ok") and r.get("fits")])
+            )
+            if any(r.get("ok") and r.get("fits") for r in new)
+            else None,
+        },
         "notes": {
             "assurance": "share of simulated data sets on which the decision rule concludes; mcse = sqrt(p (1 - p) / N)",
             "false_decision_rate": "the assurance at a true effect of 0: how often the rule concludes when the policy "
-                                   "does nothing",
+            "does nothing",
             "width_95": "width of the equal-tailed 95% posterior interval of the ATT, mean over data sets (model scale)",
             "permutation_power": "share of data sets on which the least-squares placebo-in-space permutation test, "
-                                 f"one-sided ({plan.direction} 0), rejects at level {1 - plan.level:g}",
+            f"one-sided ({plan.direction} 0), rejects at level {1 - plan.level:g}",
             "normal_assurance": "the normal approximation with known variance components (see "
-                                "bayesdid.plan.normal_assurance); empty where it does not apply",
+            "bayesdid.plan.normal_assurance); empty where it does not apply",
         },
     }
     return {"summary": summary, "rows": rows, "records": records}
@@ -1170,11 +1449,27 @@ def write_plan(result: dict, out: str | Path, *, replace: bool = False, argv=Non
         _write_csv(result["rows"], tmp / "reps.csv")
         plot_assurance(s, tmp / "assurance.png")
         (tmp / "report.html").write_text(render_plan_page(s, tmp / "assurance.png"), encoding="utf-8")
-        dump_json({"bayesdid": _version(), "kind": "plan", "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                   "versions": versions(), "plan_file": s["plan"]["path"], "fingerprint": s["plan"]["fingerprint"],
-                   "command": list(argv) if argv is not None else sys.argv,
-                   "files": ["plan.json", "assurance.csv", "false_decision.csv", "reps.csv", "assurance.png",
-                             "report.html", "manifest.json"]}, tmp / "manifest.json")
+        dump_json(
+            {
+                "bayesdid": _version(),
+                "kind": "plan",
+                "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                "versions": versions(),
+                "plan_file": s["plan"]["path"],
+                "fingerprint": s["plan"]["fingerprint"],
+                "command": list(argv) if argv is not None else sys.argv,
+                "files": [
+                    "plan.json",
+                    "assurance.csv",
+                    "false_decision.csv",
+                    "reps.csv",
+                    "assurance.png",
+                    "report.html",
+                    "manifest.json",
+                ],
+            },
+            tmp / "manifest.json",
+        )
     return Path(out)
 
 

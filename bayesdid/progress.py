@@ -42,8 +42,11 @@ class Progress:
 
     def line(self, note: str = "") -> str:
         left = self.left()
-        tail = f", about {duration(left)} left" if left is not None and self.done < self.total else \
-            (f", {duration(time.perf_counter() - self.t0)} in all" if self.done >= self.total else "")
+        tail = (
+            f", about {duration(left)} left"
+            if left is not None and self.done < self.total
+            else (f", {duration(time.perf_counter() - self.t0)} in all" if self.done >= self.total else "")
+        )
         return f"{self.label} {self.done}/{self.total}" + (f" {note}" if note else "") + tail
 
     def step(self, note: str = "") -> None:

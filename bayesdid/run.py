@@ -19,10 +19,9 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from .version import __version__
 from .cells import Cells, collapse
-from .crosscheck import cross_check, cross_check_not_applicable
 from .contracts import run_id
+from .crosscheck import cross_check, cross_check_not_applicable
 from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, PersistenceFallbackWarning
@@ -32,6 +31,7 @@ from .model.terms import resolve_scales
 from .outputs import atomic_folder
 from .sample import Fit, fit_cells
 from .study import Study, study_to_dict
+from .version import __version__
 
 __all__ = ["Analysis", "prepare", "analyse", "write_run", "versions", "atomic_folder", "dump_json"]
 
@@ -43,9 +43,17 @@ def versions() -> dict:
     import pymc
     import pytensor
 
-    return {"python": platform.python_version(), "bayesdid": __version__, "pymc": pymc.__version__,
-            "pytensor": pytensor.__version__, "nutpie": nutpie.__version__, "arviz": arviz.__version__,
-            "numpy": np.__version__, "pandas": pandas.__version__, "xarray": xr.__version__}
+    return {
+        "python": platform.python_version(),
+        "bayesdid": __version__,
+        "pymc": pymc.__version__,
+        "pytensor": pytensor.__version__,
+        "nutpie": nutpie.__version__,
+        "arviz": arviz.__version__,
+        "numpy": np.__version__,
+        "pandas": pandas.__version__,
+        "xarray": xr.__version__,
+    }
 
 
 @dataclass
@@ -75,17 +83,28 @@ class Analysis:
             "data": self.cells.describe(),
             "priors": self.priors,
             "timing": self.timing,
-            "model": {"family": self.study.model.family, "log_outcome": self.study.model.log_outcome,
-                      "design": self.cells.design,
-                      "likelihood": self.cells.extra.get(
-                          "likelihood", "exact on cells (jurisdiction-period shock and gap noise integrated out)"),
-                      "sampled_as": _sampled_as(self.fit.spec),
-                      "gap_noise": gap_structure(self.cells).to_dict(),
-                      **({"residual_sd": residual_rule(self.cells)} if self.fit.spec.family == "gaussian" else {}),
-                      **({"covariates": {"formula": self.study.model.covariates,
-                                         "columns": list(self.cells.extra["covariates"]["names"]),
-                                         "centred_at": [float(v) for v in self.cells.extra["covariates"]["means"]]}}
-                         if "covariates" in self.cells.extra else {})},
+            "model": {
+                "family": self.study.model.family,
+                "log_outcome": self.study.model.log_outcome,
+                "design": self.cells.design,
+                "likelihood": self.cells.extra.get(
+                    "likelihood", "exact on cells (jurisdiction-period shock and gap noise integrated out)"
+                ),
+                "sampled_as": _sampled_as(self.fit.spec),
+                "gap_noise": gap_structure(self.cells).to_dict(),
+                **({"residual_sd": residual_rule(self.cells)} if self.fit.spec.family == "gaussian" else {}),
+                **(
+                    {
+                        "covariates": {
+                            "formula": self.study.model.covariates,
+                            "columns": list(self.cells.extra["covariates"]["names"]),
+                            "centred_at": [float(v) for v in self.cells.extra["covariates"]["means"]],
+                        }
+                    }
+                    if "covariates" in self.cells.extra
+                    else {}
+                ),
+            },
             "notes": self.notes,
         }
         if self.sensitivity is not None:
@@ -111,19 +130,27 @@ def persistence_summary(fit) -> dict | None:
     lo, hi = (float(v) for v in np.quantile(rho, [0.025, 0.975]))
     mean = float(rho.mean())
     if lo > 0.3:
-        what = ("the gap noise is clearly persistent: a jurisdiction whose gap is above its usual level in one "
-                "period tends to stay above it in the next, so a run of post-policy periods carries less "
-                "independent evidence than its length suggests, and the effect's interval is widened for it")
+        what = (
+            "the gap noise is clearly persistent: a jurisdiction whose gap is above its usual level in one "
+            "period tends to stay above it in the next, so a run of post-policy periods carries less "
+            "independent evidence than its length suggests, and the effect's interval is widened for it"
+        )
     elif hi < 0.3:
-        what = ("the gap noise shows little persistence over periods; the answer is close to what an "
-                "independent-noise model gives")
+        what = (
+            "the gap noise shows little persistence over periods; the answer is close to what an "
+            "independent-noise model gives"
+        )
     else:
-        what = ("the data leave the persistence of the gap noise uncertain; the effect's interval allows for "
-                "both weak and strong persistence")
-    return {"rho": {"mean": mean, "sd": float(rho.std()), "eti95": [lo, hi]},
-            "prior": f"(rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})",
-            "sentence": f"Correlation of the gap noise from one period to the next: {mean:.2f} "
-                        f"(95% interval {lo:.2f} to {hi:.2f}); {what}."}
+        what = (
+            "the data leave the persistence of the gap noise uncertain; the effect's interval allows for "
+            "both weak and strong persistence"
+        )
+    return {
+        "rho": {"mean": mean, "sd": float(rho.std()), "eti95": [lo, hi]},
+        "prior": f"(rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})",
+        "sentence": f"Correlation of the gap noise from one period to the next: {mean:.2f} "
+        f"(95% interval {lo:.2f} to {hi:.2f}); {what}.",
+    }
 
 
 def _sampled_as(spec) -> dict:
@@ -145,8 +172,8 @@ def _sampled_as(spec) -> dict:
         out["gap_noise_deviations"] = "centred" if gap else "non-centred"
         if spec.gap == "persistent":
             out["gap_noise_deviations"] = (
-                ("AR(1) paths as parameters (centred)" if gap else "AR(1) paths from non-centred innovations")
-                + "; each path's mean given its deviations folded into the target level")
+                "AR(1) paths as parameters (centred)" if gap else "AR(1) paths from non-centred innovations"
+            ) + "; each path's mean given its deviations folded into the target level"
         if spec.design == "DDD":
             out["shock_deviations"] = "centred" if shock else "non-centred"
     return out
@@ -171,9 +198,16 @@ def prepare(study: Study, *, stream: bool = False, cluster: str | None = None) -
     return cells, digest, time.perf_counter() - t0
 
 
-def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False, log=None,
-            full_cross_check: bool = True, least_squares: dict | None = None,
-            prepared: tuple | None = None) -> Analysis:
+def analyse(
+    study: Study,
+    *,
+    cells: Cells | None = None,
+    progress: bool = False,
+    log=None,
+    full_cross_check: bool = True,
+    least_squares: dict | None = None,
+    prepared: tuple | None = None,
+) -> Analysis:
     """Fit the study and compute its effects and the least-squares cross-check.
 
     ``full_cross_check=False`` (``bayesdid fit --no-cross-check``) keeps the least-squares estimate
@@ -190,8 +224,10 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         say(f"reading {study.table.name} and collapsing to cells")
         cells, digest, collapse_s = prepare(study)
     d = cells.describe()
-    say(f"{d['rows']:,} rows -> {d['cells']:,} cells ({d['jurisdictions']} jurisdictions, "
-        f"{d['periods']} periods, {len(d['adopters'])} adopter(s), {d['design']})")
+    say(
+        f"{d['rows']:,} rows -> {d['cells']:,} cells ({d['jurisdictions']} jurisdictions, "
+        f"{d['periods']} periods, {len(d['adopters'])} adopter(s), {d['design']})"
+    )
     priors = resolve_scales(cells, study.priors)
     scales = {k: v["scale"] for k, v in priors.items()}
     say("compiling the model (once per model shape) and sampling")
@@ -209,13 +245,21 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         import dataclasses
 
         ls_cells = dataclasses.replace(cells, extra={k: v for k, v in cells.extra.items() if k != "covariates"})
-        ls_note = (f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
-                   f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
-                   "regression on the cells' " + ("proportions" if study.model.family == "binomial" else "rates")
-                   + " cannot reproduce; read it as the unadjusted difference")
+        ls_note = (
+            f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
+            f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
+            "regression on the cells' "
+            + ("proportions" if study.model.family == "binomial" else "rates")
+            + " cannot reproduce; read it as the unadjusted difference"
+        )
     try:
-        ls = least_squares if least_squares is not None else cross_check(ls_cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos,
-                         full=full_cross_check)
+        ls = (
+            least_squares
+            if least_squares is not None
+            else cross_check(
+                ls_cells, seed=x.seed, draws=x.draws, weights=x.weights, placebos=x.placebos, full=full_cross_check
+            )
+        )
         if ls_note and least_squares is None:
             ls["covariates_note"] = ls_note
     except BayesDidError as exc:  # the posterior stands; the cross-check says why it cannot run
@@ -223,8 +267,10 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
     crosscheck_s = time.perf_counter() - t0
     notes = []
     if len(cells.adopters) <= 2:
-        notes.append(f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
-                     "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017).")
+        notes.append(
+            f"{len(cells.adopters)} adopting jurisdiction(s): cluster-robust least-squares errors are "
+            "unreliable with so few treated clusters (Conley and Taber 2011; MacKinnon and Webb 2017)."
+        )
     for msg in cells.extra.get("warnings", []):
         notes.append(msg)
     gs = gap_structure(cells)
@@ -239,33 +285,56 @@ def analyse(study: Study, *, cells: Cells | None = None, progress: bool = False,
         say("WARNING: " + cells.extra["fallback"])
     if cells.extra.get("dropped_rows"):
         dr = cells.extra["dropped_rows"]
-        notes.append(f"{dr['count']} row(s) dropped for a missing covariate value (model.missing = 'drop'); "
-                     f"missing by column: {dr['by_column']}.")
+        notes.append(
+            f"{dr['count']} row(s) dropped for a missing covariate value (model.missing = 'drop'); "
+            f"missing by column: {dr['by_column']}."
+        )
         say(notes[-1])
     from .sensitivity import power_scaling
 
     t0 = time.perf_counter()
     sens = power_scaling(fit)
-    timing = {"collapse_s": collapse_s, **fit.timing, "crosscheck_s": crosscheck_s,
-              "sensitivity_s": time.perf_counter() - t0}
+    timing = {
+        "collapse_s": collapse_s,
+        **fit.timing,
+        "crosscheck_s": crosscheck_s,
+        "sensitivity_s": time.perf_counter() - t0,
+    }
     from .trends import model_threshold, trend_bounds
 
     t0 = time.perf_counter()
-    tb = trend_bounds(fit, multiples=study.trends.multiples, threshold=model_threshold(study, cells),
-                      level=study.decision.level)
+    tb = trend_bounds(
+        fit, multiples=study.trends.multiples, threshold=model_threshold(study, cells), level=study.decision.level
+    )
     timing["trends_s"] = time.perf_counter() - t0
-    has = model_priors(study.model.family, cells.design, len(cells.adopters), "covariates" in cells.extra,
-                       drift=bool(getattr(fit.spec, "drift", False)), residual=bool(getattr(fit.spec, "residual", True)))
+    has = model_priors(
+        study.model.family,
+        cells.design,
+        len(cells.adopters),
+        "covariates" in cells.extra,
+        drift=bool(getattr(fit.spec, "drift", False)),
+        residual=bool(getattr(fit.spec, "residual", True)),
+    )
     priors = {k: v for k, v in priors.items() if k in has}  # only the priors the fitted model has
-    return Analysis(study=study, cells=cells, fit=fit, effects=effects, least_squares=ls, priors=priors,
-                    timing=timing, data_sha256=digest, notes=notes, sensitivity=sens, trends=tb)
+    return Analysis(
+        study=study,
+        cells=cells,
+        fit=fit,
+        effects=effects,
+        least_squares=ls,
+        priors=priors,
+        timing=timing,
+        data_sha256=digest,
+        notes=notes,
+        sensitivity=sens,
+        trends=tb,
+    )
 
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
-    from .model.registry import pointwise_loglik
-
     from .effects import att_weights
+    from .model.registry import pointwise_loglik
     from .sensitivity import log_prior_dataset
 
     fit = an.fit
@@ -274,22 +343,35 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
     w = xr.DataArray(att_weights(cells), dims=("adopter",), coords={"adopter": post["adopter"]})
     post["att"] = (post["tau_adopter"] * w).sum("adopter")
     post["att"].attrs = {"meaning": "ATT = sum_j w_j tau_adopter[j], w_j = share of treated target-group rows"}
-    coords = {"jurisdiction": list(cells.jurisdictions), "group": list(cells.groups),
-              "period": [str(p) for p in cells.periods]}
+    coords = {
+        "jurisdiction": list(cells.jurisdictions),
+        "group": list(cells.groups),
+        "period": [str(p) for p in cells.periods],
+    }
     ll = pointwise_loglik(fit)
     C, D = post.sizes["chain"], post.sizes["draw"]
-    ll_da = xr.DataArray(ll.reshape(C, D, *ll.shape[1:]), dims=("chain", "draw", "jurisdiction", "period"),
-                         coords={"chain": post["chain"], "draw": post["draw"],
-                                 "jurisdiction": coords["jurisdiction"], "period": coords["period"]})
+    ll_da = xr.DataArray(
+        ll.reshape(C, D, *ll.shape[1:]),
+        dims=("chain", "draw", "jurisdiction", "period"),
+        coords={
+            "chain": post["chain"],
+            "draw": post["draw"],
+            "jurisdiction": coords["jurisdiction"],
+            "period": coords["period"],
+        },
+    )
     mean = cells.mean
     observed = xr.Dataset({"cell_mean": (("jurisdiction", "group", "period"), mean)}, coords=coords)
-    const = xr.Dataset({
-        "n": (("jurisdiction", "group", "period"), cells.n),
-        "sum_y": (("jurisdiction", "group", "period"), cells.sum_y),
-        "sum_y2": (("jurisdiction", "group", "period"), cells.sum_y2),
-        "treated": (("jurisdiction", "group", "period"), cells.treated.astype(np.int8)),
-        "start_index": (("jurisdiction",), cells.start),
-    }, coords=coords)
+    const = xr.Dataset(
+        {
+            "n": (("jurisdiction", "group", "period"), cells.n),
+            "sum_y": (("jurisdiction", "group", "period"), cells.sum_y),
+            "sum_y2": (("jurisdiction", "group", "period"), cells.sum_y2),
+            "treated": (("jurisdiction", "group", "period"), cells.treated.astype(np.int8)),
+            "start_index": (("jurisdiction",), cells.start),
+        },
+        coords=coords,
+    )
     stats = fit.tree["sample_stats"].to_dataset()
     keep = [v for v in stats.data_vars if stats[v].dtype != object]
     groups = {
@@ -341,8 +423,12 @@ def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             "versions": versions(),
             "seed": an.study.sampler.seed,
-            "sampler": {"name": "nutpie (NUTS)", "chains": an.study.sampler.chains,
-                        "draws": an.study.sampler.draws, "tune": an.study.sampler.tune},
+            "sampler": {
+                "name": "nutpie (NUTS)",
+                "chains": an.study.sampler.chains,
+                "draws": an.study.sampler.draws,
+                "tune": an.study.sampler.tune,
+            },
             "data_sha256": an.data_sha256,
             "run_id": rid,
             "table": str(an.study.table),

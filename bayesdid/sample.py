@@ -20,13 +20,23 @@ import xarray as xr
 
 from .cells import Cells
 from .errors import DiagnosticsWarning
-from .modelcache import compile_cached
 from .model.registry import build_model
 from .model.terms import design_data, model_spec
+from .modelcache import compile_cached
 from .study import SamplerSettings
 
-__all__ = ["Fit", "fit_cells", "diagnose", "COMPILES", "LOADS", "THRESHOLDS", "clear_cache", "compile_exact",
-           "Stopped", "stop_when"]
+__all__ = [
+    "Fit",
+    "fit_cells",
+    "diagnose",
+    "COMPILES",
+    "LOADS",
+    "THRESHOLDS",
+    "clear_cache",
+    "compile_exact",
+    "Stopped",
+    "stop_when",
+]
 
 #: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
 THRESHOLDS = {"rhat_max": 1.01, "ess_bulk_min": 400, "ess_tail_min": 400, "divergences": 0}
@@ -182,9 +192,17 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
     return compiled, spec, dt
 
 
-def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: str = "gaussian",
-              progress: bool = False, effects: str = "att", event_times: tuple | None = None,
-              event_pooled: bool = False) -> Fit:
+def fit_cells(
+    cells: Cells,
+    scales: dict,
+    settings: SamplerSettings,
+    *,
+    family: str = "gaussian",
+    progress: bool = False,
+    effects: str = "att",
+    event_times: tuple | None = None,
+    event_pooled: bool = False,
+) -> Fit:
     """Sample the posterior of the model of ``family`` on ``cells``.
 
     Parameters
@@ -201,19 +219,32 @@ def fit_cells(cells: Cells, scales: dict, settings: SamplerSettings, *, family: 
         The treatment terms (see :func:`bayesdid.model.terms.hierarchical_mean`); the default is the
         per-adopter effect. ``effects="event_time"`` fits one effect per event time.
     """
-    terms = {} if effects == "att" else {"effects": effects, "event_times": event_times,
-                                         "event_pooled": event_pooled}
+    terms = {} if effects == "att" else {"effects": effects, "event_times": event_times, "event_pooled": event_pooled}
     compiled, spec, compile_s = _compiled_for(cells, scales, family, terms)
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        tree = _sample(compiled, draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                       cores=min(settings.chains, 2), seed=settings.seed, progress_bar=progress,
-                       save_warmup=False, target_accept=TARGET_ACCEPT)
+        tree = _sample(
+            compiled,
+            draws=settings.draws,
+            tune=settings.tune,
+            chains=settings.chains,
+            cores=min(settings.chains, 2),
+            seed=settings.seed,
+            progress_bar=progress,
+            save_warmup=False,
+            target_accept=TARGET_ACCEPT,
+        )
     sample_s = time.perf_counter() - t0
     tree = _relabel(tree, cells, spec)
-    fit = Fit(cells=cells, tree=tree, spec=spec, scales=dict(scales), settings=settings,
-              timing={"compile_s": compile_s, "sample_s": sample_s})
+    fit = Fit(
+        cells=cells,
+        tree=tree,
+        spec=spec,
+        scales=dict(scales),
+        settings=settings,
+        timing={"compile_s": compile_s, "sample_s": sample_s},
+    )
     fit.diagnostics = diagnose(tree)
     return fit
 
@@ -241,8 +272,9 @@ def _relabel(tree, cells: Cells, spec):
     return tree
 
 
-def diagnose(tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float = THRESHOLDS["ess_bulk_min"],
-             var_names=None) -> dict:
+def diagnose(
+    tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float = THRESHOLDS["ess_bulk_min"], var_names=None
+) -> dict:
     """Convergence diagnostics over the sampled parameters, judged against Vehtari et al. (2021).
 
     Returns a dict with ``rhat_max``, ``ess_bulk_min``, ``ess_tail_min``, ``divergences``, ``ok``,
@@ -277,8 +309,13 @@ def diagnose(tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float =
         "ess_bulk_min": min(bvals.values()) if bvals else float("nan"),
         "ess_tail_min": min(tvals.values()) if tvals else float("nan"),
         "divergences": div,
-        "thresholds": {"rhat_max": rhat_max, "ess_bulk_min": ess_min, "ess_tail_min": ess_min,
-                       "divergences": 0, "source": "Vehtari et al. (2021), Bayesian Analysis 16(2)"},
+        "thresholds": {
+            "rhat_max": rhat_max,
+            "ess_bulk_min": ess_min,
+            "ess_tail_min": ess_min,
+            "divergences": 0,
+            "source": "Vehtari et al. (2021), Bayesian Analysis 16(2)",
+        },
     }
     problems = []
     if rvals and out["rhat_max"] >= rhat_max:
@@ -293,9 +330,12 @@ def diagnose(tree, *, rhat_max: float = THRESHOLDS["rhat_max"], ess_min: float =
         problems.append(f"{div} divergent transition(s)")
     out["ok"] = not problems
     out["problems"] = problems
-    out["advice"] = ("" if not problems else
-                     "; ".join(problems) + ". Run more draws (--draws) or chains (--chains), and read the "
-                     "posterior as unreliable until these pass.")
+    out["advice"] = (
+        ""
+        if not problems
+        else "; ".join(problems) + ". Run more draws (--draws) or chains (--chains), and read the "
+        "posterior as unreliable until these pass."
+    )
     return out
 
 

@@ -34,8 +34,14 @@ import numpy as np
 import xarray as xr
 from scipy import stats
 
-__all__ = ["log_prior_dataset", "log_likelihood_dataset", "power_scaling", "SENSITIVE",
-           "CHECKED_PARAMETERS", "diagnosis"]
+__all__ = [
+    "log_prior_dataset",
+    "log_likelihood_dataset",
+    "power_scaling",
+    "SENSITIVE",
+    "CHECKED_PARAMETERS",
+    "diagnosis",
+]
 
 #: Sensitivity at or above which a component counts as influential (Kallioinen et al. 2023).
 SENSITIVE = 0.05
@@ -91,8 +97,7 @@ def log_prior_dataset(fit) -> xr.Dataset:
             lp = stats.halfnorm.logpdf(x, scale=scale)
         extra = tuple(range(2, lp.ndim))
         lp = lp.sum(axis=extra) if extra else lp
-        out[name] = xr.DataArray(lp, dims=("chain", "draw"),
-                                 coords={"chain": post["chain"], "draw": post["draw"]})
+        out[name] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
     if "rho" in post:  # persistent gap noise: (rho + 1)/2 ~ Beta(a, b), see bayesdid.model.structure
         from .model.structure import RHO_PRIOR
 
@@ -109,10 +114,16 @@ def log_likelihood_dataset(fit) -> xr.Dataset:
     cells = fit.cells
     ll = pointwise_loglik(fit)
     C, D = post.sizes["chain"], post.sizes["draw"]
-    da = xr.DataArray(ll.reshape(C, D, *ll.shape[1:]), dims=("chain", "draw", "jurisdiction", "period"),
-                      coords={"chain": post["chain"], "draw": post["draw"],
-                              "jurisdiction": list(cells.jurisdictions),
-                              "period": [str(p) for p in cells.periods]})
+    da = xr.DataArray(
+        ll.reshape(C, D, *ll.shape[1:]),
+        dims=("chain", "draw", "jurisdiction", "period"),
+        coords={
+            "chain": post["chain"],
+            "draw": post["draw"],
+            "jurisdiction": list(cells.jurisdictions),
+            "period": [str(p) for p in cells.periods],
+        },
+    )
     return xr.Dataset({"cells": da})
 
 
@@ -121,13 +132,17 @@ def diagnosis(prior: float, likelihood: float, *, threshold: float = SENSITIVE) 
     if not (np.isfinite(prior) and np.isfinite(likelihood)):
         return "not_applicable", "sensitivity could not be computed (non-finite importance weights)."
     if prior >= threshold and likelihood >= threshold:
-        return ("prior_data_conflict",
-                "the prior and the data pull in different directions: the answer moves when either is "
-                "strengthened; widen or re-centre this prior, or justify it.")
+        return (
+            "prior_data_conflict",
+            "the prior and the data pull in different directions: the answer moves when either is "
+            "strengthened; widen or re-centre this prior, or justify it.",
+        )
     if prior >= threshold:
-        return ("prior_dominates",
-                "the data say little about this parameter, so its posterior mostly restates the prior; "
-                "report it as prior-driven or give the prior a stated reason.")
+        return (
+            "prior_dominates",
+            "the data say little about this parameter, so its posterior mostly restates the prior; "
+            "report it as prior-driven or give the prior a stated reason.",
+        )
     if likelihood < threshold:
         return ("weak_both", "neither the prior nor the data move this parameter much under power-scaling.")
     return "ok", "the data dominate; the prior is not driving this parameter."
@@ -163,14 +178,18 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
     names = [n for n in CHECKED_PARAMETERS if n in fit.posterior]
     post = fit.posterior[names]
     if "tau_adopter" in fit.posterior:  # the headline ATT, sum_j w_j tau[j] (effects.py)
-        w = xr.DataArray(att_weights(fit.cells), dims=("adopter",),
-                         coords={"adopter": fit.posterior["adopter"]})
+        w = xr.DataArray(att_weights(fit.cells), dims=("adopter",), coords={"adopter": fit.posterior["adopter"]})
         post = post.assign(att=(fit.posterior["tau_adopter"] * w).sum("adopter"))
         names = ["att", *names]
     tree = xr.DataTree.from_dict({"posterior": post, "log_prior": lp, "log_likelihood": ll})
-    out = {"method": "power-scaling sensitivity, arviz.psense (Kallioinen et al. 2023)",
-           "threshold": threshold, "alphas": list(alphas), "priors_scaled": sorted(lp.data_vars),
-           "parameters": {}, "flagged": []}
+    out = {
+        "method": "power-scaling sensitivity, arviz.psense (Kallioinen et al. 2023)",
+        "threshold": threshold,
+        "alphas": list(alphas),
+        "priors_scaled": sorted(lp.data_vars),
+        "parameters": {},
+        "flagged": [],
+    }
     try:
         ps_p = az.psense(tree, var_names=names, group="prior", alphas=alphas)
         ps_l = az.psense(tree, var_names=names, group="likelihood", alphas=alphas)
@@ -198,9 +217,12 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
                 # prior), power-scaling it reweights nothing and the sensitivity is 0; otherwise unknown.
                 spread = float(np.ptp(np.asarray(lp[n])))
                 own = 0.0 if spread < 1e-6 else float("nan")
-                note = (f"its own prior's log density varies by only {spread:.1e} over the draws, so power-scaling "
-                        "it moves nothing (sensitivity 0)" if own == 0.0 else
-                        f"power-scaling its own prior could not be computed ({exc})")
+                note = (
+                    f"its own prior's log density varies by only {spread:.1e} over the draws, so power-scaling "
+                    "it moves nothing (sensitivity 0)"
+                    if own == 0.0
+                    else f"power-scaling its own prior could not be computed ({exc})"
+                )
         elif n == "att":  # a function of tau and the adopters' effects: its prior is the joint one
             own = joint
             note = "the ATT has no prior of its own; 'prior' is its sensitivity to power-scaling all priors"
@@ -208,8 +230,15 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
             own = float("nan")
         code, reading = diagnosis(own, li, threshold=threshold)
         jcode, _ = diagnosis(joint, li, threshold=threshold)
-        out["parameters"][n] = {"prior": own, "likelihood": li, "joint_prior": joint, "diagnosis": code,
-                                "joint_diagnosis": jcode, "reading": reading, "meaning": _MEANING.get(n, "")}
+        out["parameters"][n] = {
+            "prior": own,
+            "likelihood": li,
+            "joint_prior": joint,
+            "diagnosis": code,
+            "joint_diagnosis": jcode,
+            "reading": reading,
+            "meaning": _MEANING.get(n, ""),
+        }
         if note:
             out["parameters"][n]["note"] = note
         if code in ("prior_data_conflict", "prior_dominates"):
@@ -220,7 +249,8 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
                 out["parameters"][n]["reading"] += (
                     f" Power-scaling all priors together moves it more ({joint:.3f}): another prior acts on it "
                     "through the model (with few adopters, usually 'adopter_spread'); a sweep over that scale "
-                    "shows by how much.")
+                    "shows by how much."
+                )
     n_adopters = len(fit.cells.adopters)
     if "sigma_tau" in out["parameters"] and n_adopters <= FEW_ADOPTERS and "sigma_tau" in out["flagged"]:
         # With two or three adopters the spread of their effects cannot be learnt from the data; its
@@ -230,7 +260,8 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
         out["expected"] = ["sigma_tau"]
         out["parameters"]["sigma_tau"]["reading"] += (
             f" Expected with {n_adopters} adopters: their spread is barely learnable, so this prior carries it;"
-            " judge the effect by tau's own sensitivity and by a sweep over 'adopter_spread'.")
+            " judge the effect by tau's own sensitivity and by a sweep over 'adopter_spread'."
+        )
     out["ok"] = not out["flagged"]
     out["status"] = "ok" if out["ok"] else "attention"
     return out

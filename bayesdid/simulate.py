@@ -14,12 +14,46 @@ import pandas as pd
 __all__ = ["Scenario", "simulate", "region_names"]
 
 _NAMES = [
-    "Norvale", "Kestrel Bay", "Ambermoor", "Brindlecombe", "Caskwater", "Dovrenne", "Elmsquay",
-    "Fennowick", "Galdercroft", "Harrowmere", "Istrelle", "Juniper Reach", "Korvath", "Lanthorne",
-    "Merrowgate", "Nettlebrook", "Oskerfield", "Pellingrove", "Quillmarsh", "Rosk Hollow",
-    "Sablecote", "Tarnwhistle", "Umberlee", "Vesperdale", "Wrenhallow", "Yarrowick", "Zephyr Flats",
-    "Ashcombe Ridge", "Bellcrest", "Cinderfell", "Dapplemoor", "Emberlyn", "Foxglove Cross",
-    "Glimmerholt", "Hazelrune", "Ironvetch", "Juddermere", "Kindlewood", "Larkspur Heath", "Mossbarrow",
+    "Norvale",
+    "Kestrel Bay",
+    "Ambermoor",
+    "Brindlecombe",
+    "Caskwater",
+    "Dovrenne",
+    "Elmsquay",
+    "Fennowick",
+    "Galdercroft",
+    "Harrowmere",
+    "Istrelle",
+    "Juniper Reach",
+    "Korvath",
+    "Lanthorne",
+    "Merrowgate",
+    "Nettlebrook",
+    "Oskerfield",
+    "Pellingrove",
+    "Quillmarsh",
+    "Rosk Hollow",
+    "Sablecote",
+    "Tarnwhistle",
+    "Umberlee",
+    "Vesperdale",
+    "Wrenhallow",
+    "Yarrowick",
+    "Zephyr Flats",
+    "Ashcombe Ridge",
+    "Bellcrest",
+    "Cinderfell",
+    "Dapplemoor",
+    "Emberlyn",
+    "Foxglove Cross",
+    "Glimmerholt",
+    "Hazelrune",
+    "Ironvetch",
+    "Juddermere",
+    "Kindlewood",
+    "Larkspur Heath",
+    "Mossbarrow",
 ]
 
 
@@ -117,11 +151,13 @@ def simulate(sc: Scenario, seed: int, *, names: list[str] | None = None) -> tupl
     gr = np.repeat(gg.ravel(), rep)
     tr = np.repeat(tt.ravel(), rep)
     y = mean[jr, gr, tr] + sc.residual_sd * rng.standard_normal(total)
-    frame = pd.DataFrame({
-        "region": np.asarray(names, dtype=object)[jr],
-        "period": tr + 1,
-        "y": y,
-    })
+    frame = pd.DataFrame(
+        {
+            "region": np.asarray(names, dtype=object)[jr],
+            "period": tr + 1,
+            "y": y,
+        }
+    )
     if G == 2:
         frame["group"] = np.where(gr == tg, "target", "reference")
     truth = {

@@ -122,11 +122,19 @@ def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = N
     w = size[t]
     p1 = float(np.sum(w * mean1[t]) / w.sum())
     p0 = float(np.sum(w * mean0[t]) / w.sum())
-    truth = {"tau": sc.tau, "starts": {names[j]: int(st) + 1 for j, st in sc.starts.items()}, "rows": R,
-             "treated_mean_with": p1, "treated_mean_without": p0}
+    truth = {
+        "tau": sc.tau,
+        "starts": {names[j]: int(st) + 1 for j, st in sc.starts.items()},
+        "rows": R,
+        "treated_mean_with": p1,
+        "treated_mean_without": p0,
+    }
     if sc.family == "binomial":
         truth.update(risk_difference_pp=100 * (p1 - p0), risk_ratio=p1 / p0)
     else:
-        truth.update(rate_ratio=p1 / p0, rate_difference_per_1000=1000 * (p1 - p0),
-                     events_averted=float(np.sum(w * (mean0[t] - mean1[t]))))
+        truth.update(
+            rate_ratio=p1 / p0,
+            rate_difference_per_1000=1000 * (p1 - p0),
+            events_averted=float(np.sum(w * (mean0[t] - mean1[t]))),
+        )
     return pd.DataFrame(frame), truth

@@ -36,8 +36,7 @@ import pandas as pd
 from .errors import DataRoleError
 from .study import Study
 
-__all__ = ["collapse_stream", "stream_sources", "partial_of_file", "merge_partials", "listing_digest",
-           "should_stream"]
+__all__ = ["collapse_stream", "stream_sources", "partial_of_file", "merge_partials", "listing_digest", "should_stream"]
 
 BATCH_ROWS = 1 << 20
 
@@ -64,26 +63,42 @@ def stream_sources(table: str | Path) -> tuple[list[str], str]:
     elif Path(text).is_file():
         files = [text]
     else:
-        raise DataRoleError(f"table '{text}' does not exist; fix 'data.table' (a file, a folder of Parquet files or "
-                            "a glob such as 'claims/*.parquet').")
+        raise DataRoleError(
+            f"table '{text}' does not exist; fix 'data.table' (a file, a folder of Parquet files or "
+            "a glob such as 'claims/*.parquet')."
+        )
     if not files:
         if Path(text).is_dir():
-            raise DataRoleError(f"table '{text}' is a folder holding no data file (hidden files and names starting "
-                                "with '_' are skipped); put the Parquet files in it, or name one CSV or Parquet file "
-                                "in 'data.table'.")
+            raise DataRoleError(
+                f"table '{text}' is a folder holding no data file (hidden files and names starting "
+                "with '_' are skipped); put the Parquet files in it, or name one CSV or Parquet file "
+                "in 'data.table'."
+            )
         raise DataRoleError(f"table '{text}' matches no file; fix 'data.table' or the folder's contents.")
-    kinds = {("parquet" if f.lower().endswith((".parquet", ".pq")) else
-              "csv" if f.lower().endswith((".csv", ".csv.gz", ".txt")) else "other") for f in files}
+    kinds = {
+        (
+            "parquet"
+            if f.lower().endswith((".parquet", ".pq"))
+            else "csv"
+            if f.lower().endswith((".csv", ".csv.gz", ".txt"))
+            else "other"
+        )
+        for f in files
+    }
     if "other" in kinds:
         bad = [f for f in files if not f.lower().endswith((".parquet", ".pq", ".csv", ".csv.gz", ".txt"))]
-        raise DataRoleError(f"table '{text}' holds files that are neither CSV nor Parquet (e.g. {bad[:3]}); move them "
-                            "out of the folder or narrow the glob.")
+        raise DataRoleError(
+            f"table '{text}' holds files that are neither CSV nor Parquet (e.g. {bad[:3]}); move them "
+            "out of the folder or narrow the glob."
+        )
     if len(kinds) > 1:
         raise DataRoleError(f"table '{text}' mixes CSV and Parquet files; stream one kind at a time.")
     kind = kinds.pop()
     if kind == "csv" and len(files) > 1:
-        raise DataRoleError(f"table '{text}' is {len(files)} CSV files; a folder or glob must hold Parquet files "
-                            "(convert them, or give one CSV file).")
+        raise DataRoleError(
+            f"table '{text}' is {len(files)} CSV files; a folder or glob must hold Parquet files "
+            "(convert them, or give one CSV file)."
+        )
     return files, kind
 
 
@@ -98,9 +113,11 @@ def _check_study(study: Study) -> None:
     if study.summary is not None:
         reasons.append("data.summary")
     if reasons:
-        raise DataRoleError(f"the streaming collapse takes observation rows without covariates, weights or units "
-                            f"(any family); this study has {', '.join(reasons)}. Give a single file that fits in "
-                            "memory (without --stream or --cluster).")
+        raise DataRoleError(
+            f"the streaming collapse takes observation rows without covariates, weights or units "
+            f"(any family); this study has {', '.join(reasons)}. Give a single file that fits in "
+            "memory (without --stream or --cluster)."
+        )
 
 
 def _schemas(files: list[str], kind: str, used: list[str]) -> None:
@@ -114,23 +131,27 @@ def _schemas(files: list[str], kind: str, used: list[str]) -> None:
         try:
             schema = pq.read_schema(f)
         except Exception as exc:  # noqa: BLE001 - pyarrow raises several kinds
-            raise DataRoleError(f"file '{f}' of the table could not be read as Parquet ({type(exc).__name__}: "
-                                f"{str(exc)[:200]}).") from None
+            raise DataRoleError(
+                f"file '{f}' of the table could not be read as Parquet ({type(exc).__name__}: {str(exc)[:200]})."
+            ) from None
         missing = [c for c in used if c not in schema.names]
         if missing:
-            raise DataRoleError(f"file '{f}' of the table lacks column(s) {missing} named in the study (it has "
-                                f"{schema.names[:20]}); every file of a folder must have the same columns.")
+            raise DataRoleError(
+                f"file '{f}' of the table lacks column(s) {missing} named in the study (it has "
+                f"{schema.names[:20]}); every file of a folder must have the same columns."
+            )
         types = {c: schema.field(c).type for c in used}
-        norm = {c: str(t.value_type if hasattr(t, "value_type") else t).replace("large_", "")
-                for c, t in types.items()}
+        norm = {c: str(t.value_type if hasattr(t, "value_type") else t).replace("large_", "") for c, t in types.items()}
         if first is None:
             first = (f, norm)
             continue
         diff = [c for c in used if norm[c] != first[1][c]]
         if diff:
             c = diff[0]
-            raise DataRoleError(f"files of the table disagree on the type of column '{c}': {first[1][c]} in "
-                                f"'{first[0]}' but {norm[c]} in '{f}'. Write every file with the same schema.")
+            raise DataRoleError(
+                f"files of the table disagree on the type of column '{c}': {first[1][c]} in "
+                f"'{first[0]}' but {norm[c]} in '{f}'. Write every file with the same schema."
+            )
 
 
 def _scanner(path: str, kind: str, used: list[str]):
@@ -141,9 +162,10 @@ def _scanner(path: str, kind: str, used: list[str]):
     else:
         import pyarrow.csv as pcsv
 
-        fmt = ds.CsvFileFormat(convert_options=pcsv.ConvertOptions(strings_can_be_null=True,
-                                                                  null_values=[""]),
-                               read_options=pcsv.ReadOptions(block_size=64 << 20))
+        fmt = ds.CsvFileFormat(
+            convert_options=pcsv.ConvertOptions(strings_can_be_null=True, null_values=[""]),
+            read_options=pcsv.ReadOptions(block_size=64 << 20),
+        )
     return ds.dataset(path, format=fmt).scanner(columns=used, batch_size=BATCH_ROWS, use_threads=True)
 
 
@@ -154,8 +176,10 @@ def _codes(arr, table: dict, what: str, where: str) -> np.ndarray:
     import pyarrow.compute as pc
 
     if arr.null_count:
-        raise DataRoleError(f"column '{what}' has {arr.null_count} missing value(s) in {where}; every row needs it. "
-                            "Drop or fill those rows.")
+        raise DataRoleError(
+            f"column '{what}' has {arr.null_count} missing value(s) in {where}; every row needs it. "
+            "Drop or fill those rows."
+        )
     if not pa.types.is_dictionary(arr.type):
         arr = pc.dictionary_encode(arr)
     local = np.empty(len(arr.dictionary), dtype=np.int64)
@@ -185,9 +209,11 @@ def partial_of_file(path: str, kind: str, roles: dict, log_outcome: bool, family
     except DataRoleError:
         raise
     except Exception as exc:  # noqa: BLE001 - pyarrow's readers raise many kinds
-        raise DataRoleError(f"file '{path}' of the table could not be read after row {state['rows']:,} "
-                            f"({type(exc).__name__}: {str(exc).strip()[:300]}). Check that column's values (numbers "
-                            "with a dot as decimal separator; an empty field for a missing value).") from None
+        raise DataRoleError(
+            f"file '{path}' of the table could not be read after row {state['rows']:,} "
+            f"({type(exc).__name__}: {str(exc).strip()[:300]}). Check that column's values (numbers "
+            "with a dot as decimal separator; an empty field for a missing value)."
+        ) from None
     return {"labels": state["labels"], "rows": state["rows"], **state["acc"]}
 
 
@@ -196,11 +222,15 @@ def _numbers(batch, col: str, what: str, where: str) -> np.ndarray:
 
     arr = batch.column(col)
     if pa.types.is_dictionary(arr.type) or not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)):
-        raise DataRoleError(f"{what} column '{col}' holds {arr.type} values in {where}, where numbers are "
-                            "expected; give numbers (an empty field for a missing value).")
+        raise DataRoleError(
+            f"{what} column '{col}' holds {arr.type} values in {where}, where numbers are "
+            "expected; give numbers (an empty field for a missing value)."
+        )
     if arr.null_count:
-        raise DataRoleError(f"{what} column '{col}' has {arr.null_count} missing value(s) in {where}; drop those "
-                            "rows or fill them before the analysis.")
+        raise DataRoleError(
+            f"{what} column '{col}' has {arr.null_count} missing value(s) in {where}; drop those "
+            "rows or fill them before the analysis."
+        )
     v = arr.to_numpy(zero_copy_only=False).astype(float, copy=False)
     if not np.isfinite(v).all():
         raise DataRoleError(f"{what} column '{col}' has infinite values in {where}; replace or drop them.")
@@ -212,27 +242,36 @@ def _count_rows(y: np.ndarray, size: np.ndarray | None, roles: dict, family: str
     col = roles["outcome"]
     if family == "binomial" and size is None:
         if ((y != 0) & (y != 1)).any():
-            raise DataRoleError(f"outcome column '{col}' must be 0 or 1 for family 'binomial' without a trials column; "
-                                f"{where} hold other values. Recode it, or name the trials in 'data.trials'.")
+            raise DataRoleError(
+                f"outcome column '{col}' must be 0 or 1 for family 'binomial' without a trials column; "
+                f"{where} hold other values. Recode it, or name the trials in 'data.trials'."
+            )
         return np.ones_like(y)
     if (y < 0).any() or (y != np.round(y)).any():
-        raise DataRoleError(f"outcome column '{col}' must hold whole, non-negative counts for family '{family}'; "
-                            f"{where} do not.")
+        raise DataRoleError(
+            f"outcome column '{col}' must hold whole, non-negative counts for family '{family}'; {where} do not."
+        )
     if family == "binomial":
         if (size < 1).any() or (size != np.round(size)).any():
-            raise DataRoleError(f"trials column '{roles['size']}' must hold whole numbers of at least 1; {where} "
-                                "do not.")
+            raise DataRoleError(
+                f"trials column '{roles['size']}' must hold whole numbers of at least 1; {where} do not."
+            )
         if (y > size).any():
-            raise DataRoleError(f"trials column '{roles['size']}' is below the successes in '{col}' in {where}; "
-                                "check which column is which.")
+            raise DataRoleError(
+                f"trials column '{roles['size']}' is below the successes in '{col}' in {where}; "
+                "check which column is which."
+            )
     elif (size <= 0).any():
-        raise DataRoleError(f"exposure column '{roles['size']}' must be positive (person-time); {where} hold zero "
-                            "or negative values. Drop rows with no person-time.")
+        raise DataRoleError(
+            f"exposure column '{roles['size']}' must be positive (person-time); {where} hold zero "
+            "or negative values. Drop rows with no person-time."
+        )
     return size
 
 
-def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, path: str,
-               family: str = "gaussian") -> None:
+def _add_batch(
+    state: dict, batch, keys: list, roles: dict, log_outcome: bool, path: str, family: str = "gaussian"
+) -> None:
     """Fold one record batch into ``state`` (labels, rows read, per-cell accumulator)."""
     if batch.num_rows == 0:
         return
@@ -242,8 +281,10 @@ def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, p
     y = _numbers(batch, col, "outcome", where)
     if log_outcome:
         if (y <= 0).any():
-            raise DataRoleError(f"outcome column '{col}' has values at or below zero in {where}, but "
-                                "model.log_outcome = true needs positive values.")
+            raise DataRoleError(
+                f"outcome column '{col}' has values at or below zero in {where}, but "
+                "model.log_outcome = true needs positive values."
+            )
         y = np.log(y)
     codes = {r: _codes(batch.column(roles[r]), labels[r], roles[r], where) for r in keys}
     zero = np.zeros(len(y), dtype=np.int64)
@@ -253,8 +294,11 @@ def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, p
     n_b = np.bincount(idx, minlength=size).astype(float)
     s_b = np.bincount(idx, weights=y, minlength=size)
     if family != "gaussian":
-        sz = _numbers(batch, roles["size"], "trials" if family == "binomial" else "exposure", where) \
-            if roles.get("size") else None
+        sz = (
+            _numbers(batch, roles["size"], "trials" if family == "binomial" else "exposure", where)
+            if roles.get("size")
+            else None
+        )
         sz = _count_rows(y, sz, roles, family, where)
         part = {"n": n_b, "sy": s_b, "sz": np.bincount(idx, weights=sz, minlength=size), "dims": dims}
         state["acc"] = _merge_dense(state["acc"], part)
@@ -270,7 +314,7 @@ def _add_batch(state: dict, batch, keys: list, roles: dict, log_outcome: bool, p
 def _grow(a: np.ndarray, old: tuple, new: tuple) -> np.ndarray:
     out = np.zeros(new)
     if a.size:
-        out[:old[0], :old[1], :old[2]] = a.reshape(old)
+        out[: old[0], : old[1], : old[2]] = a.reshape(old)
     return out
 
 
@@ -279,8 +323,14 @@ def _merge_dense(a: dict, b: dict) -> dict:
     for the Gaussian family, plain sums of (n, sy, sz) otherwise."""
     dims = tuple(max(x, y) for x, y in zip(a["dims"], b["dims"]))
     if "mean" not in b:
-        return {"dims": dims, **{k: (_grow(a[k], a["dims"], dims) if k in a else np.zeros(dims)).ravel()
-                                 + _grow(b[k], b["dims"], dims).ravel() for k in ("n", "sy", "sz")}}
+        return {
+            "dims": dims,
+            **{
+                k: (_grow(a[k], a["dims"], dims) if k in a else np.zeros(dims)).ravel()
+                + _grow(b[k], b["dims"], dims).ravel()
+                for k in ("n", "sy", "sz")
+            },
+        }
     na, ma, sa = (_grow(a[k], a["dims"], dims) if k in a else np.zeros(dims) for k in ("n", "mean", "ss"))
     nb, mb, sb = (_grow(b[k], b["dims"], dims) for k in ("n", "mean", "ss"))
     n = na + nb
@@ -317,7 +367,7 @@ def merge_partials(parts: list[dict]) -> tuple[dict, dict]:
         if not pd_[0] or "n" not in p or not p["n"].size:
             continue
         fields = ("n", "mean", "ss") if "mean" in p else ("n", "sy", "sz")
-        jj, gg, tt = np.ix_(maps[0][:pd_[0]], maps[1][:pd_[1]], maps[2][:pd_[2]])
+        jj, gg, tt = np.ix_(maps[0][: pd_[0]], maps[1][: pd_[1]], maps[2][: pd_[2]])
         part = {"dims": dims}
         for k in fields:
             arr = np.zeros(dims)
@@ -344,15 +394,18 @@ def _cluster_map(cluster: str, fn, args_list) -> list:
 
     local = None
     if cluster == "local":
-        local = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                             dashboard_address=None, silence_logs=40)
+        local = LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None, silence_logs=40
+        )
         client = Client(local)
     else:
         try:
             client = Client(cluster, timeout="20s")
         except (OSError, TimeoutError) as exc:
-            raise DataRoleError(f"cannot reach the Dask scheduler at --cluster '{cluster}': {exc}. Start one "
-                                "(dask scheduler) or use --cluster local.") from None
+            raise DataRoleError(
+                f"cannot reach the Dask scheduler at --cluster '{cluster}': {exc}. Start one "
+                "(dask scheduler) or use --cluster local."
+            ) from None
     try:
         futures = [client.submit(fn, *a, pure=False) for a in args_list]
         return client.gather(futures)
@@ -378,8 +431,13 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
     files, kind = stream_sources(study.table)
     family = study.model.family
     size_col = c.trials if family == "binomial" else c.exposure if family != "gaussian" else None
-    roles = {"outcome": c.outcome, "jurisdiction": c.jurisdiction, "period": c.period, "group": c.group,
-             "size": size_col}
+    roles = {
+        "outcome": c.outcome,
+        "jurisdiction": c.jurisdiction,
+        "period": c.period,
+        "group": c.group,
+        "size": size_col,
+    }
     roles = {k: v for k, v in roles.items() if v}
     _schemas(files, kind, list(roles.values()))
     args = [(f, kind, roles, study.model.log_outcome, family) for f in files]
@@ -389,16 +447,19 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
         parts = [partial_of_file(*a) for a in args]
     labels, acc = merge_partials(parts)
     if "n" not in acc:
-        raise DataRoleError(f"table '{study.table}' has no rows; the study needs rows for every jurisdiction and "
-                            "period.")
+        raise DataRoleError(
+            f"table '{study.table}' has no rows; the study needs rows for every jurisdiction and period."
+        )
     J, G, T = acc["dims"]
     n = acc["n"].reshape(J, G, T)
     jv = [v for _, v in sorted(labels["jurisdiction"].values())]
     gv = [v for _, v in sorted(labels["group"].values())]
     tv = [v for _, v in sorted(labels["period"].values())]
     jj, gg, tt = np.nonzero(n > 0)
-    table = {c.jurisdiction: [str(v) for v in np.asarray(jv, dtype=object)[jj]],
-             c.period: list(np.asarray(tv, dtype=object)[tt])}
+    table = {
+        c.jurisdiction: [str(v) for v in np.asarray(jv, dtype=object)[jj]],
+        c.period: list(np.asarray(tv, dtype=object)[tt]),
+    }
     if c.group:
         table[c.group] = [str(v) for v in np.asarray(gv, dtype=object)[gg]]
     from dataclasses import replace
@@ -411,8 +472,9 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
         with np.errstate(invalid="ignore", divide="ignore"):
             sd = np.where(k > 1, np.sqrt(ss[jj, gg, tt] / np.maximum(k - 1, 1)), np.nan)
         table.update({c.outcome: mean[jj, gg, tt], "__count": k, "__spread": sd})
-        as_cells = study.replace(summary="mean", columns={"count": "__count", "sd": "__spread"},
-                                 model={"log_outcome": False})
+        as_cells = study.replace(
+            summary="mean", columns={"count": "__count", "sd": "__spread"}, model={"log_outcome": False}
+        )
     else:  # one row per cell with the summed outcome and trials or exposure: the families' own aggregated form
         sy, sz = (acc[k].reshape(J, G, T)[jj, gg, tt] for k in ("sy", "sz"))
         size_name = size_col or "__trials"

@@ -12,10 +12,10 @@ import math
 import numbers
 import os
 import tomllib
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
-from collections.abc import Mapping
 
 from . import frames
 from .errors import StudyError
@@ -55,7 +55,7 @@ PRIOR_NAMES = {
     "covariate": "sd of the normal prior on each (centred) covariate coefficient",
     "dispersion": "scale of the half-normal prior on 1/sqrt(phi) of the over-dispersed count family",
     "drift_spread": "scale of the half-normal prior on the spread of jurisdictions' linear gap drifts per period "
-                    "(model.gap_drift = true)",
+    "(model.gap_drift = true)",
 }
 
 
@@ -81,8 +81,12 @@ def _section(raw: Mapping[str, Any], name: str, allowed: set[str]) -> Mapping[st
     if sec is None:
         return {}
     if not isinstance(sec, Mapping):
-        raise _where(name, sec, f"a [{name}] table with keys {sorted(allowed)}",
-                     f"Write it as a section: a line [{name}] followed by key = value lines.")
+        raise _where(
+            name,
+            sec,
+            f"a [{name}] table with keys {sorted(allowed)}",
+            f"Write it as a section: a line [{name}] followed by key = value lines.",
+        )
     _check_keys(sec, allowed, name)
     return sec
 
@@ -298,9 +302,17 @@ class Study:
 
 
 #: Study field -> section of the study file that holds it.
-_FIELD_SECTIONS = {"columns": "data", "policy": "policy", "model": "model", "priors": "priors",
-                   "sampler": "sampler", "decision": "decision", "crosscheck": "crosscheck", "trends": "trends",
-                   "wording": "wording"}
+_FIELD_SECTIONS = {
+    "columns": "data",
+    "policy": "policy",
+    "model": "model",
+    "priors": "priors",
+    "sampler": "sampler",
+    "decision": "decision",
+    "crosscheck": "crosscheck",
+    "trends": "trends",
+    "wording": "wording",
+}
 
 
 def _raw_with(study: Study, changes: Mapping[str, Any]) -> dict[str, Any]:
@@ -351,28 +363,62 @@ def _raw_with(study: Study, changes: Mapping[str, Any]) -> dict[str, Any]:
     return raw
 
 
-_TOP_KEYS = {"title", "data", "policy", "model", "priors", "sampler", "decision", "checks", "crosscheck", "trends",
-             "wording"}
+_TOP_KEYS = {
+    "title",
+    "data",
+    "policy",
+    "model",
+    "priors",
+    "sampler",
+    "decision",
+    "checks",
+    "crosscheck",
+    "trends",
+    "wording",
+}
 WORDING_KEYS = ("policy", "outcome", "unit", "target")
 #: Every key the study file accepts, by section ("" = top level); the parser reads its allowed keys
 #: from here, and tests/test_readme_keys.py checks each is documented in the README and read by the code.
 STUDY_KEYS: dict[str, tuple[str, ...]] = {}
-_DATA_KEYS = {"table", "outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials",
-              "period_order", "summary", "weight", "count", "sd", "se"}
-STUDY_KEYS.update({
-    "": ("title",), "data": tuple(sorted(_DATA_KEYS)), "policy": ("adopters", "target_group"),
-    "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"),
-    "priors": tuple(PRIOR_NAMES), "sampler": ("chains", "draws", "tune", "seed"), "decision": ("threshold", "level"),
-    "trends": ("multiples",),
-    "crosscheck": ("seed", "draws", "weights", "placebos"), "checks": ("placebo_lag",), "wording": WORDING_KEYS})
+_DATA_KEYS = {
+    "table",
+    "outcome",
+    "jurisdiction",
+    "period",
+    "group",
+    "unit",
+    "exposure",
+    "trials",
+    "period_order",
+    "summary",
+    "weight",
+    "count",
+    "sd",
+    "se",
+}
+STUDY_KEYS.update(
+    {
+        "": ("title",),
+        "data": tuple(sorted(_DATA_KEYS)),
+        "policy": ("adopters", "target_group"),
+        "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"),
+        "priors": tuple(PRIOR_NAMES),
+        "sampler": ("chains", "draws", "tune", "seed"),
+        "decision": ("threshold", "level"),
+        "trends": ("multiples",),
+        "crosscheck": ("seed", "draws", "weights", "placebos"),
+        "checks": ("placebo_lag",),
+        "wording": WORDING_KEYS,
+    }
+)
 
 #: What one row of the table holds (``data.summary``): absent = one observation per row.
 SUMMARIES = {
     "mean": "the mean of the observations of a cell, with their count ('data.count') and their within-cell "
-            "standard deviation ('data.sd') or the standard error of the mean ('data.se')",
+    "standard deviation ('data.sd') or the standard error of the mean ('data.se')",
     "proportion": "the proportion of successes among 'data.count' people (family 'binomial')",
     "rate": "events per unit of person-time, with the person-time in 'data.exposure' (family 'poisson' or "
-            "'negbinomial')",
+    "'negbinomial')",
 }
 
 
@@ -417,13 +463,18 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
             raise _where("data.period_order", order, "a non-empty list of period labels in time order")
         bad = [v for v in order if isinstance(v, bool) or not isinstance(v, (str, int, float))]
         if bad:
-            raise _where("data.period_order", bad[0], "period labels (numbers or text) only",
-                         "List the labels of the period column in time order, e.g. [\"2023Q1\", \"2023Q2\"].")
+            raise _where(
+                "data.period_order",
+                bad[0],
+                "period labels (numbers or text) only",
+                'List the labels of the period column in time order, e.g. ["2023Q1", "2023Q2"].',
+            )
         seen: dict[str, Any] = {}
         for v in order:
             if str(v) in seen:
-                raise _where("data.period_order", v, "each period once",
-                             f"The label {v!r} is listed twice; remove one.")
+                raise _where(
+                    "data.period_order", v, "each period once", f"The label {v!r} is listed twice; remove one."
+                )
             seen[str(v)] = v
 
     pol = raw.get("policy")
@@ -434,10 +485,13 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     _check_keys(pol, set(STUDY_KEYS["policy"]), "policy")
     adopters = pol.get("adopters")
     if not isinstance(adopters, Mapping) or not adopters:
-        raise _where("policy.adopters", adopters,
-                     "a table of adopting jurisdiction = first treated period, e.g. {\"Norvale\" = 7}")
-    policy = Policy(adopters=tuple((str(k), v) for k, v in adopters.items()),
-                    target_group=_get_str(pol, "target_group", "policy", required=False))
+        raise _where(
+            "policy.adopters", adopters, 'a table of adopting jurisdiction = first treated period, e.g. {"Norvale" = 7}'
+        )
+    policy = Policy(
+        adopters=tuple((str(k), v) for k, v in adopters.items()),
+        target_group=_get_str(pol, "target_group", "policy", required=False),
+    )
 
     m = _section(raw, "model", set(STUDY_KEYS["model"]))
     model = ModelOptions(
@@ -452,23 +506,37 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
     priors = PriorScales(**{k: _get_float(p, k, "priors", None, positive=True) for k in p})
     s = _section(raw, "sampler", set(STUDY_KEYS["sampler"]))
     defaults = SamplerSettings()
-    sampler = SamplerSettings(**{
-        k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
-        for k, (lo, hi) in SAMPLER_LIMITS.items()})
+    sampler = SamplerSettings(
+        **{
+            k: _get_int(s, k, "sampler", getattr(defaults, k), minimum=lo, maximum=hi)
+            for k, (lo, hi) in SAMPLER_LIMITS.items()
+        }
+    )
     d = _section(raw, "decision", set(STUDY_KEYS["decision"]))
     level = _get_float(d, "level", "decision", 0.9)
     if not 0.5 <= level < 1.0:
-        raise _where("decision.level", d.get("level"), "a probability from 0.5 up to (not including) 1",
-                     "It is the probability at which a decision counts as made, e.g. 0.9.")
+        raise _where(
+            "decision.level",
+            d.get("level"),
+            "a probability from 0.5 up to (not including) 1",
+            "It is the probability at which a decision counts as made, e.g. 0.9.",
+        )
     decision = Decision(threshold=_get_float(d, "threshold", "decision", None), level=level)
     tr = _section(raw, "trends", set(STUDY_KEYS["trends"]))
     mult = tr.get("multiples", list(TrendSettings().multiples))
-    if (not isinstance(mult, (list, tuple)) or not mult
-            or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)):
+    if (
+        not isinstance(mult, (list, tuple))
+        or not mult
+        or any(isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(float(v)) for v in mult)
+    ):
         raise _where("trends.multiples", mult, "a non-empty list of finite numbers, e.g. [0, 0.5, 1, 2]")
     if any(float(v) < 0 for v in mult):
-        raise _where("trends.multiples", mult, "multiples of zero or more",
-                     "M scales the largest pre-policy change; a negative multiple has no meaning.")
+        raise _where(
+            "trends.multiples",
+            mult,
+            "multiples of zero or more",
+            "M scales the largest pre-policy change; a negative multiple has no meaning.",
+        )
     trends = TrendSettings(multiples=tuple(sorted(float(v) for v in mult)))
     x = _section(raw, "crosscheck", set(STUDY_KEYS["crosscheck"]))
     weights = x.get("weights", "webb")
@@ -492,10 +560,24 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         if not isinstance(v, str) or not v.strip():
             raise _where(f"wording.{k}", v, "a non-empty string (words for the report)")
     wording = Wording(**{k: w[k].strip() for k in WORDING_KEYS if k in w})
-    return _validated(Study(table=path, columns=cols, policy=policy, model=model, priors=priors,
-                            sampler=sampler, decision=decision, crosscheck=crosscheck, trends=trends, title=title,
-                            period_order=tuple(order) if order else None, placebo_lag=lag, summary=summary,
-                            wording=wording))
+    return _validated(
+        Study(
+            table=path,
+            columns=cols,
+            policy=policy,
+            model=model,
+            priors=priors,
+            sampler=sampler,
+            decision=decision,
+            crosscheck=crosscheck,
+            trends=trends,
+            title=title,
+            period_order=tuple(order) if order else None,
+            placebo_lag=lag,
+            summary=summary,
+            wording=wording,
+        )
+    )
 
 
 def _validated(study: Study) -> Study:
@@ -512,24 +594,42 @@ def _validated(study: Study) -> Study:
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
     if study.model.gap_drift and study.model.family != "gaussian":
-        raise _where("model.gap_drift", True, "false for non-gaussian families",
-                     "Pooled gap drifts are built for the gaussian family only so far.")
+        raise _where(
+            "model.gap_drift",
+            True,
+            "false for non-gaussian families",
+            "Pooled gap drifts are built for the gaussian family only so far.",
+        )
     if study.model.gap_over_time not in ("persistent", "independent"):
-        raise _where("model.gap_over_time", study.model.gap_over_time, "'persistent' or 'independent'",
-                     "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.")
+        raise _where(
+            "model.gap_over_time",
+            study.model.gap_over_time,
+            "'persistent' or 'independent'",
+            "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.",
+        )
     if study.model.log_outcome and study.model.family != "gaussian":
-        raise _where("model.log_outcome", True, "false for non-gaussian families",
-                     "Binomial and count families already use a logit or log link.")
+        raise _where(
+            "model.log_outcome",
+            True,
+            "false for non-gaussian families",
+            "Binomial and count families already use a logit or log link.",
+        )
     if study.columns.group is not None and study.policy.target_group is None:
-        raise StudyError("study key 'policy.target_group' is missing: with a group column "
-                         f"('{study.columns.group}') the study is a DDD and must name the target group level.")
+        raise StudyError(
+            "study key 'policy.target_group' is missing: with a group column "
+            f"('{study.columns.group}') the study is a DDD and must name the target group level."
+        )
     if study.columns.group is None and study.policy.target_group is not None:
-        raise StudyError("study key 'policy.target_group' is set but 'data.group' is not: name the group "
-                         "column for a DDD, or drop target_group for a DiD.")
+        raise StudyError(
+            "study key 'policy.target_group' is set but 'data.group' is not: name the group "
+            "column for a DDD, or drop target_group for a DiD."
+        )
     if study.model.family == "poisson" or study.model.family == "negbinomial":
         if study.columns.exposure is None:
-            raise StudyError(f"family '{study.model.family}' needs 'data.exposure' (person-time per row); "
-                             "add a column of ones if every row counts one unit.")
+            raise StudyError(
+                f"family '{study.model.family}' needs 'data.exposure' (person-time per row); "
+                "add a column of ones if every row counts one unit."
+            )
     if study.columns.trials is not None and study.model.family != "binomial":
         raise _where("data.trials", study.columns.trials, "no trials column unless model.family = 'binomial'")
     _validate_shape(study)
@@ -537,15 +637,24 @@ def _validated(study: Study) -> Study:
     seen: dict[str, str] = {}
     for key, col in roles.items():
         if col in seen:
-            raise StudyError(f"study keys '{seen[col]}' and '{key}' name the same column '{col}'; each role needs "
-                             "its own column. Fix one of them under [data].")
+            raise StudyError(
+                f"study keys '{seen[col]}' and '{key}' name the same column '{col}'; each role needs "
+                "its own column. Fix one of them under [data]."
+            )
         seen[col] = key
     t = study.decision.threshold
     if t is not None and t <= -1 and (study.model.log_outcome or study.model.family != "gaussian"):
-        scale = ("a log outcome (model.log_outcome = true)" if study.model.log_outcome else
-                 f"family '{study.model.family}', whose effect is read as a ratio")
-        raise _where("decision.threshold", t, f"a relative change above -1 for {scale}",
-                     f"{t:g} would be a cut of {-t:.0%}, which no ratio can reach; write a cut of 15% as -0.15.")
+        scale = (
+            "a log outcome (model.log_outcome = true)"
+            if study.model.log_outcome
+            else f"family '{study.model.family}', whose effect is read as a ratio"
+        )
+        raise _where(
+            "decision.threshold",
+            t,
+            f"a relative change above -1 for {scale}",
+            f"{t:g} would be a cut of {-t:.0%}, which no ratio can reach; write a cut of 15% as -0.15.",
+        )
     names = [a for a, _ in study.policy.adopters]
     if len(set(names)) != len(names):
         raise _where("policy.adopters", names, "each adopter once")
@@ -561,56 +670,103 @@ def _validate_shape(study: Study) -> None:
     if summary is None:
         for key in ("count", "sd", "se"):
             if getattr(c, key) is not None:
-                raise _where(f"data.{key}", getattr(c, key), "no such column unless 'data.summary' is set",
-                             "Set data.summary = \"mean\" (or \"proportion\") when each row summarises a cell.")
+                raise _where(
+                    f"data.{key}",
+                    getattr(c, key),
+                    "no such column unless 'data.summary' is set",
+                    'Set data.summary = "mean" (or "proportion") when each row summarises a cell.',
+                )
     else:
         need = {"mean": ("gaussian",), "proportion": ("binomial",), "rate": ("poisson", "negbinomial")}[summary]
         if fam not in need:
             raise _where("model.family", fam, f"{' or '.join(repr(f) for f in need)} with data.summary = '{summary}'")
         if summary in ("mean", "proportion") and c.count is None:
-            raise StudyError(f"data.summary = '{summary}' needs 'data.count', the column holding how many "
-                             "people (observations) each row summarises.")
+            raise StudyError(
+                f"data.summary = '{summary}' needs 'data.count', the column holding how many "
+                "people (observations) each row summarises."
+            )
         if summary == "rate" and c.count is not None:
-            raise _where("data.count", c.count, "no count column with data.summary = 'rate'",
-                         "A rate's denominator is its person-time: name it in 'data.exposure'.")
+            raise _where(
+                "data.count",
+                c.count,
+                "no count column with data.summary = 'rate'",
+                "A rate's denominator is its person-time: name it in 'data.exposure'.",
+            )
         if summary == "mean" and (c.sd is None) == (c.se is None):
-            raise StudyError("data.summary = 'mean' needs exactly one of 'data.sd' (the within-cell standard "
-                             "deviation of the observations) and 'data.se' (the standard error of the mean)"
-                             + ("; both are set." if c.sd is not None else "; neither is set."))
+            raise StudyError(
+                "data.summary = 'mean' needs exactly one of 'data.sd' (the within-cell standard "
+                "deviation of the observations) and 'data.se' (the standard error of the mean)"
+                + ("; both are set." if c.sd is not None else "; neither is set.")
+            )
         if summary != "mean" and (c.sd is not None or c.se is not None):
             key = "sd" if c.sd is not None else "se"
-            raise _where(f"data.{key}", getattr(c, key), f"no sd or se column with data.summary = '{summary}'",
-                         "The binomial and count families need no spread: the count and the total determine it.")
+            raise _where(
+                f"data.{key}",
+                getattr(c, key),
+                f"no sd or se column with data.summary = '{summary}'",
+                "The binomial and count families need no spread: the count and the total determine it.",
+            )
         if summary == "proportion" and c.trials is not None:
-            raise _where("data.trials", c.trials, "no trials column with data.summary = 'proportion'",
-                         "The number of people is 'data.count'.")
+            raise _where(
+                "data.trials",
+                c.trials,
+                "no trials column with data.summary = 'proportion'",
+                "The number of people is 'data.count'.",
+            )
         if study.model.log_outcome:
-            raise _where("model.log_outcome", True, "false with data.summary",
-                         "The mean of the logs cannot be computed from the mean: summarise log(outcome) per cell "
-                         "and give those means with log_outcome = false.")
+            raise _where(
+                "model.log_outcome",
+                True,
+                "false with data.summary",
+                "The mean of the logs cannot be computed from the mean: summarise log(outcome) per cell "
+                "and give those means with log_outcome = false.",
+            )
         if study.model.covariates:
-            raise _where("model.covariates", study.model.covariates, "no covariates with data.summary",
-                         "Covariates need the observation-level rows; give those rows without data.summary.")
+            raise _where(
+                "model.covariates",
+                study.model.covariates,
+                "no covariates with data.summary",
+                "Covariates need the observation-level rows; give those rows without data.summary.",
+            )
         for key in ("weight", "unit"):
             if getattr(c, key) is not None:
-                raise _where(f"data.{key}", getattr(c, key), f"no {key} column with data.summary",
-                             "A summary row already stands for many observations; give the observation-level rows.")
+                raise _where(
+                    f"data.{key}",
+                    getattr(c, key),
+                    f"no {key} column with data.summary",
+                    "A summary row already stands for many observations; give the observation-level rows.",
+                )
     if c.unit is not None:
         if fam != "gaussian":
-            raise _where("data.unit", c.unit, "a unit column with family 'gaussian' only",
-                         f"Unit fixed effects for family '{fam}' are not supported; leave out data.unit (pooled).")
+            raise _where(
+                "data.unit",
+                c.unit,
+                "a unit column with family 'gaussian' only",
+                f"Unit fixed effects for family '{fam}' are not supported; leave out data.unit (pooled).",
+            )
         if study.model.covariates or c.weight is not None:
             what = "model.covariates" if study.model.covariates else "data.weight"
-            raise _where(what, study.model.covariates or c.weight, "not set together with data.unit",
-                         "Unit fixed effects are supported without covariates and weights; leave out one of them.")
+            raise _where(
+                what,
+                study.model.covariates or c.weight,
+                "not set together with data.unit",
+                "Unit fixed effects are supported without covariates and weights; leave out one of them.",
+            )
     if c.weight is not None:
         if fam != "gaussian":
-            raise _where("data.weight", c.weight, "sampling weights with family 'gaussian' only",
-                         f"Weighted likelihoods for family '{fam}' are not supported; drop data.weight.")
+            raise _where(
+                "data.weight",
+                c.weight,
+                "sampling weights with family 'gaussian' only",
+                f"Weighted likelihoods for family '{fam}' are not supported; drop data.weight.",
+            )
         if study.model.covariates:
-            raise _where("model.covariates", study.model.covariates, "no covariates together with data.weight",
-                         "Weighted cells support a Gaussian outcome without covariates; drop the covariates or "
-                         "the weights.")
+            raise _where(
+                "model.covariates",
+                study.model.covariates,
+                "no covariates together with data.weight",
+                "Weighted cells support a Gaussian outcome without covariates; drop the covariates or the weights.",
+            )
 
 
 def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
@@ -624,8 +780,10 @@ def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
         raise error(f"{what} '{path}' is a folder, not a file; give the path of the file itself.")
     if not path.exists():
         if path.is_symlink():
-            raise error(f"{what} '{path}' is a symbolic link that leads nowhere (its target is missing, or the "
-                        "link loops); point it at the file, or give the file's own path.")
+            raise error(
+                f"{what} '{path}' is a symbolic link that leads nowhere (its target is missing, or the "
+                "link loops); point it at the file, or give the file's own path."
+            )
         raise error(f"{what} '{path}' does not exist; check the path (relative paths start in the current folder).")
     try:
         data = path.read_bytes()
@@ -636,9 +794,11 @@ def read_text_utf8(path: str | Path, what: str, error=StudyError) -> str:
     except UnicodeDecodeError as exc:
         line = data.count(b"\n", 0, exc.start) + 1
         col = exc.start - (data.rfind(b"\n", 0, exc.start) + 1) + 1
-        raise error(f"{what} '{path}' is not UTF-8 text: byte 0x{data[exc.start]:02x} on line {line}, column {col} "
-                    "cannot be read. Save the file with the UTF-8 encoding (in most editors: Save as, "
-                    "encoding UTF-8).") from None
+        raise error(
+            f"{what} '{path}' is not UTF-8 text: byte 0x{data[exc.start]:02x} on line {line}, column {col} "
+            "cannot be read. Save the file with the UTF-8 encoding (in most editors: Save as, "
+            "encoding UTF-8)."
+        ) from None
 
 
 def load_study(path: str | Path) -> Study:
@@ -658,13 +818,40 @@ def load_study(path: str | Path) -> Study:
     return _parse(raw, path.parent.resolve())
 
 
-def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, target_group=None,
-               log_outcome=False, family="gaussian", covariates=None, missing="error", gap_over_time=None,
-               exposure=None,
-               trials=None, unit=None, weight=None, summary=None, count=None, sd=None, se=None, priors=None,
-               chains=2, draws=1000, tune=1000, seed=20261202,
-               threshold=None, title="bayesdid study", period_order=None, placebo_lag=None,
-               crosscheck=None, wording=None) -> Study:
+def make_study(
+    *,
+    table,
+    outcome,
+    jurisdiction,
+    period,
+    adopters,
+    group=None,
+    target_group=None,
+    log_outcome=False,
+    family="gaussian",
+    covariates=None,
+    missing="error",
+    gap_over_time=None,
+    exposure=None,
+    trials=None,
+    unit=None,
+    weight=None,
+    summary=None,
+    count=None,
+    sd=None,
+    se=None,
+    priors=None,
+    chains=2,
+    draws=1000,
+    tune=1000,
+    seed=20261202,
+    threshold=None,
+    title="bayesdid study",
+    period_order=None,
+    placebo_lag=None,
+    crosscheck=None,
+    wording=None,
+) -> Study:
     """Build a validated study in Python, without a file. Arguments mirror the study-file keys.
 
     ``table`` is a path or a pandas DataFrame (kept in memory, see :mod:`bayesdid.frames`).
@@ -673,14 +860,44 @@ def make_study(*, table, outcome, jurisdiction, period, adopters, group=None, ta
         table = frames.register(table)
     raw: dict[str, Any] = {
         "title": title,
-        "data": {k: v for k, v in dict(table=os.fspath(table) if isinstance(table, os.PathLike) else table, outcome=outcome, jurisdiction=jurisdiction,
-                                         period=period, group=group, unit=unit, exposure=exposure,
-                                         trials=trials, period_order=period_order, weight=weight, summary=summary,
-                                         count=count, sd=sd, se=se).items() if v is not None},
-        "policy": {k: v for k, v in dict(adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters,
-                                         target_group=target_group).items() if v is not None},
-        "model": {k: v for k, v in dict(family=family, log_outcome=log_outcome, covariates=covariates,
-                                        missing=missing, gap_over_time=gap_over_time).items() if v is not None},
+        "data": {
+            k: v
+            for k, v in dict(
+                table=os.fspath(table) if isinstance(table, os.PathLike) else table,
+                outcome=outcome,
+                jurisdiction=jurisdiction,
+                period=period,
+                group=group,
+                unit=unit,
+                exposure=exposure,
+                trials=trials,
+                period_order=period_order,
+                weight=weight,
+                summary=summary,
+                count=count,
+                sd=sd,
+                se=se,
+            ).items()
+            if v is not None
+        },
+        "policy": {
+            k: v
+            for k, v in dict(
+                adopters=dict(adopters) if isinstance(adopters, Mapping) else adopters, target_group=target_group
+            ).items()
+            if v is not None
+        },
+        "model": {
+            k: v
+            for k, v in dict(
+                family=family,
+                log_outcome=log_outcome,
+                covariates=covariates,
+                missing=missing,
+                gap_over_time=gap_over_time,
+            ).items()
+            if v is not None
+        },
         "priors": dict(priors) if isinstance(priors, Mapping) else (priors or {}),
         "sampler": dict(chains=chains, draws=draws, tune=tune, seed=seed),
         "decision": {} if threshold is None else {"threshold": threshold},

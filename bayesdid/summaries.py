@@ -56,14 +56,19 @@ def _count(study: Study, frame: pd.DataFrame, *, others: tuple[str, ...] = ()) -
                 f"count column '{col}' is empty in {_rows_text(bare)}, which also have no "
                 f"{' or '.join(repr(c) for c in rest)}: they look like observation-level rows mixed into a table of "
                 f"cell summaries (data.summary = '{study.summary}'). Give one kind of row per table: summarise "
-                "those observations into their cells, or drop data.summary and give every observation.")
-        raise DataRoleError(f"count column '{col}' has {_rows_text(miss)} missing; every summary row needs the "
-                            "number of observations it summarises. Fill or drop those rows.")
+                "those observations into their cells, or drop data.summary and give every observation."
+            )
+        raise DataRoleError(
+            f"count column '{col}' has {_rows_text(miss)} missing; every summary row needs the "
+            "number of observations it summarises. Fill or drop those rows."
+        )
     bad = ~np.isfinite(k) | (k < 1) | (k != np.round(k))
     if bad.any():
-        raise DataRoleError(f"count column '{col}' must hold whole numbers of at least 1 (observations per row); "
-                            f"{_rows_text(bad)} do not (e.g. {k[bad][0]:g}). A row with no observations carries "
-                            "nothing: drop it.")
+        raise DataRoleError(
+            f"count column '{col}' must hold whole numbers of at least 1 (observations per row); "
+            f"{_rows_text(bad)} do not (e.g. {k[bad][0]:g}). A row with no observations carries "
+            "nothing: drop it."
+        )
     return k
 
 
@@ -86,18 +91,24 @@ def check_summary_rows(study: Study, frame: pd.DataFrame) -> pd.DataFrame:
     what = "standard deviation" if c.sd is not None else "standard error"
     miss = np.isnan(s) & (k > 1)
     if miss.any():
-        raise DataRoleError(f"{'sd' if c.sd is not None else 'se'} column '{spread}' is empty in {_rows_text(miss)} "
-                            f"whose count ('{c.count}') exceeds 1; a mean of several observations needs their {what}. "
-                            "Fill it, or drop those rows.")
+        raise DataRoleError(
+            f"{'sd' if c.sd is not None else 'se'} column '{spread}' is empty in {_rows_text(miss)} "
+            f"whose count ('{c.count}') exceeds 1; a mean of several observations needs their {what}. "
+            "Fill it, or drop those rows."
+        )
     one = ~np.isnan(s) & (k == 1)
     if one.any():
-        raise DataRoleError(f"{'sd' if c.sd is not None else 'se'} column '{spread}' holds a value in "
-                            f"{_rows_text(one)} whose count ('{c.count}') is 1: the {what} of a single observation "
-                            "is not defined. Leave that field empty, or check the count.")
+        raise DataRoleError(
+            f"{'sd' if c.sd is not None else 'se'} column '{spread}' holds a value in "
+            f"{_rows_text(one)} whose count ('{c.count}') is 1: the {what} of a single observation "
+            "is not defined. Leave that field empty, or check the count."
+        )
     bad = ~np.isnan(s) & (~np.isfinite(s) | (s < 0))
     if bad.any():
-        raise DataRoleError(f"{'sd' if c.sd is not None else 'se'} column '{spread}' must be a finite number of at "
-                            f"least 0; {_rows_text(bad)} are not (e.g. {s[bad][0]:g}).")
+        raise DataRoleError(
+            f"{'sd' if c.sd is not None else 'se'} column '{spread}' must be a finite number of at "
+            f"least 0; {_rows_text(bad)} are not (e.g. {s[bad][0]:g})."
+        )
     sd = np.where(k > 1, s, 0.0)
     if c.se is not None:
         sd = sd * np.sqrt(k)
@@ -124,13 +135,17 @@ def check_weights(study: Study, frame: pd.DataFrame) -> np.ndarray:
     w = _numeric(frame, col, "weight")
     miss = np.isnan(w)
     if miss.any():
-        raise DataRoleError(f"weight column '{col}' has {_rows_text(miss)} missing; every row needs its sampling "
-                            "weight. Fill them from the survey's documentation, or drop those rows.")
+        raise DataRoleError(
+            f"weight column '{col}' has {_rows_text(miss)} missing; every row needs its sampling "
+            "weight. Fill them from the survey's documentation, or drop those rows."
+        )
     bad = ~np.isfinite(w) | (w <= 0)
     if bad.any():
-        raise DataRoleError(f"weight column '{col}' must hold positive, finite sampling weights; {_rows_text(bad)} "
-                            f"do not (smallest {np.nanmin(np.where(np.isfinite(w), w, np.nan)):g}). A row outside "
-                            "the population has no weight: drop it rather than give it 0.")
+        raise DataRoleError(
+            f"weight column '{col}' must hold positive, finite sampling weights; {_rows_text(bad)} "
+            f"do not (smallest {np.nanmin(np.where(np.isfinite(w), w, np.nan)):g}). A row outside "
+            "the population has no weight: drop it rather than give it 0."
+        )
     return w
 
 
@@ -153,11 +168,19 @@ def weighted_sums(y: np.ndarray, w: np.ndarray, idx: np.ndarray, size: int) -> d
     n_eff = np.where(pos, sw * sw / np.where(pos, sw2, 1.0), 0.0)
     ss = np.where(pos, ss_w * n_eff / safe, 0.0)
     w2 = w * w
-    return {"n": n_eff, "sum_y": n_eff * ybar, "sum_y2": ss + n_eff * ybar * ybar, "ss": ss,
-            "sum_w": sw, "ss_w": ss_w, "rows": np.bincount(idx, minlength=size).astype(float),
-            # for the HC1 meat sum_i w_i^2 e_i^2 with e_i = (y_i - ybar_w) + rbar_c
-            "sum_w2": sw2, "w2_dev": np.bincount(idx, weights=w2 * dev, minlength=size),
-            "w2_dev2": np.bincount(idx, weights=w2 * dev * dev, minlength=size)}
+    return {
+        "n": n_eff,
+        "sum_y": n_eff * ybar,
+        "sum_y2": ss + n_eff * ybar * ybar,
+        "ss": ss,
+        "sum_w": sw,
+        "ss_w": ss_w,
+        "rows": np.bincount(idx, minlength=size).astype(float),
+        # for the HC1 meat sum_i w_i^2 e_i^2 with e_i = (y_i - ybar_w) + rbar_c
+        "sum_w2": sw2,
+        "w2_dev": np.bincount(idx, weights=w2 * dev, minlength=size),
+        "w2_dev2": np.bincount(idx, weights=w2 * dev * dev, minlength=size),
+    }
 
 
 def _whole(total: np.ndarray, what: str, study: Study, frame: pd.DataFrame, denom: str) -> np.ndarray:
@@ -169,7 +192,8 @@ def _whole(total: np.ndarray, what: str, study: Study, frame: pd.DataFrame, deno
             f"outcome column '{study.columns.outcome}' times '{denom}' is not a whole number of {what} in "
             f"{_rows_text(off)} (first: {total[i]:.6g}); a published figure rounded to few digits cannot be turned "
             f"back into {what} exactly. Give more digits, or give the {what} themselves as the outcome "
-            "without data.summary (with 'data.trials' or 'data.exposure').")
+            "without data.summary (with 'data.trials' or 'data.exposure')."
+        )
     return k
 
 
@@ -192,13 +216,17 @@ def as_count_rows(study: Study, frame: pd.DataFrame) -> tuple[Study, pd.DataFram
         k = _count(study, frame, others=())
         miss = np.isnan(p)
         if miss.any():
-            raise DataRoleError(f"outcome column '{c.outcome}' has {_rows_text(miss)} missing; every row needs its "
-                                "proportion. Fill or drop those rows.")
+            raise DataRoleError(
+                f"outcome column '{c.outcome}' has {_rows_text(miss)} missing; every row needs its "
+                "proportion. Fill or drop those rows."
+            )
         bad = (p < 0) | (p > 1)
         if bad.any():
-            raise DataRoleError(f"outcome column '{c.outcome}' holds proportions (data.summary = 'proportion') but "
-                                f"{_rows_text(bad)} lie outside 0..1 (e.g. {p[bad][0]:g}). Give a share, not a "
-                                "percent.")
+            raise DataRoleError(
+                f"outcome column '{c.outcome}' holds proportions (data.summary = 'proportion') but "
+                f"{_rows_text(bad)} lie outside 0..1 (e.g. {p[bad][0]:g}). Give a share, not a "
+                "percent."
+            )
         out[c.outcome] = _whole(p * k, "successes", study, frame, c.count)
         out[c.count] = k
         cols = dataclasses.replace(c, trials=c.count, count=None)
@@ -208,12 +236,16 @@ def as_count_rows(study: Study, frame: pd.DataFrame) -> tuple[Study, pd.DataFram
         x = _numeric(frame, c.exposure, "exposure")
         miss = np.isnan(p)
         if miss.any():
-            raise DataRoleError(f"outcome column '{c.outcome}' has {_rows_text(miss)} missing; every row needs its "
-                                "rate. Fill or drop those rows.")
+            raise DataRoleError(
+                f"outcome column '{c.outcome}' has {_rows_text(miss)} missing; every row needs its "
+                "rate. Fill or drop those rows."
+            )
         bad = (p < 0) | ~np.isfinite(p)
         if bad.any():
-            raise DataRoleError(f"outcome column '{c.outcome}' holds rates (data.summary = 'rate') but "
-                                f"{_rows_text(bad)} are negative or infinite (e.g. {p[bad][0]:g}).")
+            raise DataRoleError(
+                f"outcome column '{c.outcome}' holds rates (data.summary = 'rate') but "
+                f"{_rows_text(bad)} are negative or infinite (e.g. {p[bad][0]:g})."
+            )
         if not np.isfinite(x).all() or (x <= 0).any():
             return study, frame  # the exposure checks name these rows
         out[c.outcome] = _whole(p * x, "events", study, frame, c.exposure)

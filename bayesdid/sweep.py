@@ -68,26 +68,33 @@ import sys
 import time
 import tomllib
 import uuid
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
-from collections.abc import Callable, Iterable, Mapping
 
 import numpy as np
 
-from .version import __version__
 from .contracts import SWEEP_SUMMARY_COLUMNS, SweepVerdict, run_id
 from .errors import BayesDidError, SweepError
 from .lifeline import workers_end_with_me
 from .model.registry import study_priors
 from .outputs import owner_alive, owner_tag, probe_writable, process_start
 from .study import PRIOR_NAMES, Study, _parse, load_study, study_to_dict
+from .version import __version__
 
-__all__ = ["Variant", "SweepPlan", "load_sweep", "run_sweep", "verdict", "SUMMARY_COLUMNS",
-           "variant_is_complete", "read_results"]
+__all__ = [
+    "Variant",
+    "SweepPlan",
+    "load_sweep",
+    "run_sweep",
+    "verdict",
+    "SUMMARY_COLUMNS",
+    "variant_is_complete",
+    "read_results",
+]
 
-_TOP = {"study", "title", "combine", "sampler", "priors", "comparisons", "covariates", "outcomes",
-        "options", "variant"}
+_TOP = {"study", "title", "combine", "sampler", "priors", "comparisons", "covariates", "outcomes", "options", "variant"}
 _OPTION_KEYS = {"label", "family", "log_outcome", "missing", "threshold"}
 _VARIANT_KEYS = {"label", "priors", "model", "policy", "outcome", "drop", "threshold"}
 
@@ -143,8 +150,15 @@ def variant_id(raw: dict, drop: list, base_seed: int, data_sha: str) -> str:
     content = copy.deepcopy(raw)
     content.pop("title", None)
     content.get("sampler", {}).pop("seed", None)
-    blob = _plain_json({"study": content, "drop": sorted(drop), "base_seed": int(base_seed),
-                        "data_sha256": data_sha, "bayesdid": __version__})
+    blob = _plain_json(
+        {
+            "study": content,
+            "drop": sorted(drop),
+            "base_seed": int(base_seed),
+            "data_sha256": data_sha,
+            "bayesdid": __version__,
+        }
+    )
     return hashlib.sha256(blob.encode()).hexdigest()[:12]
 
 
@@ -182,8 +196,13 @@ class SweepPlan:
     data_sha256: dict
 
     def describe(self) -> dict:
-        return {"sweep_file": str(self.path), "sweep_sha256": self.sha256, "combine": self.combine,
-                "title": self.title, "variants": len(self.variants)}
+        return {
+            "sweep_file": str(self.path),
+            "sweep_sha256": self.sha256,
+            "combine": self.combine,
+            "title": self.title,
+            "variants": len(self.variants),
+        }
 
 
 def _list_of(v, key, check, expected):
@@ -207,11 +226,18 @@ def _axes(raw: Mapping, comparisons: list[str], adopters: set[str]) -> list[list
     if pri:
         names = sorted(pri)
         for n in names:
-            _list_of(pri[n], f"priors.{n}",
-                     lambda x: isinstance(x, (int, float)) and not isinstance(x, bool) and x > 0 and np.isfinite(x),
-                     "positive numbers (prior scales on the model scale)")
-        axes.append([{"priors": {n: float(v) for n, v in zip(names, combo)}}
-                     for combo in itertools.product(*(pri[n] for n in names))])
+            _list_of(
+                pri[n],
+                f"priors.{n}",
+                lambda x: isinstance(x, (int, float)) and not isinstance(x, bool) and x > 0 and np.isfinite(x),
+                "positive numbers (prior scales on the model scale)",
+            )
+        axes.append(
+            [
+                {"priors": {n: float(v) for n, v in zip(names, combo)}}
+                for combo in itertools.product(*(pri[n] for n in names))
+            ]
+        )
     comp = raw.get("comparisons", {})
     if not isinstance(comp, Mapping):
         raise _err("comparisons", comp, "a table with 'leave_each_out' and/or 'drop'")
@@ -225,14 +251,26 @@ def _axes(raw: Mapping, comparisons: list[str], adopters: set[str]) -> list[list
     if loo:
         drops += [[c] for c in comparisons]
     if "drop" in comp:
-        for i, sub in enumerate(_list_of(comp["drop"], "comparisons.drop", lambda x: isinstance(x, list) and x,
-                                         "non-empty lists of comparison jurisdictions")):
+        for i, sub in enumerate(
+            _list_of(
+                comp["drop"],
+                "comparisons.drop",
+                lambda x: isinstance(x, list) and x,
+                "non-empty lists of comparison jurisdictions",
+            )
+        ):
             for c in sub:
                 if c in adopters:
-                    raise _err(f"comparisons.drop[{i}]", c, "a comparison jurisdiction",
-                               f"'{c}' adopts the policy; only comparison jurisdictions can be left out.")
+                    raise _err(
+                        f"comparisons.drop[{i}]",
+                        c,
+                        "a comparison jurisdiction",
+                        f"'{c}' adopts the policy; only comparison jurisdictions can be left out.",
+                    )
                 if c not in comparisons:
-                    raise _err(f"comparisons.drop[{i}]", c, f"a jurisdiction of the table (one of {comparisons[:6]}...)")
+                    raise _err(
+                        f"comparisons.drop[{i}]", c, f"a jurisdiction of the table (one of {comparisons[:6]}...)"
+                    )
             drops.append(sorted(str(c) for c in sub))
     if drops:
         axes.append([{"drop": d} for d in drops])
@@ -256,8 +294,9 @@ def _axes(raw: Mapping, comparisons: list[str], adopters: set[str]) -> list[list
         for i, o in enumerate(opts):
             bad = sorted(set(o) - _OPTION_KEYS)
             if bad:
-                raise SweepError(f"unknown key(s) {bad} in [[options]] number {i + 1}; allowed keys are "
-                                 f"{sorted(_OPTION_KEYS)}.")
+                raise SweepError(
+                    f"unknown key(s) {bad} in [[options]] number {i + 1}; allowed keys are {sorted(_OPTION_KEYS)}."
+                )
             ov: dict = {}
             m = {k: o[k] for k in ("family", "log_outcome", "missing") if k in o}
             if m:
@@ -265,8 +304,10 @@ def _axes(raw: Mapping, comparisons: list[str], adopters: set[str]) -> list[list
             if "threshold" in o:
                 ov["decision"] = {"threshold": o["threshold"]}
             if not ov:
-                raise SweepError(f"[[options]] number {i + 1} changes nothing; give at least one of "
-                                 f"{sorted(_OPTION_KEYS - {'label'})}.")
+                raise SweepError(
+                    f"[[options]] number {i + 1} changes nothing; give at least one of "
+                    f"{sorted(_OPTION_KEYS - {'label'})}."
+                )
             if "label" in o:
                 ov["label"] = str(o["label"])
             ax.append(ov)
@@ -282,8 +323,9 @@ def _explicit(raw: Mapping, adopters: set[str], comparisons: list[str]) -> list[
     for i, v in enumerate(vs):
         bad = sorted(set(v) - _VARIANT_KEYS)
         if bad:
-            raise SweepError(f"unknown key(s) {bad} in [[variant]] number {i + 1}; allowed keys are "
-                             f"{sorted(_VARIANT_KEYS)}.")
+            raise SweepError(
+                f"unknown key(s) {bad} in [[variant]] number {i + 1}; allowed keys are {sorted(_VARIANT_KEYS)}."
+            )
         ov: dict = {}
         for sec in ("priors", "model", "policy"):
             if sec in v:
@@ -361,8 +403,10 @@ def load_sweep(path: str | Path) -> SweepPlan:
         raise _err("combine", combine, "'one_at_a_time' or 'grid'")
     samp = raw.get("sampler", {})
     if not isinstance(samp, Mapping) or set(samp) - {"chains", "draws", "tune", "seed"}:
-        raise SweepError("[sampler] in a sweep file takes chains, draws, tune and seed only; found "
-                         f"{sorted(samp) if isinstance(samp, Mapping) else samp!r}.")
+        raise SweepError(
+            "[sampler] in a sweep file takes chains, draws, tune and seed only; found "
+            f"{sorted(samp) if isinstance(samp, Mapping) else samp!r}."
+        )
     if samp:
         base = base.replace(sampler=dict(samp))
     base_raw = study_to_dict(base)
@@ -391,7 +435,8 @@ def load_sweep(path: str | Path) -> SweepPlan:
                 f"variant '{label}' sets the prior(s) {lacks}, which the model of this study does not have "
                 f"(family {st.model.family}, {'DDD' if st.columns.group else 'DiD'}, "
                 f"{len(st.policy.adopters)} adopter(s), {'with' if st.model.covariates else 'no'} covariates): "
-                f"sweeping it would change nothing. Its priors are {list(study_priors(st))}.")
+                f"sweeping it would change nothing. Its priors are {list(study_priors(st))}."
+            )
         tbl = str(st.table)
         if tbl not in shas:
             shas[tbl] = file_sha256(st.table)
@@ -404,8 +449,15 @@ def load_sweep(path: str | Path) -> SweepPlan:
         resolved["sampler"]["seed"] = seed
         variants.append(Variant(label=label, overrides=ov, id=vid, seed=seed, raw=resolved))
     title = raw.get("title", f"sweep of {base.title}")
-    return SweepPlan(path=path.resolve(), base=base, variants=variants, combine=combine, title=str(title),
-                     sha256=hashlib.sha256(text.encode()).hexdigest(), data_sha256=shas)
+    return SweepPlan(
+        path=path.resolve(),
+        base=base,
+        variants=variants,
+        combine=combine,
+        title=str(title),
+        sha256=hashlib.sha256(text.encode()).hexdigest(),
+        data_sha256=shas,
+    )
 
 
 # ---- one variant (runs in a worker) ----------------------------------------------------------
@@ -456,22 +508,37 @@ def run_variant(task: dict) -> dict:
             if drop:
                 keep = np.ones(cells.shape, dtype=bool)
                 keep[idx] = False
-                lcells = replace(cells, n=cells.n * keep, sum_y=cells.sum_y * keep, sum_y2=cells.sum_y2 * keep,
-                                 ss=cells.ss * keep, weight=None)
+                lcells = replace(
+                    cells,
+                    n=cells.n * keep,
+                    sum_y=cells.sum_y * keep,
+                    sum_y2=cells.sum_y2 * keep,
+                    ss=cells.ss * keep,
+                    weight=None,
+                )
             _CELLS[ls_key] = least_squares_estimate(lcells)
         an = analyse(study, cells=cells, least_squares=_CELLS[ls_key])
         an.data_sha256 = task["data_sha256"]
         if drop:
-            an.notes.append(f"comparison jurisdiction(s) left out (weight 0 in the likelihood, removed from "
-                            f"the least-squares cross-check): {', '.join(drop)}")
+            an.notes.append(
+                f"comparison jurisdiction(s) left out (weight 0 in the likelihood, removed from "
+                f"the least-squares cross-check): {', '.join(drop)}"
+            )
         staging = Path(task["staging"])
         if staging.exists():
             shutil.rmtree(staging)
         write_run(an, staging, argv=["bayesdid", "sweep", task["id"]])
-        info = {"id": task["id"], "label": task["label"], "overrides": task["overrides"], "seed": task["seed"],
-                "status": "done", "bayesdid": __version__, "pid": os.getpid(),
-                "compiles_in_this_run": sample.COMPILES["count"] - before,
-                "seconds": time.perf_counter() - t0}
+        info = {
+            "id": task["id"],
+            "label": task["label"],
+            "overrides": task["overrides"],
+            "seed": task["seed"],
+            "status": "done",
+            "bayesdid": __version__,
+            "pid": os.getpid(),
+            "compiles_in_this_run": sample.COMPILES["count"] - before,
+            "seconds": time.perf_counter() - t0,
+        }
         dump_json(info, staging / "variant.json")
         folder = Path(task["folder"])
         if folder.exists():  # a broken earlier copy: swap it out only now that the new one is complete
@@ -508,17 +575,31 @@ def _row(v: Variant, status: str, summary: dict | None, error: str = "") -> dict
     row.update(id=v.id, label=v.label, status=status, overrides=_plain_json(v.overrides), seed=v.seed, error=error)
     if summary:
         e = summary["effect"]
-        row.update(effect_mean=e["mean"], effect_sd=e["sd"], eti90_low=e["eti_90"][0], eti90_high=e["eti_90"][1],
-                   eti95_low=e["eti_95"][0], eti95_high=e["eti_95"][1], hdi90_low=e["hdi_90"][0],
-                   hdi90_high=e["hdi_90"][1], prob_gt_0=e["prob_gt_0"], prob_lt_0=e["prob_lt_0"],
-                   threshold=e["threshold"] if e["threshold"] is not None else "",
-                   prob_beyond_threshold=e["prob_beyond_threshold"] if e["prob_beyond_threshold"] is not None else "")
+        row.update(
+            effect_mean=e["mean"],
+            effect_sd=e["sd"],
+            eti90_low=e["eti_90"][0],
+            eti90_high=e["eti_90"][1],
+            eti95_low=e["eti_95"][0],
+            eti95_high=e["eti_95"][1],
+            hdi90_low=e["hdi_90"][0],
+            hdi90_high=e["hdi_90"][1],
+            prob_gt_0=e["prob_gt_0"],
+            prob_lt_0=e["prob_lt_0"],
+            threshold=e["threshold"] if e["threshold"] is not None else "",
+            prob_beyond_threshold=e["prob_beyond_threshold"] if e["prob_beyond_threshold"] is not None else "",
+        )
         if "effect_percent" in summary:
             p = summary["effect_percent"]
             row.update(pct_mean=p["mean"], pct_eti90_low=p["eti_90"][0], pct_eti90_high=p["eti_90"][1])
         d = summary["diagnostics"]
-        row.update(diagnostics_ok=d["ok"], rhat_max=d["rhat_max"], ess_bulk_min=d["ess_bulk_min"],
-                   divergences=d["divergences"], sample_s=summary["timing"].get("sample_s", ""))
+        row.update(
+            diagnostics_ok=d["ok"],
+            rhat_max=d["rhat_max"],
+            ess_bulk_min=d["ess_bulk_min"],
+            divergences=d["divergences"],
+            sample_s=summary["timing"].get("sample_s", ""),
+        )
         if "sensitivity" in summary:
             row["sensitivity_ok"] = summary["sensitivity"].get("ok")
     return row
@@ -559,15 +640,29 @@ def _write_tables(out: Path, plan: SweepPlan, rows: list[dict], meta: dict) -> d
     _atomic_write(out / "verdict.json", json.dumps(typed.to_dict(), indent=2, default=str) + "\n")
     by_id = {r["id"]: r for r in rows}
     manifest = {
-        "bayesdid": __version__, "kind": "bayesdid sweep", "updated": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        **plan.describe(), "base_study": study_to_dict(plan.base), "base_seed": plan.base.sampler.seed,
-        "data_sha256": plan.data_sha256, "base_data_sha256": plan.data_sha256.get(str(plan.base.table)),
+        "bayesdid": __version__,
+        "kind": "bayesdid sweep",
+        "updated": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        **plan.describe(),
+        "base_study": study_to_dict(plan.base),
+        "base_seed": plan.base.sampler.seed,
+        "data_sha256": plan.data_sha256,
+        "base_data_sha256": plan.data_sha256.get(str(plan.base.table)),
         "run_id": run_id(plan.data_sha256.get(str(plan.base.table)), study_to_dict(plan.base)),
-        "versions": versions(), **meta,
-        "variants": [{"id": v.id, "label": v.label, "overrides": v.overrides, "seed": v.seed,
-                      "status": by_id[v.id]["status"], "folder": f"variants/{v.id}",
-                      **({"error": by_id[v.id]["error"]} if by_id[v.id]["error"] else {})}
-                     for v in plan.variants],
+        "versions": versions(),
+        **meta,
+        "variants": [
+            {
+                "id": v.id,
+                "label": v.label,
+                "overrides": v.overrides,
+                "seed": v.seed,
+                "status": by_id[v.id]["status"],
+                "folder": f"variants/{v.id}",
+                **({"error": by_id[v.id]["error"]} if by_id[v.id]["error"] else {}),
+            }
+            for v in plan.variants
+        ],
         "files": ["summary.csv", "manifest.json", "verdict.json", "variants/"],
     }
     _atomic_write(out / "manifest.json", json.dumps(manifest, indent=2, default=str) + "\n")
@@ -607,7 +702,8 @@ class _Lock:
                     raise SweepError(
                         f"another sweep (process {tag.partition('-')[2]}{'' if here else ' on another machine'}) "
                         f"is writing to '{self.path.parent}'; wait for it to finish or choose another --out. If no "
-                        f"sweep runs there, delete '{self.path}'.") from None
+                        f"sweep runs there, delete '{self.path}'."
+                    ) from None
                 self.path.unlink(missing_ok=True)  # stale: its owner is dead
                 continue
             with os.fdopen(fd, "w") as fh:
@@ -630,8 +726,14 @@ def _bind_to_parent(parent_pid: int) -> None:
 
 # ---- executors ---------------------------------------------------------------------------------
 def _variant_lost(task: dict, exc: BaseException) -> dict:
-    return {"id": task["id"], "label": task["label"], "pid": "lost", "status": "failed", "compiles": 0,
-            "error": f"the worker running this variant stopped: {type(exc).__name__}: {exc}"}
+    return {
+        "id": task["id"],
+        "label": task["label"],
+        "pid": "lost",
+        "status": "failed",
+        "compiles": 0,
+        "error": f"the worker running this variant stopped: {type(exc).__name__}: {exc}",
+    }
 
 
 def _result_or_failure(future, task, lost=_variant_lost) -> dict:
@@ -658,8 +760,9 @@ def _pool(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     fn = fn or run_variant
     # spawn: a clean interpreter per worker (no forked numba/LLVM state); each worker compiles once
     # each worker ends with this process, even when it is killed (_bind_to_parent)
-    with ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                             initializer=_bind_to_parent, initargs=(os.getpid(),)) as ex:
+    with ProcessPoolExecutor(
+        max_workers=workers, mp_context=mp.get_context("spawn"), initializer=_bind_to_parent, initargs=(os.getpid(),)
+    ) as ex:
         with workers_end_with_me():  # the workers start in submit; they arm the signal while importing
             futs = {ex.submit(fn, t): t for t in tasks}
         for f in as_completed(futs):
@@ -675,21 +778,31 @@ def _dask(tasks: list, workers: int, cluster, *, fn=None, lost=_variant_lost):
     local = None
     if cluster == "local":
         with workers_end_with_me():  # the workers start here; they arm the signal while importing
-            local = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                 dashboard_address=None, silence_logs=40)
+            local = LocalCluster(
+                n_workers=workers,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=None,
+                silence_logs=40,
+            )
         client = Client(local)
         client.register_plugin(EndWithSweep(os.getpid()))
     else:
         try:
             client = Client(cluster, timeout="20s")
         except (OSError, TimeoutError) as exc:
-            raise SweepError(f"cannot reach the Dask scheduler at --cluster '{cluster}': {exc}. Start one "
-                             "(dask scheduler) or use --cluster local.") from None
+            raise SweepError(
+                f"cannot reach the Dask scheduler at --cluster '{cluster}': {exc}. Start one "
+                "(dask scheduler) or use --cluster local."
+            ) from None
     try:
         token = uuid.uuid4().hex[:8]  # a fresh key per run: a scheduler never hands back an old result
         life = {"owner": owner_tag(), "start": process_start(os.getpid())}
-        futs = {client.submit(on_dask, fn, t, life, pure=False, key=f"bayesdid-{_task_key(t, i)}-{token}"): t
-                for i, t in enumerate(tasks)}
+        futs = {
+            client.submit(on_dask, fn, t, life, pure=False, key=f"bayesdid-{_task_key(t, i)}-{token}"): t
+            for i, t in enumerate(tasks)
+        }
         for f in as_completed(list(futs)):
             yield _result_or_failure(f, futs[f], lost)
     finally:
@@ -724,14 +837,24 @@ class _Progress:
         k = self.done
         width = 30
         bar = "#" * (width * k // n if n else width) + "." * (width - (width * k // n if n else width))
-        msg = (f"\rbayesdid: variants [{bar}] {k}/{n} run, {self.failed} failed, {self.skipped} already done, "
-               f"{time.perf_counter() - self.t0:.0f}s")
+        msg = (
+            f"\rbayesdid: variants [{bar}] {k}/{n} run, {self.failed} failed, {self.skipped} already done, "
+            f"{time.perf_counter() - self.t0:.0f}s"
+        )
         self.stream.write(msg + ("\n" if k == n else ""))
         self.stream.flush()
 
 
-def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = "pool", workers: int = 2,
-              cluster: str | None = None, progress: bool = False, log=None) -> dict:
+def run_sweep(
+    plan: SweepPlan | str | Path,
+    out: str | Path,
+    *,
+    executor: str = "pool",
+    workers: int = 2,
+    cluster: str | None = None,
+    progress: bool = False,
+    log=None,
+) -> dict:
     """Run every variant that is not already complete in ``out``; write the tables; return a report.
 
     Parameters
@@ -773,14 +896,32 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
             if variant_is_complete(folder, v.id):
                 skipped.append(v.id)
                 continue
-            todo.append({"id": v.id, "label": v.label, "raw": v.raw, "base_dir": str(plan.base.table.parent),
-                         "drop": v.overrides.get("drop", []), "overrides": v.overrides, "seed": v.seed,
-                         "folder": str(folder.resolve()), "staging": str((staging / v.id).resolve()),
-                         "data_sha256": plan.data_sha256[str(Path(v.raw["data"]["table"]))]})
-        say(f"{len(plan.variants)} variant(s): {len(skipped)} already done, {len(todo)} to run "
-            f"({executor}{'' if executor == 'serial' else f', {workers} worker(s)'})")
-        meta = {"executor": executor, "workers": workers if executor != "serial" else 1,
-                "cluster": cluster, "compiles_per_worker": {}, "cache_loads_per_worker": {}, "last_run": {"ran": [], "skipped": skipped}}
+            todo.append(
+                {
+                    "id": v.id,
+                    "label": v.label,
+                    "raw": v.raw,
+                    "base_dir": str(plan.base.table.parent),
+                    "drop": v.overrides.get("drop", []),
+                    "overrides": v.overrides,
+                    "seed": v.seed,
+                    "folder": str(folder.resolve()),
+                    "staging": str((staging / v.id).resolve()),
+                    "data_sha256": plan.data_sha256[str(Path(v.raw["data"]["table"]))],
+                }
+            )
+        say(
+            f"{len(plan.variants)} variant(s): {len(skipped)} already done, {len(todo)} to run "
+            f"({executor}{'' if executor == 'serial' else f', {workers} worker(s)'})"
+        )
+        meta = {
+            "executor": executor,
+            "workers": workers if executor != "serial" else 1,
+            "cluster": cluster,
+            "compiles_per_worker": {},
+            "cache_loads_per_worker": {},
+            "last_run": {"ran": [], "skipped": skipped},
+        }
         failed, compiles, loads = {}, {}, {}
         bar = _Progress(len(todo), len(skipped), progress)
         rows = read_results(out, plan)
@@ -801,8 +942,17 @@ def run_sweep(plan: SweepPlan | str | Path, out: str | Path, *, executor: str = 
         meta["seconds"] = time.perf_counter() - t0
         ver = _write_tables(out, plan, rows, meta)
         shutil.rmtree(staging, ignore_errors=True)
-    return {"ran": meta["last_run"]["ran"], "skipped": skipped, "failed": failed, "compiles": compiles,
-            "loads": loads, "rows": rows, "verdict": ver, "seconds": meta["seconds"], "out": str(out)}
+    return {
+        "ran": meta["last_run"]["ran"],
+        "skipped": skipped,
+        "failed": failed,
+        "compiles": compiles,
+        "loads": loads,
+        "rows": rows,
+        "verdict": ver,
+        "seconds": meta["seconds"],
+        "out": str(out),
+    }
 
 
 def check_sweep_folder(out: str | Path) -> Path:
@@ -810,10 +960,15 @@ def check_sweep_folder(out: str | Path) -> Path:
     a folder under which nothing can be created. A folder of an earlier sweep is reused (resumed)."""
     out = Path(out)
     if out.exists() and not out.is_dir():
-        raise SweepError(f"--out '{out}' is a file, not a folder; give a folder for the sweep's results (a file is "
-                         "never replaced).")
-    if out.is_dir() and any(out.iterdir()) and not (out / "manifest.json").is_file() \
-            and not (out / "variants").is_dir():
+        raise SweepError(
+            f"--out '{out}' is a file, not a folder; give a folder for the sweep's results (a file is never replaced)."
+        )
+    if (
+        out.is_dir()
+        and any(out.iterdir())
+        and not (out / "manifest.json").is_file()
+        and not (out / "variants").is_dir()
+    ):
         raise SweepError(f"--out '{out}' already exists and holds files but no sweep; choose another folder.")
     anchor = out
     while not anchor.exists() and anchor.parent != anchor:
@@ -822,8 +977,10 @@ def check_sweep_folder(out: str | Path) -> Path:
         raise SweepError(f"--out '{out}': '{anchor}' is a file, not a folder; choose another --out.")
     why = probe_writable(anchor)
     if why is not None:
-        raise SweepError(f"--out '{out}': nothing can be written in folder '{anchor}' ({why}); choose an --out in "
-                         "a folder you can write to.")
+        raise SweepError(
+            f"--out '{out}': nothing can be written in folder '{anchor}' ({why}); choose an --out in "
+            "a folder you can write to."
+        )
     return out
 
 
@@ -891,35 +1048,68 @@ def verdict(rows: Iterable[Mapping], *, base_id: str | None = None) -> dict:
         return None if r.get("prob_beyond_threshold") in ("", None) else f(r["prob_beyond_threshold"]) > 0.5
 
     checks = []
-    for name, fn, desc in (("sign", sign, "sign of the effect (posterior median)"),
-                           ("interval", side, "90% interval's side of zero"),
-                           ("decision", decide, "P(beyond threshold) on the same side of 0.5")):
+    for name, fn, desc in (
+        ("sign", sign, "sign of the effect (posterior median)"),
+        ("interval", side, "90% interval's side of zero"),
+        ("decision", decide, "P(beyond threshold) on the same side of 0.5"),
+    ):
         if name == "decision" and not has_thr:
-            checks.append({"check": name, "what": desc, "status": "not applicable",
-                           "reason": "the study sets no decision threshold", "holds": None})
+            checks.append(
+                {
+                    "check": name,
+                    "what": desc,
+                    "status": "not applicable",
+                    "reason": "the study sets no decision threshold",
+                    "holds": None,
+                }
+            )
             continue
         b = fn(base)
         breaks = [r["id"] for r in done if fn(r) != b]
-        checks.append({"check": name, "what": desc, "base": b, "holds": not breaks,
-                       "held_by": len(done) - len(breaks), "of": len(done), "breaks": breaks})
+        checks.append(
+            {
+                "check": name,
+                "what": desc,
+                "base": b,
+                "holds": not breaks,
+                "held_by": len(done) - len(breaks),
+                "of": len(done),
+                "breaks": breaks,
+            }
+        )
     sd = f(base["effect_sd"]) or 1.0
     table = []
     for r in done:
-        table.append({"id": r["id"], "label": r["label"], "effect_mean": f(r["effect_mean"]), "sign": sign(r),
-                      "interval": side(r), "eti_90": [f(r["eti90_low"]), f(r["eti90_high"])],
-                      "prob_beyond_threshold": f(r["prob_beyond_threshold"]) if has_thr and decide(r) is not None else None,
-                      "shift_sd": abs(f(r["effect_mean"]) - f(base["effect_mean"])) / sd})
+        table.append(
+            {
+                "id": r["id"],
+                "label": r["label"],
+                "effect_mean": f(r["effect_mean"]),
+                "sign": sign(r),
+                "interval": side(r),
+                "eti_90": [f(r["eti90_low"]), f(r["eti90_high"])],
+                "prob_beyond_threshold": f(r["prob_beyond_threshold"]) if has_thr and decide(r) is not None else None,
+                "shift_sd": abs(f(r["effect_mean"]) - f(base["effect_mean"])) / sd,
+            }
+        )
     others = [t for t in table if t["id"] != base["id"]]
     mm = max(others, key=lambda t: t["shift_sd"]) if others else None
-    out.update(base=base["id"], checks=checks,
-               holds=all(c["holds"] for c in checks if c["holds"] is not None),
-               moves_most=mm and {"id": mm["id"], "label": mm["label"], "effect_mean": mm["effect_mean"],
-                                  "shift_sd": mm["shift_sd"]},
-               rows=table, status="ok")
+    out.update(
+        base=base["id"],
+        checks=checks,
+        holds=all(c["holds"] for c in checks if c["holds"] is not None),
+        moves_most=mm
+        and {"id": mm["id"], "label": mm["label"], "effect_mean": mm["effect_mean"], "shift_sd": mm["shift_sd"]},
+        rows=table,
+        status="ok",
+    )
     if has_thr and others:
         bp = f(base["prob_beyond_threshold"])
         mp = max(others, key=lambda t: abs((t["prob_beyond_threshold"] or bp) - bp))
-        out["moves_probability_most"] = {"id": mp["id"], "label": mp["label"],
-                                         "prob_beyond_threshold": mp["prob_beyond_threshold"],
-                                         "change": (mp["prob_beyond_threshold"] or bp) - bp}
+        out["moves_probability_most"] = {
+            "id": mp["id"],
+            "label": mp["label"],
+            "prob_beyond_threshold": mp["prob_beyond_threshold"],
+            "change": (mp["prob_beyond_threshold"] or bp) - bp,
+        }
     return out

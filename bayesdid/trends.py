@@ -45,16 +45,23 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["DEFAULT_MULTIPLES", "DECISION_LEVEL", "TrendBounds", "trend_bounds",
-           "write_trends", "CSV_COLUMNS"]
+__all__ = ["DEFAULT_MULTIPLES", "DECISION_LEVEL", "TrendBounds", "trend_bounds", "write_trends", "CSV_COLUMNS"]
 
 DEFAULT_MULTIPLES = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
 DECISION_LEVEL = 0.9
 MIN_PRE_PERIODS = 3
 M_MAX = 100.0
 CSV_NAME = "trends.csv"
-CSV_COLUMNS = ("M", "lower_95", "upper_95", "lower_90", "upper_90", "prob_reduction", "prob_increase",
-               "prob_beyond_threshold")
+CSV_COLUMNS = (
+    "M",
+    "lower_95",
+    "upper_95",
+    "lower_90",
+    "upper_90",
+    "prob_reduction",
+    "prob_increase",
+    "prob_beyond_threshold",
+)
 
 
 @dataclass
@@ -73,13 +80,24 @@ class TrendBounds:
     sentence: str = ""
 
     def to_dict(self) -> dict:
-        return {"status": self.status, "reason": self.reason, "method": (
-            "relative-magnitudes bound (after Rambachan and Roth 2023): post-policy departures from parallel "
-            "trends with period-to-period changes at most M x the largest pre-policy change, per posterior draw; "
-            "interval of the identified set and probabilities that hold for every allowed path"),
-                "multiples": list(self.multiples), "grid": self.rows, "breakdown": self.breakdown,
-                "threshold_model_scale": self.threshold, "decision_level": self.level, "scale": self.scale,
-                "largest_pre_change": self.pre_change, "sentence": self.sentence, "csv": CSV_NAME}
+        return {
+            "status": self.status,
+            "reason": self.reason,
+            "method": (
+                "relative-magnitudes bound (after Rambachan and Roth 2023): post-policy departures from parallel "
+                "trends with period-to-period changes at most M x the largest pre-policy change, per posterior draw; "
+                "interval of the identified set and probabilities that hold for every allowed path"
+            ),
+            "multiples": list(self.multiples),
+            "grid": self.rows,
+            "breakdown": self.breakdown,
+            "threshold_model_scale": self.threshold,
+            "decision_level": self.level,
+            "scale": self.scale,
+            "largest_pre_change": self.pre_change,
+            "sentence": self.sentence,
+            "csv": CSV_NAME,
+        }
 
 
 def _pre_paths(fit):
@@ -117,10 +135,16 @@ def _direction(att: np.ndarray, threshold: float | None) -> tuple[float, int]:
 def _row(att, b, M, thr, sign):
     lo, hi = att - M * b, att + M * b
     beyond = np.mean(hi < thr) if sign < 0 else np.mean(lo > thr)
-    return {"M": float(M), "lower_95": float(np.quantile(lo, 0.025)), "upper_95": float(np.quantile(hi, 0.975)),
-            "lower_90": float(np.quantile(lo, 0.05)), "upper_90": float(np.quantile(hi, 0.95)),
-            "prob_reduction": float(np.mean(hi < 0)), "prob_increase": float(np.mean(lo > 0)),
-            "prob_beyond_threshold": float(beyond)}
+    return {
+        "M": float(M),
+        "lower_95": float(np.quantile(lo, 0.025)),
+        "upper_95": float(np.quantile(hi, 0.975)),
+        "lower_90": float(np.quantile(lo, 0.05)),
+        "upper_90": float(np.quantile(hi, 0.95)),
+        "prob_reduction": float(np.mean(hi < 0)),
+        "prob_increase": float(np.mean(lo > 0)),
+        "prob_beyond_threshold": float(beyond),
+    }
 
 
 def _bisect(pred, hi=M_MAX, tol=1e-3):
@@ -139,8 +163,14 @@ def _bisect(pred, hi=M_MAX, tol=1e-3):
     return round(hi, 3)
 
 
-def trend_bounds(fit, *, multiples=DEFAULT_MULTIPLES, threshold: float | None = None,
-                 level: float = DECISION_LEVEL, percent: bool = False) -> TrendBounds:
+def trend_bounds(
+    fit,
+    *,
+    multiples=DEFAULT_MULTIPLES,
+    threshold: float | None = None,
+    level: float = DECISION_LEVEL,
+    percent: bool = False,
+) -> TrendBounds:
     """The bound over the grid of M and the breakdown values (module docstring).
 
     ``threshold`` is the decision threshold on the model scale (a log outcome: log(1 + t)).
@@ -150,15 +180,22 @@ def trend_bounds(fit, *, multiples=DEFAULT_MULTIPLES, threshold: float | None = 
 
     multiples = tuple(float(m) for m in multiples)
     if fit.spec.family != "gaussian":
-        return TrendBounds("not applicable", f"the parallel-trends bound is built for the gaussian family; family "
-                           f"'{fit.spec.family}' is not covered yet.", multiples)
+        return TrendBounds(
+            "not applicable",
+            f"the parallel-trends bound is built for the gaussian family; family "
+            f"'{fit.spec.family}' is not covered yet.",
+            multiples,
+        )
     if getattr(fit.spec, "effects", "att") != "att":
         return TrendBounds("not applicable", "the bound reads the per-adopter effects of the main fit.", multiples)
     paths = _pre_paths(fit)
     if not paths:
-        return TrendBounds("not applicable", f"no adopter has {MIN_PRE_PERIODS} or more observed pre-policy periods "
-                           "(and one post-policy period): the largest pre-policy change needs at least two changes.",
-                           multiples)
+        return TrendBounds(
+            "not applicable",
+            f"no adopter has {MIN_PRE_PERIODS} or more observed pre-policy periods "
+            "(and one post-policy period): the largest pre-policy change needs at least two changes.",
+            multiples,
+        )
     cells = fit.cells
     w = att_weights(cells)
     tau_a = fit.draws("tau_adopter")
@@ -175,15 +212,23 @@ def trend_bounds(fit, *, multiples=DEFAULT_MULTIPLES, threshold: float | None = 
     rows = [_row(att, b, M, thr, sign) for M in multiples]
     m_zero = _bisect(lambda M: _row(att, b, M, thr, sign)["lower_95"] <= 0 <= _row(att, b, M, thr, sign)["upper_95"])
     m_dec = _bisect(lambda M: _row(att, b, M, thr, sign)["prob_beyond_threshold"] < level)
-    what = (f"an effect beyond the threshold ({threshold:g} on the model scale)" if threshold is not None else
-            f"{'a reduction' if sign < 0 else 'an increase'}")
-    breakdown = {"M_zero": m_zero, "M_decision": m_dec,
-                 "M_zero_meaning": "smallest M at which the 95% interval includes zero",
-                 "M_decision_meaning": f"smallest M at which P({what}) drops below {level:g}"}
+    what = (
+        f"an effect beyond the threshold ({threshold:g} on the model scale)"
+        if threshold is not None
+        else f"{'a reduction' if sign < 0 else 'an increase'}"
+    )
+    breakdown = {
+        "M_zero": m_zero,
+        "M_decision": m_dec,
+        "M_zero_meaning": "smallest M at which the 95% interval includes zero",
+        "M_decision_meaning": f"smallest M at which P({what}) drops below {level:g}",
+    }
     tb = TrendBounds("ok", "", multiples, rows, breakdown, threshold, level, "model", pre)
     if missing:
-        tb.reason = (f"adopter(s) {missing} have fewer than {MIN_PRE_PERIODS} observed pre-policy periods and are "
-                     "given no departure (their share of the bound is zero)")
+        tb.reason = (
+            f"adopter(s) {missing} have fewer than {MIN_PRE_PERIODS} observed pre-policy periods and are "
+            "given no departure (their share of the bound is zero)"
+        )
     tb.sentence = _sentence(rows[0], m_zero, m_dec, what, level)
     return tb
 
@@ -192,14 +237,22 @@ def _sentence(base, m_zero, m_dec, what, level) -> str:
     if base["lower_95"] <= 0 <= base["upper_95"]:
         head = "Even with parallel trends holding exactly, the 95% interval includes no effect"
     elif m_zero is None:
-        head = (f"The 95% interval excludes no effect for every departure up to {M_MAX:g} times the largest "
-                "pre-policy change")
+        head = (
+            f"The 95% interval excludes no effect for every departure up to {M_MAX:g} times the largest "
+            "pre-policy change"
+        )
     else:
-        head = (f"The conclusion that there is an effect holds unless, after the policy, the gap diverged more than "
-                f"{m_zero:.2g} times as fast as it ever changed from one period to the next before")
-    tail = ("" if m_dec is None else
-            f"; the probability of {what} stays at or above {level:.0%} up to {m_dec:.2g} times" if m_dec > 0 else
-            f"; the probability of {what} is below {level:.0%} already without any departure")
+        head = (
+            f"The conclusion that there is an effect holds unless, after the policy, the gap diverged more than "
+            f"{m_zero:.2g} times as fast as it ever changed from one period to the next before"
+        )
+    tail = (
+        ""
+        if m_dec is None
+        else f"; the probability of {what} stays at or above {level:.0%} up to {m_dec:.2g} times"
+        if m_dec > 0
+        else f"; the probability of {what} is below {level:.0%} already without any departure"
+    )
     return head + tail + "."
 
 
@@ -219,5 +272,3 @@ def model_threshold(study, cells) -> float | None:
     if t is None:
         return None
     return float(np.log1p(t)) if cells.log_outcome else float(t)
-
-

@@ -28,14 +28,21 @@ def trends_from_run(run_dir, *, multiples=None) -> TrendBounds:
     run = Path(run_dir)
     man = run / "manifest.json"
     if not man.is_file() or not (run / "posterior.nc").is_file():
-        raise BayesDidError(f"'{run}' is not a run folder (needs manifest.json and posterior.nc); make one with "
-                            "'bayesdid fit STUDY --out DIR'.")
+        raise BayesDidError(
+            f"'{run}' is not a run folder (needs manifest.json and posterior.nc); make one with "
+            "'bayesdid fit STUDY --out DIR'."
+        )
     raw = json.loads(man.read_text(encoding="utf-8"))["study"]
     study = _parse(raw, run)
     cells, _, _ = prepare(study)
     tree = xr.open_datatree(run / "posterior.nc", engine="h5netcdf")
     post = tree["posterior"].to_dataset().load()
-    fit = Fit(cells=cells, tree=xr.DataTree.from_dict({"posterior": post}), spec=model_spec(cells, study.model.family),
-              scales={}, settings=study.sampler)
+    fit = Fit(
+        cells=cells,
+        tree=xr.DataTree.from_dict({"posterior": post}),
+        spec=model_spec(cells, study.model.family),
+        scales={},
+        settings=study.sampler,
+    )
     mult = multiples if multiples is not None else study.trends.multiples
     return trend_bounds(fit, multiples=mult, threshold=model_threshold(study, cells), level=study.decision.level)

@@ -59,9 +59,22 @@ target = "chronic-condition enrollees"
 
 def make_copay_cap(out: Path = HERE / "copay_cap", seed: int = 20261202) -> dict:
     names = region_names(40)
-    sc = Scenario(jurisdictions=40, periods=12, groups=2, starts={0: 6, 1: 8}, rows_per_cell=45.0,
-                  tau=-0.13, tau_spread=0.02, intercept=(3.6, 4.3), baseline_sd=0.25, period_sd=0.05,
-                  shock_sd=0.06, group_period_sd=0.03, gap_sd=0.04, residual_sd=0.8)
+    sc = Scenario(
+        jurisdictions=40,
+        periods=12,
+        groups=2,
+        starts={0: 6, 1: 8},
+        rows_per_cell=45.0,
+        tau=-0.13,
+        tau_spread=0.02,
+        intercept=(3.6, 4.3),
+        baseline_sd=0.25,
+        period_sd=0.05,
+        shock_sd=0.06,
+        group_period_sd=0.03,
+        gap_sd=0.04,
+        residual_sd=0.8,
+    )
     frame, truth = simulate(sc, seed, names=names)
     frame = frame.rename(columns={"y": "log_spend", "group": "condition"})
     frame["condition"] = np.where(frame["condition"] == "target", "chronic", "none")
@@ -72,9 +85,15 @@ def make_copay_cap(out: Path = HERE / "copay_cap", seed: int = 20261202) -> dict
     frame.to_csv(out / "enrollees.csv", index=False)
     starts = {k: QUARTERS[v - 1] for k, v in truth["starts"].items()}
     (out / "study.toml").write_text(COPAY_STUDY.format(s1=starts["Norvale"], s2=starts["Kestrel Bay"]))
-    truth = {"effect_log": truth["tau"], "effect_percent": float(np.expm1(truth["tau"])),
-             "per_adopter_log": truth["tau_adopter"], "starts": starts, "rows": truth["rows"],
-             "seed": seed, "note": "values the generator used; the demo fit should recover them"}
+    truth = {
+        "effect_log": truth["tau"],
+        "effect_percent": float(np.expm1(truth["tau"])),
+        "per_adopter_log": truth["tau_adopter"],
+        "starts": starts,
+        "rows": truth["rows"],
+        "seed": seed,
+        "note": "values the generator used; the demo fit should recover them",
+    }
     (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n")
     return truth
 
@@ -125,10 +144,23 @@ def make_nurse_line(out: Path = HERE / "nurse_line", seed: int = 20261203) -> di
     from bayesdid.simulate_families import CountScenario, simulate_family
 
     names = region_names(24)
-    sc = CountScenario(family="poisson", jurisdictions=24, periods=8, groups=2, starts={0: 4, 1: 5},
-                       rows_per_cell=150, tau=-0.18, level=(-2.2, -1.5), baseline_sd=0.25, period_sd=0.06,
-                       shock_sd=0.05, group_period_sd=0.03, gap_sd=0.04, theta=(0.15, 0.45, 1.0),
-                       exposure=(0.25, 1.0))
+    sc = CountScenario(
+        family="poisson",
+        jurisdictions=24,
+        periods=8,
+        groups=2,
+        starts={0: 4, 1: 5},
+        rows_per_cell=150,
+        tau=-0.18,
+        level=(-2.2, -1.5),
+        baseline_sd=0.25,
+        period_sd=0.06,
+        shock_sd=0.05,
+        group_period_sd=0.03,
+        gap_sd=0.04,
+        theta=(0.15, 0.45, 1.0),
+        exposure=(0.25, 1.0),
+    )
     frame, truth = simulate_family(sc, seed, names=names)
     quarters = QUARTERS[:8]
     frame["quarter"] = np.asarray(quarters, dtype=object)[frame["period"].to_numpy() - 1]
@@ -145,12 +177,17 @@ def make_nurse_line(out: Path = HERE / "nurse_line", seed: int = 20261203) -> di
     frame.to_csv(out / "visits.csv", index=False)
     starts = {k: quarters[v - 1] for k, v in truth["starts"].items()}
     (out / "study.toml").write_text(NURSE_STUDY.format(s1=starts["Norvale"], s2=starts["Kestrel Bay"]))
-    truth = {"effect_log_rate": truth["tau"], "rate_ratio_treated_cells": truth["rate_ratio"],
-             "rate_difference_per_1000_treated_cells": truth["rate_difference_per_1000"],
-             "starts": starts, "rows": truth["rows"], "seed": seed,
-             "note": "values the generator used (table aggregated per region, quarter, age band, sex and "
-                     "risk band; exposure rounded to 2 decimals); "
-                     "the demo fit should recover them"}
+    truth = {
+        "effect_log_rate": truth["tau"],
+        "rate_ratio_treated_cells": truth["rate_ratio"],
+        "rate_difference_per_1000_treated_cells": truth["rate_difference_per_1000"],
+        "starts": starts,
+        "rows": truth["rows"],
+        "seed": seed,
+        "note": "values the generator used (table aggregated per region, quarter, age band, sex and "
+        "risk band; exposure rounded to 2 decimals); "
+        "the demo fit should recover them",
+    }
     (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n")
     return truth
 
@@ -163,5 +200,5 @@ def make(name: str) -> dict:
 
 
 if __name__ == "__main__":
-    for name in (sys.argv[1:] or list(CASES)):
+    for name in sys.argv[1:] or list(CASES):
         print(name, make(name))

@@ -76,8 +76,17 @@ def main() -> None:
                 h.update(name.encode() + arr.tobytes())
             digests.append(h.hexdigest())
     cache_warnings = [str(w.message) for w in caught if type(w.message).__name__ == "CacheWarning"]
-    print(json.dumps({"compiles": sample.COMPILES["count"], "loads": sample.LOADS["count"], **STATS,
-                      "draws": digests, "cache_warnings": cache_warnings}))
+    print(
+        json.dumps(
+            {
+                "compiles": sample.COMPILES["count"],
+                "loads": sample.LOADS["count"],
+                **STATS,
+                "draws": digests,
+                "cache_warnings": cache_warnings,
+            }
+        )
+    )
 
 
 if __name__ == "__main__":

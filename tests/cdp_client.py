@@ -19,10 +19,20 @@ from pathlib import Path
 
 import websocket
 
-FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-         "--disable-background-networking", "--disable-component-update", "--disable-sync",
-         "--disable-default-apps", "--disable-extensions", "--remote-debugging-port=0",
-         "--remote-allow-origins=*"]
+FLAGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--disable-default-apps",
+    "--disable-extensions",
+    "--remote-debugging-port=0",
+    "--remote-allow-origins=*",
+]
 
 
 def find_chromium() -> str | None:
@@ -44,8 +54,11 @@ class Browser:
 
     def __enter__(self):
         self.profile = tempfile.mkdtemp(prefix="bayesdid-chromium-")
-        self.proc = subprocess.Popen([self.executable, *FLAGS, f"--user-data-dir={self.profile}", "about:blank"],
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        self.proc = subprocess.Popen(
+            [self.executable, *FLAGS, f"--user-data-dir={self.profile}", "about:blank"],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         port_file = Path(self.profile) / "DevToolsActivePort"
         t0 = time.monotonic()
         while not port_file.is_file() or not port_file.read_text().strip():
@@ -57,8 +70,9 @@ class Browser:
         req = urllib.request.Request(f"http://127.0.0.1:{port}/json/new?about:blank", method="PUT")
         with urllib.request.urlopen(req, timeout=self.timeout) as r:
             target = json.loads(r.read())
-        self.ws = websocket.create_connection(target["webSocketDebuggerUrl"], timeout=self.timeout,
-                                              suppress_origin=True)
+        self.ws = websocket.create_connection(
+            target["webSocketDebuggerUrl"], timeout=self.timeout, suppress_origin=True
+        )
         for domain in ("Page", "Runtime", "Log", "Network"):
             self.send(f"{domain}.enable")
         return self
@@ -96,8 +110,11 @@ class Browser:
         if "method" in msg:
             self.events.append(msg)
             if msg["method"] == "Page.javascriptDialogOpening":
-                self.ws.send(json.dumps({"id": next(self._ids), "method": "Page.handleJavaScriptDialog",
-                                         "params": {"accept": True}}))
+                self.ws.send(
+                    json.dumps(
+                        {"id": next(self._ids), "method": "Page.handleJavaScriptDialog", "params": {"accept": True}}
+                    )
+                )
         return msg
 
     def wait_for(self, method: str, since: int = 0) -> dict:
@@ -124,8 +141,7 @@ class Browser:
     def screenshot(self, out: Path, width: int = 1100) -> Path:
         self.send("Emulation.setDeviceMetricsOverride", width=width, height=800, deviceScaleFactor=1, mobile=False)
         h = self.evaluate("Math.ceil(document.documentElement.scrollHeight)")
-        self.send("Emulation.setDeviceMetricsOverride", width=width, height=int(h), deviceScaleFactor=1,
-                  mobile=False)
+        self.send("Emulation.setDeviceMetricsOverride", width=width, height=int(h), deviceScaleFactor=1, mobile=False)
         r = self.send("Page.captureScreenshot", format="png", captureBeyondViewport=True)
         out = Path(out)
         out.write_bytes(base64.b64decode(r["data"]))

@@ -18,7 +18,9 @@ from pathlib import Path
 
 os.environ.setdefault("BAYESDID_CACHE_DIR", str(Path(__file__).resolve().parent.parent / ".cache" / "bayesdid"))
 # One log per session (other sessions may share the cache folder); removed once its table is printed.
-os.environ.setdefault("BAYESDID_COMPILE_LOG", str(Path(os.environ["BAYESDID_CACHE_DIR"]) / f"compile-log-{os.getpid()}.jsonl"))
+os.environ.setdefault(
+    "BAYESDID_COMPILE_LOG", str(Path(os.environ["BAYESDID_CACHE_DIR"]) / f"compile-log-{os.getpid()}.jsonl")
+)
 
 import numpy as np
 import pandas as pd
@@ -39,9 +41,16 @@ def sim_study(tmp_path_factory, sc: Scenario, data_seed: int, name: str, **kw):
     path = d / "table.csv"
     frame.to_csv(path, index=False)
     ddd = sc.groups == 2
-    study = make_study(table=path, outcome="y", jurisdiction="region", period="period",
-                       group="group" if ddd else None, target_group="target" if ddd else None,
-                       adopters=truth["starts"], **kw)
+    study = make_study(
+        table=path,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters=truth["starts"],
+        **kw,
+    )
     return study, collapse(study, frame), frame, truth
 
 
@@ -80,8 +89,10 @@ def compile_table(records: list[dict]) -> list[str]:
     structures ignoring sizes), loads from disk and reuses within a process; the costliest first."""
     files: dict[str, dict] = {}
     for r in records:
-        f = files.setdefault((r.get("test") or "(outside a test)").split("::")[0],
-                             {"compiled": 0, "compile_s": 0.0, "loaded": 0, "in-process": 0, "keys": set()})
+        f = files.setdefault(
+            (r.get("test") or "(outside a test)").split("::")[0],
+            {"compiled": 0, "compile_s": 0.0, "loaded": 0, "in-process": 0, "keys": set()},
+        )
         how = r.get("how")
         if how == "compiled":
             f["compiled"] += 1
@@ -90,13 +101,17 @@ def compile_table(records: list[dict]) -> list[str]:
         elif how in ("loaded", "in-process"):
             f[how] += 1
     compiled = [r for r in records if r.get("how") == "compiled"]
-    lines = [f"{len(compiled)} real compile(s), {sum(float(r['seconds']) for r in compiled):.0f} s; "
-             f"{len({r['key'] for r in compiled})} distinct model(s), "
-             f"{len({r['structure'] for r in compiled})} distinct structure(s) ignoring sizes",
-             f"{'test file':<44} {'compiles':>8} {'seconds':>8} {'structures':>10} {'loads':>6} {'reused':>6}"]
+    lines = [
+        f"{len(compiled)} real compile(s), {sum(float(r['seconds']) for r in compiled):.0f} s; "
+        f"{len({r['key'] for r in compiled})} distinct model(s), "
+        f"{len({r['structure'] for r in compiled})} distinct structure(s) ignoring sizes",
+        f"{'test file':<44} {'compiles':>8} {'seconds':>8} {'structures':>10} {'loads':>6} {'reused':>6}",
+    ]
     for name, f in sorted(files.items(), key=lambda kv: (-kv[1]["compile_s"], kv[0])):
-        lines.append(f"{name:<44} {f['compiled']:>8} {f['compile_s']:>8.0f} {len(f['keys']):>10} "
-                     f"{f['loaded']:>6} {f['in-process']:>6}")
+        lines.append(
+            f"{name:<44} {f['compiled']:>8} {f['compile_s']:>8.0f} {len(f['keys']):>10} "
+            f"{f['loaded']:>6} {f['in-process']:>6}"
+        )
     return lines
 
 

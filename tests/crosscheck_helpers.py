@@ -23,8 +23,9 @@ def study_for(frame: pd.DataFrame, starts: dict, *, ddd: bool):
     return make_study(**kw)
 
 
-def cells_from_rows(frame: pd.DataFrame, starts: dict, *, ddd: bool, x: np.ndarray | None = None,
-                    names=None, moment4: bool = True):
+def cells_from_rows(
+    frame: pd.DataFrame, starts: dict, *, ddd: bool, x: np.ndarray | None = None, names=None, moment4: bool = True
+):
     """Collapse invented rows; with ``x`` (N, K) add the covariate sums of the issue-3 contract."""
     study = study_for(frame, starts, ddd=ddd)
     cells = collapse_frame(study, frame)
@@ -41,8 +42,12 @@ def cells_from_rows(frame: pd.DataFrame, starts: dict, *, ddd: bool, x: np.ndarr
         np.add.at(sx, idx, x)
         np.add.at(sxx, idx, x[:, :, None] * x[:, None, :])
         np.add.at(sxy, idx, x * y[:, None])
-        cov = {"names": list(names or [f"x{k}" for k in range(K)]), "sx": sx.reshape(J, G, T, K),
-               "sxx": sxx.reshape(J, G, T, K, K), "sxy": sxy.reshape(J, G, T, K)}
+        cov = {
+            "names": list(names or [f"x{k}" for k in range(K)]),
+            "sx": sx.reshape(J, G, T, K),
+            "sxx": sxx.reshape(J, G, T, K, K),
+            "sxy": sxy.reshape(J, G, T, K),
+        }
         if moment4:
             v = np.column_stack([np.ones(len(y)), y, x])
             P = v.shape[1]
@@ -101,11 +106,18 @@ def row_design(cells, frame, x: np.ndarray | None = None):
     return X, dcol, j
 
 
-def scenario_rows(*, J=6, T=5, ddd=True, starts=None, rows=30, seed=1, gap_sd=0.2, tau=-0.3, K=0,
-                  fixed=False):
+def scenario_rows(*, J=6, T=5, ddd=True, starts=None, rows=30, seed=1, gap_sd=0.2, tau=-0.3, K=0, fixed=False):
     """Invented rows with a known truth (bayesdid.simulate) and optional covariates with effects."""
-    sc = Scenario(jurisdictions=J, periods=T, groups=2 if ddd else 1, starts=starts or {0: 2},
-                  rows_per_cell=rows, tau=tau, gap_sd=gap_sd, fixed_cells=fixed)
+    sc = Scenario(
+        jurisdictions=J,
+        periods=T,
+        groups=2 if ddd else 1,
+        starts=starts or {0: 2},
+        rows_per_cell=rows,
+        tau=tau,
+        gap_sd=gap_sd,
+        fixed_cells=fixed,
+    )
     frame, truth = simulate(sc, seed)
     x = None
     if K:

@@ -44,24 +44,47 @@ def _table(name: str, seed: int = 2026):
     groups = 2 if design == "DDD" else 1
     starts = {0: 5, 1: 6}
     if family == "gaussian":
-        sc = Scenario(jurisdictions=12, periods=8, groups=groups, starts=starts, rows_per_cell=20, tau=-0.15,
-                      intercept=(3.0, 3.3) if log else (1.0, 1.3))
+        sc = Scenario(
+            jurisdictions=12,
+            periods=8,
+            groups=groups,
+            starts=starts,
+            rows_per_cell=20,
+            tau=-0.15,
+            intercept=(3.0, 3.3) if log else (1.0, 1.3),
+        )
         frame, truth = simulate(sc, seed)
         if log:  # a positive, skewed outcome analysed on the log scale
             import numpy as np
 
             frame["y"] = np.exp(frame["y"] / 4.0)
         return frame, truth
-    sc = CountScenario(family=family, jurisdictions=12, periods=8, groups=groups, starts=starts, rows_per_cell=30,
-                       covariates=False, level=(-1.5, -1.0), tau=-0.25)
+    sc = CountScenario(
+        family=family,
+        jurisdictions=12,
+        periods=8,
+        groups=groups,
+        starts=starts,
+        rows_per_cell=30,
+        covariates=False,
+        level=(-1.5, -1.0),
+        tau=-0.25,
+    )
     return simulate_family(sc, seed)
 
 
 def _study_toml(name: str, truth: dict) -> str:
     family, design, log = CASES[name]
     adopters = ", ".join(f'"{k}" = {v}' for k, v in truth["starts"].items())
-    lines = [f'title = "Invented {family} {design} study ({name})"', "", "[data]", 'table = "table.csv"',
-             'outcome = "y"', 'jurisdiction = "region"', 'period = "period"']
+    lines = [
+        f'title = "Invented {family} {design} study ({name})"',
+        "",
+        "[data]",
+        'table = "table.csv"',
+        'outcome = "y"',
+        'jurisdiction = "region"',
+        'period = "period"',
+    ]
     if design == "DDD":
         lines.append('group = "group"')
     if family in ("poisson", "negbinomial"):
@@ -69,10 +92,21 @@ def _study_toml(name: str, truth: dict) -> str:
     lines += ["", "[policy]"]
     if design == "DDD":
         lines.append('target_group = "target"')
-    lines += [f"adopters = {{ {adopters} }}", "", "[model]", f'family = "{family}"',
-              f"log_outcome = {'true' if log else 'false'}", "", "[decision]",
-              f"threshold = {-0.05 if (log or family != 'gaussian') else -0.1}", "", "[wording]",
-              'policy = "the evening clinic hours"', 'outcome = "urgent visits"', 'unit = "visits per person"']
+    lines += [
+        f"adopters = {{ {adopters} }}",
+        "",
+        "[model]",
+        f'family = "{family}"',
+        f"log_outcome = {'true' if log else 'false'}",
+        "",
+        "[decision]",
+        f"threshold = {-0.05 if (log or family != 'gaussian') else -0.1}",
+        "",
+        "[wording]",
+        'policy = "the evening clinic hours"',
+        'outcome = "urgent visits"',
+        'unit = "visits per person"',
+    ]
     if design == "DDD":
         lines.append('target = "shift workers"')
     lines.append("")
@@ -121,8 +155,16 @@ def build_case(name: str, root: Path) -> dict:
     for step, argv in steps.items():
         codes[step], out, err = quiet_main(argv)
         logs[step] = out + err
-    return {"name": name, "dir": d, "run": run, "codes": codes, "logs": logs, "truth": truth,
-            "family": CASES[name][0], "design": CASES[name][1]}
+    return {
+        "name": name,
+        "dir": d,
+        "run": run,
+        "codes": codes,
+        "logs": logs,
+        "truth": truth,
+        "family": CASES[name][0],
+        "design": CASES[name][1],
+    }
 
 
 def summary_of(case: dict) -> dict:

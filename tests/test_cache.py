@@ -29,8 +29,9 @@ def _start(cache: Path, seed: int = 5, fits: int = 1, small: bool = False) -> su
     env.pop("PYTENSOR_FLAGS", None)
     env.pop("NUMBA_CACHE_DIR", None)
     args = [str(seed), str(fits)] + (["small"] if small else [])
-    return subprocess.Popen([sys.executable, str(WORKER), *args], env=env, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    return subprocess.Popen(
+        [sys.executable, str(WORKER), *args], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    )
 
 
 def _result(proc: subprocess.Popen) -> dict:

@@ -21,8 +21,9 @@ from bayesdid import calibration as cal
 from bayesdid.errors import BayesDidError
 
 TIMING = {"wall_s", "sample_s", "compile_s"}
-SMALL = dict(scenario="one_adopter", reps=3, sbc_reps=3, draws=150, tune=150, chains=2, seed=7, workers=1,
-             cross_check_draws=99)
+SMALL = dict(
+    scenario="one_adopter", reps=3, sbc_reps=3, draws=150, tune=150, chains=2, seed=7, workers=1, cross_check_draws=99
+)
 
 
 @pytest.fixture(scope="session")
@@ -79,8 +80,13 @@ def test_reproducible_for_a_fixed_seed(small_run):
 def test_files_written_atomically_and_parse(small_run, tmp_path):
     out = tmp_path / "cal"
     cal.write_calibration(small_run, out)
-    assert sorted(p.name for p in out.iterdir()) == ["calibration.json", "coverage_reps.csv", "manifest.json",
-                                                     "sbc_ranks.png", "sbc_reps.csv"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "calibration.json",
+        "coverage_reps.csv",
+        "manifest.json",
+        "sbc_ranks.png",
+        "sbc_reps.csv",
+    ]
     summary = json.loads((out / "calibration.json").read_text())
     assert summary["coverage"]["posterior"]["cover_95"]["reps"] == 3
     with open(out / "coverage_reps.csv", newline="") as fh:
@@ -101,8 +107,26 @@ def test_cli_bench_calibration(small_run, tmp_path, capsys):
     from bayesdid.cli import main
 
     out = tmp_path / "cli"
-    code = main(["bench", "calibration", "--reps", "2", "--sbc-reps", "2", "--draws", "150", "--tune", "150",
-                 "--workers", "1", "--seed", "3", "--out", str(out)])
+    code = main(
+        [
+            "bench",
+            "calibration",
+            "--reps",
+            "2",
+            "--sbc-reps",
+            "2",
+            "--draws",
+            "150",
+            "--tune",
+            "150",
+            "--workers",
+            "1",
+            "--seed",
+            "3",
+            "--out",
+            str(out),
+        ]
+    )
     assert code == 0
     line = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
     assert line["reps"] == 2 and line["failed"] == 0
@@ -111,12 +135,17 @@ def test_cli_bench_calibration(small_run, tmp_path, capsys):
     assert not list(tmp_path.glob(".*reps.jsonl"))  # the progress file goes once the folder is written
 
 
-@pytest.mark.parametrize("argv, match", [
-    (["bench", "calibration", "--scenario", "nowhere"], "calibration scenario 'nowhere' is unknown"),
-    (["bench", "collapse", "--reps", "3"],
-     "--reps: 'bayesdid bench collapse' does not take this option; calibration, panel, plan, weights do"),
-    (["bench", "calibration", "--reps", "0", "--scenario", "did"], "--reps: expected a whole number"),
-])
+@pytest.mark.parametrize(
+    "argv, match",
+    [
+        (["bench", "calibration", "--scenario", "nowhere"], "calibration scenario 'nowhere' is unknown"),
+        (
+            ["bench", "collapse", "--reps", "3"],
+            "--reps: 'bayesdid bench collapse' does not take this option; calibration, panel, plan, weights do",
+        ),
+        (["bench", "calibration", "--reps", "0", "--scenario", "did"], "--reps: expected a whole number"),
+    ],
+)
 def test_cli_bad_options_exit_2(argv, match, tmp_path, capsys):
     from bayesdid.cli import main
 
@@ -158,8 +187,9 @@ def test_prior_draws_follow_the_stated_prior():
     gap = np.array([d["sigma_gap"] for d in draws])
     s_e, s_g = prior["scales"]["effect"], prior["scales"]["gap_noise"]
     assert np.std(tau) == pytest.approx(s_e, abs=4 * s_e / math.sqrt(8000))
-    assert np.mean(gap) == pytest.approx(s_g * math.sqrt(2 / math.pi),
-                                         abs=4 * s_g * math.sqrt(1 - 2 / math.pi) / math.sqrt(4000))
+    assert np.mean(gap) == pytest.approx(
+        s_g * math.sqrt(2 / math.pi), abs=4 * s_g * math.sqrt(1 - 2 / math.pi) / math.sqrt(4000)
+    )
 
 
 def test_sbc_chi_square_tells_uniform_from_piled_ranks():
@@ -192,10 +222,14 @@ def test_executor_adapter():
     task = cal.RepTask(kind="coverage", scenario="did", rep=4, base_seed=1, draws=100, tune=100, chains=2)
     assert pickle.loads(pickle.dumps(task)) == task
     assert pickle.loads(pickle.dumps(cal.run_rep)) is cal.run_rep
-    assert task.seeds == cal.RepTask(kind="coverage", scenario="did", rep=4, base_seed=1, draws=500, tune=500,
-                                     chains=2).seeds
-    assert task.seeds != cal.RepTask(kind="coverage", scenario="did", rep=5, base_seed=1, draws=100, tune=100,
-                                     chains=2).seeds
+    assert (
+        task.seeds
+        == cal.RepTask(kind="coverage", scenario="did", rep=4, base_seed=1, draws=500, tune=500, chains=2).seeds
+    )
+    assert (
+        task.seeds
+        != cal.RepTask(kind="coverage", scenario="did", rep=5, base_seed=1, draws=100, tune=100, chains=2).seeds
+    )
     ex = cal.make_executor(2)
     try:
         # the sweep's process pool (spawned processes): every result, in the order they complete

@@ -16,8 +16,15 @@ from scipy import stats
 
 from bayesdid import sample
 from bayesdid.cells import collapse
-from bayesdid.checks import (CHECKS, comparison_check, event_time_check, placebo_space_check,
-                             placebo_time_check, pretrend_check, run_checks)
+from bayesdid.checks import (
+    CHECKS,
+    comparison_check,
+    event_time_check,
+    placebo_space_check,
+    placebo_time_check,
+    pretrend_check,
+    run_checks,
+)
 from bayesdid.checks.base import effect_weights, pre_weight
 from bayesdid.checks.placebo import placebo_space_cells
 from bayesdid.model.terms import event_time_data, event_times_of, model_spec, resolve_scales
@@ -32,8 +39,18 @@ STARTS = {0: 4, 1: 5}
 def sim(seed, rows_per_cell=200, **kw):
     sc = Scenario(jurisdictions=20, periods=8, starts=STARTS, rows_per_cell=rows_per_cell, **kw)
     frame, truth = simulate(sc, seed)
-    study = make_study(table="sim.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                       target_group="target", adopters=truth["starts"], draws=300, tune=300, seed=11)
+    study = make_study(
+        table="sim.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        draws=300,
+        tune=300,
+        seed=11,
+    )
     return study, frame, truth
 
 
@@ -45,6 +62,7 @@ def cells_of(seed, rows_per_cell=200, **kw):
 
 
 # ---- structure (no sampling) -----------------------------------------------------------------
+
 
 def test_event_time_assignment_and_spec_key():
     cells, _, _ = cells_of(1)
@@ -70,8 +88,15 @@ def test_event_time_assignment_and_spec_key():
 
 def test_not_applicable_without_enough_pre_periods():
     study, frame, truth = sim(1)
-    early = make_study(table="sim.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                       target_group="target", adopters={k: 3 for k in truth["starts"]})
+    early = make_study(
+        table="sim.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters={k: 3 for k in truth["starts"]},
+    )
     cells = collapse(early, frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, early.priors).items()}
     r = pretrend_check(cells, scales, SETTINGS)
@@ -91,10 +116,11 @@ def test_placebo_space_cells_keep_adopter_count():
     w = pre_weight(cells)
     assert (w[cells.comparisons] == 1).all()
     for j in cells.adopters:
-        assert (w[j, :cells.start[j]] == 1).all() and (w[j, cells.start[j]:] == 0).all()
+        assert (w[j, : cells.start[j]] == 1).all() and (w[j, cells.start[j] :] == 0).all()
 
 
 # ---- fitted checks ---------------------------------------------------------------------------
+
 
 @pytest.fixture(scope="module")
 def growing():
@@ -132,8 +158,16 @@ def test_drift_is_flagged(drift):
     assert r.status == "flag", r.reason
     assert r.details["p_value_slope"] < 0.05  # the residual gap rises towards the start: P(rep >= obs) small
     band = r.tables["pretrend_band"]
-    assert set(band.columns) >= {"adopter", "period", "event_time", "observed_gap", "band_lower_90",
-                                 "band_upper_90", "expected_gap", "band_median"}
+    assert set(band.columns) >= {
+        "adopter",
+        "period",
+        "event_time",
+        "observed_gap",
+        "band_lower_90",
+        "band_upper_90",
+        "expected_gap",
+        "band_median",
+    }
     e = event_time_check(cells, scales, SETTINGS, tolerance=0.05)
     assert e.status == "flag", e.reason
     lg = e.details["largest_lead"]
@@ -232,8 +266,7 @@ seed = 3
 placebo_lag = 1
 """)
     out = tmp_path / "checks"
-    assert main(["checks", str(tmp_path / "study.toml"), "--out", str(out), "--only", "placebo_time",
-                 "--quiet"]) == 0
+    assert main(["checks", str(tmp_path / "study.toml"), "--out", str(out), "--only", "placebo_time", "--quiet"]) == 0
     body = json.loads((out / "checks.json").read_text())
     assert set(CHECKS) <= set(body)
     assert body["placebo_time"]["status"] in ("ok", "flag") and body["placebo_time"]["threshold"]["lag"] == 1

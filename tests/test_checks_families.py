@@ -16,9 +16,8 @@ import numpy as np
 import pytest
 
 from bayesdid.cells import collapse
-from bayesdid.checks import comparison_check, pretrend_check, run_checks, write_checks
+from bayesdid.checks import comparison_check, pretrend_check, run_checks, runner, write_checks
 from bayesdid.checks.base import CheckResult
-from bayesdid.checks import runner
 from bayesdid.model.families import replicate_gap_path
 from bayesdid.model.terms import resolve_scales
 from bayesdid.sample import fit_cells
@@ -27,15 +26,37 @@ from bayesdid.simulate_families import CountScenario, simulate_family
 from bayesdid.study import SamplerSettings, make_study
 
 SETTINGS = SamplerSettings(chains=2, draws=300, tune=300, seed=5)
-SHAPE = dict(family="poisson", jurisdictions=16, periods=8, starts={0: 5}, rows_per_cell=200,
-             covariates=False, level=(-1.2, -0.8), exposure=(0.5, 1.5), gap_sd=0.04, shock_sd=0.05)
+SHAPE = dict(
+    family="poisson",
+    jurisdictions=16,
+    periods=8,
+    starts={0: 5},
+    rows_per_cell=200,
+    covariates=False,
+    level=(-1.2, -0.8),
+    exposure=(0.5, 1.5),
+    gap_sd=0.04,
+    shock_sd=0.05,
+)
 
 
 def cells_of(seed, **kw):
     frame, truth = simulate_family(CountScenario(**{**SHAPE, **kw}), seed)
-    study = make_study(table="sim.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                       target_group="target", adopters=truth["starts"], family="poisson", exposure="exposure",
-                       draws=300, tune=300, chains=2, seed=5)
+    study = make_study(
+        table="sim.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        family="poisson",
+        exposure="exposure",
+        draws=300,
+        tune=300,
+        chains=2,
+        seed=5,
+    )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         cells = collapse(study, frame)

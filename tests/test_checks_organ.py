@@ -23,9 +23,18 @@ def organ_report():
     from causaldata import organ_donations
 
     frame = organ_donations.load_pandas().data
-    study = make_study(table="organ_donations.csv", outcome="Rate", jurisdiction="State", period="Quarter_Num",
-                       adopters={"California": 4}, draws=400, tune=400, chains=2, seed=2014,
-                       title="organ donor registration (Kessler and Roth 2014 data)")
+    study = make_study(
+        table="organ_donations.csv",
+        outcome="Rate",
+        jurisdiction="State",
+        period="Quarter_Num",
+        adopters={"California": 4},
+        draws=400,
+        tune=400,
+        chains=2,
+        seed=2014,
+        title="organ donor registration (Kessler and Roth 2014 data)",
+    )
     cells = collapse(study, frame)
     assert cells.shape == (27, 1, 6)
     return run_checks(study, cells=cells)

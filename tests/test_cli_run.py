@@ -27,11 +27,20 @@ def test_demo_writes_complete_run_folder(demo_run, capsys):
     code, out = demo_run
     assert code == 0
     # the demo runs the whole analysis: the fit, every check, a three-variant sweep and the report
-    assert sorted(p.name for p in out.iterdir()) == ["checks", "manifest.json", "posterior.nc", "report.html",
-                                                     "summary.json", "sweep", "trends.csv"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "checks",
+        "manifest.json",
+        "posterior.nc",
+        "report.html",
+        "summary.json",
+        "sweep",
+        "trends.csv",
+    ]
     checks = json.loads((out / "checks" / "checks.json").read_text())
-    assert all(checks[c]["status"] in ("ok", "flag", "not applicable")
-               for c in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"))
+    assert all(
+        checks[c]["status"] in ("ok", "flag", "not applicable")
+        for c in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space")
+    )
     verdict = json.loads((out / "sweep" / "verdict.json").read_text())
     assert verdict["status"] == "ok" and len(verdict["rows"]) == 3
     # the pooled-drift variant (a Gaussian case) ran as its own structure and shows in the report
@@ -48,8 +57,17 @@ def test_demo_writes_complete_run_folder(demo_run, capsys):
     assert "pooled gap drifts (model.gap_drift)" in html and "shift from the base" in html
     assert "pooled gap drifts (model.gap_drift)" in sweep_rows
     s = json.loads((out / "summary.json").read_text())
-    for key in ("mean", "median", "sd", "eti_90", "eti_95", "hdi_90", "prob_gt_0", "prob_lt_0",
-                "prob_beyond_threshold"):
+    for key in (
+        "mean",
+        "median",
+        "sd",
+        "eti_90",
+        "eti_95",
+        "hdi_90",
+        "prob_gt_0",
+        "prob_lt_0",
+        "prob_beyond_threshold",
+    ):
         assert key in s["effect"] and key in s["effect_percent"]
     assert s["effect"]["eti_95"][0] < s["effect"]["eti_90"][0] < s["effect"]["median"] < s["effect"]["eti_90"][1]
     assert s["effect"]["prob_gt_0"] + s["effect"]["prob_lt_0"] == pytest.approx(1.0)
@@ -87,7 +105,9 @@ def test_seed_override_and_strict_exit(tmp_path, demo_run):
     # 200 draws cannot reach ESS 400: --strict must turn the failed diagnostics into exit 3
     assert s["diagnostics"]["ok"] is False
     out2 = tmp_path / "strict"
-    assert main(["demo", "--out", str(out2), "--draws", "200", "--tune", "200", "--seed", "99",
-                 "--strict", "--quiet"]) == 3
+    assert (
+        main(["demo", "--out", str(out2), "--draws", "200", "--tune", "200", "--seed", "99", "--strict", "--quiet"])
+        == 3
+    )
     m = json.loads((out2 / "manifest.json").read_text())
     assert m["seed"] == 99

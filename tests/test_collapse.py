@@ -15,7 +15,7 @@ from bayesdid.model.gaussian import NP, cell_arrays, jt_loglik
 def _frame(rng, J=5, T=4, ddd=True, empty=()):
     rows = []
     for j in range(J):
-        for g in (["reference", "target"] if ddd else ["all"]):
+        for g in ["reference", "target"] if ddd else ["all"]:
             for t in range(T):
                 if (j, g, t) in empty:
                     continue
@@ -28,9 +28,15 @@ def _frame(rng, J=5, T=4, ddd=True, empty=()):
 def _study(tmp_path, f, ddd=True):
     p = tmp_path / "t.csv"
     f.to_csv(p, index=False)
-    return make_study(table=p, outcome="y", jurisdiction="region", period="period",
-                      group="group" if ddd else None, target_group="target" if ddd else None,
-                      adopters={"R0": 3})
+    return make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters={"R0": 3},
+    )
 
 
 def _row_level(f, cells, m, sigma, s_shock, s_gap, ddd):
@@ -52,8 +58,7 @@ def _row_level(f, cells, m, sigma, s_shock, s_gap, ddd):
 
 @pytest.mark.parametrize("ddd", [True, False])
 def test_collapsed_gaussian_loglik_equals_rows(tmp_path, rng, ddd):
-    empty = {(1, "target", 2), (2, "reference", 0), (3, "reference", 1), (3, "target", 1)} if ddd else \
-        {(1, "all", 2)}
+    empty = {(1, "target", 2), (2, "reference", 0), (3, "reference", 1), (3, "target", 1)} if ddd else {(1, "all", 2)}
     f = _frame(rng, ddd=ddd, empty=empty)
     cells = collapse(_study(tmp_path, f, ddd), f)
     arr = cell_arrays(cells)
@@ -64,9 +69,16 @@ def test_collapsed_gaussian_loglik_equals_rows(tmp_path, rng, ddd):
         s_shock = rng.uniform(0.05, 0.5) if ddd else 0.0
         s_gap = rng.uniform(0.05, 0.5)
         r = cells.reference if ddd else None
-        ll = jt_loglik(arr, m_r=m[:, r] if ddd else 0.0, m_q=m[:, cells.target],
-                       sigma_r=sigma[r] if ddd else 1.0, sigma_q=sigma[cells.target],
-                       sigma_shock=s_shock, sigma_gap=s_gap, xp=NP).sum()
+        ll = jt_loglik(
+            arr,
+            m_r=m[:, r] if ddd else 0.0,
+            m_q=m[:, cells.target],
+            sigma_r=sigma[r] if ddd else 1.0,
+            sigma_q=sigma[cells.target],
+            sigma_shock=s_shock,
+            sigma_gap=s_gap,
+            xp=NP,
+        ).sum()
         ref = _row_level(f, cells, m, sigma, s_shock, s_gap, ddd)
         assert ll == pytest.approx(ref, rel=1e-8)
 

@@ -15,14 +15,24 @@ import math
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from crosscheck_helpers import cells_from_rows, row_design, scenario_rows, study_for
 
 from bayesdid.crosscheck import FEW_TREATED, bootstrap_weights, cross_check, least_squares_estimate
 from bayesdid.errors import BayesDidError
 
-from crosscheck_helpers import cells_from_rows, row_design, scenario_rows, study_for
-
-ISSUE_KEYS = {"estimate", "se_classical", "se_hc1", "se_cr1", "p_cr1", "p_wild", "ci_wild_95", "p_permutation",
-              "clusters", "treated_clusters", "advice"}
+ISSUE_KEYS = {
+    "estimate",
+    "se_classical",
+    "se_hc1",
+    "se_cr1",
+    "p_cr1",
+    "p_wild",
+    "ci_wild_95",
+    "p_permutation",
+    "clusters",
+    "treated_clusters",
+    "advice",
+}
 
 CASES = {
     # name: (ddd, K covariates, starts by jurisdiction index)
@@ -101,8 +111,9 @@ def test_saturated_2x2x2_equals_triple_difference_of_cell_means():
     cells = cells_from_rows(frame, truth["starts"], ddd=True)
     m = cells.mean
     a, c, tg, rf = int(cells.adopters[0]), int(cells.comparisons[0]), cells.target, cells.reference
-    ddd = ((m[a, tg, 1] - m[a, tg, 0]) - (m[a, rf, 1] - m[a, rf, 0])) \
-        - ((m[c, tg, 1] - m[c, tg, 0]) - (m[c, rf, 1] - m[c, rf, 0]))
+    ddd = ((m[a, tg, 1] - m[a, tg, 0]) - (m[a, rf, 1] - m[a, rf, 0])) - (
+        (m[c, tg, 1] - m[c, tg, 0]) - (m[c, rf, 1] - m[c, rf, 0])
+    )
     assert cross_check(cells, full=False)["estimate"] == pytest.approx(ddd, rel=1e-10)
 
 
@@ -175,7 +186,7 @@ def row_level_wild(y, X, dcol, cluster, V, beta0=0.0):
         a = XtXi[:, dcol]
         s = np.zeros((G, Y.shape[1]))
         np.add.at(s, cluster, (X @ a)[:, None] * E)
-        return B[dcol], np.sqrt(factor * (s ** 2).sum(0))
+        return B[dcol], np.sqrt(factor * (s**2).sum(0))
 
     b, se = beta_and_se(y[:, None])
     t = (b[0] - beta0) / se[0]
@@ -228,8 +239,7 @@ def test_wild_same_draws_agree_to_rounding(small):
         p_row, ts_row = row_level_wild(y, X, dcol, cluster, V, beta0=beta0)
         np.testing.assert_allclose(ts, ts_row, rtol=1e-7, atol=1e-9)
         assert wild.pvalue(beta0) == p_row
-    assert cross_check(cells, seed=3, draws=999, weights="webb")["p_wild"] == row_level_wild(
-        y, X, dcol, cluster, V)[0]
+    assert cross_check(cells, seed=3, draws=999, weights="webb")["p_wild"] == row_level_wild(y, X, dcol, cluster, V)[0]
 
 
 def test_wild_independent_draws_agree_within_monte_carlo_error(small):

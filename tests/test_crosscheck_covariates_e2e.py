@@ -22,8 +22,16 @@ def test_collapsed_covariates_match_statsmodels(tmp_path):
     frame["y"] = frame["y"] + 0.02 * frame["age"] - 0.3 * frame["risk"]
     p = tmp_path / "t.csv"
     frame.to_csv(p, index=False)
-    st = make_study(table=p, outcome="y", jurisdiction="region", period="period", group="group",
-                    target_group="target", adopters=truth["starts"], covariates="age + risk")
+    st = make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        covariates="age + risk",
+    )
     cells = collapse(st, frame)
     cc = cross_check(cells, seed=1, full=False)
     start = frame["region"].map(truth["starts"]).fillna(10**9)

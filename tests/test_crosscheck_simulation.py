@@ -16,12 +16,11 @@ rate 0.07, restricted wild bootstrap rejection rate 0.00, over 200 replications.
 from __future__ import annotations
 
 import pytest
+from crosscheck_helpers import cells_from_rows
 from scipy import stats
 
 from bayesdid.crosscheck import cross_check
 from bayesdid.simulate import Scenario, simulate
-
-from crosscheck_helpers import cells_from_rows
 
 REPS = 200
 J, T = 20, 6
@@ -31,8 +30,9 @@ J, T = 20, 6
 def rates():
     cover = reject = wild_reject = 0
     for r in range(REPS):
-        sc = Scenario(jurisdictions=J, periods=T, groups=2, starts={0: 3}, rows_per_cell=20, tau=0.0,
-                      gap_sd=0.3, fixed_cells=True)
+        sc = Scenario(
+            jurisdictions=J, periods=T, groups=2, starts={0: 3}, rows_per_cell=20, tau=0.0, gap_sd=0.3, fixed_cells=True
+        )
         frame, truth = simulate(sc, 5000 + r)
         out = cross_check(cells_from_rows(frame, truth["starts"], ddd=True), seed=r, draws=99)
         assert out["treated_clusters"] == 1 and out["permutation"]["assignments"] == J

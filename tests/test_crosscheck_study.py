@@ -35,24 +35,37 @@ def test_defaults_when_the_section_is_absent(tmp_path):
 
 
 def test_section_is_read_and_round_trips(tmp_path):
-    s = load_study(write(tmp_path, "[crosscheck]\nseed = 11\ndraws = 4999\nweights = \"rademacher\"\nplacebos = 50\n"))
+    s = load_study(write(tmp_path, '[crosscheck]\nseed = 11\ndraws = 4999\nweights = "rademacher"\nplacebos = 50\n'))
     assert s.crosscheck == CrossCheckSettings(seed=11, draws=4999, weights="rademacher", placebos=50)
     assert study_to_dict(s)["crosscheck"] == {"seed": 11, "draws": 4999, "weights": "rademacher", "placebos": 50}
-    m = make_study(table="rows.csv", outcome="visits", jurisdiction="district", period="month",
-                   adopters={"Brindlecombe": 4}, crosscheck={"seed": 11, "draws": 4999, "weights": "rademacher",
-                                                            "placebos": 50})
+    m = make_study(
+        table="rows.csv",
+        outcome="visits",
+        jurisdiction="district",
+        period="month",
+        adopters={"Brindlecombe": 4},
+        crosscheck={"seed": 11, "draws": 4999, "weights": "rademacher", "placebos": 50},
+    )
     assert m.crosscheck == s.crosscheck
 
 
-@pytest.mark.parametrize("extra, match", [
-    ("[crosscheck]\nreps = 9\n", r"unknown key\(s\) \['reps'\] in \[crosscheck\]; allowed keys are "
-                                 r"\['draws', 'placebos', 'seed', 'weights'\]"),
-    ("[crosscheck]\nweights = \"mammen\"\n",
-     r"study key 'crosscheck.weights': expected one of \['webb', 'rademacher'\]"),
-    ("[crosscheck]\ndraws = 5\n", r"study key 'crosscheck.draws': expected an integer of at least 19, found 5"),
-    ("[crosscheck]\nseed = -1\n", r"study key 'crosscheck.seed': expected an integer of at least 0"),
-    ("[crosscheck]\ndraws = 99.5\n", r"study key 'crosscheck.draws': expected an integer"),
-])
+@pytest.mark.parametrize(
+    "extra, match",
+    [
+        (
+            "[crosscheck]\nreps = 9\n",
+            r"unknown key\(s\) \['reps'\] in \[crosscheck\]; allowed keys are "
+            r"\['draws', 'placebos', 'seed', 'weights'\]",
+        ),
+        (
+            '[crosscheck]\nweights = "mammen"\n',
+            r"study key 'crosscheck.weights': expected one of \['webb', 'rademacher'\]",
+        ),
+        ("[crosscheck]\ndraws = 5\n", r"study key 'crosscheck.draws': expected an integer of at least 19, found 5"),
+        ("[crosscheck]\nseed = -1\n", r"study key 'crosscheck.seed': expected an integer of at least 0"),
+        ("[crosscheck]\ndraws = 99.5\n", r"study key 'crosscheck.draws': expected an integer"),
+    ],
+)
 def test_bad_settings_name_the_key(tmp_path, extra, match):
     with pytest.raises(StudyError, match=match):
         load_study(write(tmp_path, extra))
@@ -85,8 +98,19 @@ def test_fit_fills_least_squares_and_no_cross_check_skips_the_costly_parts(tmp_p
     assert main(["fit", str(study), "--out", str(tmp_path / "quick"), "--no-cross-check", *common]) == 0
     full = json.loads((tmp_path / "full" / "summary.json").read_text())["least_squares"]
     quick = json.loads((tmp_path / "quick" / "summary.json").read_text())["least_squares"]
-    for k in ("estimate", "se_classical", "se_hc1", "se_cr1", "p_cr1", "p_wild", "ci_wild_95", "p_permutation",
-              "clusters", "treated_clusters", "advice"):
+    for k in (
+        "estimate",
+        "se_classical",
+        "se_hc1",
+        "se_cr1",
+        "p_cr1",
+        "p_wild",
+        "ci_wild_95",
+        "p_permutation",
+        "clusters",
+        "treated_clusters",
+        "advice",
+    ):
         assert k in full and k in quick
     assert full["treated_clusters"] == 2 and full["clusters"] == 40
     assert 0 < full["p_wild"] <= 1 and 0 < full["p_permutation"] <= 1

@@ -36,8 +36,13 @@ def test_every_command_succeeds_and_every_section_has_content(name, e2e_run):
     assert [html.unescape(h) for h in re.findall(r"<h2>(.*?)</h2>", text)] == [h for _, h in HEADINGS]
     secs = sections(text)
     for anchor, body in secs.items():
-        for bad in ("could not be drawn", "Traceback", "Not available in this run folder", "KeyError",
-                    "not valid JSON"):
+        for bad in (
+            "could not be drawn",
+            "Traceback",
+            "Not available in this run folder",
+            "KeyError",
+            "not valid JSON",
+        ):
             assert bad not in body, (name, anchor, bad)
     checks = json.loads((case["run"] / "checks" / "checks.json").read_text())
     for check in ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space"):
@@ -111,8 +116,10 @@ def test_the_report_refuses_checks_from_other_data(e2e_run, tmp_path):
     code, out, err = quiet_main(["report", str(mixed)])
     assert code == 2
     assert "checks/checks.json" in err and "other data than the run" in err
-    assert not (mixed / "report.html").exists() or (mixed / "report.html").read_bytes() == \
-        (a["run"] / "report.html").read_bytes()
+    assert (
+        not (mixed / "report.html").exists()
+        or (mixed / "report.html").read_bytes() == (a["run"] / "report.html").read_bytes()
+    )
 
 
 def test_the_report_reads_a_table_by_its_declared_columns(e2e_run, tmp_path):

@@ -21,14 +21,36 @@ from bayesdid.model.terms import model_spec
 from bayesdid.run import analyse
 from bayesdid.simulate_families import CountScenario, simulate_family
 
-POISSON = dict(family="poisson", jurisdictions=24, periods=8, starts={0: 4, 1: 5}, rows_per_cell=150,
-               level=(-2.2, -1.5), theta=(0.15, 0.45, 1.0), exposure=(0.25, 1.0))
+POISSON = dict(
+    family="poisson",
+    jurisdictions=24,
+    periods=8,
+    starts={0: 4, 1: 5},
+    rows_per_cell=150,
+    level=(-2.2, -1.5),
+    theta=(0.15, 0.45, 1.0),
+    exposure=(0.25, 1.0),
+)
 
 
 def _study(frame, truth, family, covariates="C(sex) + C(risk)", priors=None, draws=500, seed=1, **kw):
-    return make_study(table="unused.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                      target_group="target", adopters=truth["starts"], family=family, covariates=covariates,
-                      priors=priors, draws=draws, tune=500, chains=2, seed=seed, **kw)
+    return make_study(
+        table="unused.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        family=family,
+        covariates=covariates,
+        priors=priors,
+        draws=draws,
+        tune=500,
+        chains=2,
+        seed=seed,
+        **kw,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -74,9 +96,9 @@ def _direct_counterfactual(fit, inverse_link):
 
 def test_one_structure_for_demo_and_simulations(poisson_recovery):
     """The demo case and every poisson simulation here share one model structure (one compile)."""
-    from bayesdid.study import load_study
     from bayesdid.cli import case_dir
     from bayesdid.data import read_table
+    from bayesdid.study import load_study
 
     an, _ = poisson_recovery
     demo = load_study(case_dir("nurse_line") / "study.toml")
@@ -94,10 +116,12 @@ def test_rate_ratio_recovered_and_natural_estimands_direct(poisson_recovery):
     assert rr.summary["threshold"] == pytest.approx(0.9)  # -10% as a ratio threshold
     m1, m0, W = _direct_counterfactual(an.fit, np.exp)
     np.testing.assert_allclose(rr.draws, m1 / m0, rtol=1e-10)
-    np.testing.assert_allclose(nat["rate difference per 1,000 units of exposure"].draws, 1000 * (m1 - m0),
-                               rtol=1e-9, atol=1e-9)
-    np.testing.assert_allclose(nat["events averted in the treated cells (total)"].draws, W * (m0 - m1),
-                               rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(
+        nat["rate difference per 1,000 units of exposure"].draws, 1000 * (m1 - m0), rtol=1e-9, atol=1e-9
+    )
+    np.testing.assert_allclose(
+        nat["events averted in the treated cells (total)"].draws, W * (m0 - m1), rtol=1e-9, atol=1e-9
+    )
     assert rr.summary["prob_lt_1"] == pytest.approx(np.mean(m1 / m0 < 1))
     assert rr.summary["prob_beyond_threshold"] == pytest.approx(np.mean(m1 / m0 < 0.9))
 
@@ -114,8 +138,17 @@ def test_poisson_exposure_matches_statsmodels_glm():
     import statsmodels.api as sm
 
     frame, truth = simulate_family(CountScenario(tau=-0.2, shock_sd=0.0, gap_sd=0.0, **POISSON), 202)
-    priors = {"gap_noise": 1e-3, "shock_spread": 1e-3, "adopter_spread": 1e-3, "intercept": 10.0,
-              "baseline_spread": 5.0, "period": 5.0, "group_period": 5.0, "effect": 5.0, "covariate": 5.0}
+    priors = {
+        "gap_noise": 1e-3,
+        "shock_spread": 1e-3,
+        "adopter_spread": 1e-3,
+        "intercept": 10.0,
+        "baseline_spread": 5.0,
+        "period": 5.0,
+        "group_period": 5.0,
+        "effect": 5.0,
+        "covariate": 5.0,
+    }
     study = _study(frame, truth, "poisson", priors=priors, exposure="exposure", draws=500, seed=3)
     cells = collapse(study, frame)
     with warnings.catch_warnings():
@@ -169,8 +202,16 @@ def test_demo_case_runs_from_the_command_line(tmp_path, capsys):
 
 @pytest.fixture(scope="module")
 def binomial_fit():
-    sc = CountScenario(family="binomial", jurisdictions=16, periods=6, starts={0: 3}, rows_per_cell=300,
-                       covariates=False, level=(-1.0, -0.7), tau=-0.3)
+    sc = CountScenario(
+        family="binomial",
+        jurisdictions=16,
+        periods=6,
+        starts={0: 3},
+        rows_per_cell=300,
+        covariates=False,
+        level=(-1.0, -0.7),
+        tau=-0.3,
+    )
     frame, truth = simulate_family(sc, 303)
     study = _study(frame, truth, "binomial", covariates=None, threshold=-0.1)
     with warnings.catch_warnings():
@@ -203,12 +244,34 @@ def test_rho_recovered_on_a_poisson_panel_with_ar1_gap_noise():
     events a cell, so the gap noise dominates the Poisson noise): the latent AR(1) field's rho covers
     the truth and excludes weak persistence, and summary.json says which form was fitted. One data
     set, a fixed seed (bayesdid.simulate_families with gap_rho; the truth is the generator's own)."""
-    sc = CountScenario(family="poisson", jurisdictions=30, periods=12, groups=1, starts={0: 6}, rows_per_cell=80,
-                       covariates=False, level=(-0.3,), gap_sd=0.25, gap_rho=0.7, tau=-0.2, exposure=(0.5, 1.0))
+    sc = CountScenario(
+        family="poisson",
+        jurisdictions=30,
+        periods=12,
+        groups=1,
+        starts={0: 6},
+        rows_per_cell=80,
+        covariates=False,
+        level=(-0.3,),
+        gap_sd=0.25,
+        gap_rho=0.7,
+        tau=-0.2,
+        exposure=(0.5, 1.0),
+    )
     frame, truth = simulate_family(sc, 404)
-    study = make_study(table="unused.csv", outcome="y", jurisdiction="region", period="period",
-                       adopters=truth["starts"], family="poisson", exposure="exposure", draws=500, tune=500,
-                       chains=2, seed=7)
+    study = make_study(
+        table="unused.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        adopters=truth["starts"],
+        family="poisson",
+        exposure="exposure",
+        draws=500,
+        tune=500,
+        chains=2,
+        seed=7,
+    )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         an = analyse(study, cells=collapse(study, frame), full_cross_check=False)

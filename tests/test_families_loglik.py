@@ -19,15 +19,24 @@ from bayesdid.model import families, gaussian
 from bayesdid.model.registry import build_model, pointwise_loglik
 from bayesdid.model.terms import model_spec, resolve_scales
 from bayesdid.simulate import Scenario, simulate
-from bayesdid.study import PriorScales
 from bayesdid.simulate_families import CountScenario, simulate_family
+from bayesdid.study import PriorScales
 
 
 def _study(frame, truth, family, covariates=None, **kw):
     ddd = "group" in frame
-    return make_study(table="unused.csv", outcome="y", jurisdiction="region", period="period",
-                      group="group" if ddd else None, target_group="target" if ddd else None,
-                      adopters=truth["starts"], family=family, covariates=covariates, **kw)
+    return make_study(
+        table="unused.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters=truth["starts"],
+        family=family,
+        covariates=covariates,
+        **kw,
+    )
 
 
 def _hand_design(frame, names):
@@ -44,15 +53,23 @@ def _hand_design(frame, names):
 def _codes(cells, frame):
     j = frame["region"].map({v: i for i, v in enumerate(cells.jurisdictions)}).to_numpy()
     t = frame["period"].map({v: i for i, v in enumerate(cells.periods)}).to_numpy()
-    g = (frame["group"].map({v: i for i, v in enumerate(cells.groups)}).to_numpy() if "group" in frame
-         else np.zeros(len(frame), dtype=int))
+    g = (
+        frame["group"].map({v: i for i, v in enumerate(cells.groups)}).to_numpy()
+        if "group" in frame
+        else np.zeros(len(frame), dtype=int)
+    )
     return j, g, t
 
 
 def _random_params(rng, cells, K):
     J, G, T = cells.shape
-    return {"m": rng.normal(-1.5, 0.5, (J, G, T)), "s": rng.normal(0, 0.3, (J, T)),
-            "e": rng.normal(0, 0.3, (J, T)), "theta": rng.normal(0, 0.5, K), "phi": rng.uniform(2, 30)}
+    return {
+        "m": rng.normal(-1.5, 0.5, (J, G, T)),
+        "s": rng.normal(0, 0.3, (J, T)),
+        "e": rng.normal(0, 0.3, (J, T)),
+        "theta": rng.normal(0, 0.5, K),
+        "phi": rng.uniform(2, 30),
+    }
 
 
 def _collapsed(family, cells, p):
@@ -100,9 +117,15 @@ def _nb_rows(cells, frame, X, p):
 @pytest.mark.parametrize("design", ["DDD", "DiD"])
 def test_collapsed_equals_rows_up_to_constant(family, design):
     rng = np.random.default_rng(7)
-    sc = CountScenario(family=family, jurisdictions=4, periods=3, groups=2 if design == "DDD" else 1,
-                       starts={0: 1}, rows_per_cell=12 if family != "negbinomial" else 3,
-                       trials=3 if family == "binomial" else 1)
+    sc = CountScenario(
+        family=family,
+        jurisdictions=4,
+        periods=3,
+        groups=2 if design == "DDD" else 1,
+        starts={0: 1},
+        rows_per_cell=12 if family != "negbinomial" else 3,
+        trials=3 if family == "binomial" else 1,
+    )
     frame, truth = simulate_family(sc, 11)
     kw = {"exposure": "exposure"} if family != "binomial" else {"trials": "trials"}
     cells = collapse(_study(frame, truth, family, "C(sex) + C(risk)", **kw), frame)
@@ -129,8 +152,7 @@ def test_collapsed_equals_rows_up_to_constant(family, design):
 
 def test_zero_one_binomial_and_no_covariates():
     """A 0/1 outcome without covariates collapses to one record per cell: successes and trials."""
-    sc = CountScenario(family="binomial", jurisdictions=5, periods=3, starts={0: 1}, rows_per_cell=30,
-                       covariates=False)
+    sc = CountScenario(family="binomial", jurisdictions=5, periods=3, starts={0: 1}, rows_per_cell=30, covariates=False)
     frame, truth = simulate_family(sc, 3)
     cells = collapse(_study(frame, truth, "binomial"), frame)
     rec = cells.extra["records"]
@@ -153,7 +175,7 @@ def _mvn_rows(cells, frame, y, X, par):
             sel = (j == jj) & (t == tt)
             q = (g[sel] == cells.target).astype(float)
             sig = par["sigma"][g[sel]]
-            cov = np.diag(sig ** 2) + par["sigma_gap"] ** 2 * np.outer(q, q)
+            cov = np.diag(sig**2) + par["sigma_gap"] ** 2 * np.outer(q, q)
             if cells.design == "DDD":
                 cov = cov + par["sigma_shock"] ** 2
             total += stats.multivariate_normal.logpdf(y[sel], mean[sel], cov)
@@ -165,8 +187,14 @@ def test_gaussian_with_covariates_collapsed_equals_rows(design):
     """Gaussian + covariates: the per-cell sums (n, sum y, sum y^2, sum x, x x', x y) reproduce the
     row-level likelihood exactly (no constant at all here: both sides are complete densities)."""
     rng = np.random.default_rng(5)
-    sc = Scenario(jurisdictions=4, periods=3, groups=2 if design == "DDD" else 1, starts={0: 1},
-                  rows_per_cell=5, fixed_cells=False)
+    sc = Scenario(
+        jurisdictions=4,
+        periods=3,
+        groups=2 if design == "DDD" else 1,
+        starts={0: 1},
+        rows_per_cell=5,
+        fixed_cells=False,
+    )
     frame, truth = simulate(sc, 2)
     frame["age"] = rng.normal(50, 10, len(frame))
     frame["sex"] = rng.choice(["female", "male"], len(frame))
@@ -183,15 +211,24 @@ def test_gaussian_with_covariates_collapsed_equals_rows(design):
     J, G, T = cells.shape
     arr = gaussian.cell_arrays(cells)
     for _ in range(2):
-        par = {"m": rng.normal(1, 0.5, (J, G, T)), "theta": rng.normal(0, 0.3, 2),
-               "sigma": rng.uniform(0.5, 1.5, G), "sigma_gap": rng.uniform(0.1, 0.5),
-               "sigma_shock": rng.uniform(0.1, 0.5) if design == "DDD" else 0.0}
+        par = {
+            "m": rng.normal(1, 0.5, (J, G, T)),
+            "theta": rng.normal(0, 0.3, 2),
+            "sigma": rng.uniform(0.5, 1.5, G),
+            "sigma_gap": rng.uniform(0.1, 0.5),
+            "sigma_shock": rng.uniform(0.1, 0.5) if design == "DDD" else 0.0,
+        }
         d = gaussian.covariate_adjusted(arr, par["theta"])
         r = cells.reference if design == "DDD" else None
         ll = gaussian.jt_loglik(
-            d, m_r=par["m"][:, r, :] if r is not None else np.zeros((J, T)), m_q=par["m"][:, cells.target, :],
-            sigma_r=par["sigma"][r] if r is not None else 1.0, sigma_q=par["sigma"][cells.target],
-            sigma_shock=par["sigma_shock"], sigma_gap=par["sigma_gap"]).sum()
+            d,
+            m_r=par["m"][:, r, :] if r is not None else np.zeros((J, T)),
+            m_q=par["m"][:, cells.target, :],
+            sigma_r=par["sigma"][r] if r is not None else 1.0,
+            sigma_q=par["sigma"][cells.target],
+            sigma_shock=par["sigma_shock"],
+            sigma_gap=par["sigma_gap"],
+        ).sum()
         assert ll == pytest.approx(_mvn_rows(cells, frame, frame["y"].to_numpy(), X, par), rel=1e-10, abs=1e-8)
 
 
@@ -199,24 +236,50 @@ def _fake_fit(model, cells, family, rng):
     """A one-draw 'fit' at a random point of the model, read through PyMC's own graph."""
     ip = model.initial_point()
     point = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ip.items()}
-    names = [n for n in ("baseline", "period_effect", "group_period_effect", "tau_adopter", "gap", "shock",
-                         "theta", "phi", "sigma", "sigma_gap", "sigma_shock", "rho", "z_gap_innovation",
-                         "gap_path") if n in model.named_vars]
+    names = [
+        n
+        for n in (
+            "baseline",
+            "period_effect",
+            "group_period_effect",
+            "tau_adopter",
+            "gap",
+            "shock",
+            "theta",
+            "phi",
+            "sigma",
+            "sigma_gap",
+            "sigma_shock",
+            "rho",
+            "z_gap_innovation",
+            "gap_path",
+        )
+        if n in model.named_vars
+    ]
     outs = model.replace_rvs_by_values([model[n] for n in names])  # evaluate at the point, not sample
     fn = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore", point_fn=True)
     vals = dict(zip(names, fn(point)))
-    logp = model.compile_fn(model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars,
-                            on_unused_input="ignore", point_fn=True)(point)
+    logp = model.compile_fn(
+        model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars, on_unused_input="ignore", point_fn=True
+    )(point)
     spec = model_spec(cells, family)
-    scales = {n[len("prior_"):]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
+    scales = {n[len("prior_") :]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
     fake = SimpleNamespace(cells=cells, spec=spec, scales=scales, draws=lambda n: np.asarray(vals[n])[None, ...])
     return fake, float(logp)
 
 
-@pytest.mark.parametrize("family,gap", [("binomial", "independent"), ("poisson", "independent"),
-                                        ("negbinomial", "independent"), ("gaussian", "independent"),
-                                        ("binomial", "persistent"), ("poisson", "persistent"),
-                                        ("negbinomial", "persistent")])
+@pytest.mark.parametrize(
+    "family,gap",
+    [
+        ("binomial", "independent"),
+        ("poisson", "independent"),
+        ("negbinomial", "independent"),
+        ("gaussian", "independent"),
+        ("binomial", "persistent"),
+        ("poisson", "persistent"),
+        ("negbinomial", "persistent"),
+    ],
+)
 @pytest.mark.parametrize("gap_centred", [False, True])
 def test_numpy_twin_matches_pytensor_graph(family, gap, gap_centred, monkeypatch):
     """The model's observed-variable log density (PyTensor) equals the numpy twin used for draws; with
@@ -233,8 +296,9 @@ def test_numpy_twin_matches_pytensor_graph(family, gap, gap_centred, monkeypatch
     else:
         # persistent needs 3 pre-policy periods (else the independent form is fitted)
         T, starts = (4, {0: 2, 1: 3}) if gap == "independent" else (6, {0: 3, 1: 4})
-        frame, truth = simulate_family(CountScenario(family=family, jurisdictions=5, periods=T,
-                                                     starts=starts, rows_per_cell=8), 9)
+        frame, truth = simulate_family(
+            CountScenario(family=family, jurisdictions=5, periods=T, starts=starts, rows_per_cell=8), 9
+        )
         kw = {"exposure": "exposure"} if family != "binomial" else {}
         cells = collapse(_study(frame, truth, family, "C(sex) + C(risk)", **kw), frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
@@ -329,8 +393,9 @@ def test_rho_zero_equals_the_independent_field_log_density(gap_centred, monkeypa
     from bayesdid.model.terms import zero_sum_basis
 
     monkeypatch.setattr(families, "fields_centred", lambda cells, fam: (gap_centred, gap_centred))
-    frame, truth = simulate_family(CountScenario(family="poisson", jurisdictions=5, periods=6,
-                                                 starts={0: 3, 1: 4}, rows_per_cell=8), 9)
+    frame, truth = simulate_family(
+        CountScenario(family="poisson", jurisdictions=5, periods=6, starts={0: 3, 1: 4}, rows_per_cell=8), 9
+    )
     cells = collapse(_study(frame, truth, "poisson", "C(sex) + C(risk)", exposure="exposure"), frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
     J, _, T = cells.shape
@@ -359,5 +424,12 @@ def test_rho_zero_equals_the_independent_field_log_density(gap_centred, monkeypa
     assert total_per - rho_term - extra == pytest.approx(total_ind, rel=1e-12, abs=1e-9)
     # and rho away from 0 changes it (the test can fail)
     p_per["rho_unit_logodds__"] = np.array(1.0)
-    assert abs(float(per.compile_logp()(p_per)) - float(per.compile_logp(vars=[per["rho_unit"]])(p_per))
-               - extra - total_ind) > 1e-3
+    assert (
+        abs(
+            float(per.compile_logp()(p_per))
+            - float(per.compile_logp(vars=[per["rho_unit"]])(p_per))
+            - extra
+            - total_ind
+        )
+        > 1e-3
+    )

@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
+from conftest import sim_study
 
 from bayesdid import analyse, make_study
 from bayesdid.effects import percent_change
@@ -13,16 +14,18 @@ from bayesdid.model.gaussian import pointwise_loglik
 from bayesdid.model.registry import build_model
 from bayesdid.simulate import Scenario
 
-from conftest import sim_study
-
 pytestmark = pytest.mark.slow
 
 # Gruber (1994), AER 84(3), Table 3 (values from memory): mean log hourly wage cells.
 GRUBER = {
-    ("Adopter", "target", 1): 1.547, ("Adopter", "target", 2): 1.513,
-    ("Adopter", "reference", 1): 1.369, ("Adopter", "reference", 2): 1.397,
-    ("Other", "target", 1): 1.759, ("Other", "target", 2): 1.748,
-    ("Other", "reference", 1): 1.630, ("Other", "reference", 2): 1.627,
+    ("Adopter", "target", 1): 1.547,
+    ("Adopter", "target", 2): 1.513,
+    ("Adopter", "reference", 1): 1.369,
+    ("Adopter", "reference", 2): 1.397,
+    ("Other", "target", 1): 1.759,
+    ("Other", "target", 2): 1.748,
+    ("Other", "reference", 1): 1.630,
+    ("Other", "reference", 2): 1.627,
 }
 
 
@@ -45,8 +48,18 @@ def test_gruber_table3_least_squares_and_posterior(tmp_path):
     frame = _gruber_frame()
     p = tmp_path / "g.csv"
     frame.to_csv(p, index=False)
-    st = make_study(table=p, outcome="y", jurisdiction="state", period="period", group="group",
-                    target_group="target", adopters={"Adopter": 2}, draws=1000, tune=1000, seed=11)
+    st = make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="state",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters={"Adopter": 2},
+        draws=1000,
+        tune=1000,
+        seed=11,
+    )
     an = analyse(st)
     # published DDD -0.054 (Gruber 1994 Table 3, from memory); exact arithmetic of the means:
     ddd = (1.513 - 1.547) - (1.397 - 1.369) - ((1.748 - 1.759) - (1.627 - 1.630))
@@ -65,8 +78,16 @@ def test_organ_donations_did(tmp_path, organ_donations):
     df = organ_donations
     p = tmp_path / "organ.csv"
     df.to_csv(p, index=False)
-    st = make_study(table=p, outcome="Rate", jurisdiction="State", period="Quarter_Num",
-                    adopters={"California": 4}, draws=1000, tune=1000, seed=5)
+    st = make_study(
+        table=p,
+        outcome="Rate",
+        jurisdiction="State",
+        period="Quarter_Num",
+        adopters={"California": 4},
+        draws=1000,
+        tune=1000,
+        seed=5,
+    )
     d = ((df["State"] == "California") & (df["Quarter_Num"] >= 4)).astype(float)
     ref = smf.ols("Rate ~ C(State) + C(Quarter_Num) + D", data=df.assign(D=d)).fit().params["D"]
     assert ref == pytest.approx(-0.02246, abs=5e-6)
@@ -75,12 +96,13 @@ def test_organ_donations_did(tmp_path, organ_donations):
     assert abs(an.effects["effect"].summary["mean"] - ref) < 0.01
 
 
-@pytest.mark.parametrize("groups,starts", [(2, {0: 5}), (2, {0: 4, 1: 5, 2: 6}), (1, {0: 5}),
-                                           (1, {0: 4, 1: 5, 2: 6})],
-                         ids=["DDD-1", "DDD-3", "DiD-1", "DiD-3"])
+@pytest.mark.parametrize(
+    "groups,starts",
+    [(2, {0: 5}), (2, {0: 4, 1: 5, 2: 6}), (1, {0: 5}), (1, {0: 4, 1: 5, 2: 6})],
+    ids=["DDD-1", "DDD-3", "DiD-1", "DiD-3"],
+)
 def test_recovers_known_tau(tmp_path_factory, groups, starts):
-    sc = Scenario(jurisdictions=25, periods=8, groups=groups, starts=starts, tau=-0.3, gap_sd=0.05,
-                  rows_per_cell=40)
+    sc = Scenario(jurisdictions=25, periods=8, groups=groups, starts=starts, tau=-0.3, gap_sd=0.05, rows_per_cell=40)
     st, cells, _, truth = sim_study(tmp_path_factory, sc, 21, "rec", draws=500, tune=500, seed=3)
     an = analyse(st, cells=cells)
     e = an.effects["effect"].summary
@@ -103,8 +125,7 @@ def test_same_seed_same_draws_and_loglik_matches_pymc(tmp_path_factory):
     import pymc as pm
 
     model, _ = build_model(cells, a.fit.scales)
-    ll = pm.stats.compute_log_likelihood(a.fit.tree.copy(), model=model, progressbar=False,
-                                         extend_inferencedata=False)
+    ll = pm.stats.compute_log_likelihood(a.fit.tree.copy(), model=model, progressbar=False, extend_inferencedata=False)
     ref = ll["cells"].stack(sample=("chain", "draw")).transpose("sample", ...).to_numpy()
     np.testing.assert_allclose(pointwise_loglik(a.fit), ref, rtol=1e-9)
 

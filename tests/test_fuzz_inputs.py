@@ -39,40 +39,160 @@ def _stop_before_compile(study, *, prepared=None, **_):
 
 
 def _table(rng: np.random.Generator) -> pd.DataFrame:
-    rows = [(f"R{j}", g, t, float(rng.gamma(5, 3)), int(rng.poisson(3)), 1.0 + t / 10, int(rng.integers(20, 60)),
-             float(rng.integers(0, 2)))
-            for j in range(6) for g in ("a", "b") for t in range(1, 5) for _ in range(2)]
+    rows = [
+        (
+            f"R{j}",
+            g,
+            t,
+            float(rng.gamma(5, 3)),
+            int(rng.poisson(3)),
+            1.0 + t / 10,
+            int(rng.integers(20, 60)),
+            float(rng.integers(0, 2)),
+        )
+        for j in range(6)
+        for g in ("a", "b")
+        for t in range(1, 5)
+        for _ in range(2)
+    ]
     return pd.DataFrame(rows, columns=["region", "grp", "period", "y", "visits", "ex", "age", "flag"])
 
 
 BASES = [
-    {"data": {"table": "table.csv", "outcome": "y", "jurisdiction": "region", "period": "period", "group": "grp"},
-     "policy": {"target_group": "b", "adopters": {"R0": 3}}, "sampler": {"draws": 20, "tune": 20},
-     "decision": {"threshold": -0.5}},
-    {"title": "did", "data": {"table": "table.csv", "outcome": "y", "jurisdiction": "region", "period": "period"},
-     "policy": {"adopters": {"R0": 3, "R1": 4}}, "model": {"log_outcome": True}, "decision": {"threshold": -0.1}},
-    {"data": {"table": "table.csv", "outcome": "visits", "jurisdiction": "region", "period": "period", "group": "grp",
-              "exposure": "ex"},
-     "policy": {"target_group": "b", "adopters": {"R0": 3}}, "model": {"family": "poisson", "covariates": "age"},
-     "priors": {"effect": 0.5}},
-    {"data": {"table": "table.csv", "outcome": "visits", "jurisdiction": "region", "period": "period", "group": "grp",
-              "trials": "age"},
-     "policy": {"target_group": "b", "adopters": {"R0": 2}}, "model": {"family": "binomial"},
-     "crosscheck": {"draws": 99}},
+    {
+        "data": {"table": "table.csv", "outcome": "y", "jurisdiction": "region", "period": "period", "group": "grp"},
+        "policy": {"target_group": "b", "adopters": {"R0": 3}},
+        "sampler": {"draws": 20, "tune": 20},
+        "decision": {"threshold": -0.5},
+    },
+    {
+        "title": "did",
+        "data": {"table": "table.csv", "outcome": "y", "jurisdiction": "region", "period": "period"},
+        "policy": {"adopters": {"R0": 3, "R1": 4}},
+        "model": {"log_outcome": True},
+        "decision": {"threshold": -0.1},
+    },
+    {
+        "data": {
+            "table": "table.csv",
+            "outcome": "visits",
+            "jurisdiction": "region",
+            "period": "period",
+            "group": "grp",
+            "exposure": "ex",
+        },
+        "policy": {"target_group": "b", "adopters": {"R0": 3}},
+        "model": {"family": "poisson", "covariates": "age"},
+        "priors": {"effect": 0.5},
+    },
+    {
+        "data": {
+            "table": "table.csv",
+            "outcome": "visits",
+            "jurisdiction": "region",
+            "period": "period",
+            "group": "grp",
+            "trials": "age",
+        },
+        "policy": {"target_group": "b", "adopters": {"R0": 2}},
+        "model": {"family": "binomial"},
+        "crosscheck": {"draws": 99},
+    },
 ]
 
-VALUES = [0, 1, -1, 2, 3, 10, 1.5, -1.5, 0.0, 1e308, -1e308, float("nan"), float("inf"), "", " ", "y", "region",
-          "grp", "period", "b", "a", "R0", "R9", "2023Q1", "gaussian", "poisson", "binomial", "negbinomial", "drop",
-          "error", "age", "age + C(grp)", "age +", "C(", "y", "visits", "age ~ grp", "region", "C(period)", True, False, [], [1, 2], ["a"], [1, 2, 3, 4], {},
-          {"R0": 3}, {"R1": 2, "R0": 4}, {"R0": "x"}, datetime.date(2024, 1, 1), 2**63 - 1, -2**63]
-KEYS = ["table", "outcome", "jurisdiction", "period", "group", "exposure", "trials", "period_order", "adopters",
-        "target_group", "family", "log_outcome", "covariates", "missing", "effect", "gap_noise", "chains", "draws",
-        "tune", "seed", "threshold", "weights", "placebos", "placebo_lag", "nonsense"]
+VALUES = [
+    0,
+    1,
+    -1,
+    2,
+    3,
+    10,
+    1.5,
+    -1.5,
+    0.0,
+    1e308,
+    -1e308,
+    float("nan"),
+    float("inf"),
+    "",
+    " ",
+    "y",
+    "region",
+    "grp",
+    "period",
+    "b",
+    "a",
+    "R0",
+    "R9",
+    "2023Q1",
+    "gaussian",
+    "poisson",
+    "binomial",
+    "negbinomial",
+    "drop",
+    "error",
+    "age",
+    "age + C(grp)",
+    "age +",
+    "C(",
+    "y",
+    "visits",
+    "age ~ grp",
+    "region",
+    "C(period)",
+    True,
+    False,
+    [],
+    [1, 2],
+    ["a"],
+    [1, 2, 3, 4],
+    {},
+    {"R0": 3},
+    {"R1": 2, "R0": 4},
+    {"R0": "x"},
+    datetime.date(2024, 1, 1),
+    2**63 - 1,
+    -(2**63),
+]
+KEYS = [
+    "table",
+    "outcome",
+    "jurisdiction",
+    "period",
+    "group",
+    "exposure",
+    "trials",
+    "period_order",
+    "adopters",
+    "target_group",
+    "family",
+    "log_outcome",
+    "covariates",
+    "missing",
+    "effect",
+    "gap_noise",
+    "chains",
+    "draws",
+    "tune",
+    "seed",
+    "threshold",
+    "weights",
+    "placebos",
+    "placebo_lag",
+    "nonsense",
+]
 SECTIONS = ["data", "policy", "model", "priors", "sampler", "decision", "crosscheck", "checks", "title", "extra"]
-OWN_KEYS = {"data": KEYS[:8], "policy": ["adopters", "target_group"], "model": ["family", "log_outcome", "covariates",
-            "missing"], "priors": ["effect", "gap_noise"], "sampler": ["chains", "draws", "tune", "seed"],
-            "decision": ["threshold"], "crosscheck": ["seed", "draws", "weights", "placebos"],
-            "checks": ["placebo_lag"], "extra": ["nonsense"]}
+OWN_KEYS = {
+    "data": KEYS[:8],
+    "policy": ["adopters", "target_group"],
+    "model": ["family", "log_outcome", "covariates", "missing"],
+    "priors": ["effect", "gap_noise"],
+    "sampler": ["chains", "draws", "tune", "seed"],
+    "decision": ["threshold"],
+    "crosscheck": ["seed", "draws", "weights", "placebos"],
+    "checks": ["placebo_lag"],
+    "extra": ["nonsense"],
+}
 CELL_VALUES = [np.nan, "", "n/a", "NA", "x", -1, 0, 0.5, 1e300, np.inf, -np.inf, True, "2023Q1", 3, "R0", "b", 7]
 
 
@@ -143,8 +263,17 @@ def _mutate_table(frame: pd.DataFrame, r: random.Random) -> pd.DataFrame:
             f = f.assign(**{col: r.choice(CELL_VALUES[5:])})
         elif op < 0.97 and "period" in f.columns:  # period labels of other kinds
             kind = r.choice(["mixed", "text", "float"])
-            f = f.assign(period=f["period"].map(lambda t: r.choice([t, f"2023Q{t}"]) if kind == "mixed" else
-                                                f"2023Q{t}" if kind == "text" else pd.to_numeric(t, errors="coerce")))
+            f = f.assign(
+                period=f["period"].map(
+                    lambda t: (
+                        r.choice([t, f"2023Q{t}"])
+                        if kind == "mixed"
+                        else f"2023Q{t}"
+                        if kind == "text"
+                        else pd.to_numeric(t, errors="coerce")
+                    )
+                )
+            )
         else:
             f = f.iloc[0:0]
     return f

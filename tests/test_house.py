@@ -18,34 +18,109 @@ from __future__ import annotations
 import ast
 from pathlib import Path
 
-
 ROOT = Path(__file__).resolve().parent.parent / "bayesdid"
 
 LAYERS = [
-    ("foundation", ["bayesdid.version", "bayesdid.errors", "bayesdid.contracts", "bayesdid.progress",
-                    "bayesdid.outputs", "bayesdid.frames", "bayesdid.cachedir", "bayesdid.modelcache",
-                    "bayesdid.study", "bayesdid.model", "bayesdid.lifeline"]),  # the model package's __init__ imports nothing
-    ("data", ["bayesdid.data", "bayesdid.covariates", "bayesdid.panels", "bayesdid.summaries",
-              "bayesdid.simulate", "bayesdid.simulate_families"]),
-    ("cells", ["bayesdid.fixed_effects", "bayesdid.model.structure", "bayesdid.cells", "bayesdid.stream",
-               "bayesdid.crosscheck"]),
-    ("model", ["bayesdid.model.registry", "bayesdid.model.terms",
-               "bayesdid.model.gaussian", "bayesdid.model.families", "bayesdid.model.binomial",
-               "bayesdid.model.counts", "bayesdid.model.twins"]),
+    (
+        "foundation",
+        [
+            "bayesdid.version",
+            "bayesdid.errors",
+            "bayesdid.contracts",
+            "bayesdid.progress",
+            "bayesdid.outputs",
+            "bayesdid.frames",
+            "bayesdid.cachedir",
+            "bayesdid.modelcache",
+            "bayesdid.study",
+            "bayesdid.model",
+            "bayesdid.lifeline",
+        ],
+    ),  # the model package's __init__ imports nothing
+    (
+        "data",
+        [
+            "bayesdid.data",
+            "bayesdid.covariates",
+            "bayesdid.panels",
+            "bayesdid.summaries",
+            "bayesdid.simulate",
+            "bayesdid.simulate_families",
+        ],
+    ),
+    (
+        "cells",
+        [
+            "bayesdid.fixed_effects",
+            "bayesdid.model.structure",
+            "bayesdid.cells",
+            "bayesdid.stream",
+            "bayesdid.crosscheck",
+        ],
+    ),
+    (
+        "model",
+        [
+            "bayesdid.model.registry",
+            "bayesdid.model.terms",
+            "bayesdid.model.gaussian",
+            "bayesdid.model.families",
+            "bayesdid.model.binomial",
+            "bayesdid.model.counts",
+            "bayesdid.model.twins",
+        ],
+    ),
     ("inference", ["bayesdid.sample", "bayesdid.on_dask"]),
     ("estimands", ["bayesdid.effects", "bayesdid.sensitivity", "bayesdid.trends"]),
     ("pipeline", ["bayesdid.run"]),
-    ("checks", ["bayesdid.checks", "bayesdid.checks.base", "bayesdid.checks.event_time", "bayesdid.checks.pretrend",
-                "bayesdid.checks.placebo", "bayesdid.checks.comparison", "bayesdid.checks.runner",
-                "bayesdid.trends_rerun"]),
+    (
+        "checks",
+        [
+            "bayesdid.checks",
+            "bayesdid.checks.base",
+            "bayesdid.checks.event_time",
+            "bayesdid.checks.pretrend",
+            "bayesdid.checks.placebo",
+            "bayesdid.checks.comparison",
+            "bayesdid.checks.runner",
+            "bayesdid.trends_rerun",
+        ],
+    ),
     ("batches", ["bayesdid.sweep", "bayesdid.calibration"]),
-    ("report", ["bayesdid.report", "bayesdid.report.reader", "bayesdid.report.words", "bayesdid.report.plots",
-                "bayesdid.report.html", "bayesdid.report.plan_page", "bayesdid.plan"]),
-    ("interface", ["bayesdid", "bayesdid.notebook", "bayesdid.cli", "bayesdid.bench", "bayesdid.bench.calibration", "bayesdid.bench.collapse",
-                   "bayesdid.bench.crosscheck", "bayesdid.bench.families", "bayesdid.bench.large_child",
-                   "bayesdid.bench.panel", "bayesdid.bench.placebo", "bayesdid.bench.sweep", "bayesdid.bench.weights",
-                   "bayesdid.bench.compile", "bayesdid.bench.persistence", "bayesdid.bench.plan",
-                   "bayesdid.bench.analyze"]),
+    (
+        "report",
+        [
+            "bayesdid.report",
+            "bayesdid.report.reader",
+            "bayesdid.report.words",
+            "bayesdid.report.plots",
+            "bayesdid.report.html",
+            "bayesdid.report.plan_page",
+            "bayesdid.plan",
+        ],
+    ),
+    (
+        "interface",
+        [
+            "bayesdid",
+            "bayesdid.notebook",
+            "bayesdid.cli",
+            "bayesdid.bench",
+            "bayesdid.bench.calibration",
+            "bayesdid.bench.collapse",
+            "bayesdid.bench.crosscheck",
+            "bayesdid.bench.families",
+            "bayesdid.bench.large_child",
+            "bayesdid.bench.panel",
+            "bayesdid.bench.placebo",
+            "bayesdid.bench.sweep",
+            "bayesdid.bench.weights",
+            "bayesdid.bench.compile",
+            "bayesdid.bench.persistence",
+            "bayesdid.bench.plan",
+            "bayesdid.bench.analyze",
+        ],
+    ),
 ]
 FLOOR = {m: i for i, (_, mods) in enumerate(LAYERS) for m in mods}
 

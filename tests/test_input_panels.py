@@ -23,7 +23,7 @@ def panel(rng, *, ddd, unit_sd=3.0):
     """Invented balanced panel: each unit of a jurisdiction(-group) in every period, with a large unit effect."""
     out = []
     for j, name in enumerate(NAMES):
-        for g in (("reference", "target") if ddd else ("all",)):
+        for g in ("reference", "target") if ddd else ("all",):
             for k in range(int(rng.integers(2, 6))):
                 uid = f"{name[:3]}-{g[0]}{k}"
                 a = rng.normal(0, unit_sd)
@@ -39,22 +39,30 @@ def _study(tmp_path, f, **kw):
     p = tmp_path / "p.csv"
     f.to_csv(p, index=False)
     ddd = "group" in f.columns
-    return make_study(table=p, outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS,
-                      group="group" if ddd else None, target_group="target" if ddd else None, **kw)
+    return make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="quarter",
+        adopters=ADOPTERS,
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        **kw,
+    )
 
 
 def _design(f, ddd):
     """Row-level design: treatment, unit dummies, and the saturated fixed effects that units do not absorb."""
     treated = np.array([r in ADOPTERS and q >= ADOPTERS[r] for r, q in zip(f.region, f.quarter)])
-    parts = [pd.DataFrame({"treated": treated.astype(float)}, index=f.index),
-             pd.get_dummies(f["person"], dtype=float)]
+    parts = [pd.DataFrame({"treated": treated.astype(float)}, index=f.index), pd.get_dummies(f["person"], dtype=float)]
     if ddd:
         tgt = (f["group"] == "target").to_numpy()
         parts[0]["treated"] = (treated & tgt).astype(float)
         jt = f["region"] + ":" + f["quarter"].astype(str)
         parts.append(pd.get_dummies(jt, dtype=float).drop(columns=[f"{r}:1" for r in NAMES]))
-        parts.append(pd.get_dummies(f["quarter"].where(tgt, 0), prefix="tq", dtype=float)
-                     .drop(columns=["tq_0", "tq_1"]))
+        parts.append(
+            pd.get_dummies(f["quarter"].where(tgt, 0), prefix="tq", dtype=float).drop(columns=["tq_0", "tq_1"])
+        )
     else:
         parts.append(pd.get_dummies(f["quarter"], prefix="q", drop_first=True, dtype=float))
     return pd.concat(parts, axis=1)
@@ -99,8 +107,11 @@ def test_unit_in_two_jurisdictions_refused(tmp_path, rng):
     f = panel(rng, ddd=False)
     moved = f["person"] == f["person"].iloc[0]
     f.loc[moved & (f["quarter"] == 4), "region"] = "Fallow"
-    with pytest.raises(DataRoleError, match=r"1 unit\(s\) of column 'person' appear in more than one jurisdiction "
-                                            r"\(column 'region'\), e.g. 'Cor-a0': Corvel, Fallow"):
+    with pytest.raises(
+        DataRoleError,
+        match=r"1 unit\(s\) of column 'person' appear in more than one jurisdiction "
+        r"\(column 'region'\), e.g. 'Cor-a0': Corvel, Fallow",
+    ):
         collapse(_study(tmp_path, f, unit="person"), f)
 
 
@@ -119,8 +130,7 @@ def test_two_rows_of_a_unit_in_one_period_refused(tmp_path, rng):
 
 
 def test_unit_refused_where_not_supported():
-    base = dict(table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS,
-                unit="person")
+    base = dict(table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS, unit="person")
     with pytest.raises(StudyError, match="family 'gaussian' only"):
         make_study(family="poisson", exposure="t", **base)
     with pytest.raises(StudyError, match="model.covariates"):
@@ -135,11 +145,11 @@ def test_scaled_within_spread_estimates_the_error_sd():
     from bayesdid.bench.panel import panel_rows
 
     frame, starts, _ = panel_rows(11)
-    st = make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts,
-                    unit="person")
+    st = make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts, unit="person")
     cells = collapse(st, frame)
     df = float(np.maximum(cells.n - 1, 0).sum())
     assert np.sqrt(cells.ss.sum() / df) == pytest.approx(1.0, abs=4 / np.sqrt(2 * df))
-    raw = collapse(make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts),
-                   frame)
+    raw = collapse(
+        make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts), frame
+    )
     assert np.sqrt(raw.ss.sum() / df) > 2.0  # the unit effects (sd 2) sit in the pooled spread

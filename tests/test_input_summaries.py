@@ -27,7 +27,7 @@ def _rows(rng, *, dyadic=False, ddd=False):
     exact in binary floating point, so the two input shapes give bit-identical cells."""
     out = []
     for j, name in enumerate(NAMES):
-        for g in (("reference", "target") if ddd else ("all",)):
+        for g in ("reference", "target") if ddd else ("all",):
             for t in range(1, T + 1):
                 effect = 1.5 if name in ADOPTERS and t >= ADOPTERS[name] and g != "reference" else 0.0
                 if dyadic:
@@ -48,6 +48,7 @@ def _summary(rows, *, spread="sd", split=False):
     if split:  # two summary rows per cell where possible: pooled exactly
         rows = rows.assign(half=np.arange(len(rows)) % 2)
         keys = keys + ["half"]
+
     def two_pass_sd(v):  # the textbook two-pass sd, exact on the dyadic data
         v = v.to_numpy()
         return np.sqrt(((v - v.sum() / len(v)) ** 2).sum() / (len(v) - 1)) if len(v) > 1 else np.nan
@@ -65,8 +66,16 @@ def _study(tmp_path, frame, name, **kw):
     p = tmp_path / f"{name}.csv"
     frame.to_csv(p, index=False)
     ddd = "group" in frame.columns
-    return make_study(table=p, outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS,
-                      group="group" if ddd else None, target_group="target" if ddd else None, **kw)
+    return make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="quarter",
+        adopters=ADOPTERS,
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        **kw,
+    )
 
 
 @pytest.mark.parametrize("spread,split,ddd", [("sd", False, False), ("se", False, True), ("sd", True, True)])
@@ -95,7 +104,8 @@ def test_summary_least_squares_equals_statsmodels_on_the_observations(tmp_path, 
     ls = cross_check(cells, full=False)
     rows = rows.assign(treated=[float(r in ADOPTERS and q >= ADOPTERS[r]) for r, q in zip(rows.region, rows.quarter)])
     ref = smf.ols("y ~ treated + C(region) + C(quarter)", data=rows).fit(
-        cov_type="cluster", cov_kwds={"groups": pd.factorize(rows["region"])[0]})
+        cov_type="cluster", cov_kwds={"groups": pd.factorize(rows["region"])[0]}
+    )
     assert ls["estimate"] == pytest.approx(ref.params["treated"], rel=1e-9)
     assert ls["se_cr1"] == pytest.approx(ref.bse["treated"], rel=1e-8)
 
@@ -123,8 +133,15 @@ def test_same_seed_same_draws_from_either_shape(tmp_path):
     settings = SamplerSettings(chains=2, draws=100, tune=100, seed=31)
     fits = []
     for cells in (a, b):
-        scales = {k: v["scale"] for k, v in resolve_scales(cells, make_study(
-            table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS).priors).items()}
+        scales = {
+            k: v["scale"]
+            for k, v in resolve_scales(
+                cells,
+                make_study(
+                    table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS
+                ).priors,
+            ).items()
+        }
         fits.append(fit_cells(cells, scales, settings))
     for name in ("tau_adopter", "sigma", "sigma_gap"):
         np.testing.assert_array_equal(fits[0].draws(name), fits[1].draws(name), err_msg=name)
@@ -148,8 +165,7 @@ def test_proportion_converts_exactly_to_successes(tmp_path, rng):
     share.to_csv(p2, index=False)
     base = dict(jurisdiction="region", period="quarter", adopters=ADOPTERS, family="binomial")
     a = collapse(make_study(table=p1, outcome="cases", trials="people", **base), counts)
-    b = collapse(make_study(table=p2, outcome="y", summary="proportion", count="people", **base),
-                 pd.read_csv(p2))
+    b = collapse(make_study(table=p2, outcome="y", summary="proportion", count="people", **base), pd.read_csv(p2))
     np.testing.assert_array_equal(a.n, b.n)
     np.testing.assert_array_equal(a.sum_y, b.sum_y)
     for k in ("cell", "y", "size"):
@@ -162,8 +178,7 @@ def test_rate_converts_exactly_to_events(tmp_path, rng):
     rate = counts.assign(y=counts["cases"] / counts["years"]).drop(columns="cases")
     p = tmp_path / "rate.csv"
     rate.to_csv(p, index=False)
-    base = dict(table=p, jurisdiction="region", period="quarter", adopters=ADOPTERS, family="poisson",
-                exposure="years")
+    base = dict(table=p, jurisdiction="region", period="quarter", adopters=ADOPTERS, family="poisson", exposure="years")
     a = collapse(make_study(outcome="cases", **base), counts)
     b = collapse(make_study(outcome="y", summary="rate", **base), pd.read_csv(p))
     np.testing.assert_array_equal(a.sum_y, b.sum_y)
@@ -179,9 +194,13 @@ def _bad(tmp_path, rng, edit, match, **kw):
 
 
 def test_count_below_one(tmp_path, rng):
-    _bad(tmp_path, rng, lambda a: a.assign(n=a["n"].where(a.index != 3, 0)),
-         r"count column 'n' must hold whole numbers of at least 1 \(observations per row\); "
-         r"1 row\(s\) \(table lines 5\)")
+    _bad(
+        tmp_path,
+        rng,
+        lambda a: a.assign(n=a["n"].where(a.index != 3, 0)),
+        r"count column 'n' must hold whole numbers of at least 1 \(observations per row\); "
+        r"1 row\(s\) \(table lines 5\)",
+    )
 
 
 def test_missing_sd_where_count_above_one(tmp_path, rng):
@@ -189,6 +208,7 @@ def test_missing_sd_where_count_above_one(tmp_path, rng):
         i = int(np.flatnonzero(a["n"] > 1)[0])
         a.loc[i, "sd"] = np.nan
         return a
+
     _bad(tmp_path, rng, edit, r"sd column 'sd' is empty in 1 row\(s\).*count \('n'\) exceeds 1")
 
 
@@ -196,14 +216,17 @@ def test_sd_given_where_count_is_one(tmp_path, rng):
     def edit(a):
         a.loc[0, ["n", "sd"]] = [1, 0.7]
         return a
+
     _bad(tmp_path, rng, edit, r"sd column 'sd' holds a value in 1 row\(s\) \(table lines 2\) whose count \('n'\) is 1")
 
 
 def test_observation_rows_mixed_into_summary_rows(tmp_path, rng):
     def edit(a):
-        extra = pd.DataFrame({"region": ["Ashgrove"] * 2, "quarter": [1, 2], "y": [11.0, 12.0],
-                              "n": [np.nan] * 2, "sd": [np.nan] * 2})
+        extra = pd.DataFrame(
+            {"region": ["Ashgrove"] * 2, "quarter": [1, 2], "y": [11.0, 12.0], "n": [np.nan] * 2, "sd": [np.nan] * 2}
+        )
         return pd.concat([a, extra], ignore_index=True)
+
     _bad(tmp_path, rng, edit, r"look like observation-level rows mixed into a table of cell summaries")
 
 
@@ -227,7 +250,15 @@ def test_proportion_not_whole_is_refused(tmp_path, rng):
     share.loc[0, ["y", "people"]] = [0.33, 37]
     p = tmp_path / "share.csv"
     share.to_csv(p, index=False)
-    st = make_study(table=p, outcome="y", summary="proportion", count="people", jurisdiction="region",
-                    period="quarter", adopters=ADOPTERS, family="binomial")
+    st = make_study(
+        table=p,
+        outcome="y",
+        summary="proportion",
+        count="people",
+        jurisdiction="region",
+        period="quarter",
+        adopters=ADOPTERS,
+        family="binomial",
+    )
     with pytest.raises(DataRoleError, match=r"outcome column 'y' times 'people' is not a whole number of successes"):
         collapse(st, share)

@@ -22,7 +22,7 @@ NAMES = ["Corvel", "Dunmore", "Ashgrove", "Brindle", "Elmsby", "Fallow", "Gorsey
 def _rows(rng, *, ddd, T=5):
     out = []
     for j, name in enumerate(NAMES):
-        for g in (("reference", "target") if ddd else ("all",)):
+        for g in ("reference", "target") if ddd else ("all",):
             for t in range(1, T + 1):
                 k = int(rng.integers(2, 12))
                 effect = 1.0 if name in ADOPTERS and t >= ADOPTERS[name] and g != "reference" else 0.0
@@ -37,8 +37,16 @@ def _study(tmp_path, f, **kw):
     p = tmp_path / "w.csv"
     f.to_csv(p, index=False)
     ddd = "group" in f.columns
-    return make_study(table=p, outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS,
-                      group="group" if ddd else None, target_group="target" if ddd else None, **kw)
+    return make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="quarter",
+        adopters=ADOPTERS,
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        **kw,
+    )
 
 
 def _dummies(f, ddd):
@@ -50,15 +58,19 @@ def _dummies(f, ddd):
         d["treated"] = (treated & tgt).astype(float)
         jg = f["region"] + ":" + f["group"]
         jt = f["region"] + ":" + f["quarter"].astype(str)
-        parts = [pd.get_dummies(jg, drop_first=False, dtype=float),
-                 pd.get_dummies(jt, drop_first=False, dtype=float)
-                 .drop(columns=[f"{r}:1" for r in NAMES]),
-                 pd.get_dummies(f["quarter"].where(tgt, 0), prefix="tq", dtype=float).drop(columns="tq_0")
-                 .drop(columns="tq_1")]
+        parts = [
+            pd.get_dummies(jg, drop_first=False, dtype=float),
+            pd.get_dummies(jt, drop_first=False, dtype=float).drop(columns=[f"{r}:1" for r in NAMES]),
+            pd.get_dummies(f["quarter"].where(tgt, 0), prefix="tq", dtype=float)
+            .drop(columns="tq_0")
+            .drop(columns="tq_1"),
+        ]
     else:
         d["treated"] = treated.astype(float)
-        parts = [pd.get_dummies(f["region"], dtype=float),
-                 pd.get_dummies(f["quarter"], prefix="q", drop_first=True, dtype=float)]
+        parts = [
+            pd.get_dummies(f["region"], dtype=float),
+            pd.get_dummies(f["quarter"], prefix="q", drop_first=True, dtype=float),
+        ]
     return pd.concat([d] + parts, axis=1)
 
 
@@ -69,8 +81,7 @@ def test_weighted_least_squares_equals_statsmodels_wls(tmp_path, rng, ddd):
     ls = cross_check(cells, full=False)
     X = _dummies(f, ddd)
     assert np.linalg.matrix_rank(X.to_numpy()) == X.shape[1]
-    ref = sm.WLS(f["y"], X, weights=f["w"]).fit(cov_type="cluster",
-                                                 cov_kwds={"groups": pd.factorize(f["region"])[0]})
+    ref = sm.WLS(f["y"], X, weights=f["w"]).fit(cov_type="cluster", cov_kwds={"groups": pd.factorize(f["region"])[0]})
     classical = sm.WLS(f["y"], X, weights=f["w"]).fit()
     assert ls["estimate"] == pytest.approx(ref.params["treated"], rel=1e-8, abs=1e-10)
     assert ls["se_cr1"] == pytest.approx(ref.bse["treated"], rel=1e-8)
@@ -88,7 +99,7 @@ def test_hajek_means_kish_sizes_and_att_weights(tmp_path, rng):
     c = f.groupby(["region", "quarter"])
     sw = c["w"].sum()
     hajek = (f["w"] * f["y"]).groupby([f.region, f.quarter]).sum() / sw
-    kish = sw ** 2 / (f["w"] ** 2).groupby([f.region, f.quarter]).sum()
+    kish = sw**2 / (f["w"] ** 2).groupby([f.region, f.quarter]).sum()
     j = cells.jurisdictions.index("Brindle")
     np.testing.assert_allclose(cells.mean[j, 0], hajek.loc["Brindle"].to_numpy(), rtol=1e-12)
     np.testing.assert_allclose(cells.n[j, 0], kish.loc["Brindle"].to_numpy(), rtol=1e-12)
@@ -109,8 +120,7 @@ def test_equal_weights_give_the_unweighted_cell_means(tmp_path, rng):
     np.testing.assert_allclose(a.ss, b.ss, rtol=1e-10, atol=1e-12)
 
 
-@pytest.mark.parametrize("value,match", [(-1.0, "positive, finite"), (0.0, "positive, finite"),
-                                         (np.nan, "missing")])
+@pytest.mark.parametrize("value,match", [(-1.0, "positive, finite"), (0.0, "positive, finite"), (np.nan, "missing")])
 def test_bad_weights_named(tmp_path, rng, value, match):
     f = _rows(rng, ddd=False)
     f.loc[4, "w"] = value
@@ -120,8 +130,7 @@ def test_bad_weights_named(tmp_path, rng, value, match):
 
 
 def test_weights_refused_where_not_supported(tmp_path):
-    base = dict(table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS,
-                weight="w")
+    base = dict(table="x.csv", outcome="y", jurisdiction="region", period="quarter", adopters=ADOPTERS, weight="w")
     with pytest.raises(StudyError, match="family 'gaussian' only"):
         make_study(family="poisson", exposure="t", **base)
     with pytest.raises(StudyError, match="model.covariates"):
@@ -139,8 +148,9 @@ def test_weights_recover_the_population_att_of_the_bench_survey():
     for s in range(20):
         f, starts, truth = weighted_rows(s, rows_per_cell=100)
         for kind, store in (("w", ew), (None, eu)):
-            st = make_study(table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts,
-                            weight=kind)
+            st = make_study(
+                table="x.csv", outcome="y", jurisdiction="region", period="period", adopters=starts, weight=kind
+            )
             store.append(cross_check(collapse(st, f if kind else f.drop(columns="w")), full=False)["estimate"] - truth)
     mcse = np.std(ew, ddof=1) / np.sqrt(len(ew))
     assert abs(np.mean(ew)) < 3 * mcse

@@ -16,15 +16,21 @@ from bayesdid.simulate import Scenario, simulate
 def _cells(tmp_path, frame, truth, ddd=True):
     p = tmp_path / "t.csv"
     frame.to_csv(p, index=False)
-    st = make_study(table=p, outcome="y", jurisdiction="region", period="period",
-                    group="group" if ddd else None, target_group="target" if ddd else None,
-                    adopters=truth["starts"])
+    st = make_study(
+        table=p,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters=truth["starts"],
+    )
     return collapse(st, frame)
 
 
 def _treat(frame, truth, ddd):
     start = frame["region"].map(truth["starts"]).fillna(10**9)
-    d = (frame["period"] >= start)
+    d = frame["period"] >= start
     if ddd:
         d &= frame["group"] == "target"
     return d.astype(float)

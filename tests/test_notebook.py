@@ -17,9 +17,19 @@ from bayesdid.simulate import Scenario, simulate
 @pytest.fixture(scope="module")
 def result():
     frame, truth = simulate(Scenario(jurisdictions=10, periods=6, starts={0: 4}, rows_per_cell=8, tau=-0.3), 3)
-    study = bayesdid.make_study(table=frame, outcome="y", jurisdiction="region", period="period", group="group",
-                                target_group="target", adopters=truth["starts"], draws=150, tune=150, seed=9,
-                                wording={"policy": "the walk-in pilot", "outcome": "clinic visits"})
+    study = bayesdid.make_study(
+        table=frame,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        draws=150,
+        tune=150,
+        seed=9,
+        wording={"policy": "the walk-in pilot", "outcome": "clinic visits"},
+    )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return bn.fit(study), frame
@@ -32,8 +42,15 @@ def test_a_data_frame_is_a_table_with_its_own_hash(result):
     assert m["data_sha256"].startswith(m["table"].removeprefix("in-memory:"))
     changed = frame.copy()
     changed.loc[0, "y"] += 1.0
-    other = bayesdid.make_study(table=changed, outcome="y", jurisdiction="region", period="period", group="group",
-                                target_group="target", adopters={"Aldmoor": 5})
+    other = bayesdid.make_study(
+        table=changed,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters={"Aldmoor": 5},
+    )
     assert str(other.table) != m["table"]  # another frame, another identity
 
 

@@ -85,11 +85,16 @@ def test_the_same_check_and_message_from_the_file_the_api_and_the_command_line(t
     (tmp_path / "t.csv").write_text("region,period,y\nA,1,1\n")
     kw = dict(table=tmp_path / "t.csv", outcome="y", jurisdiction="region", period="period", adopters={"A": 2})
     study = tmp_path / "s.toml"
-    study.write_text('[data]\ntable = "t.csv"\noutcome = "y"\njurisdiction = "region"\nperiod = "period"\n'
-                     '[policy]\nadopters = { "A" = 2 }\n[sampler]\ndraws = 0\n')
+    study.write_text(
+        '[data]\ntable = "t.csv"\noutcome = "y"\njurisdiction = "region"\nperiod = "period"\n'
+        '[policy]\nadopters = { "A" = 2 }\n[sampler]\ndraws = 0\n'
+    )
     messages = []
-    for make in (lambda: load_study(study), lambda: make_study(**kw, draws=0),
-                 lambda: make_study(**kw).replace(sampler={"draws": 0})):
+    for make in (
+        lambda: load_study(study),
+        lambda: make_study(**kw, draws=0),
+        lambda: make_study(**kw).replace(sampler={"draws": 0}),
+    ):
         with pytest.raises(StudyError) as info:
             make()
         messages.append(str(info.value))

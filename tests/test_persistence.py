@@ -7,6 +7,7 @@ import warnings
 
 import numpy as np
 import pytest
+from conftest import sim_study
 from scipy import stats
 
 from bayesdid import make_study
@@ -16,8 +17,6 @@ from bayesdid.model.gaussian import NP, cell_arrays, jt_loglik, jt_loglik_ar1
 from bayesdid.model.structure import gap_structure, resolve_gap
 from bayesdid.model.terms import model_spec
 from bayesdid.simulate import Scenario, simulate
-
-from conftest import sim_study
 
 
 def _rows(rng, J, G, T, empty=(), target=1):
@@ -44,11 +43,20 @@ def _cells(rows, J, G, T, weight=None, start=None):
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(n > 0, s1 / np.maximum(n, 1), 0.0)
     ss = s2 - n * mean**2
-    return Cells(jurisdictions=tuple(f"J{j}" for j in range(J)),
-                 groups=("ref", "tgt") if G == 2 else ("all",), periods=tuple(range(T)),
-                 design="DDD" if G == 2 else "DiD", target=G - 1,
-                 start=np.asarray(start if start is not None else [T] * J), n=n, sum_y=s1, sum_y2=s2, ss=ss,
-                 rows=len(rows), weight=weight)
+    return Cells(
+        jurisdictions=tuple(f"J{j}" for j in range(J)),
+        groups=("ref", "tgt") if G == 2 else ("all",),
+        periods=tuple(range(T)),
+        design="DDD" if G == 2 else "DiD",
+        target=G - 1,
+        start=np.asarray(start if start is not None else [T] * J),
+        n=n,
+        sum_y=s1,
+        sum_y2=s2,
+        ss=ss,
+        rows=len(rows),
+        weight=weight,
+    )
 
 
 def _row_level(rows, m, sig, s_sd, sg, rho, G, weight):
@@ -115,9 +123,14 @@ def test_rho_zero_is_the_independent_model_bit_for_bit(G):
     S = 5  # draws, as the netCDF writer evaluates them
     m = rng.normal(0, 0.5, (S, J, G, T))
     sg = rng.uniform(0.1, 1.0, (S, 1, 1))
-    kw = dict(m_r=m[:, :, 0, :], m_q=m[:, :, G - 1, :], sigma_r=rng.uniform(0.5, 2, (S, 1, 1)),
-              sigma_q=rng.uniform(0.5, 2, (S, 1, 1)),
-              sigma_shock=rng.uniform(0.1, 1, (S, 1, 1)) if G == 2 else np.zeros((S, 1, 1)), sigma_gap=sg)
+    kw = dict(
+        m_r=m[:, :, 0, :],
+        m_q=m[:, :, G - 1, :],
+        sigma_r=rng.uniform(0.5, 2, (S, 1, 1)),
+        sigma_q=rng.uniform(0.5, 2, (S, 1, 1)),
+        sigma_shock=rng.uniform(0.1, 1, (S, 1, 1)) if G == 2 else np.zeros((S, 1, 1)),
+        sigma_gap=sg,
+    )
     if G == 1:
         kw["m_r"], kw["sigma_r"] = np.zeros((S, 1, 1)), np.ones((S, 1, 1))
     a = jt_loglik_ar1(d, rho=np.zeros((S, 1, 1)), **kw)
@@ -130,8 +143,16 @@ def test_rho_zero_is_the_independent_model_bit_for_bit(G):
 def _study(tmp_path, frame, truth, **kw):
     path = tmp_path / "t.csv"
     frame.to_csv(path, index=False)
-    return make_study(table=path, outcome="y", jurisdiction="region", period="period", group="group",
-                      target_group="target", adopters=truth["starts"], **kw)
+    return make_study(
+        table=path,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        **kw,
+    )
 
 
 def test_switch_and_fallback_recorded(tmp_path):
@@ -166,8 +187,16 @@ def test_rho_recovered_on_simulated_panel(tmp_path_factory):
     """A DiD panel whose jurisdiction-period noise is AR(1) with rho 0.7 (gap-dominated cells):
     the posterior of rho covers the truth and excludes 0. One data set, a fixed seed; the
     posterior sd of rho here is about 0.05 (40 jurisdictions x 12 periods)."""
-    sc = Scenario(jurisdictions=40, periods=12, groups=1, starts={0: 6}, gap_sd=0.2, gap_rho=0.7,
-                  rows_per_cell=60, residual_sd=0.5)
+    sc = Scenario(
+        jurisdictions=40,
+        periods=12,
+        groups=1,
+        starts={0: 6},
+        gap_sd=0.2,
+        gap_rho=0.7,
+        rows_per_cell=60,
+        residual_sd=0.5,
+    )
     st, cells, _, _ = sim_study(tmp_path_factory, sc, 5, "rho", draws=400, tune=400, seed=3)
     from bayesdid import analyse
 
@@ -228,8 +257,15 @@ def test_castle_one_row_per_cell_fits_cleanly(tmp_path, castle_one_adopter):
     df, adopter = castle_one_adopter
     p = tmp_path / "castle.csv"
     df.to_csv(p, index=False)
-    st = make_study(table=p, outcome="homicide", jurisdiction="state", period="year", log_outcome=True,
-                    adopters={adopter: 2006}, seed=12)
+    st = make_study(
+        table=p,
+        outcome="homicide",
+        jurisdiction="state",
+        period="year",
+        log_outcome=True,
+        adopters={adopter: 2006},
+        seed=12,
+    )
     an = analyse(st, full_cross_check=False)
     s = an.summary()
     assert s["model"]["residual_sd"]["separate"] is False and s["model"]["residual_sd"]["within_cell_df"] == 0
@@ -325,14 +361,14 @@ def test_trend_multiples_refused_when_negative(tmp_path):
     study_file = tmp_path / "s.toml"
     study_file.write_text(f"""
 [data]
-table = "{tmp_path / 't.csv'}"
+table = "{tmp_path / "t.csv"}"
 outcome = "y"
 jurisdiction = "region"
 period = "period"
 group = "group"
 [policy]
 target_group = "target"
-adopters = {{ "{next(iter(truth['starts']))}" = 4 }}
+adopters = {{ "{next(iter(truth["starts"]))}" = 4 }}
 [trends]
 multiples = [0, -0.5]
 """)
@@ -357,17 +393,35 @@ def _graph_point_fit(model, cells, rng):
 
     ip = model.initial_point()
     point = {k: v + rng.normal(0, 0.4, np.shape(v)) for k, v in ip.items()}
-    names = [n for n in ("baseline", "period_effect", "group_period_effect", "tau_adopter", "sigma", "sigma_gap",
-                         "sigma_shock", "rho", "gap_drift", "effect_deviation") if n in model.named_vars]
+    names = [
+        n
+        for n in (
+            "baseline",
+            "period_effect",
+            "group_period_effect",
+            "tau_adopter",
+            "sigma",
+            "sigma_gap",
+            "sigma_shock",
+            "rho",
+            "gap_drift",
+            "effect_deviation",
+        )
+        if n in model.named_vars
+    ]
     outs = model.replace_rvs_by_values([model[n] for n in names])
     fn = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore", point_fn=True)
     vals = dict(zip(names, fn(point)))
-    logp = model.compile_fn(model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars,
-                            on_unused_input="ignore", point_fn=True)(point)
-    scales = {n[len("prior_"):]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
+    logp = model.compile_fn(
+        model.logp(vars=[model["cells"]], sum=True), inputs=model.value_vars, on_unused_input="ignore", point_fn=True
+    )(point)
+    scales = {n[len("prior_") :]: float(model[n].get_value()) for n in model.named_vars if n.startswith("prior_")}
     spec = model_spec(cells)
-    return SimpleNamespace(cells=cells, spec=spec, scales=scales,
-                           draws=lambda n: np.asarray(vals[n])[None, ...]), float(logp), vals
+    return (
+        SimpleNamespace(cells=cells, spec=spec, scales=scales, draws=lambda n: np.asarray(vals[n])[None, ...]),
+        float(logp),
+        vals,
+    )
 
 
 @pytest.mark.slow  # compiles PyTensor functions (about a minute each on a shared machine)
@@ -389,9 +443,16 @@ def test_numpy_twin_matches_the_model_graph(tmp_path, kind):
     path = tmp_path / "t.csv"
     frame.to_csv(path, index=False)
     ddd = sc.groups == 2
-    st = make_study(table=path, outcome="y", jurisdiction="region", period="period", group="group" if ddd else None,
-                    target_group="target" if ddd else None, adopters=truth["starts"],
-                    gap_over_time="independent" if kind == "ddd_independent" else None)
+    st = make_study(
+        table=path,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if ddd else None,
+        target_group="target" if ddd else None,
+        adopters=truth["starts"],
+        gap_over_time="independent" if kind == "ddd_independent" else None,
+    )
     if kind == "ddd_drift":
         st = st.replace(model={"gap_drift": True})
     cells = collapse(st, frame)

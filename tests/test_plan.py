@@ -14,20 +14,42 @@ import pandas as pd
 import pytest
 
 from bayesdid.cli import main
-from bayesdid.plan import (Layout, load_plan, make_plan, normal_assurance, plan_tasks, progress_path, run_plan,
-                           simulate_cells, simulate_noise)
+from bayesdid.plan import (
+    Layout,
+    load_plan,
+    make_plan,
+    normal_assurance,
+    plan_tasks,
+    progress_path,
+    run_plan,
+    simulate_cells,
+    simulate_noise,
+)
 
 # One adopter starting at period 5 of 8 (T0 = T1 = 4), 29 comparisons, 20 rows per cell, residual sd 1,
 # gap noise sd 0.1: v = 0.01 + 1/20 = 0.06, V = v (1/4 + 1/4)(1 + 1/29), sqrt(V) = 0.176.
 DID = {
     "title": "Invented plan: a DiD in Valmora's regions",
-    "layout": {"design": "DiD", "comparisons": 29, "periods": 8, "starts": [5], "rows_per_cell": 20,
-               "period_name": "quarter"},
+    "layout": {
+        "design": "DiD",
+        "comparisons": 29,
+        "periods": 8,
+        "starts": [5],
+        "rows_per_cell": 20,
+        "period_name": "quarter",
+    },
     "noise": {"gap": 0.1, "residual": 1.0, "baseline": 0.3, "period": 0.1},
     "effects": {"values": [0.0, -0.2, -1.0]},
     "decision": {"threshold": 0.0, "level": 0.9, "direction": "below"},
-    "simulation": {"reps": 50, "seed": 1603, "draws": 200, "tune": 200, "chains": 2, "placebos": 199,
-                   "gap_over_time": "independent"},  # the normal approximation's assumption: independent noise
+    "simulation": {
+        "reps": 50,
+        "seed": 1603,
+        "draws": 200,
+        "tune": 200,
+        "chains": 2,
+        "placebos": 199,
+        "gap_over_time": "independent",
+    },  # the normal approximation's assumption: independent noise
 }
 SQRT_V = math.sqrt((0.1**2 + 1 / 20) * 0.5 * (1 + 1 / 29))
 
@@ -55,6 +77,7 @@ def with_(raw: dict, sec: str, **kw) -> dict:
 
 # ---- the normal approximation itself (no fits) ---------------------------------------------------
 
+
 def test_normal_formula_values():
     plan = make_plan(DID)
     lay = plan.layouts[0]
@@ -67,11 +90,13 @@ def test_normal_formula_values():
     from scipy import stats
 
     assert normal_assurance(plan, lay, -0.2)["assurance"] == pytest.approx(
-        stats.norm.cdf(0.2 / SQRT_V - stats.norm.ppf(0.9)), rel=1e-12)
+        stats.norm.cdf(0.2 / SQRT_V - stats.norm.ppf(0.9)), rel=1e-12
+    )
     # DDD with equal residual sds: both groups' sampling noise enters the gap
     ddd = make_plan(with_(DID, "layout", design="DDD"))
     assert normal_assurance(ddd, ddd.layouts[0], 0.0)["sd"] == pytest.approx(
-        math.sqrt((0.01 + 2 / 20) * 0.5 * (1 + 1 / 29)), rel=1e-12)
+        math.sqrt((0.01 + 2 / 20) * 0.5 * (1 + 1 / 29)), rel=1e-12
+    )
     assert normal_assurance(make_plan(with_(DID, "noise", rho=0.5)), lay, 0.0)["assurance"] is None
 
 
@@ -94,8 +119,9 @@ def test_simulated_cells_have_the_stated_variance_components():
 def test_ar1_gap_noise_has_the_stated_correlation_and_sd():
     plan = make_plan(with_(DID, "noise", rho=0.7, gap=0.5, residual=0.01, period=0.0, baseline=0.0))
     rng = np.random.default_rng(3)
-    e = np.concatenate([simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng)["ybar"][:, 0, :]
-                        for _ in range(300)])  # 9,000 jurisdictions x 8 periods of gap noise (+ 0.01/sqrt 20)
+    e = np.concatenate(
+        [simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng)["ybar"][:, 0, :] for _ in range(300)]
+    )  # 9,000 jurisdictions x 8 periods of gap noise (+ 0.01/sqrt 20)
     # stationary AR(1): sd 0.5 in every period, correlation 0.7 at lag 1 and 0.49 at lag 2
     # (tolerances: a few standard errors of a variance or correlation over 9,000 series)
     assert e.std(axis=0) == pytest.approx(np.full(8, 0.5), rel=0.04)
@@ -154,6 +180,7 @@ def test_layout_grid_and_frame():
 
 
 # ---- fits ----------------------------------------------------------------------------------------
+
 
 @pytest.fixture(scope="session")
 def did_result():
@@ -233,13 +260,18 @@ def test_shifted_draws_agree_with_refits(did_result):
 @pytest.mark.slow
 def test_shifted_draws_agree_with_refits_two_adopters():
     """Several adopters: the weights use the prior of their mean effect (sd^2 = s_e^2 + sigma_tau^2 / A)."""
-    raw = {"layout": {"design": "DDD", "comparisons": 8, "periods": 6, "starts": [4, 5], "rows_per_cell": 20},
-           "noise": {"gap": 0.1, "residual": 1.0},
-           "effects": {"values": [0.0, -0.3]}, "decision": {"threshold": 0.0, "level": 0.9},
-           "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0}}
+    raw = {
+        "layout": {"design": "DDD", "comparisons": 8, "periods": 6, "starts": [4, 5], "rows_per_cell": 20},
+        "noise": {"gap": 0.1, "residual": 1.0},
+        "effects": {"values": [0.0, -0.3]},
+        "decision": {"threshold": 0.0, "level": 0.9},
+        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0},
+    }
     shift = {(r["effect"], r["rep"]): r for r in run_plan(make_plan(raw), workers=1)["rows"]}
-    refit = {(r["effect"], r["rep"]): r for r in
-             run_plan(make_plan(with_(raw, "simulation", method="refit")), workers=1)["rows"]}
+    refit = {
+        (r["effect"], r["rep"]): r
+        for r in run_plan(make_plan(with_(raw, "simulation", method="refit")), workers=1)["rows"]
+    }
     for i in range(3):
         a, b = shift[(-0.3, i)], refit[(-0.3, i)]
         assert a["method"] == "shift" and b["method"] == "refit"
@@ -262,8 +294,15 @@ def test_command_writes_its_folder_resumes_and_shares_one_structure(tmp_path, di
     assert sample.COMPILES["count"] - before <= 1  # four layouts, one structure
     printed = capsys.readouterr().out
     assert "With one adopter, nine comparisons and two quarters after the start (counting the start)" in printed
-    for f in ("plan.json", "assurance.csv", "false_decision.csv", "reps.csv", "assurance.png", "report.html",
-              "manifest.json"):
+    for f in (
+        "plan.json",
+        "assurance.csv",
+        "false_decision.csv",
+        "reps.csv",
+        "assurance.png",
+        "report.html",
+        "manifest.json",
+    ):
         assert (out / f).is_file(), f
     assert not progress_path(out).exists()
     s = json.loads((out / "plan.json").read_text())
@@ -295,26 +334,46 @@ def test_noise_from_a_pilot_run_folder(tmp_path, did_result, capsys):
     """A pilot fitted by `bayesdid fit`: its posterior gives the noise; a DDD plan refuses the DiD pilot."""
     from bayesdid.simulate import Scenario, simulate
 
-    frame, truth = simulate(Scenario(jurisdictions=30, periods=8, groups=1, starts={0: 4}, rows_per_cell=20,
-                                     gap_sd=0.2, residual_sd=1.0), 11)
+    frame, truth = simulate(
+        Scenario(jurisdictions=30, periods=8, groups=1, starts={0: 4}, rows_per_cell=20, gap_sd=0.2, residual_sd=1.0),
+        11,
+    )
     (tmp_path / "pilot.csv").write_text(frame.to_csv(index=False))
     adopters = ", ".join(f'"{k}" = {v}' for k, v in truth["starts"].items())
     (tmp_path / "pilot.toml").write_text(
         'title = "invented pilot"\n[data]\ntable = "pilot.csv"\noutcome = "y"\njurisdiction = "region"\n'
-        f'period = "period"\n[policy]\nadopters = {{ {adopters} }}\n[sampler]\ndraws = 150\ntune = 150\n')
-    assert main(["fit", str(tmp_path / "pilot.toml"), "--out", str(tmp_path / "pilot"), "--draws", "150",
-                 "--tune", "150", "--quiet", "--no-cross-check"]) == 0
+        f'period = "period"\n[policy]\nadopters = {{ {adopters} }}\n[sampler]\ndraws = 150\ntune = 150\n'
+    )
+    assert (
+        main(
+            [
+                "fit",
+                str(tmp_path / "pilot.toml"),
+                "--out",
+                str(tmp_path / "pilot"),
+                "--draws",
+                "150",
+                "--tune",
+                "150",
+                "--quiet",
+                "--no-cross-check",
+            ]
+        )
+        == 0
+    )
     base = {k: v for k, v in DID.items() if k != "noise"}
-    ddd = write_plan_file(tmp_path / "ddd.toml", {**with_(base, "layout", design="DDD"),
-                                                  "noise": {"run": "pilot"}})
+    ddd = write_plan_file(tmp_path / "ddd.toml", {**with_(base, "layout", design="DDD"), "noise": {"run": "pilot"}})
     capsys.readouterr()
     assert main(["plan", ddd, "--out", str(tmp_path / "x"), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert "noise.run" in err and "DiD" in err and "DDD" in err
     assert not (tmp_path / "x").exists()
 
-    plan = load_plan(write_plan_file(tmp_path / "did.toml", {**with_(base, "simulation", reps=4, placebos=0),
-                                                              "noise": {"run": "pilot"}}))
+    plan = load_plan(
+        write_plan_file(
+            tmp_path / "did.toml", {**with_(base, "simulation", reps=4, placebos=0), "noise": {"run": "pilot"}}
+        )
+    )
     assert plan.noise.source == "run folder"
     res = run_plan(plan, workers=1)
     gaps = [r["gap_sd_true"] for r in res["rows"]]
@@ -324,12 +383,17 @@ def test_noise_from_a_pilot_run_folder(tmp_path, did_result, capsys):
 
     # the pilot table itself (a study file): refused for another design, else fitted once for the noise
     capsys.readouterr()
-    ddd_pilot = write_plan_file(tmp_path / "ddd_pilot.toml", {**with_(base, "layout", design="DDD"),
-                                                              "noise": {"pilot": "pilot.toml"}})
+    ddd_pilot = write_plan_file(
+        tmp_path / "ddd_pilot.toml", {**with_(base, "layout", design="DDD"), "noise": {"pilot": "pilot.toml"}}
+    )
     assert main(["plan", ddd_pilot, "--out", str(tmp_path / "y"), "--quiet"]) == 2
     assert "noise.pilot" in capsys.readouterr().err and not (tmp_path / "y").exists()
-    plan = load_plan(write_plan_file(tmp_path / "did_pilot.toml", {**with_(base, "simulation", reps=3, placebos=0),
-                                                                    "noise": {"pilot": "pilot.toml"}}))
+    plan = load_plan(
+        write_plan_file(
+            tmp_path / "did_pilot.toml",
+            {**with_(base, "simulation", reps=3, placebos=0), "noise": {"pilot": "pilot.toml"}},
+        )
+    )
     assert plan.noise.source == "pilot table" and plan.noise.draws is None
     res = run_plan(plan, workers=1)
     s = res["summary"]["plan"]["noise"]
@@ -357,8 +421,7 @@ def test_permutation_reuses_the_design_of_a_layout_exactly():
     designs: dict = {}
     for lay in plan.layouts:
         for effect in (0.0, -0.4):
-            cells = simulate_cells(plan, lay, simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng),
-                                   effect)
+            cells = simulate_cells(plan, lay, simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng), effect)
             a = permutation_test(cells, placebos=19, seed=3, designs=designs)
             b = permutation_test(cells, placebos=19, seed=3)
             assert a["estimate"] == pytest.approx(b["estimate"], abs=1e-12)

@@ -20,10 +20,15 @@ README = (ROOT / "README.md").read_text(encoding="utf-8")
 CODE = {p: p.read_text(encoding="utf-8") for p in (ROOT / "bayesdid").rglob("*.py") if p.name != "study.py"}
 
 #: (section, key) -> pattern of the code that reads the setting (outside study.py)
-READ_BY = {("", "title"): r"\.title\b", ("data", "table"): r"study\.table\b",
-           ("data", "period_order"): r"\.period_order\b", ("data", "summary"): r"study\.summary\b",
-           ("policy", "adopters"): r"policy\.adopters\b", ("policy", "target_group"): r"\.target_group\b",
-           ("checks", "placebo_lag"): r"\.placebo_lag\b"}
+READ_BY = {
+    ("", "title"): r"\.title\b",
+    ("data", "table"): r"study\.table\b",
+    ("data", "period_order"): r"\.period_order\b",
+    ("data", "summary"): r"study\.summary\b",
+    ("policy", "adopters"): r"policy\.adopters\b",
+    ("policy", "target_group"): r"\.target_group\b",
+    ("checks", "placebo_lag"): r"\.placebo_lag\b",
+}
 for _k in ("outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials", "weight", "count", "sd", "se"):
     READ_BY[("data", _k)] = rf"\b(columns|cols|c)\.{_k}\b"
 for _k in STUDY_KEYS["model"]:
@@ -44,8 +49,18 @@ ALL = [(sec, k) for sec, keys in STUDY_KEYS.items() for k in keys]
 
 
 def documented(section: str, key: str) -> bool:
-    pats = [rf"`{re.escape(section)}\.{key}`", rf"\b{re.escape(section)}\.{key}\b", rf"`{key}`",
-            rf"^\s*{key}\s*=", rf"`{key} = ", rf"\[{re.escape(section)}\]`?,? `?{key}\b"] if section else [rf"^\s*{key}\s*="]
+    pats = (
+        [
+            rf"`{re.escape(section)}\.{key}`",
+            rf"\b{re.escape(section)}\.{key}\b",
+            rf"`{key}`",
+            rf"^\s*{key}\s*=",
+            rf"`{key} = ",
+            rf"\[{re.escape(section)}\]`?,? `?{key}\b",
+        ]
+        if section
+        else [rf"^\s*{key}\s*="]
+    )
     return any(re.search(p, README, flags=re.M) for p in pats)
 
 

@@ -5,11 +5,11 @@ from __future__ import annotations
 
 import pytest
 
+from bayesdid.cells import collapse
 from bayesdid.model.terms import resolve_scales
 from bayesdid.sample import COMPILES, fit_cells
 from bayesdid.simulate import Scenario, simulate
 from bayesdid.study import SamplerSettings, make_study
-from bayesdid.cells import collapse
 
 pytestmark = pytest.mark.slow
 
@@ -20,8 +20,9 @@ def test_reused_model_takes_new_labels(tmp_path):
     for tag, seed in (("A", 1), ("B", 1)):  # same numbers, new labels: the same ModelSpec
         names = [f"{tag}-region-{i}" for i in range(6)]
         frame, truth = simulate(sc, seed, names=names)
-        st = make_study(table=tmp_path / "x.csv", outcome="y", jurisdiction="region", period="period",
-                        adopters=truth["starts"])
+        st = make_study(
+            table=tmp_path / "x.csv", outcome="y", jurisdiction="region", period="period", adopters=truth["starts"]
+        )
         cells = collapse(st, frame)
         scales = {k: v["scale"] for k, v in resolve_scales(cells, st.priors).items()}
         before = COMPILES["count"]

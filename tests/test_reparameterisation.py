@@ -16,19 +16,17 @@ from __future__ import annotations
 import numpy as np
 import pymc as pm
 import pytest
+from conftest import sim_study
 from scipy import stats
 
 from bayesdid.model.registry import build_model
 from bayesdid.model.terms import default_scales, zero_sum_basis
 from bayesdid.simulate import Scenario
 
-from conftest import sim_study
-
 
 @pytest.fixture(scope="module")
 def three_adopters(tmp_path_factory):
-    sc = Scenario(jurisdictions=12, periods=6, groups=2, starts={0: 3, 1: 4, 2: 3}, tau=-0.1,
-                  rows_per_cell=20)
+    sc = Scenario(jurisdictions=12, periods=6, groups=2, starts={0: 3, 1: 4, 2: 3}, tau=-0.1, rows_per_cell=20)
     _, cells, _, _ = sim_study(tmp_path_factory, sc, 3, "reparam")
     scales = default_scales(cells)
     model, _ = build_model(cells, scales)
@@ -42,10 +40,16 @@ def test_adopter_effects_prior_is_the_textbook_one_exactly(three_adopters):
     A = len(cells.adopters)
     se, sa = scales["effect"], scales["adopter_spread"]
     names = ["tau_adopter_mean", "z_tau_contrast", "u_tau", "sigma_tau"]
-    logps = model.compile_fn([model.logp(vars=[model[n] for n in names], sum=True)],
-                             inputs=[model.rvs_to_values[model[n]] for n in names], on_unused_input="ignore")
-    det = model.compile_fn(model.replace_rvs_by_values([model["tau_adopter"], model["tau"]]),
-                           inputs=[model.rvs_to_values[model[n]] for n in names], on_unused_input="ignore")
+    logps = model.compile_fn(
+        [model.logp(vars=[model[n] for n in names], sum=True)],
+        inputs=[model.rvs_to_values[model[n]] for n in names],
+        on_unused_input="ignore",
+    )
+    det = model.compile_fn(
+        model.replace_rvs_by_values([model["tau_adopter"], model["tau"]]),
+        inputs=[model.rvs_to_values[model[n]] for n in names],
+        on_unused_input="ignore",
+    )
     rng = np.random.default_rng(11)
     Q = zero_sum_basis(A)
     for _ in range(5):
@@ -65,8 +69,12 @@ def test_adopter_effects_prior_is_the_textbook_one_exactly(three_adopters):
         log_jac = np.log(abs(np.linalg.det(J)))
         # The log-transform of sigma_tau contributes log(st) in both coordinate systems: PyMC adds it to
         # the log density of the value variable, and the textbook side is written in log sigma_tau too.
-        textbook = (stats.norm.logpdf(tau, 0, se) + stats.halfnorm.logpdf(st, scale=sa) + log_st
-                    + stats.norm.logpdf(tau_a, tau, st).sum())
+        textbook = (
+            stats.norm.logpdf(tau, 0, se)
+            + stats.halfnorm.logpdf(st, scale=sa)
+            + log_st
+            + stats.norm.logpdf(tau_a, tau, st).sum()
+        )
         assert lp - log_jac == pytest.approx(textbook, abs=1e-9)
 
 
@@ -75,8 +83,9 @@ def test_prior_draws_match_the_textbook_prior(three_adopters):
     cells, scales, model = three_adopters
     n = 4000
     with model:
-        prior = pm.sample_prior_predictive(draws=n, random_seed=5, var_names=["tau", "tau_adopter", "baseline",
-                                                                             "mu_group", "sigma_baseline"])
+        prior = pm.sample_prior_predictive(
+            draws=n, random_seed=5, var_names=["tau", "tau_adopter", "baseline", "mu_group", "sigma_baseline"]
+        )
     pr = prior["prior"]
     rng = np.random.default_rng(6)
     A = len(cells.adopters)
@@ -111,14 +120,28 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
     from bayesdid.simulate_families import CountScenario, simulate_family
 
     G = 2 if design == "DDD" else 1
-    frame, truth = simulate_family(CountScenario(family="poisson", jurisdictions=8, periods=4, groups=G,
-                                                 starts={0: 2}, rows_per_cell=10, covariates=False), 12)
-    study = make_study(table="t.csv", outcome="y", jurisdiction="region", period="period",
-                       group="group" if G == 2 else None, target_group="target" if G == 2 else None,
-                       adopters=truth["starts"], family="poisson", exposure="exposure")
+    frame, truth = simulate_family(
+        CountScenario(
+            family="poisson", jurisdictions=8, periods=4, groups=G, starts={0: 2}, rows_per_cell=10, covariates=False
+        ),
+        12,
+    )
+    study = make_study(
+        table="t.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group" if G == 2 else None,
+        target_group="target" if G == 2 else None,
+        adopters=truth["starts"],
+        family="poisson",
+        exposure="exposure",
+    )
     cells = collapse(study, frame)
     model, spec = build_model(cells, default_scales(cells), "poisson")
-    names = ["baseline", "gap", "mu_group", "sigma_baseline", "sigma_gap"] + (["shock", "sigma_shock"] if G == 2 else [])
+    names = ["baseline", "gap", "mu_group", "sigma_baseline", "sigma_gap"] + (
+        ["shock", "sigma_shock"] if G == 2 else []
+    )
     n = 3000
     with model:
         pr = pm.sample_prior_predictive(draws=n, random_seed=8, var_names=names)["prior"]
@@ -138,7 +161,9 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
             x = np.concatenate([xr, xq])
             one = np.ones((T, T))
             eye = np.eye(T)
-            cov = np.block([[sb**2 * one + ss**2 * eye, ss**2 * eye], [ss**2 * eye, sb**2 * one + (ss**2 + se**2) * eye]])
+            cov = np.block(
+                [[sb**2 * one + ss**2 * eye, ss**2 * eye], [ss**2 * eye, sb**2 * one + (ss**2 + se**2) * eye]]
+            )
         else:
             x = xq
             cov = sb**2 * np.ones((T, T)) + se**2 * np.eye(T)

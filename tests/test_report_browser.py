@@ -26,8 +26,9 @@ from bayesdid.report.words import headline_of
 CHROMIUM = find_chromium()
 if CHROMIUM is None:
     if os.environ.get("BAYESDID_REQUIRE_BROWSER") == "1":
-        raise RuntimeError("chromium is required (BAYESDID_REQUIRE_BROWSER=1) but not installed; "
-                           "run `apt-get install -y chromium`")
+        raise RuntimeError(
+            "chromium is required (BAYESDID_REQUIRE_BROWSER=1) but not installed; run `apt-get install -y chromium`"
+        )
     pytest.skip("chromium not installed (apt-get install -y chromium)", allow_module_level=True)
 
 #: Where the full-page screenshots are kept for inspection (runs/ is not tracked by git).
@@ -105,8 +106,10 @@ def test_script_named_jurisdiction_is_text_and_nothing_runs(tmp_path):
 def test_the_detectors_see_a_script_a_console_error_and_a_fetch(tmp_path):
     """Control: the same checks catch an unescaped name, an error and a network request."""
     page = tmp_path / "bad.html"
-    page.write_text("<!DOCTYPE html><html><body><p>Region <script>alert(1)</script></p>"
-                    "<script>console.error('boom')</script><img src='http://127.0.0.1:9/x.png'></body></html>")
+    page.write_text(
+        "<!DOCTYPE html><html><body><p>Region <script>alert(1)</script></p>"
+        "<script>console.error('boom')</script><img src='http://127.0.0.1:9/x.png'></body></html>"
+    )
     with Browser(CHROMIUM, timeout=30) as b:
         b.open(page)
         assert b.dialogs() == ["1"]

@@ -36,8 +36,13 @@ def test_full_run_has_every_section_figure_and_table(e2e_run):
     summary = json.loads((run / "summary.json").read_text())
     outcome = json.loads((run / "manifest.json").read_text())["study"]["data"]["outcome"]
     assert html.escape(headline(summary, outcome=f"the outcome ({outcome})").split(";")[0], quote=True) in text
-    for label in ("cluster-robust s.e. (CR1)", "p-value, wild cluster bootstrap",
-                  "p-value, placebo-in-space permutation", "largest R-hat", "first treated period"):
+    for label in (
+        "cluster-robust s.e. (CR1)",
+        "p-value, wild cluster bootstrap",
+        "p-value, placebo-in-space permutation",
+        "largest R-hat",
+        "first treated period",
+    ):
         assert label in text
 
 

@@ -12,27 +12,35 @@ def test_clear_effect_states_direction_interval_and_probabilities():
     s = fake_summary("clear")
     assert evidence(s) == "clear"
     text = headline(s, outcome="emergency visits", policy="the cap")
-    assert text == ("Across the two adopting jurisdictions the cap lowered emergency visits by 7% as a central "
-                    "estimate (90% interval 2% to 12% lower); the probability of any reduction is 98%, "
-                    "of a reduction larger than 5% is 74%.")
+    assert text == (
+        "Across the two adopting jurisdictions the cap lowered emergency visits by 7% as a central "
+        "estimate (90% interval 2% to 12% lower); the probability of any reduction is 98%, "
+        "of a reduction larger than 5% is 74%."
+    )
     assert "most likely" not in text  # the median is not a mode
 
 
 def test_flagged_checks_reach_the_headline():
     s = fake_summary("clear")
-    checks = {"pretrend": {"status": "flag", "reason": "drift"},
-              "comparison": {"status": "flag", "reason": "x", "offenders": [{"jurisdiction": "Ambermoor"}]},
-              "placebo_time": {"status": "ok", "reason": "fine"},
-              "event_time": {"status": "failed", "reason": "KeyError"},
-              "placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.077, "rank": 3, "n_placebos": 38}}
+    checks = {
+        "pretrend": {"status": "flag", "reason": "drift"},
+        "comparison": {"status": "flag", "reason": "x", "offenders": [{"jurisdiction": "Ambermoor"}]},
+        "placebo_time": {"status": "ok", "reason": "fine"},
+        "event_time": {"status": "failed", "reason": "KeyError"},
+        "placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.077, "rank": 3, "n_placebos": 38},
+    }
     text = headline(s, flags=check_flags(checks))
-    caution = text[text.index("Caution: "):]
+    caution = text[text.index("Caution: ") :]
     assert "pre-trend check" in caution and "Ambermoor" in caution
     assert "the event time check could not be completed" in caution
     assert "ranks 3 of 39 by size (permutation p = 0.077)" in caution
     assert "placebo in time" not in caution  # an ok check is not a caution
-    assert check_flags({"placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.02, "rank": 1,
-                                          "n_placebos": 38}}) == []
+    assert (
+        check_flags(
+            {"placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.02, "rank": 1, "n_placebos": 38}}
+        )
+        == []
+    )
 
 
 def test_null_effect_says_no_clear_effect_and_keeps_the_numbers():
@@ -75,8 +83,9 @@ def test_failed_diagnostics_with_a_null_interval_do_not_claim_an_effect():
 def test_an_increase_reads_as_raised_with_the_probability_of_an_increase():
     s = fake_summary("clear")
     e = s["effect_percent"]
-    e.update(median=0.07, eti_90=[0.02, 0.12], prob_gt_0=0.97, prob_lt_0=0.03, threshold=0.05,
-             prob_beyond_threshold=0.7)
+    e.update(
+        median=0.07, eti_90=[0.02, 0.12], prob_gt_0=0.97, prob_lt_0=0.03, threshold=0.05, prob_beyond_threshold=0.7
+    )
     text = headline(s)
     assert "raised the outcome by 7% as a central estimate (90% interval 2% to 12% higher)" in text
     assert "the probability of any increase is 97%, of an increase larger than 5% is 70%" in text
@@ -111,8 +120,15 @@ def test_count_outcome_headline_reads_the_rate_ratio_not_the_link_scale():
     s["model"] = {"family": "poisson"}
     s["effect"] = {**s["effect"], "median": -0.1234, "eti_90": [-0.2, -0.05]}  # log rate ratio (link scale)
     s["effect_natural"] = [
-        {"measure": "rate ratio", "median": 0.88, "eti_90": [0.81, 0.96], "prob_lt_1": 0.991, "prob_gt_1": 0.009,
-         "threshold": 0.95, "prob_beyond_threshold": 0.80},
+        {
+            "measure": "rate ratio",
+            "median": 0.88,
+            "eti_90": [0.81, 0.96],
+            "prob_lt_1": 0.991,
+            "prob_gt_1": 0.009,
+            "threshold": 0.95,
+            "prob_beyond_threshold": 0.80,
+        },
         {"measure": "rate difference per 1,000 units of exposure", "median": -3.1, "eti_90": [-5.2, -0.9]},
     ]
     text = headline(s, outcome="emergency visits")
@@ -125,25 +141,37 @@ def test_count_outcome_headline_reads_the_rate_ratio_not_the_link_scale():
 
 def test_the_study_wording_names_policy_outcome_unit_and_target(tmp_path):
     from bayesdid.errors import StudyError
+    from bayesdid.report.words import headline_of
     from bayesdid.study import make_study, study_to_dict
 
-    from bayesdid.report.words import headline_of
-
-    st = make_study(table="t.csv", outcome="oop_spend", jurisdiction="region", period="quarter", group="condition",
-                    target_group="chronic", adopters={"Norvale": 3},
-                    wording={"policy": "the copay cap", "outcome": "out-of-pocket spending",
-                             "target": "chronic-condition enrollees", "unit": "dollars"})
+    st = make_study(
+        table="t.csv",
+        outcome="oop_spend",
+        jurisdiction="region",
+        period="quarter",
+        group="condition",
+        target_group="chronic",
+        adopters={"Norvale": 3},
+        wording={
+            "policy": "the copay cap",
+            "outcome": "out-of-pocket spending",
+            "target": "chronic-condition enrollees",
+            "unit": "dollars",
+        },
+    )
     raw = study_to_dict(st)
     assert raw["wording"]["policy"] == "the copay cap"
     s = fake_summary("clear", percent=False)
     text = headline_of(s, raw)
-    assert ("the copay cap lowered out-of-pocket spending of chronic-condition enrollees by 0.7 dollars as a "
-            "central estimate") in text
+    assert (
+        "the copay cap lowered out-of-pocket spending of chronic-condition enrollees by 0.7 dollars as a "
+        "central estimate"
+    ) in text
     plain = headline_of(s, {"data": {"outcome": "oop_spend"}})
     assert "the policy lowered the outcome (oop_spend) by 0.7 (in the outcome's own units)" in plain
     with pytest.raises(StudyError, match=r"wording.outcome"):
-        make_study(table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2},
-                   wording={"outcome": 3})
+        make_study(table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2}, wording={"outcome": 3})
     with pytest.raises(StudyError, match=r"unknown key"):
-        make_study(table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2},
-                   wording={"colour": "teal"})
+        make_study(
+            table="t.csv", outcome="y", jurisdiction="j", period="t", adopters={"a": 2}, wording={"colour": "teal"}
+        )

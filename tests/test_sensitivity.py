@@ -59,7 +59,11 @@ def test_defaults_do_not_flag_tau_or_variances(demo_default):
     assert s["flagged"] == []
     assert s.get("expected", []) in ([], ["sigma_tau"])
     assert s["ok"] is True
-    assert np.isfinite(tau["joint_prior"]) and tau["joint_diagnosis"] in ("ok", "prior_data_conflict", "prior_dominates")
+    assert np.isfinite(tau["joint_prior"]) and tau["joint_diagnosis"] in (
+        "ok",
+        "prior_data_conflict",
+        "prior_dominates",
+    )
 
 
 def test_tight_misplaced_prior_on_tau_is_flagged(demo_tight):
@@ -95,8 +99,15 @@ def test_log_prior_matches_pymc_densities(demo_default):
     assert "z_baseline" not in lp and "z_tau" not in lp
 
 
-@pytest.mark.parametrize("p,lik,code", [(0.1, 0.1, "prior_data_conflict"), (0.1, 0.01, "prior_dominates"),
-                                      (0.01, 0.2, "ok"), (0.01, 0.01, "weak_both"),
-                                      (float("nan"), 0.1, "not_applicable")])
+@pytest.mark.parametrize(
+    "p,lik,code",
+    [
+        (0.1, 0.1, "prior_data_conflict"),
+        (0.1, 0.01, "prior_dominates"),
+        (0.01, 0.2, "ok"),
+        (0.01, 0.01, "weak_both"),
+        (float("nan"), 0.1, "not_applicable"),
+    ],
+)
 def test_diagnosis_reading(p, lik, code):
     assert diagnosis(p, lik)[0] == code

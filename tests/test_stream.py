@@ -31,16 +31,25 @@ def parts(tmp_path_factory):
     (d / "parts").mkdir()
     k = len(shuffled) // 5
     for i in range(5):  # parts of unequal content: labels first seen in different files
-        part = shuffled.iloc[i * k:(i + 1) * k if i < 4 else len(shuffled)]
-        pq.write_table(pa.Table.from_pandas(part, preserve_index=False), d / "parts" / f"part-{i}.parquet",
-                       row_group_size=97)
+        part = shuffled.iloc[i * k : (i + 1) * k if i < 4 else len(shuffled)]
+        pq.write_table(
+            pa.Table.from_pandas(part, preserve_index=False), d / "parts" / f"part-{i}.parquet", row_group_size=97
+        )
     frame.to_csv(d / "all.csv", index=False)
     return d, frame, truth
 
 
 def _study(table, truth, **kw):
-    return make_study(table=table, outcome="y", jurisdiction="region", period="period", group="group",
-                      target_group="target", adopters=truth["starts"], **kw)
+    return make_study(
+        table=table,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        **kw,
+    )
 
 
 @pytest.mark.parametrize("log", [False, True])
@@ -82,8 +91,11 @@ def test_parquet_files_disagreeing_on_types_refused(parts, tmp_path):
     pq.write_table(pa.Table.from_pandas(frame.iloc[:500], preserve_index=False), tmp_path / "p" / "a.parquet")
     other = frame.iloc[500:].assign(period=frame["period"].iloc[500:].astype(str))
     pq.write_table(pa.Table.from_pandas(other, preserve_index=False), tmp_path / "p" / "b.parquet")
-    with pytest.raises(DataRoleError, match=r"files of the table disagree on the type of column 'period': int64 in "
-                                            r"'.*a.parquet' but string in '.*b.parquet'"):
+    with pytest.raises(
+        DataRoleError,
+        match=r"files of the table disagree on the type of column 'period': int64 in "
+        r"'.*a.parquet' but string in '.*b.parquet'",
+    ):
         collapse_stream(_study(str(tmp_path / "p"), truth))
 
 
@@ -91,18 +103,31 @@ def test_parquet_files_disagreeing_on_columns_refused(parts, tmp_path):
     d, frame, truth = parts
     (tmp_path / "p").mkdir()
     pq.write_table(pa.Table.from_pandas(frame.iloc[:500], preserve_index=False), tmp_path / "p" / "a.parquet")
-    pq.write_table(pa.Table.from_pandas(frame.iloc[500:].rename(columns={"y": "spend"}), preserve_index=False),
-                   tmp_path / "p" / "b.parquet")
+    pq.write_table(
+        pa.Table.from_pandas(frame.iloc[500:].rename(columns={"y": "spend"}), preserve_index=False),
+        tmp_path / "p" / "b.parquet",
+    )
     with pytest.raises(DataRoleError, match=r"file '.*b.parquet' of the table lacks column\(s\) \['y'\]"):
         collapse_stream(_study(str(tmp_path / "p"), truth))
 
 
 def test_stream_refuses_shapes_it_cannot_carry(parts):
     d, _, truth = parts
-    st = make_study(table=str(d / "parts"), outcome="y", jurisdiction="region", period="period", group="group",
-                    target_group="target", adopters=truth["starts"], covariates="period")
-    with pytest.raises(DataRoleError, match="streaming collapse takes observation rows without covariates, "
-                                            "weights or units .* this study has covariates"):
+    st = make_study(
+        table=str(d / "parts"),
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        covariates="period",
+    )
+    with pytest.raises(
+        DataRoleError,
+        match="streaming collapse takes observation rows without covariates, "
+        "weights or units .* this study has covariates",
+    ):
         collapse_stream(st)
 
 
@@ -142,12 +167,17 @@ def test_cli_bad_folder_exit_2_nothing_written(parts, tmp_path, capsys):
     d, frame, truth = parts
     (tmp_path / "p").mkdir()
     pq.write_table(pa.Table.from_pandas(frame.iloc[:500], preserve_index=False), tmp_path / "p" / "a.parquet")
-    pq.write_table(pa.Table.from_pandas(frame.iloc[500:].assign(y=frame["y"].iloc[500:].astype(str)),
-                                        preserve_index=False), tmp_path / "p" / "b.parquet")
+    pq.write_table(
+        pa.Table.from_pandas(frame.iloc[500:].assign(y=frame["y"].iloc[500:].astype(str)), preserve_index=False),
+        tmp_path / "p" / "b.parquet",
+    )
     study = tmp_path / "study.toml"
-    study.write_text(f'[data]\ntable = "p"\noutcome = "y"\njurisdiction = "region"\nperiod = "period"\n'
-                     f'group = "group"\n[policy]\ntarget_group = "target"\nadopters = {json.dumps(truth["starts"])}\n'
-                     .replace('{"', '{ "').replace('": ', '" = '))
+    study.write_text(
+        f'[data]\ntable = "p"\noutcome = "y"\njurisdiction = "region"\nperiod = "period"\n'
+        f'group = "group"\n[policy]\ntarget_group = "target"\nadopters = {json.dumps(truth["starts"])}\n'.replace(
+            '{"', '{ "'
+        ).replace('": ', '" = ')
+    )
     out = tmp_path / "run"
     assert main(["fit", str(study), "--out", str(out), "--quiet"]) == 2
     assert "disagree on the type of column 'y'" in capsys.readouterr().err

@@ -50,18 +50,21 @@ def read_csv(path):
 
 
 # ---- the sweep file --------------------------------------------------------------------------
-@pytest.mark.parametrize("body,match", [
-    ('colour = 1', r"unknown key\(s\) \['colour'\] at the top"),
-    ('[priors]\neffekt = [1.0]', r"unknown prior name\(s\) \['effekt'\].*allowed names"),
-    ('[priors]\neffect = [-1.0]', r"sweep key 'priors.effect': expected a list of positive numbers"),
-    ('[priors]\neffect = []', r"sweep key 'priors.effect': expected a non-empty list"),
-    ('[comparisons]\ndrop = [["Norvale"]]', r"'Norvale' adopts the policy"),
-    ('[comparisons]\ndrop = [["Atlantis"]]', r"comparisons.drop\[0\]'.*'Atlantis'"),
-    ('[comparisons]\nleave_one = true', r"unknown key\(s\) \['leave_one'\] in \[comparisons\]"),
-    ('combine = "all"', r"sweep key 'combine': expected 'one_at_a_time' or 'grid'"),
-    ('[[options]]\nlog_outcome = "yes"', r"variant 'model.log_outcome=yes' does not make a valid study"),
-    ('[[variant]]\nflavour = 1', r"unknown key\(s\) \['flavour'\] in \[\[variant\]\] number 1"),
-])
+@pytest.mark.parametrize(
+    "body,match",
+    [
+        ("colour = 1", r"unknown key\(s\) \['colour'\] at the top"),
+        ("[priors]\neffekt = [1.0]", r"unknown prior name\(s\) \['effekt'\].*allowed names"),
+        ("[priors]\neffect = [-1.0]", r"sweep key 'priors.effect': expected a list of positive numbers"),
+        ("[priors]\neffect = []", r"sweep key 'priors.effect': expected a non-empty list"),
+        ('[comparisons]\ndrop = [["Norvale"]]', r"'Norvale' adopts the policy"),
+        ('[comparisons]\ndrop = [["Atlantis"]]', r"comparisons.drop\[0\]'.*'Atlantis'"),
+        ("[comparisons]\nleave_one = true", r"unknown key\(s\) \['leave_one'\] in \[comparisons\]"),
+        ('combine = "all"', r"sweep key 'combine': expected 'one_at_a_time' or 'grid'"),
+        ('[[options]]\nlog_outcome = "yes"', r"variant 'model.log_outcome=yes' does not make a valid study"),
+        ("[[variant]]\nflavour = 1", r"unknown key\(s\) \['flavour'\] in \[\[variant\]\] number 1"),
+    ],
+)
 def test_sweep_file_errors_name_the_key(tmp_path, body, match):
     p = write(tmp_path, f'study = "{DEMO}"\n' + body)
     with pytest.raises(SweepError, match=match):
@@ -116,19 +119,32 @@ policy = {{ adopters = {{ "Bellcrest" = "2024Q3" }} }}
     assert "levels" in labels and "placebo in space: Bellcrest from 2024Q3" in labels
     plac = one.variants[labels.index("placebo in space: Bellcrest from 2024Q3")]
     assert plac.raw["policy"]["adopters"] == {"Bellcrest": "2024Q3"}
-    grid = load_sweep(write(tmp_path, body.replace('study =', 'combine = "grid"\nstudy ='), "grid.toml"))
+    grid = load_sweep(write(tmp_path, body.replace("study =", 'combine = "grid"\nstudy ='), "grid.toml"))
     assert len(grid.variants) == 1 + 2 * n_comp * 1 + 1
 
 
 # ---- verdict (no fitting) ----------------------------------------------------------------------
 def _r(i, mean, lo, hi, plt0, pb, status="done"):
-    return {"id": i, "label": i, "status": status, "effect_mean": mean, "effect_sd": 0.05, "eti90_low": lo,
-            "eti90_high": hi, "prob_lt_0": plt0, "prob_beyond_threshold": pb}
+    return {
+        "id": i,
+        "label": i,
+        "status": status,
+        "effect_mean": mean,
+        "effect_sd": 0.05,
+        "eti90_low": lo,
+        "eti90_high": hi,
+        "prob_lt_0": plt0,
+        "prob_beyond_threshold": pb,
+    }
 
 
 def test_verdict_finds_breaks_and_the_biggest_move():
-    rows = [_r("base", -0.13, -0.22, -0.04, 0.99, 0.9), _r("a", -0.12, -0.21, -0.03, 0.98, 0.85),
-            _r("b", -0.03, -0.12, 0.06, 0.7, 0.3), _r("c", 0, 0, 0, 0, 0, status="failed")]
+    rows = [
+        _r("base", -0.13, -0.22, -0.04, 0.99, 0.9),
+        _r("a", -0.12, -0.21, -0.03, 0.98, 0.85),
+        _r("b", -0.03, -0.12, 0.06, 0.7, 0.3),
+        _r("c", 0, 0, 0, 0, 0, status="failed"),
+    ]
     v = verdict(rows)
     checks = {c["check"]: c for c in v["checks"]}
     assert checks["sign"]["holds"] is True and checks["sign"]["held_by"] == 3
@@ -182,7 +198,9 @@ def test_serial_grid_one_compile_and_tables(serial_run):
     for v in plan.variants:
         assert variant_is_complete(out / "variants" / v.id, v.id)
         s = json.loads((out / "variants" / v.id / "summary.json").read_text())
-        assert s["priors"]["effect"]["scale"] == pytest.approx(v.raw["priors"].get("effect", s["priors"]["effect"]["scale"]))
+        assert s["priors"]["effect"]["scale"] == pytest.approx(
+            v.raw["priors"].get("effect", s["priors"]["effect"]["scale"])
+        )
         assert "sensitivity" in s
 
 
@@ -242,9 +260,13 @@ def test_sigkill_then_rerun_finishes_each_variant_once(serial_run, tmp_path):
     plan = load_sweep(plan_file)
     out = tmp_path / "killed"
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    proc = subprocess.Popen([sys.executable, "-m", "bayesdid.cli", "sweep", str(plan_file), "--out", str(out),
-                             "--serial", "--quiet"], env=env, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, start_new_session=True)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "bayesdid.cli", "sweep", str(plan_file), "--out", str(out), "--serial", "--quiet"],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+        start_new_session=True,
+    )
     deadline = time.time() + 1200
     try:
         while time.time() < deadline:

@@ -56,8 +56,13 @@ def _alive(pid: int) -> bool:
 def _write_case(d: Path) -> Path:
     rng = np.random.default_rng(3)
     names = ["Arvel", "Brisa", "Corran", "Dunmere"]
-    rows = [(j, g, t, float(rng.normal(10 + (g == "target") - 0.5 * (j == "Arvel" and g == "target" and t >= 3), 1)))
-            for j in names for g in ("other", "target") for t in range(1, 5) for _ in range(2)]
+    rows = [
+        (j, g, t, float(rng.normal(10 + (g == "target") - 0.5 * (j == "Arvel" and g == "target" and t >= 3), 1)))
+        for j in names
+        for g in ("other", "target")
+        for t in range(1, 5)
+        for _ in range(2)
+    ]
     pd.DataFrame(rows, columns=["region", "group", "period", "y"]).to_csv(d / "table.csv", index=False)
     (d / "study.toml").write_text("""
 [data]
@@ -74,8 +79,9 @@ draws = 19
 placebos = 3
 """)
     sweep = d / "sweep.toml"
-    sweep.write_text('study = "study.toml"\n[sampler]\nchains = 1\ndraws = 20\ntune = 20\nseed = 1\n'
-                     "[priors]\neffect = [0.3]\n")
+    sweep.write_text(
+        'study = "study.toml"\n[sampler]\nchains = 1\ndraws = 20\ntune = 20\nseed = 1\n[priors]\neffect = [0.3]\n'
+    )
     return sweep
 
 
@@ -84,8 +90,19 @@ placebos = 3
 def test_sigkill_of_the_main_process_takes_the_workers_along_and_the_rerun_completes(tmp_path, where):
     sweep = _write_case(tmp_path)
     out = tmp_path / "out"
-    cmd = [sys.executable, "-m", "bayesdid.cli", "sweep", str(sweep), "--out", str(out), "--workers", "2", *where,
-           "--quiet"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "bayesdid.cli",
+        "sweep",
+        str(sweep),
+        "--out",
+        str(out),
+        "--workers",
+        "2",
+        *where,
+        "--quiet",
+    ]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
     workers: set[int] = set()
     try:
@@ -131,8 +148,11 @@ def test_lock_of_a_dead_or_reused_pid_is_stale_and_a_live_one_refuses(tmp_path):
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
     pid = int(dead.stdout)
     lock = tmp_path / ".sweep.lock"
-    for body in (str(pid), json.dumps({"owner": owner_tag(pid)}),  # a dead owner (old and new formats)
-                 json.dumps({"owner": owner_tag(os.getppid()), "start": "1"})):  # a live pid, another start time
+    for body in (
+        str(pid),
+        json.dumps({"owner": owner_tag(pid)}),  # a dead owner (old and new formats)
+        json.dumps({"owner": owner_tag(os.getppid()), "start": "1"}),
+    ):  # a live pid, another start time
         lock.write_text(body)
         with _Lock(tmp_path):
             assert json.loads(lock.read_text())["owner"] == owner_tag()
@@ -163,17 +183,47 @@ def test_sigkill_of_a_sweep_on_an_external_cluster_stops_its_work_there(tmp_path
     bin_dir = Path(sys.executable).parent
     sched_file = tmp_path / "scheduler.json"
     logs = open(tmp_path / "cluster.log", "w")
-    started = [subprocess.Popen([bin_dir / "dask", "scheduler", "--host", "127.0.0.1", "--port", "0", "--no-dashboard",
-                                 "--scheduler-file", str(sched_file)], stdout=logs, stderr=logs,
-                                start_new_session=True)]
+    started = [
+        subprocess.Popen(
+            [
+                bin_dir / "dask",
+                "scheduler",
+                "--host",
+                "127.0.0.1",
+                "--port",
+                "0",
+                "--no-dashboard",
+                "--scheduler-file",
+                str(sched_file),
+            ],
+            stdout=logs,
+            stderr=logs,
+            start_new_session=True,
+        )
+    ]
     observer = None
     try:
         _wait_file(sched_file, 60)
         time.sleep(0.5)
         address = json.loads(sched_file.read_text())["address"]
-        started.append(subprocess.Popen([bin_dir / "dask", "worker", address, "--nthreads", "1", "--nworkers", "1",
-                                         "--no-dashboard", "--no-nanny"], stdout=logs, stderr=logs,
-                                        start_new_session=True))
+        started.append(
+            subprocess.Popen(
+                [
+                    bin_dir / "dask",
+                    "worker",
+                    address,
+                    "--nthreads",
+                    "1",
+                    "--nworkers",
+                    "1",
+                    "--no-dashboard",
+                    "--no-nanny",
+                ],
+                stdout=logs,
+                stderr=logs,
+                start_new_session=True,
+            )
+        )
         observer = Client(address, timeout="60s")
         observer.wait_for_workers(1, timeout=60)
 
@@ -182,8 +232,12 @@ def test_sigkill_of_a_sweep_on_an_external_cluster_stops_its_work_there(tmp_path
 
         sweep = _write_case(tmp_path)
         base = [sys.executable, "-m", "bayesdid.cli", "sweep"]
-        warm = subprocess.run(base + [str(sweep), "--out", str(tmp_path / "warm"), "--cluster", address, "--quiet"],
-                              capture_output=True, text=True, timeout=900)
+        warm = subprocess.run(
+            base + [str(sweep), "--out", str(tmp_path / "warm"), "--cluster", address, "--quiet"],
+            capture_output=True,
+            text=True,
+            timeout=900,
+        )
         assert warm.returncode == 0, warm.stderr
         long = tmp_path / "long.toml"
         long.write_text(sweep.read_text().replace("draws = 20\n", "draws = 20000\n"))
@@ -240,8 +294,12 @@ def test_a_task_dropped_by_the_scheduler_stops_even_when_its_sender_is_on_anothe
 
     from bayesdid.on_dask import on_dask
 
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None,
-                      silence_logs=40) as cluster, Client(cluster) as client:
+    with (
+        LocalCluster(
+            n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None, silence_logs=40
+        ) as cluster,
+        Client(cluster) as client,
+    ):
         far = {"owner": "some-other-machine-4242", "start": None}
         kept = client.submit(on_dask, _until_stopped, 1.0, far, pure=False)
         assert kept.result(timeout=30) == "ran to the end"  # not stopped while wanted

@@ -21,8 +21,13 @@ import pytest
 def _write_case(d: Path) -> Path:
     rng = np.random.default_rng(4)
     names = ["Arvel", "Brisa", "Corran", "Dunmere"]
-    rows = [(j, g, t, float(rng.normal(10 + (g == "target") - 0.5 * (j == "Arvel" and g == "target" and t >= 3), 1)))
-            for j in names for g in ("other", "target") for t in range(1, 5) for _ in range(2)]
+    rows = [
+        (j, g, t, float(rng.normal(10 + (g == "target") - 0.5 * (j == "Arvel" and g == "target" and t >= 3), 1)))
+        for j in names
+        for g in ("other", "target")
+        for t in range(1, 5)
+        for _ in range(2)
+    ]
     pd.DataFrame(rows, columns=["region", "group", "period", "y"]).to_csv(d / "table.csv", index=False)
     study = d / "study.toml"
     study.write_text("""
@@ -51,11 +56,19 @@ def test_a_cold_fit_writes_nothing_into_the_system_temporary_folder(tmp_path):
     study = _write_case(tmp_path)
     system_tmp, cache = tmp_path / "system-tmp", tmp_path / "cache"
     system_tmp.mkdir()
-    env = {k: v for k, v in os.environ.items()
-           if k not in ("PYTENSOR_FLAGS", "NUMBA_CACHE_DIR", "BAYESDID_CACHE_DIR", "XDG_CACHE_HOME")}
+    env = {
+        k: v
+        for k, v in os.environ.items()
+        if k not in ("PYTENSOR_FLAGS", "NUMBA_CACHE_DIR", "BAYESDID_CACHE_DIR", "XDG_CACHE_HOME")
+    }
     env.update(TMPDIR=str(system_tmp), TEMP=str(system_tmp), TMP=str(system_tmp), BAYESDID_CACHE_DIR=str(cache))
-    proc = subprocess.run([sys.executable, "-m", "bayesdid.cli", "fit", str(study), "--out", str(tmp_path / "run"),
-                           "--quiet"], env=env, capture_output=True, text=True, timeout=1200)
+    proc = subprocess.run(
+        [sys.executable, "-m", "bayesdid.cli", "fit", str(study), "--out", str(tmp_path / "run"), "--quiet"],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=1200,
+    )
     assert proc.returncode == 0, proc.stderr
     assert (tmp_path / "run" / "manifest.json").is_file()
     left = sorted(str(p.relative_to(system_tmp)) for p in system_tmp.rglob("*"))
@@ -74,8 +87,7 @@ def test_with_an_unwritable_cache_folder_the_private_compile_folder_goes_with_th
     blocker.write_text("not a folder")
     env = {k: v for k, v in os.environ.items() if k not in ("PYTENSOR_FLAGS", "NUMBA_CACHE_DIR", "XDG_CACHE_HOME")}
     env.update(TMPDIR=str(system_tmp), BAYESDID_CACHE_DIR=str(blocker / "cache"))
-    code = ("import os, bayesdid, pytensor; "
-            "d = pytensor.config.base_compiledir; print(d); assert os.path.isdir(d)")
+    code = "import os, bayesdid, pytensor; d = pytensor.config.base_compiledir; print(d); assert os.path.isdir(d)"
     proc = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr
     used = Path(proc.stdout.strip().splitlines()[-1])

@@ -33,8 +33,13 @@ def _analyze(out: Path, log: Path) -> tuple[float, dict]:
 
     env = {**os.environ, cachedir.ENV_VAR: str(cachedir.current().path), modelcache.LOG_ENV: str(log)}
     t0 = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "bayesdid.cli", "analyze", str(STUDY), "--out", str(out), "--quiet"],
-                          env=env, capture_output=True, text=True, cwd=ROOT)
+    proc = subprocess.run(
+        [sys.executable, "-m", "bayesdid.cli", "analyze", str(STUDY), "--out", str(out), "--quiet"],
+        env=env,
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+    )
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         raise RuntimeError(f"bayesdid analyze failed (exit {proc.returncode}): {proc.stderr[-2000:]}")
@@ -43,21 +48,39 @@ def _analyze(out: Path, log: Path) -> tuple[float, dict]:
     steps = {}
     summary = out / "summary.json"
     if summary.is_file():
-        steps.update({f"fit.{k}": round(v, 1) for k, v in json.loads(summary.read_text()).get("timing", {}).items()
-                      if isinstance(v, (int, float))})
+        steps.update(
+            {
+                f"fit.{k}": round(v, 1)
+                for k, v in json.loads(summary.read_text()).get("timing", {}).items()
+                if isinstance(v, (int, float))
+            }
+        )
     checks = out / "checks" / "checks.json"
     if checks.is_file():
-        steps.update({f"checks.{k}": round(v, 1) for k, v in json.loads(checks.read_text()).get("timing", {}).items()
-                      if isinstance(v, (int, float))})
-    return wall, {"wall_s": round(wall, 1), "compiles": sum(r["how"] == "compiled" for r in recs),
-                  "loads": sum(r["how"] == "loaded" for r in recs), "steps": steps}
+        steps.update(
+            {
+                f"checks.{k}": round(v, 1)
+                for k, v in json.loads(checks.read_text()).get("timing", {}).items()
+                if isinstance(v, (int, float))
+            }
+        )
+    return wall, {
+        "wall_s": round(wall, 1),
+        "compiles": sum(r["how"] == "compiled" for r in recs),
+        "loads": sum(r["how"] == "loaded" for r in recs),
+        "steps": steps,
+    }
 
 
 def bench_analyze(*, quick: bool = False) -> dict:
     from .. import cachedir
 
-    out = {"bench": "analyze", "quick": quick, "cache": str(cachedir.current().path),
-           "load_before": round(os.getloadavg()[0], 1)}
+    out = {
+        "bench": "analyze",
+        "quick": quick,
+        "cache": str(cachedir.current().path),
+        "load_before": round(os.getloadavg()[0], 1),
+    }
     with tempfile.TemporaryDirectory(prefix="bayesdid-bench-analyze-") as tmp:
         runs = [] if quick else ["first"]
         for name in [*runs, "warm"]:

@@ -15,10 +15,20 @@ from pathlib import Path
 __all__ = ["bench_calibration"]
 
 
-def bench_calibration(*, quick: bool = False, reps: int | None = None, scenario: str = "one_adopter",
-                      out: str | None = None, workers: int = 2, cluster: str | None = None,
-                      sbc_reps: int | None = None, draws: int | None = None, tune: int | None = None,
-                      seed: int = 20261202, replace: bool = False) -> dict:
+def bench_calibration(
+    *,
+    quick: bool = False,
+    reps: int | None = None,
+    scenario: str = "one_adopter",
+    out: str | None = None,
+    workers: int = 2,
+    cluster: str | None = None,
+    sbc_reps: int | None = None,
+    draws: int | None = None,
+    tune: int | None = None,
+    seed: int = 20261202,
+    replace: bool = False,
+) -> dict:
     from ..calibration import _scenario, run_calibration, write_calibration
     from ..run import atomic_folder
 
@@ -32,14 +42,29 @@ def bench_calibration(*, quick: bool = False, reps: int | None = None, scenario:
     target.parent.mkdir(parents=True, exist_ok=True)
     progress = target.with_name(f".{target.name}.reps.jsonl")  # reps so far; removed once DIR is written
     progress.unlink(missing_ok=True)
-    result = run_calibration(scenario=scenario, reps=reps, sbc_reps=sbc_reps, draws=draws, tune=tune,
-                             seed=seed, workers=workers, cluster=cluster, progress_path=progress)
+    result = run_calibration(
+        scenario=scenario,
+        reps=reps,
+        sbc_reps=sbc_reps,
+        draws=draws,
+        tune=tune,
+        seed=seed,
+        workers=workers,
+        cluster=cluster,
+        progress_path=progress,
+    )
     write_calibration(result, out, replace=replace)
     progress.unlink(missing_ok=True)
     s = result["summary"]
     cov = s["coverage"]
-    line = {"benchmark": "calibration", "scenario": scenario, "reps": reps, "sbc_reps": s["sbc_reps"],
-            "failed": len(s["failed"]), "out": str(Path(out))}
+    line = {
+        "benchmark": "calibration",
+        "scenario": scenario,
+        "reps": reps,
+        "sbc_reps": s["sbc_reps"],
+        "failed": len(s["failed"]),
+        "out": str(Path(out)),
+    }
     for m, res in cov.items():
         for lvl in ("50", "90", "95"):
             c = res.get(f"cover_{lvl}", {})

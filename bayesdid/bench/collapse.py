@@ -19,7 +19,7 @@ import numpy as np
 from ..cells import collapse_frame
 from ..data import check_roles
 from ..effects import att_weights
-from ..model.terms import hierarchical_mean, resolve_scales, coords_of
+from ..model.terms import coords_of, hierarchical_mean, resolve_scales
 from ..sample import compile_exact, fit_cells
 from ..simulate import Scenario, simulate
 from ..study import SamplerSettings, make_study
@@ -29,11 +29,25 @@ __all__ = ["bench_collapse"]
 
 def _study_cells(rows: int, seed: int):
     J, T = 40, 12
-    sc = Scenario(jurisdictions=J, periods=T, groups=2, starts={0: 6, 1: 8}, tau=-0.15,
-                  rows_per_cell=rows / (J * 2 * T), gap_sd=0.05)
+    sc = Scenario(
+        jurisdictions=J,
+        periods=T,
+        groups=2,
+        starts={0: 6, 1: 8},
+        tau=-0.15,
+        rows_per_cell=rows / (J * 2 * T),
+        gap_sd=0.05,
+    )
     frame, truth = simulate(sc, seed)
-    study = make_study(table="bench.csv", outcome="y", jurisdiction="region", period="period",
-                       group="group", target_group="target", adopters=truth["starts"])
+    study = make_study(
+        table="bench.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+    )
     checked = check_roles(study, frame)
     t0 = time.perf_counter()
     cells = collapse_frame(study, checked)
@@ -100,8 +114,16 @@ def bench_collapse(*, quick: bool = False, seed: int = 7, large: bool = False, r
     compiled = compile_exact(model)  # compiled as the cell model is
     compile_rows = time.perf_counter() - t0
     t0 = time.perf_counter()
-    tree = nutpie.sample(compiled, draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                         seed=settings.seed, progress_bar=False, save_warmup=False, target_accept=0.9)
+    tree = nutpie.sample(
+        compiled,
+        draws=settings.draws,
+        tune=settings.tune,
+        chains=settings.chains,
+        seed=settings.seed,
+        progress_bar=False,
+        save_warmup=False,
+        target_accept=0.9,
+    )
     t_rows = time.perf_counter() - t0
     ess_r, mean_r, sd_r = _ess_att(tree, cells)
 
@@ -114,16 +136,26 @@ def bench_collapse(*, quick: bool = False, seed: int = 7, large: bool = False, r
     mcse = np.sqrt(sd_c**2 / max(ess_c, 1) + sd_r**2 / max(ess_r, 1))
     return {
         "benchmark": "collapse",
-        "rows_small": int(cells.rows), "rows_large": int(big_cells.rows), "cells": int(cells.n_cells),
-        "draws": settings.draws, "tune": settings.tune, "chains": settings.chains,
-        "ess_per_s_cells": ess_c / t_cells_small, "ess_per_s_rows": ess_r / t_rows,
+        "rows_small": int(cells.rows),
+        "rows_large": int(big_cells.rows),
+        "cells": int(cells.n_cells),
+        "draws": settings.draws,
+        "tune": settings.tune,
+        "chains": settings.chains,
+        "ess_per_s_cells": ess_c / t_cells_small,
+        "ess_per_s_rows": ess_r / t_rows,
         "ess_per_s_ratio_cells_over_rows": (ess_c / t_cells_small) / (ess_r / t_rows),
         "target_ess_ratio": 30.0,
-        "att_mean_cells": mean_c, "att_mean_rows": mean_r,
+        "att_mean_cells": mean_c,
+        "att_mean_rows": mean_r,
         "att_mean_diff_in_mcse": abs(mean_c - mean_r) / mcse,
-        "sample_s_cells_small": t_cells_small, "sample_s_rows_small": t_rows, "compile_s_rows": compile_rows,
-        "sample_time_ratio_large_over_small": t_cells_large / t_cells_small, "target_time_ratio": 1.5,
-        "collapse_s_large": collapse_large, "target_collapse_s": 5.0,
+        "sample_s_cells_small": t_cells_small,
+        "sample_s_rows_small": t_rows,
+        "compile_s_rows": compile_rows,
+        "sample_time_ratio_large_over_small": t_cells_large / t_cells_small,
+        "target_time_ratio": 1.5,
+        "collapse_s_large": collapse_large,
+        "target_collapse_s": 5.0,
     }
 
 
@@ -131,8 +163,9 @@ def bench_collapse(*, quick: bool = False, seed: int = 7, large: bool = False, r
 LARGE_TARGETS = {"seconds": 90.0, "peak_gb": 3.0}
 
 
-def write_parquet_parts(folder, rows: int, *, parts: int = 20, seed: int = 7, jurisdictions: int = 40,
-                        periods: int = 12) -> dict:
+def write_parquet_parts(
+    folder, rows: int, *, parts: int = 20, seed: int = 7, jurisdictions: int = 40, periods: int = 12
+) -> dict:
     """Write ``rows`` invented DDD rows as ``parts`` Parquet files (text columns dictionary-encoded)."""
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -155,17 +188,23 @@ def write_parquet_parts(folder, rows: int, *, parts: int = 20, seed: int = 7, ju
         g = rng.integers(0, 2, size=k, dtype=np.int32)
         t = rng.integers(0, periods, size=k, dtype=np.int32)
         y = base[j, g, t] + rng.standard_normal(k)
-        table = pa.table({"region": pa.DictionaryArray.from_arrays(pa.array(j), names),
-                          "group": pa.DictionaryArray.from_arrays(pa.array(g), groups),
-                          "period": pa.array(t + 1, type=pa.int16()), "y": pa.array(y)})
+        table = pa.table(
+            {
+                "region": pa.DictionaryArray.from_arrays(pa.array(j), names),
+                "group": pa.DictionaryArray.from_arrays(pa.array(g), groups),
+                "period": pa.array(t + 1, type=pa.int16()),
+                "y": pa.array(y),
+            }
+        )
         pq.write_table(table, folder / f"part-{i:03d}.parquet", row_group_size=1 << 20)
         written += k
         del j, g, t, y, table
     return {"rows": written, "parts": parts, "adopters": {region_names(jurisdictions)[0]: 7}}
 
 
-def bench_collapse_large(*, rows: int = 200_000_000, quick: bool = False, folder: str | None = None,
-                         keep: bool = False) -> dict:
+def bench_collapse_large(
+    *, rows: int = 200_000_000, quick: bool = False, folder: str | None = None, keep: bool = False
+) -> dict:
     """Write a Parquet data set in parts, then stream-collapse it in a fresh process (time and peak
     memory by ``resource.getrusage``), and again on a Dask LocalCluster (2 workers): its cells must
     equal the local ones bit for bit."""
@@ -185,8 +224,18 @@ def bench_collapse_large(*, rows: int = 200_000_000, quick: bool = False, folder
     try:
         for kind, cluster in (("local", None), ("dask", "local")):
             out = root / f"{kind}.npz"
-            subprocess.run([sys.executable, "-m", "bayesdid.bench.large_child", str(data),
-                            json.dumps(meta["adopters"]), cluster or "", str(out)], check=True)
+            subprocess.run(
+                [
+                    sys.executable,
+                    "-m",
+                    "bayesdid.bench.large_child",
+                    str(data),
+                    json.dumps(meta["adopters"]),
+                    cluster or "",
+                    str(out),
+                ],
+                check=True,
+            )
             with np.load(out) as z:
                 res[kind] = {k: z[k] for k in z.files}
     finally:
@@ -197,11 +246,18 @@ def bench_collapse_large(*, rows: int = 200_000_000, quick: bool = False, folder
     peak_gb = float(loc["peak_kb"]) / 1024**2
     seconds = float(loc["seconds"])
     return {
-        "benchmark": "collapse-large", "rows": int(loc["rows"]), "parts": meta["parts"], "cores": os.cpu_count(),
-        "write_s": round(write_s, 1), "collapse_s": round(seconds, 2), "peak_gb": round(peak_gb, 3),
-        "rows_per_s": round(float(loc["rows"]) / seconds), "dask_collapse_s": round(float(dsk["seconds"]), 2),
+        "benchmark": "collapse-large",
+        "rows": int(loc["rows"]),
+        "parts": meta["parts"],
+        "cores": os.cpu_count(),
+        "write_s": round(write_s, 1),
+        "collapse_s": round(seconds, 2),
+        "peak_gb": round(peak_gb, 3),
+        "rows_per_s": round(float(loc["rows"]) / seconds),
+        "dask_collapse_s": round(float(dsk["seconds"]), 2),
         "dask_equals_local_bitwise": bool(equal),
-        "target_s": LARGE_TARGETS["seconds"], "target_peak_gb": LARGE_TARGETS["peak_gb"],
+        "target_s": LARGE_TARGETS["seconds"],
+        "target_peak_gb": LARGE_TARGETS["peak_gb"],
         "seconds_over_target": round(seconds / LARGE_TARGETS["seconds"], 3),
         "peak_over_target": round(peak_gb / LARGE_TARGETS["peak_gb"], 3),
     }

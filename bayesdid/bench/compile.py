@@ -136,11 +136,20 @@ def run_one(name: str) -> dict:
     for compiled, _, _ in sample._CACHE.values():
         if getattr(compiled, "logp_func", None) is not None:
             ops = len(compiled.logp_func.maker.fgraph.apply_nodes)
-    return {"model": name, "how": how, "compile_s": round(fit.timing["compile_s"], 2),
-            "cpu_s": round(time.process_time() - c0, 2), "sample_s": round(fit.timing["sample_s"], 2),
-            "ops_logp_grad": ops, "import_s": round(import_s, 2), "build_model_s": round(build_s, 2),
-            "stages": {k: round(v, 2) for k, v in sorted(stages.items())},
-            "draws": study.sampler.draws, "tune": study.sampler.tune, "chains": study.sampler.chains}
+    return {
+        "model": name,
+        "how": how,
+        "compile_s": round(fit.timing["compile_s"], 2),
+        "cpu_s": round(time.process_time() - c0, 2),
+        "sample_s": round(fit.timing["sample_s"], 2),
+        "ops_logp_grad": ops,
+        "import_s": round(import_s, 2),
+        "build_model_s": round(build_s, 2),
+        "stages": {k: round(v, 2) for k, v in sorted(stages.items())},
+        "draws": study.sampler.draws,
+        "tune": study.sampler.tune,
+        "chains": study.sampler.chains,
+    }
 
 
 def _child(args: list[str], cache: Path) -> tuple[subprocess.CompletedProcess, float]:
@@ -166,15 +175,32 @@ def bench_compile(*, quick: bool = False, models: tuple[str, ...] | None = None)
             cold = json.loads(cold_p.stdout.strip().splitlines()[-1])
             warm = json.loads(warm_p.stdout.strip().splitlines()[-1])
             out["models"][name] = {
-                "cold_compile_s": cold["compile_s"], "cold_how": cold["how"], "warm_compile_s": warm["compile_s"],
-                "warm_how": warm["how"], "sampling_s": warm["sample_s"], "ops_logp_grad": cold["ops_logp_grad"],
-                "cold_stages": cold["stages"], "warm_stages": warm["stages"],
-                "cold_process_wall_s": round(cold_wall, 1), "warm_process_wall_s": round(warm_wall, 1),
-                "build_model_s": cold["build_model_s"]}
+                "cold_compile_s": cold["compile_s"],
+                "cold_how": cold["how"],
+                "warm_compile_s": warm["compile_s"],
+                "warm_how": warm["how"],
+                "sampling_s": warm["sample_s"],
+                "ops_logp_grad": cold["ops_logp_grad"],
+                "cold_stages": cold["stages"],
+                "warm_stages": warm["stages"],
+                "cold_process_wall_s": round(cold_wall, 1),
+                "warm_process_wall_s": round(warm_wall, 1),
+                "build_model_s": cold["build_model_s"],
+            }
         if "demo" in names:
             run = Path(tmp) / "run"
-            _, wall = _child(["-m", "bayesdid.cli", "fit", str(ROOT / "case_files" / "copay_cap" / "study.toml"),
-                              "--out", str(run), "--quiet"], cache)
+            _, wall = _child(
+                [
+                    "-m",
+                    "bayesdid.cli",
+                    "fit",
+                    str(ROOT / "case_files" / "copay_cap" / "study.toml"),
+                    "--out",
+                    str(run),
+                    "--quiet",
+                ],
+                cache,
+            )
             out["fit_demo_warm_wall_s"] = round(wall, 1)
             timing = json.loads((run / "summary.json").read_text())["timing"]
             out["fit_demo_warm_timing"] = {k: round(v, 2) for k, v in timing.items()}

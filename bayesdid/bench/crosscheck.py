@@ -33,8 +33,16 @@ def _rows(n_rows: int, seed: int):
     from ..simulate import Scenario, simulate
 
     J, T, G = 40, 12, 2
-    sc = Scenario(jurisdictions=J, periods=T, groups=G, starts={0: 6, 1: 8},
-                  rows_per_cell=math.ceil(n_rows / (J * G * T)), tau=-0.05, gap_sd=0.05, fixed_cells=True)
+    sc = Scenario(
+        jurisdictions=J,
+        periods=T,
+        groups=G,
+        starts={0: 6, 1: 8},
+        rows_per_cell=math.ceil(n_rows / (J * G * T)),
+        tau=-0.05,
+        gap_sd=0.05,
+        fixed_cells=True,
+    )
     return simulate(sc, seed)
 
 
@@ -82,8 +90,15 @@ def bench_crosscheck(*, quick: bool = False, rows: int | None = None) -> dict:
     n_rows = rows or (200_000 if quick else 2_000_000)
     subs = (10_000, 20_000) if quick else (50_000, 100_000)
     frame, truth = _rows(n_rows, seed=20261202)
-    study = make_study(table="invented_bench.csv", outcome="y", jurisdiction="region", period="period",
-                       group="group", target_group="target", adopters=truth["starts"])
+    study = make_study(
+        table="invented_bench.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+    )
     t0 = time.perf_counter()
     cells = collapse_frame(study, frame)
     collapse_s = time.perf_counter() - t0
@@ -122,6 +137,6 @@ def bench_crosscheck(*, quick: bool = False, rows: int | None = None) -> dict:
         "ratio_statsmodels_over_crosscheck": round(peer_full / cc, 1),
         "ratio_statsmodels_over_collapse_plus_crosscheck": round(peer_full / (cc + collapse_s), 1),
         "scaling": "statsmodels timed on two random row subsamples and extrapolated to all rows, both along the "
-                   "line through the two timings and in proportion to the larger one; the smaller is used",
+        "line through the two timings and in proportion to the larger one; the smaller is used",
         "threads": "one BLAS thread on both sides",
     }

@@ -22,16 +22,28 @@ __all__ = ["bench_families"]
 def _study(frame, truth, family, covariates, **kw):
     from ..study import make_study
 
-    return make_study(table="bench.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                      target_group="target", adopters=truth["starts"], family=family, covariates=covariates,
-                      chains=2, seed=99, **kw)  # the default draws and tune, as a user runs it
+    return make_study(
+        table="bench.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+        family=family,
+        covariates=covariates,
+        chains=2,
+        seed=99,
+        **kw,
+    )  # the default draws and tune, as a user runs it
 
 
 def _gaussian_frame(rows_per_cell, seed):
     from ..simulate import Scenario, simulate
 
-    sc = Scenario(jurisdictions=20, periods=8, starts={0: 4, 1: 5}, rows_per_cell=rows_per_cell,
-                  fixed_cells=True, tau=-0.1)
+    sc = Scenario(
+        jurisdictions=20, periods=8, starts={0: 4, 1: 5}, rows_per_cell=rows_per_cell, fixed_cells=True, tau=-0.1
+    )
     frame, truth = simulate(sc, seed)
     rng = np.random.default_rng(seed + 1)
     for k, b in zip(("age", "income", "score"), (0.02, -0.1, 0.3)):
@@ -43,8 +55,14 @@ def _gaussian_frame(rows_per_cell, seed):
 def _count_frame(family, rows_per_cell, seed):
     from ..simulate_families import CountScenario, simulate_family
 
-    sc = CountScenario(family=family, jurisdictions=20, periods=8, starts={0: 4, 1: 5},
-                       rows_per_cell=rows_per_cell, level=(-1.5, -1.2) if family == "binomial" else (-2.0, -1.6))
+    sc = CountScenario(
+        family=family,
+        jurisdictions=20,
+        periods=8,
+        starts={0: 4, 1: 5},
+        rows_per_cell=rows_per_cell,
+        level=(-1.5, -1.2) if family == "binomial" else (-2.0, -1.6),
+    )
     return simulate_family(sc, seed)
 
 
@@ -61,9 +79,15 @@ def _time_one(family, frame, truth, covariates, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         fit = fit_cells(cells, scales, study.sampler, family=family)
-    return {"rows": len(frame), "collapse_s": collapse_s, "compile_s": fit.timing["compile_s"],
-            "sample_s": fit.timing["sample_s"], "records": int(len(cells.extra.get("records", {}).get("y", [])))
-            or cells.n_cells, "rhat_max": fit.diagnostics["rhat_max"], "divergences": fit.diagnostics["divergences"]}
+    return {
+        "rows": len(frame),
+        "collapse_s": collapse_s,
+        "compile_s": fit.timing["compile_s"],
+        "sample_s": fit.timing["sample_s"],
+        "records": int(len(cells.extra.get("records", {}).get("y", []))) or cells.n_cells,
+        "rhat_max": fit.diagnostics["rhat_max"],
+        "divergences": fit.diagnostics["divergences"],
+    }
 
 
 def bench_families(*, quick: bool = False, small: int | None = None, large: int | None = None) -> dict:

@@ -16,8 +16,15 @@ from ..study import make_study
 
 
 def run(folder: str, adopters: dict, cluster: str | None, out: str) -> None:
-    study = make_study(table=folder, outcome="y", jurisdiction="region", period="period", group="group",
-                       target_group="target", adopters=adopters)
+    study = make_study(
+        table=folder,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=adopters,
+    )
     t0 = time.perf_counter()
     cells, _ = collapse_stream(study, cluster=cluster)
     seconds = time.perf_counter() - t0

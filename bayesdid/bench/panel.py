@@ -31,8 +31,18 @@ UNITS_PER_CELL, UNIT_SD = 12, 2.0
 
 def panel_rows(seed: int):
     """Invented panel rows (one per unit and period) and the true ATT."""
-    sc = Scenario(jurisdictions=31, periods=8, groups=1, starts={0: 4}, rows_per_cell=UNITS_PER_CELL,
-                  fixed_cells=True, tau=-0.2, gap_sd=0.2, shock_sd=0.1, residual_sd=1.0)
+    sc = Scenario(
+        jurisdictions=31,
+        periods=8,
+        groups=1,
+        starts={0: 4},
+        rows_per_cell=UNITS_PER_CELL,
+        fixed_cells=True,
+        tau=-0.2,
+        gap_sd=0.2,
+        shock_sd=0.1,
+        residual_sd=1.0,
+    )
     frame, truth = simulate(sc, seed)
     # rows come cell by cell (jurisdiction-major, then period), UNITS_PER_CELL rows each: the k-th row
     # of every period of a jurisdiction is the same unit
@@ -44,8 +54,15 @@ def panel_rows(seed: int):
     return frame, truth["starts"], truth["tau"]
 
 
-def bench_panel(*, quick: bool = False, reps: int | None = None, seed: int = 20261204,
-                draws: int | None = None, tune: int | None = None, **_ignored) -> dict:
+def bench_panel(
+    *,
+    quick: bool = False,
+    reps: int | None = None,
+    seed: int = 20261204,
+    draws: int | None = None,
+    tune: int | None = None,
+    **_ignored,
+) -> dict:
     reps = reps if reps is not None else (4 if quick else 200)
     settings = dict(chains=2, draws=draws or (200 if quick else 500), tune=tune or (200 if quick else 500))
     t0 = time.perf_counter()
@@ -53,8 +70,14 @@ def bench_panel(*, quick: bool = False, reps: int | None = None, seed: int = 202
     for r in range(reps):
         frame, starts, truth = panel_rows(int(np.random.SeedSequence([seed, r]).generate_state(1)[0]))
         for kind in out if r % 4 == 0 else ("unit",):
-            study = make_study(table="invented.csv", outcome="y", jurisdiction="region", period="period",
-                               adopters=starts, unit="person" if kind == "unit" else None)
+            study = make_study(
+                table="invented.csv",
+                outcome="y",
+                jurisdiction="region",
+                period="period",
+                adopters=starts,
+                unit="person" if kind == "unit" else None,
+            )
             cells = collapse(study, frame)
             scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
             fit = fit_cells(cells, scales, SamplerSettings(seed=2000 + r, **settings))
@@ -62,8 +85,19 @@ def bench_panel(*, quick: bool = False, reps: int | None = None, seed: int = 202
             lo, hi = np.quantile(att, [0.025, 0.975])
             out[kind].append((lo <= truth <= hi, hi - lo, float(att.mean()) - truth))
             # one line per fit on stderr: a long run cut short still tells its reps
-            print(json.dumps({"rep": r, "kind": kind, "cover_95": bool(lo <= truth <= hi), "width_95": float(hi - lo),
-                              "error": float(att.mean()) - truth}), file=sys.stderr, flush=True)
+            print(
+                json.dumps(
+                    {
+                        "rep": r,
+                        "kind": kind,
+                        "cover_95": bool(lo <= truth <= hi),
+                        "width_95": float(hi - lo),
+                        "error": float(att.mean()) - truth,
+                    }
+                ),
+                file=sys.stderr,
+                flush=True,
+            )
     line = {"benchmark": "panel", "reps": reps, "pooled_reps": len(out["pooled"]), "draws": settings["draws"]}
     for kind, rows in out.items():
         p = float(np.mean([c for c, _, _ in rows]))

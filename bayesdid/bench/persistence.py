@@ -22,15 +22,16 @@ __all__ = ["bench_persistence"]
 CASES = ("copay_cap", "nurse_line")
 
 
-def bench_persistence(*, quick: bool = False, repeats: int | None = None, scenario: str | None = None,
-                      **_ignored) -> dict:
+def bench_persistence(
+    *, quick: bool = False, repeats: int | None = None, scenario: str | None = None, **_ignored
+) -> dict:
+    from .. import sample
     from ..cells import collapse
     from ..cli import case_dir
     from ..data import read_table
+    from ..errors import BayesDidError
     from ..model.terms import resolve_scales
     from ..sample import fit_cells
-    from .. import sample
-    from ..errors import BayesDidError
     from ..study import SamplerSettings, load_study
 
     case = scenario or "copay_cap"
@@ -49,8 +50,16 @@ def bench_persistence(*, quick: bool = False, repeats: int | None = None, scenar
     repeats = repeats if repeats is not None else (1 if quick else 3)
     n = 300 if quick else 1000
     family = study.model.family
-    out = {"benchmark": "persistence", "case": case, "family": family, "rows": len(frame), "repeats": repeats,
-           "draws": n, "tune": n, "chains": 2}
+    out = {
+        "benchmark": "persistence",
+        "case": case,
+        "family": family,
+        "rows": len(frame),
+        "repeats": repeats,
+        "draws": n,
+        "tune": n,
+        "chains": 2,
+    }
     forms = ("independent", "persistent")
     prepared = {}
     for form in forms:

@@ -32,8 +32,15 @@ def bench_placebo(*, quick: bool = False, fresh: int | None = None) -> dict:
     J, T = (12, 8) if quick else (40, 12)
     sc = Scenario(jurisdictions=J, periods=T, starts={0: T // 2}, rows_per_cell=50, tau=-0.1)
     frame, truth = simulate(sc, 2026)
-    study = make_study(table="bench.csv", outcome="y", jurisdiction="region", period="period", group="group",
-                       target_group="target", adopters=truth["starts"])
+    study = make_study(
+        table="bench.csv",
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        group="group",
+        target_group="target",
+        adopters=truth["starts"],
+    )
     cells = collapse(study, frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, study.priors).items()}
     settings = SamplerSettings(chains=2, draws=300 if quick else 500, tune=300 if quick else 500, seed=5)
@@ -58,9 +65,22 @@ def bench_placebo(*, quick: bool = False, fresh: int | None = None) -> dict:
         compile_s.append(f.timing["compile_s"])
     clear_cache()
     est = n * float(np.median(fresh_s))
-    return {"bench": "placebo", "quick": quick, "jurisdictions": J, "periods": T, "placebos": n,
-            "compiles_for_placebos": compiles_placebo, "placebo_s": round(placebo_s, 2),
-            "per_placebo_s": round(placebo_s / n, 3), "fresh_fits_timed": len(fresh_s),
-            "fresh_fit_s": [round(v, 2) for v in fresh_s], "fresh_compile_s": [round(v, 2) for v in compile_s],
-            "fresh_total_est_s": round(est, 1), "ratio": round(placebo_s / est, 4), "target_ratio": 0.25,
-            "draws": settings.draws, "tune": settings.tune, "chains": settings.chains}
+    return {
+        "bench": "placebo",
+        "quick": quick,
+        "jurisdictions": J,
+        "periods": T,
+        "placebos": n,
+        "compiles_for_placebos": compiles_placebo,
+        "placebo_s": round(placebo_s, 2),
+        "per_placebo_s": round(placebo_s / n, 3),
+        "fresh_fits_timed": len(fresh_s),
+        "fresh_fit_s": [round(v, 2) for v in fresh_s],
+        "fresh_compile_s": [round(v, 2) for v in compile_s],
+        "fresh_total_est_s": round(est, 1),
+        "ratio": round(placebo_s / est, 4),
+        "target_ratio": 0.25,
+        "draws": settings.draws,
+        "tune": settings.tune,
+        "chains": settings.chains,
+    }

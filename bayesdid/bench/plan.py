@@ -25,8 +25,9 @@ __all__ = ["bench_plan"]
 TARGET_S = 300.0
 
 
-def bench_plan(*, quick: bool = False, reps: int | None = None, workers: int = 2, cluster: str | None = None,
-               **_ignored) -> dict:
+def bench_plan(
+    *, quick: bool = False, reps: int | None = None, workers: int = 2, cluster: str | None = None, **_ignored
+) -> dict:
     root = Path(__file__).resolve().parents[2]
     src = (root / "case_files" / "copay_cap" / "plan.toml").read_text(encoding="utf-8")
     text = src.split("\n[vary]")[0] + "\n"  # the demo layout only ([vary] is the file's last section)
@@ -36,8 +37,20 @@ def bench_plan(*, quick: bool = False, reps: int | None = None, workers: int = 2
     with tempfile.TemporaryDirectory(prefix="bayesdid-bench-plan-") as tmp:
         tmp = Path(tmp)
         (tmp / "plan.toml").write_text(text, encoding="utf-8")
-        args = [sys.executable, "-m", "bayesdid.cli", "plan", str(tmp / "plan.toml"), "--out", str(tmp / "out"),
-                "--reps", str(n), "--workers", str(workers), "--quiet"]
+        args = [
+            sys.executable,
+            "-m",
+            "bayesdid.cli",
+            "plan",
+            str(tmp / "plan.toml"),
+            "--out",
+            str(tmp / "out"),
+            "--reps",
+            str(n),
+            "--workers",
+            str(workers),
+            "--quiet",
+        ]
         if cluster:
             args += ["--cluster", cluster]
         t0 = time.perf_counter()
@@ -49,14 +62,25 @@ def bench_plan(*, quick: bool = False, reps: int | None = None, workers: int = 2
     run = s["run"]
     per_worker = max(1, len(run["compiles_per_worker"]))
     compile_wall = run["compile_s_total"] / per_worker  # workers compile in parallel
-    return {"benchmark": "plan", "quick": quick, "reps": n, "effects": len(s["plan"]["effects"]),
-            "data_sets_x_effects": n * len(s["plan"]["effects"]), "workers": workers, "cpus": os.cpu_count(),
-            "load_avg_1min": os.getloadavg()[0], "method": s["plan"]["simulation"]["method"],
-            "fits": run["fits_now"], "compiles_per_worker": run["compiles_per_worker"],
-            "cache_loads_per_worker": run.get("cache_loads_per_worker"),
-            "wall_s": round(wall, 1), "target_s": TARGET_S, "ratio_wall_to_target": round(wall / TARGET_S, 3),
-            "compile_s_per_worker": round(compile_wall, 1),
-            "ratio_wall_without_compile_to_target": round((wall - compile_wall) / TARGET_S, 3),
-            "sample_s_per_fit_median": run["sample_s_per_fit_median"],
-            "assurance": {f"{r['effect']:g}": [r["assurance"], r["assurance_mcse"]] for r in s["assurance"]},
-            "permutation_power": {f"{r['effect']:g}": r["permutation_power"] for r in s["assurance"]}}
+    return {
+        "benchmark": "plan",
+        "quick": quick,
+        "reps": n,
+        "effects": len(s["plan"]["effects"]),
+        "data_sets_x_effects": n * len(s["plan"]["effects"]),
+        "workers": workers,
+        "cpus": os.cpu_count(),
+        "load_avg_1min": os.getloadavg()[0],
+        "method": s["plan"]["simulation"]["method"],
+        "fits": run["fits_now"],
+        "compiles_per_worker": run["compiles_per_worker"],
+        "cache_loads_per_worker": run.get("cache_loads_per_worker"),
+        "wall_s": round(wall, 1),
+        "target_s": TARGET_S,
+        "ratio_wall_to_target": round(wall / TARGET_S, 3),
+        "compile_s_per_worker": round(compile_wall, 1),
+        "ratio_wall_without_compile_to_target": round((wall - compile_wall) / TARGET_S, 3),
+        "sample_s_per_fit_median": run["sample_s_per_fit_median"],
+        "assurance": {f"{r['effect']:g}": [r["assurance"], r["assurance_mcse"]] for r in s["assurance"]},
+        "permutation_power": {f"{r['effect']:g}": r["permutation_power"] for r in s["assurance"]},
+    }

@@ -42,8 +42,10 @@ def bench_sweep(*, quick: bool = False, variants: int | None = None) -> dict:
     points = [(e, s) for e in effects for s in spreads][: n - 1]
     samp = "[sampler]\ndraws = 300\ntune = 300\n" if quick else ""
     lines = [f'study = "{study}"', samp]
-    lines += [f'[[variant]]\nlabel = "effect={e}, adopter_spread={s}"\npriors = {{ effect = {e}, adopter_spread = {s} }}'
-              for e, s in points]
+    lines += [
+        f'[[variant]]\nlabel = "effect={e}, adopter_spread={s}"\npriors = {{ effect = {e}, adopter_spread = {s} }}'
+        for e, s in points
+    ]
     env = dict(os.environ)
     env["PYTHONPATH"] = str(root) + os.pathsep + env.get("PYTHONPATH", "")
     with tempfile.TemporaryDirectory(prefix="bayesdid-bench-sweep-") as tmp:
@@ -56,10 +58,18 @@ def bench_sweep(*, quick: bool = False, variants: int | None = None) -> dict:
         t_fit = _run(fit_args, env)
         t_serial = _run(["sweep", str(sw), "--out", str(tmp / "serial"), "--serial", "--quiet"], env)
         t_pool = _run(["sweep", str(sw), "--out", str(tmp / "pool"), "--workers", "2", "--quiet"], env)
-        t_dask = _run(["sweep", str(sw), "--out", str(tmp / "dask"), "--workers", "2", "--cluster", "local",
-                       "--quiet"], env)
-    return {"benchmark": "sweep", "variants": n, "quick": quick, "cpus": os.cpu_count(),
-            "load_avg_1min": os.getloadavg()[0],
-            "fit_s": round(t_fit, 2), "ratio_serial_to_fit": round(t_serial / t_fit, 3),
-            "ratio_pool2_to_fit": round(t_pool / t_fit, 3), "ratio_dask2_to_fit": round(t_dask / t_fit, 3),
-            "target_ratio": 2.5}
+        t_dask = _run(
+            ["sweep", str(sw), "--out", str(tmp / "dask"), "--workers", "2", "--cluster", "local", "--quiet"], env
+        )
+    return {
+        "benchmark": "sweep",
+        "variants": n,
+        "quick": quick,
+        "cpus": os.cpu_count(),
+        "load_avg_1min": os.getloadavg()[0],
+        "fit_s": round(t_fit, 2),
+        "ratio_serial_to_fit": round(t_serial / t_fit, 3),
+        "ratio_pool2_to_fit": round(t_pool / t_fit, 3),
+        "ratio_dask2_to_fit": round(t_dask / t_fit, 3),
+        "target_ratio": 2.5,
+    }

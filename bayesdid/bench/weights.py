@@ -36,8 +36,17 @@ SAMPLED_B, POP_B, SHIFT_B, EXTRA_EFFECT_B = 0.8, 0.5, -0.25, 0.5
 
 def weighted_rows(seed: int, rows_per_cell: float = 30.0):
     """Invented weighted survey rows and the population ATT (see the module docstring)."""
-    sc = Scenario(jurisdictions=31, periods=8, groups=1, starts={0: 4}, rows_per_cell=rows_per_cell, tau=-0.2,
-                  gap_sd=0.2, shock_sd=0.1, residual_sd=1.0)
+    sc = Scenario(
+        jurisdictions=31,
+        periods=8,
+        groups=1,
+        starts={0: 4},
+        rows_per_cell=rows_per_cell,
+        tau=-0.2,
+        gap_sd=0.2,
+        shock_sd=0.1,
+        residual_sd=1.0,
+    )
     frame, truth = simulate(sc, seed)
     rng = np.random.default_rng([seed, 1])
     b = rng.random(len(frame)) < SAMPLED_B
@@ -53,8 +62,15 @@ def _share(flags) -> dict:
     return {"coverage": p, "mcse": math.sqrt(p * (1 - p) / len(flags))}
 
 
-def bench_weights(*, quick: bool = False, reps: int | None = None, seed: int = 20261203,
-                  draws: int | None = None, tune: int | None = None, **_ignored) -> dict:
+def bench_weights(
+    *,
+    quick: bool = False,
+    reps: int | None = None,
+    seed: int = 20261203,
+    draws: int | None = None,
+    tune: int | None = None,
+    **_ignored,
+) -> dict:
     reps = reps if reps is not None else (4 if quick else 200)
     settings = dict(chains=2, draws=draws or (200 if quick else 500), tune=tune or (200 if quick else 500))
     t0 = time.perf_counter()
@@ -62,8 +78,14 @@ def bench_weights(*, quick: bool = False, reps: int | None = None, seed: int = 2
     for r in range(reps):
         frame, starts, truth = weighted_rows(int(np.random.SeedSequence([seed, r]).generate_state(1)[0]))
         for kind in out if r % 4 == 0 else ("weighted",):
-            study = make_study(table="invented.csv", outcome="y", jurisdiction="region", period="period",
-                               adopters=starts, weight="w" if kind == "weighted" else None)
+            study = make_study(
+                table="invented.csv",
+                outcome="y",
+                jurisdiction="region",
+                period="period",
+                adopters=starts,
+                weight="w" if kind == "weighted" else None,
+            )
             cells = collapse(study, frame if kind == "weighted" else frame.drop(columns="w"))
             scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
             fit = fit_cells(cells, scales, SamplerSettings(seed=1000 + r, **settings))
@@ -71,8 +93,19 @@ def bench_weights(*, quick: bool = False, reps: int | None = None, seed: int = 2
             lo, hi = np.quantile(att, [0.025, 0.975])
             out[kind].append((lo <= truth <= hi, hi - lo, float(att.mean()) - truth))
             # one line per fit on stderr: a long run cut short still tells its reps
-            print(json.dumps({"rep": r, "kind": kind, "cover_95": bool(lo <= truth <= hi), "width_95": float(hi - lo),
-                              "error": float(att.mean()) - truth}), file=sys.stderr, flush=True)
+            print(
+                json.dumps(
+                    {
+                        "rep": r,
+                        "kind": kind,
+                        "cover_95": bool(lo <= truth <= hi),
+                        "width_95": float(hi - lo),
+                        "error": float(att.mean()) - truth,
+                    }
+                ),
+                file=sys.stderr,
+                flush=True,
+            )
     line = {"benchmark": "weights", "reps": reps, "unweighted_reps": len(out["unweighted"]), "draws": settings["draws"]}
     for kind, rows in out.items():
         cov = _share([c for c, _, _ in rows])

@@ -17,5 +17,16 @@ from .placebo import placebo_space_check, placebo_time_check
 from .pretrend import pretrend_check
 from .runner import CHECKS, CheckReport, run_checks, write_checks
 
-__all__ = ["CheckResult", "CHECKS", "CheckReport", "run_checks", "write_checks", "event_time_check",
-           "fit_event_time", "pretrend_check", "placebo_time_check", "placebo_space_check", "comparison_check"]
+__all__ = [
+    "CheckResult",
+    "CHECKS",
+    "CheckReport",
+    "run_checks",
+    "write_checks",
+    "event_time_check",
+    "fit_event_time",
+    "pretrend_check",
+    "placebo_time_check",
+    "placebo_space_check",
+    "comparison_check",
+]

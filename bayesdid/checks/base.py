@@ -17,8 +17,17 @@ import pandas as pd
 
 from ..cells import Cells
 
-__all__ = ["CheckResult", "not_applicable", "pre_weight", "earliest_start", "effect_weights",
-           "interval_row", "reseed", "STATUSES", "failed"]
+__all__ = [
+    "CheckResult",
+    "not_applicable",
+    "pre_weight",
+    "earliest_start",
+    "effect_weights",
+    "interval_row",
+    "reseed",
+    "STATUSES",
+    "failed",
+]
 
 STATUSES = ("ok", "flag", "not applicable", "failed")
 
@@ -40,9 +49,14 @@ class CheckResult:
             raise ValueError(f"status must be one of {STATUSES}, got {self.status!r}")
 
     def to_dict(self) -> dict:
-        return {"status": self.status, "reason": self.reason, "threshold": self.threshold,
-                "offenders": self.offenders, **self.details,
-                "tables": [f"{k}.csv" for k in self.tables]}
+        return {
+            "status": self.status,
+            "reason": self.reason,
+            "threshold": self.threshold,
+            "offenders": self.offenders,
+            **self.details,
+            "tables": [f"{k}.csv" for k in self.tables],
+        }
 
     def __str__(self) -> str:
         return f"{self.name}: {self.status} - {self.reason}"
@@ -54,9 +68,12 @@ def not_applicable(name: str, reason: str, threshold: dict | None = None) -> Che
 
 def failed(name: str, exc: BaseException) -> CheckResult:
     """The result of a check that raised: status "failed", the error named in the reason."""
-    return CheckResult(name=name, status="failed",
-                       reason=f"the check could not be completed: {type(exc).__name__}: {exc}",
-                       details={"error": type(exc).__name__})
+    return CheckResult(
+        name=name,
+        status="failed",
+        reason=f"the check could not be completed: {type(exc).__name__}: {exc}",
+        details={"error": type(exc).__name__},
+    )
 
 
 def earliest_start(cells: Cells) -> int:
@@ -76,7 +93,7 @@ def pre_weight(cells: Cells) -> np.ndarray:
     """
     w = cells.jt_weight().copy()
     for j in cells.adopters:
-        w[j, cells.start[j]:] = 0.0
+        w[j, cells.start[j] :] = 0.0
     return w
 
 
@@ -96,8 +113,13 @@ def interval_row(x: np.ndarray, prob: float = 0.9) -> dict:
     """mean, equal-tailed interval and P(> 0) of a scalar's draws (plot-table columns)."""
     x = np.asarray(x, dtype=float).ravel()
     lo, hi = np.quantile(x, [(1 - prob) / 2, 1 - (1 - prob) / 2])
-    return {"mean": float(np.mean(x)), "sd": float(np.std(x, ddof=1)) if x.size > 1 else 0.0,
-            "lower_90": float(lo), "upper_90": float(hi), "prob_gt_0": float(np.mean(x > 0))}
+    return {
+        "mean": float(np.mean(x)),
+        "sd": float(np.std(x, ddof=1)) if x.size > 1 else 0.0,
+        "lower_90": float(lo),
+        "upper_90": float(hi),
+        "prob_gt_0": float(np.mean(x > 0)),
+    }
 
 
 def reseed(settings, offset: int):

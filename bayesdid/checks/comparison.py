@@ -37,7 +37,7 @@ from ..model.gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
 from ..model.terms import mean_from_draws
 from ..sample import fit_cells
 from ..study import SamplerSettings
-from .base import CheckResult, reseed, earliest_start, effect_weights, frame, interval_row, not_applicable
+from .base import CheckResult, earliest_start, effect_weights, frame, interval_row, not_applicable, reseed
 
 __all__ = ["comparison_check", "gap_noise_draws", "Z_LIMIT"]
 
@@ -72,19 +72,24 @@ def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
     if getattr(fit.spec, "gap", "independent") == "persistent":
         # AR(1) gap noise: draw each jurisdiction's whole path jointly (forward filter, backward sampling)
         o = arr["p_q"][None] * arr["w"][None] + 0.0 * dq
-        return ar1_smoothing_draws(dq - k * dr, C + (s2 - k * s2), o, sg2, fit.draws("rho")[:, None, None],
-                                   rng.standard_normal(dq.shape))
+        return ar1_smoothing_draws(
+            dq - k * dr, C + (s2 - k * s2), o, sg2, fit.draws("rho")[:, None, None], rng.standard_normal(dq.shape)
+        )
     pq = arr["p_q"][None]
     mean = pq * sg2 * (dq - k * dr) / V
     var = np.maximum(sg2 - pq * sg2 * sg2 / V, 0.0)
     return mean + np.sqrt(var) * rng.standard_normal(mean.shape)
 
 
-def comparison_check(cells: Cells, scales: dict, settings: SamplerSettings, fit, *, family: str = "gaussian",
-                     refit: bool = True) -> CheckResult:
+def comparison_check(
+    cells: Cells, scales: dict, settings: SamplerSettings, fit, *, family: str = "gaussian", refit: bool = True
+) -> CheckResult:
     """Per comparison jurisdiction the posterior of delta_j, outliers, and leave-one-out refits."""
-    thr = {"robust_z_limit": Z_LIMIT, "rule": "flag |delta_j - median| > 3 x 1.4826 x MAD over comparison "
-           "jurisdictions", "max_refits": MAX_REFITS}
+    thr = {
+        "robust_z_limit": Z_LIMIT,
+        "rule": "flag |delta_j - median| > 3 x 1.4826 x MAD over comparison jurisdictions",
+        "max_refits": MAX_REFITS,
+    }
     t0 = earliest_start(cells)
     comps = [int(c) for c in cells.comparisons]
     if len(comps) < 3:
@@ -103,8 +108,15 @@ def comparison_check(cells: Cells, scales: dict, settings: SamplerSettings, fit,
         mad = float(np.std(means, ddof=1)) or 1.0
     z = (means - med) / mad
     for row, zi in zip(rows, z):
-        row.update({"robust_z": float(zi), "flagged": bool(abs(zi) > Z_LIMIT), "loo_effect_mean": np.nan,
-                    "loo_lower_90": np.nan, "loo_upper_90": np.nan})
+        row.update(
+            {
+                "robust_z": float(zi),
+                "flagged": bool(abs(zi) > Z_LIMIT),
+                "loo_effect_mean": np.nan,
+                "loo_lower_90": np.nan,
+                "loo_upper_90": np.nan,
+            }
+        )
     flagged = sorted([i for i in range(len(comps)) if abs(z[i]) > Z_LIMIT], key=lambda i: -abs(z[i]))
     att_full = interval_row(fit.draws("tau_adopter") @ effect_weights(cells))
     offenders = []
@@ -113,23 +125,29 @@ def comparison_check(cells: Cells, scales: dict, settings: SamplerSettings, fit,
         if refit and n_done < MAX_REFITS:
             w = cells.jt_weight().copy()
             w[comps[i]] = 0.0
-            lf = fit_cells(cells.with_weight(w), scales,
-                           reseed(settings, 300 + n_done),
-                           family=family)
+            lf = fit_cells(cells.with_weight(w), scales, reseed(settings, 300 + n_done), family=family)
             loo = interval_row(lf.draws("tau_adopter") @ effect_weights(cells))
-            rows[i].update({"loo_effect_mean": loo["mean"], "loo_lower_90": loo["lower_90"],
-                            "loo_upper_90": loo["upper_90"]})
+            rows[i].update(
+                {"loo_effect_mean": loo["mean"], "loo_lower_90": loo["lower_90"], "loo_upper_90": loo["upper_90"]}
+            )
             off["effect_without"] = loo
             off["shift"] = loo["mean"] - att_full["mean"]
         offenders.append(off)
-    details = {"effect_all": att_full, "median_change": float(med), "scale_mad": float(mad),
-               "n_comparisons": len(comps)}
+    details = {
+        "effect_all": att_full,
+        "median_change": float(med),
+        "scale_mad": float(mad),
+        "n_comparisons": len(comps),
+    }
     if flagged:
         names = ", ".join(o["jurisdiction"] for o in offenders)
-        reason = (f"{len(flagged)} of {len(comps)} comparison jurisdictions changed their own gap far more than "
-                  f"the others (|robust z| > {Z_LIMIT:g}): {names}; the effect without each is in 'offenders'.")
+        reason = (
+            f"{len(flagged)} of {len(comps)} comparison jurisdictions changed their own gap far more than "
+            f"the others (|robust z| > {Z_LIMIT:g}): {names}; the effect without each is in 'offenders'."
+        )
     else:
-        reason = (f"no comparison jurisdiction's own gap changed far from the others (all |robust z| <= "
-                  f"{Z_LIMIT:g}; largest {np.max(np.abs(z)):.1f}).")
-    return CheckResult(NAME, "flag" if flagged else "ok", reason, thr, offenders, details,
-                       {"comparison": frame(rows)})
+        reason = (
+            f"no comparison jurisdiction's own gap changed far from the others (all |robust z| <= "
+            f"{Z_LIMIT:g}; largest {np.max(np.abs(z)):.1f})."
+        )
+    return CheckResult(NAME, "flag" if flagged else "ok", reason, thr, offenders, details, {"comparison": frame(rows)})

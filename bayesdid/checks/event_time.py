@@ -38,15 +38,31 @@ NAME = "event_time"
 JOINT_LEVEL = 0.95
 
 
-def fit_event_time(cells: Cells, scales: dict, settings: SamplerSettings, *, pooled: bool = False,
-                   family: str = "gaussian"):
+def fit_event_time(
+    cells: Cells, scales: dict, settings: SamplerSettings, *, pooled: bool = False, family: str = "gaussian"
+):
     """Fit the event-time model (one compiled model per shape and set of event times)."""
-    return fit_cells(cells, scales, settings, family=family, effects="event_time",
-                     event_times=event_times_of(cells), event_pooled=pooled)
+    return fit_cells(
+        cells,
+        scales,
+        settings,
+        family=family,
+        effects="event_time",
+        event_times=event_times_of(cells),
+        event_pooled=pooled,
+    )
 
 
-def event_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *, tolerance: float,
-                     pooled: bool = False, family: str = "gaussian", fit=None) -> CheckResult:
+def event_time_check(
+    cells: Cells,
+    scales: dict,
+    settings: SamplerSettings,
+    *,
+    tolerance: float,
+    pooled: bool = False,
+    family: str = "gaussian",
+    fit=None,
+) -> CheckResult:
     """Run the event-time model and judge its leads.
 
     Parameters
@@ -59,8 +75,12 @@ def event_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *, t
         An event-time fit to read instead of fitting.
     """
     ks = event_times_of(cells)
-    thr = {"joint_level": JOINT_LEVEL, "rule": "flag when 0 is outside the 95% joint credible region of "
-           "the leads (d^2 > chi2 quantile)", "tolerance": float(tolerance), "reference_event_time": -1}
+    thr = {
+        "joint_level": JOINT_LEVEL,
+        "rule": "flag when 0 is outside the 95% joint credible region of the leads (d^2 > chi2 quantile)",
+        "tolerance": float(tolerance),
+        "reference_event_time": -1,
+    }
     if not ks:
         return not_applicable(NAME, "the adopters have no event time other than the reference k = -1.", thr)
     fit = fit or fit_event_time(cells, scales, settings, pooled=pooled, family=family)
@@ -73,20 +93,47 @@ def event_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *, t
     rows = []
     for k in sorted(set(ks) | {-1}):
         if k == -1:
-            rows.append({"event_time": -1, "role": "reference", "mean": 0.0, "sd": 0.0, "lower_90": 0.0,
-                         "upper_90": 0.0, "prob_gt_0": float("nan"), "adopters": counts.get(-1, 0)})
+            rows.append(
+                {
+                    "event_time": -1,
+                    "role": "reference",
+                    "mean": 0.0,
+                    "sd": 0.0,
+                    "lower_90": 0.0,
+                    "upper_90": 0.0,
+                    "prob_gt_0": float("nan"),
+                    "adopters": counts.get(-1, 0),
+                }
+            )
             continue
         i = ks.index(k)
-        rows.append({"event_time": k, "role": "lead" if k < -1 else "lag", **interval_row(beta[:, i]),
-                     "adopters": counts.get(k, 0)})
+        rows.append(
+            {
+                "event_time": k,
+                "role": "lead" if k < -1 else "lag",
+                **interval_row(beta[:, i]),
+                "adopters": counts.get(k, 0),
+            }
+        )
     table = frame(rows)
     lead_idx = [i for i, k in enumerate(ks) if k < -1]
-    details = {"event_times": list(ks), "pooled": bool(pooled), "diagnostics_ok": fit.diagnostics["ok"],
-               "effects": rows}
+    details = {
+        "event_times": list(ks),
+        "pooled": bool(pooled),
+        "diagnostics_ok": fit.diagnostics["ok"],
+        "effects": rows,
+    }
     if not lead_idx:
-        r = CheckResult(NAME, "not applicable", "no lead (event time before -1) is observed, so the event "
-                        "study has no pre-trend test; the lags are reported.", thr, [], details,
-                        {"event_time": table})
+        r = CheckResult(
+            NAME,
+            "not applicable",
+            "no lead (event time before -1) is observed, so the event "
+            "study has no pre-trend test; the lags are reported.",
+            thr,
+            [],
+            details,
+            {"event_time": table},
+        )
         return r
     leads = beta[:, lead_idx]
     within = np.all(np.abs(leads) <= tolerance, axis=1)
@@ -96,21 +143,31 @@ def event_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *, t
     crit = float(stats.chi2.ppf(JOINT_LEVEL, len(lead_idx)))
     big = int(np.argmax(np.abs(mu)))
     lo95, hi95 = np.quantile(leads, [0.025, 0.975], axis=0)
-    offenders = [{"event_time": ks[lead_idx[i]], "mean": float(mu[i]), "eti_95": [float(lo95[i]), float(hi95[i])]}
-                 for i in range(len(lead_idx)) if lo95[i] > 0 or hi95[i] < 0]
-    details.update({
-        "prob_all_leads_within_tolerance": float(within.mean()),
-        "largest_lead": {"event_time": ks[lead_idx[big]], **interval_row(leads[:, big])},
-        "joint_distance2": d2, "joint_critical": crit,
-    })
+    offenders = [
+        {"event_time": ks[lead_idx[i]], "mean": float(mu[i]), "eti_95": [float(lo95[i]), float(hi95[i])]}
+        for i in range(len(lead_idx))
+        if lo95[i] > 0 or hi95[i] < 0
+    ]
+    details.update(
+        {
+            "prob_all_leads_within_tolerance": float(within.mean()),
+            "largest_lead": {"event_time": ks[lead_idx[big]], **interval_row(leads[:, big])},
+            "joint_distance2": d2,
+            "joint_critical": crit,
+        }
+    )
     thr["joint_critical"] = crit
     flag = d2 > crit
     tol_txt = f"P(all {len(lead_idx)} leads within +-{tolerance:.3g}) = {within.mean():.2f}"
     lg = details["largest_lead"]
     if flag:
-        reason = (f"the leads are jointly away from zero (d^2 = {d2:.1f} > {crit:.1f}); the largest is "
-                  f"k = {lg['event_time']} with mean {lg['mean']:+.3g}: the gap moved before the policy. {tol_txt}.")
+        reason = (
+            f"the leads are jointly away from zero (d^2 = {d2:.1f} > {crit:.1f}); the largest is "
+            f"k = {lg['event_time']} with mean {lg['mean']:+.3g}: the gap moved before the policy. {tol_txt}."
+        )
     else:
-        reason = (f"the leads are jointly consistent with zero (d^2 = {d2:.1f} <= {crit:.1f}); the largest is "
-                  f"k = {lg['event_time']} with mean {lg['mean']:+.3g}. {tol_txt}.")
+        reason = (
+            f"the leads are jointly consistent with zero (d^2 = {d2:.1f} <= {crit:.1f}); the largest is "
+            f"k = {lg['event_time']} with mean {lg['mean']:+.3g}. {tol_txt}."
+        )
     return CheckResult(NAME, "flag" if flag else "ok", reason, thr, offenders, details, {"event_time": table})

@@ -43,7 +43,17 @@ from ..effects import summarize
 from ..progress import Progress
 from ..sample import fit_cells
 from ..study import SamplerSettings
-from .base import CheckResult, reseed, earliest_start, effect_weights, frame, interval_row, not_applicable, plain, pre_weight
+from .base import (
+    CheckResult,
+    earliest_start,
+    effect_weights,
+    frame,
+    interval_row,
+    not_applicable,
+    plain,
+    pre_weight,
+    reseed,
+)
 
 __all__ = ["placebo_time_check", "placebo_space_check", "placebo_space_cells", "default_lag"]
 
@@ -58,8 +68,9 @@ def placebo_settings(settings: SamplerSettings, draws: int | None = PLACEBO_DRAW
     (``None``: the study's own)."""
     if draws is None:
         return settings
-    return dataclasses.replace(settings, draws=min(int(settings.draws), int(draws)),
-                               tune=min(int(settings.tune), int(draws)))
+    return dataclasses.replace(
+        settings, draws=min(int(settings.draws), int(draws)), tune=min(int(settings.tune), int(draws))
+    )
 
 
 def default_lag(cells: Cells) -> int:
@@ -67,33 +78,49 @@ def default_lag(cells: Cells) -> int:
     return max(1, earliest_start(cells) // 2)
 
 
-def placebo_time_check(cells: Cells, scales: dict, settings: SamplerSettings, *, lag: int | None = None,
-                       family: str = "gaussian") -> CheckResult:
+def placebo_time_check(
+    cells: Cells, scales: dict, settings: SamplerSettings, *, lag: int | None = None, family: str = "gaussian"
+) -> CheckResult:
     """Fake start ``lag`` periods before each real start, on pre-policy data (module docstring)."""
     L = default_lag(cells) if lag is None else int(lag)
-    thr = {"lag": L, "lag_source": "default (half the pre-period)" if lag is None else "study checks.placebo_lag",
-           "rule": "flag when the 90% interval of the fake effect excludes 0"}
+    thr = {
+        "lag": L,
+        "lag_source": "default (half the pre-period)" if lag is None else "study checks.placebo_lag",
+        "rule": "flag when the 90% interval of the fake effect excludes 0",
+    }
     fake = cells.start.copy()
     fake[cells.adopters] -= L
     if fake[cells.adopters].min() < 1:
-        return not_applicable(TIME, f"a fake start {L} period(s) before the real one leaves no period before it "
-                              f"(pre-period has {earliest_start(cells)} period(s)); set [checks] placebo_lag "
-                              "smaller.", thr)
+        return not_applicable(
+            TIME,
+            f"a fake start {L} period(s) before the real one leaves no period before it "
+            f"(pre-period has {earliest_start(cells)} period(s)); set [checks] placebo_lag "
+            "smaller.",
+            thr,
+        )
     pc = cells.with_starts(fake).with_weight(pre_weight(cells))
     w = effect_weights(pc)
     if w.sum() == 0:
         return not_applicable(TIME, "no fake treated target-group cell falls before the real start.", thr)
-    fit = fit_cells(pc, scales, reseed(settings, 11),
-                    family=family)
+    fit = fit_cells(pc, scales, reseed(settings, 11), family=family)
     att = fit.draws("tau_adopter") @ w
     s = summarize(att)
     row = {"lag": L, "fake_start": plain(cells.periods[int(fake[cells.adopters].min())]), **interval_row(att)}
     flag = s["eti_90"][0] > 0 or s["eti_90"][1] < 0
-    reason = (f"fake start {L} period(s) early: effect {s['mean']:+.3g}, 90% interval {s['eti_90'][0]:+.3g} to "
-              f"{s['eti_90'][1]:+.3g}, P(> 0) = {s['prob_gt_0']:.2f}; "
-              + ("an 'effect' appears before the policy." if flag else "no effect appears before the policy."))
-    return CheckResult(TIME, "flag" if flag else "ok", reason, thr, [row] if flag else [],
-                       {"effect": s, "diagnostics_ok": fit.diagnostics["ok"]}, {"placebo_time": frame([row])})
+    reason = (
+        f"fake start {L} period(s) early: effect {s['mean']:+.3g}, 90% interval {s['eti_90'][0]:+.3g} to "
+        f"{s['eti_90'][1]:+.3g}, P(> 0) = {s['prob_gt_0']:.2f}; "
+        + ("an 'effect' appears before the policy." if flag else "no effect appears before the policy.")
+    )
+    return CheckResult(
+        TIME,
+        "flag" if flag else "ok",
+        reason,
+        thr,
+        [row] if flag else [],
+        {"effect": s, "diagnostics_ok": fit.diagnostics["ok"]},
+        {"placebo_time": frame([row])},
+    )
 
 
 def placebo_space_cells(cells: Cells, c: int) -> tuple[Cells, int]:
@@ -108,20 +135,41 @@ def placebo_space_cells(cells: Cells, c: int) -> tuple[Cells, int]:
     return pc, int(np.flatnonzero(pc.adopters == c)[0])
 
 
-def placebo_space_check(cells: Cells, scales: dict, settings: SamplerSettings, real_att: np.ndarray, *,
-                        family: str = "gaussian", progress=None, draws: int | None = PLACEBO_DRAWS) -> CheckResult:
+def placebo_space_check(
+    cells: Cells,
+    scales: dict,
+    settings: SamplerSettings,
+    real_att: np.ndarray,
+    *,
+    family: str = "gaussian",
+    progress=None,
+    draws: int | None = PLACEBO_DRAWS,
+) -> CheckResult:
     """Each comparison jurisdiction in turn as a fake adopter (module docstring); ``draws`` caps the draws
     and tuning steps per chain of each placebo fit (``None``: the study's settings)."""
-    comps = [int(c) for c in cells.comparisons
-             if cells.n[c, cells.target, cells.start[cells.adopters[0]]:].sum() > 0
-             and cells.n[c, cells.target, :cells.start[cells.adopters[0]]].sum() > 0]
+    comps = [
+        int(c)
+        for c in cells.comparisons
+        if cells.n[c, cells.target, cells.start[cells.adopters[0]] :].sum() > 0
+        and cells.n[c, cells.target, : cells.start[cells.adopters[0]]].sum() > 0
+    ]
     ps = placebo_settings(settings, draws)
-    thr = {"nominal_rate": NOMINAL, "rule": "flag when more placebo 90% intervals exclude 0 than the 95% "
-           "quantile of Binomial(N, 0.10)", "statistic": "posterior mean", "p_value": "(1 + #|placebo| >= |real|) / (1 + N)",
-           "placebo_draws": ps.draws, "placebo_tune": ps.tune, "placebo_chains": ps.chains}
+    thr = {
+        "nominal_rate": NOMINAL,
+        "rule": "flag when more placebo 90% intervals exclude 0 than the 95% quantile of Binomial(N, 0.10)",
+        "statistic": "posterior mean",
+        "p_value": "(1 + #|placebo| >= |real|) / (1 + N)",
+        "placebo_draws": ps.draws,
+        "placebo_tune": ps.tune,
+        "placebo_chains": ps.chains,
+    }
     if len(comps) < 2:
-        return not_applicable(SPACE, f"{len(comps)} comparison jurisdiction(s) with target-group rows before and "
-                              "after the start; a placebo distribution needs at least 2.", thr)
+        return not_applicable(
+            SPACE,
+            f"{len(comps)} comparison jurisdiction(s) with target-group rows before and "
+            "after the start; a placebo distribution needs at least 2.",
+            thr,
+        )
     rows, means = [], []
     bar = Progress("placebo in space", len(comps), log=progress)
     for i, c in enumerate(comps):
@@ -146,12 +194,23 @@ def placebo_space_check(cells: Cells, scales: dict, settings: SamplerSettings, r
     limit = int(stats.binom.ppf(0.95, N, NOMINAL))
     thr["max_excluding_zero"] = limit
     flag = len(excl) > limit
-    reason = (f"real effect {real['mean']:+.3g} ranks {real_rank} of {N + 1} by size among {N} placebos "
-              f"(permutation p = {p:.3f}); {len(excl)} placebo 90% interval(s) exclude 0 "
-              + (f"(more than the {limit} expected by chance): the model is over-confident about effects "
-                 "in comparison jurisdictions." if flag else f"(at most {limit} expected by chance)."))
-    details = {"real_effect": real, "rank": real_rank, "n_placebos": N, "permutation_p": p,
-               "placebo_means": [float(v) for v in means], "placebo_excluding_zero": len(excl)}
+    reason = (
+        f"real effect {real['mean']:+.3g} ranks {real_rank} of {N + 1} by size among {N} placebos "
+        f"(permutation p = {p:.3f}); {len(excl)} placebo 90% interval(s) exclude 0 "
+        + (
+            f"(more than the {limit} expected by chance): the model is over-confident about effects "
+            "in comparison jurisdictions."
+            if flag
+            else f"(at most {limit} expected by chance)."
+        )
+    )
+    details = {
+        "real_effect": real,
+        "rank": real_rank,
+        "n_placebos": N,
+        "permutation_p": p,
+        "placebo_means": [float(v) for v in means],
+        "placebo_excluding_zero": len(excl),
+    }
     offenders = [{"jurisdiction": r_["jurisdiction"], "mean": r_["mean"]} for r_ in excl] if flag else []
-    return CheckResult(SPACE, "flag" if flag else "ok", reason, thr, offenders, details,
-                       {"placebo_space": frame(rows)})
+    return CheckResult(SPACE, "flag" if flag else "ok", reason, thr, offenders, details, {"placebo_space": frame(rows)})

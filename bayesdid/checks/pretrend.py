@@ -67,24 +67,39 @@ def _pvals(obs, rep):
     return float(np.mean(rep >= obs))
 
 
-def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, family: str = "gaussian",
-                   fit=None, seed: int | None = None) -> CheckResult:
+def pretrend_check(
+    cells: Cells,
+    scales: dict,
+    settings: SamplerSettings,
+    *,
+    family: str = "gaussian",
+    fit=None,
+    seed: int | None = None,
+) -> CheckResult:
     """Posterior predictive check of the adopters' pre-period gap path (see module docstring)."""
-    thr = {"p_low": P_LOW, "p_high": P_HIGH, "statistics": ["slope", "max_deviation"],
-           "rule": "flag when a posterior predictive p-value is below 0.05 or above 0.95",
-           "fit": "policy-free data only (each adopter's periods from its start on get weight 0)"}
+    thr = {
+        "p_low": P_LOW,
+        "p_high": P_HIGH,
+        "statistics": ["slope", "max_deviation"],
+        "rule": "flag when a posterior predictive p-value is below 0.05 or above 0.95",
+        "fit": "policy-free data only (each adopter's periods from its start on get weight 0)",
+    }
     t0 = earliest_start(cells)
     both = cells.n[:, cells.target, :] > 0
     if cells.design == "DDD":
         both = both & (cells.n[:, cells.reference, :] > 0)
     paths = {}
     for j in cells.adopters:
-        per = np.flatnonzero(both[j, :cells.start[j]])
+        per = np.flatnonzero(both[j, : cells.start[j]])
         if len(per) >= MIN_PRE:
             paths[int(j)] = per
     if not paths:
-        return not_applicable(NAME, f"no adopter has {MIN_PRE} or more observed pre-periods (target and "
-                              f"reference cells) before its start; a slope needs at least {MIN_PRE}.", thr)
+        return not_applicable(
+            NAME,
+            f"no adopter has {MIN_PRE} or more observed pre-periods (target and "
+            f"reference cells) before its start; a slope needs at least {MIN_PRE}.",
+            thr,
+        )
     fit = fit or fit_pre_policy(cells, scales, settings, family=family)
     rng = np.random.default_rng(settings.seed + 7 if seed is None else seed)
     w_all = effect_weights(cells)
@@ -105,17 +120,42 @@ def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, fam
         name = cells.jurisdictions[j]
         lo, med, hi = np.quantile(rep, [0.05, 0.5, 0.95], axis=0)
         for i, t in enumerate(per):
-            band_rows.append({"adopter": name, "period": plain(cells.periods[t]), "period_index": int(t),
-                              "event_time": int(t - cells.start[j]), "observed_gap": float(obs[i]),
-                              "expected_gap": float(exp_[:, i].mean()), "band_median": float(med[i]),
-                              "band_lower_90": float(lo[i]), "band_upper_90": float(hi[i])})
+            band_rows.append(
+                {
+                    "adopter": name,
+                    "period": plain(cells.periods[t]),
+                    "period_index": int(t),
+                    "event_time": int(t - cells.start[j]),
+                    "observed_gap": float(obs[i]),
+                    "expected_gap": float(exp_[:, i].mean()),
+                    "band_median": float(med[i]),
+                    "band_lower_90": float(lo[i]),
+                    "band_upper_90": float(hi[i]),
+                }
+            )
         ps, pd_ = _pvals(so, sr), _pvals(do, dr)
-        per_adopter.append({"adopter": name, "pre_periods": len(per), "p_slope": ps, "p_max_deviation": pd_,
-                            "observed_slope": float(so.mean()), "observed_max_deviation": float(do.mean())})
+        per_adopter.append(
+            {
+                "adopter": name,
+                "pre_periods": len(per),
+                "p_slope": ps,
+                "p_max_deviation": pd_,
+                "observed_slope": float(so.mean()),
+                "observed_max_deviation": float(do.mean()),
+            }
+        )
         for stat, o, r_, p in (("slope", so, sr, ps), ("max_deviation", do, dr, pd_)):
             lo_, hi_ = np.quantile(r_, [0.05, 0.95])
-            stat_rows.append({"adopter": name, "statistic": stat, "observed_mean": float(o.mean()),
-                              "replicated_lower_90": float(lo_), "replicated_upper_90": float(hi_), "p_value": p})
+            stat_rows.append(
+                {
+                    "adopter": name,
+                    "statistic": stat,
+                    "observed_mean": float(o.mean()),
+                    "replicated_lower_90": float(lo_),
+                    "replicated_upper_90": float(hi_),
+                    "p_value": p,
+                }
+            )
     w = np.asarray(weights, dtype=float)
     w = w / w.sum() if w.sum() > 0 else np.full(len(w), 1.0 / len(w))
     so = np.tensordot(w, np.asarray(slopes_obs), axes=1)
@@ -124,8 +164,16 @@ def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, fam
     p_slope, p_dev = _pvals(so, sr), _pvals(do, dr)
     for stat, o, r_, p in (("slope", so, sr, p_slope), ("max_deviation", do, dr, p_dev)):
         lo_, hi_ = np.quantile(r_, [0.05, 0.95])
-        stat_rows.append({"adopter": "combined", "statistic": stat, "observed_mean": float(o.mean()),
-                          "replicated_lower_90": float(lo_), "replicated_upper_90": float(hi_), "p_value": p})
+        stat_rows.append(
+            {
+                "adopter": "combined",
+                "statistic": stat,
+                "observed_mean": float(o.mean()),
+                "replicated_lower_90": float(lo_),
+                "replicated_upper_90": float(hi_),
+                "p_value": p,
+            }
+        )
     offenders = []
     for stat, p in (("slope", p_slope), ("max_deviation", p_dev)):
         if p < P_LOW or p > P_HIGH:
@@ -136,15 +184,29 @@ def pretrend_check(cells: Cells, scales: dict, settings: SamplerSettings, *, fam
             if (p < P_LOW or p > P_HIGH) and len(per_adopter) > 1:
                 offenders.append({"adopter": row["adopter"], "statistic": stat, "p_value": p})
     flag = any("adopter" not in o for o in offenders)
-    details = {"p_value_slope": p_slope, "p_value_max_deviation": p_dev, "observed_slope": float(so.mean()),
-               "per_adopter": per_adopter, "earliest_start": plain(cells.periods[t0]),
-               "diagnostics_ok": fit.diagnostics["ok"]}
+    details = {
+        "p_value_slope": p_slope,
+        "p_value_max_deviation": p_dev,
+        "observed_slope": float(so.mean()),
+        "per_adopter": per_adopter,
+        "earliest_start": plain(cells.periods[t0]),
+        "diagnostics_ok": fit.diagnostics["ok"],
+    }
     txt = f"posterior predictive p-values: slope of the gap {p_slope:.3f}, largest deviation {p_dev:.3f}"
     if flag:
         which = " and ".join(o["statistic"].replace("_", " ") for o in offenders if "adopter" not in o)
-        reason = (f"{txt}; the adopters' pre-policy gap path is unusual under the model ({which} outside "
-                  f"[{P_LOW}, {P_HIGH}]): the gap may have drifted before the policy.")
+        reason = (
+            f"{txt}; the adopters' pre-policy gap path is unusual under the model ({which} outside "
+            f"[{P_LOW}, {P_HIGH}]): the gap may have drifted before the policy."
+        )
     else:
         reason = f"{txt}; the adopters' pre-policy gap path is within what the model expects."
-    return CheckResult(NAME, "flag" if flag else "ok", reason, thr, offenders, details,
-                       {"pretrend_band": frame(band_rows), "pretrend_stats": frame(stat_rows)})
+    return CheckResult(
+        NAME,
+        "flag" if flag else "ok",
+        reason,
+        thr,
+        offenders,
+        details,
+        {"pretrend_band": frame(band_rows), "pretrend_stats": frame(stat_rows)},
+    )

@@ -38,11 +38,13 @@ from .pretrend import pretrend_check
 __all__ = ["CHECKS", "CheckReport", "run_checks", "write_checks", "default_tolerance"]
 
 CHECKS = ("event_time", "pretrend", "placebo_time", "comparison", "placebo_space")
-CHECK_WORDS = {"event_time": "one fit with an effect per event time",
-               "pretrend": "one fit on the pre-policy data",
-               "placebo_time": "one fit with a fake start",
-               "comparison": "reads the main fit; a refit per flagged jurisdiction",
-               "placebo_space": "one fit per comparison jurisdiction"}
+CHECK_WORDS = {
+    "event_time": "one fit with an effect per event time",
+    "pretrend": "one fit on the pre-policy data",
+    "placebo_time": "one fit with a fake start",
+    "comparison": "reads the main fit; a refit per flagged jurisdiction",
+    "placebo_space": "one fit per comparison jurisdiction",
+}
 _NEEDS_MAIN = {"comparison", "placebo_space"}
 
 
@@ -66,24 +68,41 @@ class CheckReport:
     data_sha256: str | None = None
 
     def to_dict(self) -> dict:
-        out = {"title": self.study.title, "design": self.cells.design,
-               "identity": {"data_sha256": self.data_sha256,
-                            "run_id": run_id(self.data_sha256, study_to_dict(self.study))},
-               "sampler": dataclasses.asdict(self.study.sampler), "data": self.cells.describe(),
-               "timing": self.timing}
+        out = {
+            "title": self.study.title,
+            "design": self.cells.design,
+            "identity": {
+                "data_sha256": self.data_sha256,
+                "run_id": run_id(self.data_sha256, study_to_dict(self.study)),
+            },
+            "sampler": dataclasses.asdict(self.study.sampler),
+            "data": self.cells.describe(),
+            "timing": self.timing,
+        }
         for name in CHECKS:
             r = self.results.get(name)
-            out[name] = r.to_dict() if r is not None else {
-                "status": "not run", "reason": "not selected (--only)", "threshold": {}, "offenders": []}
+            out[name] = (
+                r.to_dict()
+                if r is not None
+                else {"status": "not run", "reason": "not selected (--only)", "threshold": {}, "offenders": []}
+            )
         return out
 
     def __str__(self) -> str:
         return "\n".join(str(r) for r in self.results.values())
 
 
-def run_checks(study: Study, *, cells: Cells | None = None, only: str | None = None,
-               tolerance: float | None = None, pooled: bool = False, main_fit=None, log=None,
-               data_sha256: str | None = None) -> CheckReport:
+def run_checks(
+    study: Study,
+    *,
+    cells: Cells | None = None,
+    only: str | None = None,
+    tolerance: float | None = None,
+    pooled: bool = False,
+    main_fit=None,
+    log=None,
+    data_sha256: str | None = None,
+) -> CheckReport:
     """Run the checks (all, or ``only`` one) on a study.
 
     Raises
@@ -157,15 +176,17 @@ def write_checks(report: CheckReport, out: str | Path, *, replace: bool = False,
                 ordered(name, table).to_csv(tmp / f"{name}.csv", index=False)
                 files.append(f"{name}.csv")
         body = report.to_dict()
-        body["manifest"] = {"versions": versions(), "study": study_to_dict(report.study),
-                            "command": list(argv) if argv is not None else sys.argv,
-                            "files": ["checks.json", *files]}
+        body["manifest"] = {
+            "versions": versions(),
+            "study": study_to_dict(report.study),
+            "command": list(argv) if argv is not None else sys.argv,
+            "files": ["checks.json", *files],
+        }
         dump_json(body, tmp / "checks.json")
     return Path(out)
 
 
-def checks_into_run(study: Study, run_dir: str | Path, log=None, *, cells: Cells | None = None,
-                    main_fit=None) -> Path:
+def checks_into_run(study: Study, run_dir: str | Path, log=None, *, cells: Cells | None = None, main_fit=None) -> Path:
     """Run every check for ``study`` and write them into ``run_dir/checks`` (for `bayesdid analyze`,
     whose report reads them from there). ``cells`` and ``main_fit`` pass the run's own collapse and
     fit, so that neither the table nor the main model is read or sampled twice."""

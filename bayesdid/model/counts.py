@@ -44,8 +44,7 @@ def negbinomial_loglik(y, size, eta, phi, *, cell, first, y_cell, n_cells, xp):
     mu = size * xp.exp(eta)
     m_cell = xp.segment_sum(mu, cell, n_cells)
     M = xp.take_last(m_cell, cell)
-    term = (xp.gammaln(y_cell + phi) - xp.gammaln(phi) + phi * xp.log(phi)
-            - (y_cell + phi) * xp.log(M + phi))
+    term = xp.gammaln(y_cell + phi) - xp.gammaln(phi) + phi * xp.log(phi) - (y_cell + phi) * xp.log(M + phi)
     return y * eta + first * term
 
 

@@ -54,11 +54,30 @@ from scipy import special
 from ..cells import Cells
 from . import binomial, counts
 from .structure import RHO_PRIOR
-from .terms import CENTRE_MARGIN, design_data, fields_centred, hierarchical_mean, mean_from_draws, small_matmul, zero_sum_basis  # noqa: F401 (fields_centred, CENTRE_MARGIN: kept importable here)
+from .terms import (  # noqa: F401 (fields_centred, CENTRE_MARGIN: kept importable here)
+    CENTRE_MARGIN,
+    design_data,
+    fields_centred,
+    hierarchical_mean,
+    mean_from_draws,
+    small_matmul,
+    zero_sum_basis,
+)
 
-__all__ = ["FAMILY_BUILDERS", "build_family", "data_arrays", "record_loglik", "record_eta_draws",
-           "pointwise_loglik", "inverse_link", "NP", "PT", "ar1_factor", "ar1_mean_given_deviations",
-           "ar1_gap_deviations"]
+__all__ = [
+    "FAMILY_BUILDERS",
+    "build_family",
+    "data_arrays",
+    "record_loglik",
+    "record_eta_draws",
+    "pointwise_loglik",
+    "inverse_link",
+    "NP",
+    "PT",
+    "ar1_factor",
+    "ar1_mean_given_deviations",
+    "ar1_gap_deviations",
+]
 
 
 def _np_segment_sum(v, index, size):
@@ -78,11 +97,24 @@ def _pt_segment_sum(v, index, size):
     return pt.inc_subtensor(pt.zeros((size,))[index], v)
 
 
-NP = SimpleNamespace(log=np.log, exp=np.exp, softplus=lambda x: np.logaddexp(0.0, x),
-                     expit=special.expit, gammaln=special.gammaln, segment_sum=_np_segment_sum,
-                     take_last=lambda a, i: a[..., i])
-PT = SimpleNamespace(log=pt.log, exp=pt.exp, softplus=pt.softplus, expit=pt.sigmoid, gammaln=pt.gammaln,
-                     segment_sum=_pt_segment_sum, take_last=lambda a, i: a[i])
+NP = SimpleNamespace(
+    log=np.log,
+    exp=np.exp,
+    softplus=lambda x: np.logaddexp(0.0, x),
+    expit=special.expit,
+    gammaln=special.gammaln,
+    segment_sum=_np_segment_sum,
+    take_last=lambda a, i: a[..., i],
+)
+PT = SimpleNamespace(
+    log=pt.log,
+    exp=pt.exp,
+    softplus=pt.softplus,
+    expit=pt.sigmoid,
+    gammaln=pt.gammaln,
+    segment_sum=_pt_segment_sum,
+    take_last=lambda a, i: a[i],
+)
 
 
 def ar1_factor(rho, T: int, xp=NP):
@@ -98,8 +130,11 @@ def ar1_factor(rho, T: int, xp=NP):
         # never proposes
         first = np.zeros((T, T))
         first[:, 0] = 1.0
-        return (rho ** pt.as_tensor(idx.astype(float)) * pt.as_tensor(lower)
-                * (pt.as_tensor(first) + pt.as_tensor(1.0 - first) * pt.sqrt(1.0 - rho * rho)))
+        return (
+            rho ** pt.as_tensor(idx.astype(float))
+            * pt.as_tensor(lower)
+            * (pt.as_tensor(first) + pt.as_tensor(1.0 - first) * pt.sqrt(1.0 - rho * rho))
+        )
     rho = np.asarray(rho, dtype=float)
     pw = rho[..., None] ** np.arange(T)
     w = np.concatenate([np.ones(rho.shape + (1,)), np.repeat(np.sqrt(1.0 - rho * rho)[..., None], T - 1, -1)], -1)
@@ -134,8 +169,7 @@ def ar1_gap_deviations(sigma_gap, rho, z):
 
 FAMILY_BUILDERS = ("binomial", "poisson", "negbinomial")
 #: Record arrays every non-Gaussian model reads (``pm.Data`` names; shapes follow the data).
-RECORD_KEYS = ("rec_cell", "rec_jt", "rec_tgt", "rec_w", "rec_size", "rec_x", "rec_first", "rec_ycell",
-               "rec_cellid")
+RECORD_KEYS = ("rec_cell", "rec_jt", "rec_tgt", "rec_w", "rec_size", "rec_x", "rec_first", "rec_ycell", "rec_cellid")
 
 
 def data_arrays(cells: Cells, family: str) -> dict[str, np.ndarray]:
@@ -181,8 +215,9 @@ def record_loglik(family: str, d: dict, eta, phi=None, xp=NP, n_cells: int | Non
         ll = counts.poisson_loglik(y, size, eta, xp)
     elif family == "negbinomial":
         nc = int(np.max(d["rec_cellid"])) + 1 if n_cells is None else n_cells
-        ll = counts.negbinomial_loglik(y, size, eta, phi, cell=d["rec_cellid"], first=d["rec_first"],
-                                       y_cell=d["rec_ycell"], n_cells=nc, xp=xp)
+        ll = counts.negbinomial_loglik(
+            y, size, eta, phi, cell=d["rec_cellid"], first=d["rec_first"], y_cell=d["rec_ycell"], n_cells=nc, xp=xp
+        )
     else:
         raise ValueError(f"unknown family '{family}'")
     return d["rec_w"] * ll
@@ -206,12 +241,12 @@ def _ar1_path_logp(value, sigma_gap, rho):
     (spread as log sigma_gap on every period and the second part on periods 1..T-1)."""
     z = _ar1_innovations(value, sigma_gap, rho)
     later = pt.concatenate([pt.zeros((1,)), pt.ones((value.shape[-1] - 1,))])
-    return (-0.5 * z * z - 0.5 * np.log(2 * np.pi) - pt.log(sigma_gap)
-            - 0.5 * pt.log(1.0 - rho * rho) * later[None, :])
+    return -0.5 * z * z - 0.5 * np.log(2 * np.pi) - pt.log(sigma_gap) - 0.5 * pt.log(1.0 - rho * rho) * later[None, :]
 
 
-def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: str, *, gap: str = "independent",
-                 **terms) -> pm.Model:
+def build_family(
+    cells: Cells, scales: dict[str, float], coords: dict, family: str, *, gap: str = "independent", **terms
+) -> pm.Model:
     """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``.
 
     ``gap`` is ``"persistent"`` (AR(1) gap noise over periods, module docstring; ``rho = 2 u - 1``,
@@ -251,8 +286,14 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                 u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))
                 rho = pm.Deterministic("rho", 2.0 * u - 1.0)
                 if gap_c:
-                    path = pm.CustomDist("gap_path", sigma_gap, rho, logp=_ar1_path_logp, shape=(J, T),
-                                         support_point=lambda rv, size, *a: pt.zeros((J, T)))
+                    path = pm.CustomDist(
+                        "gap_path",
+                        sigma_gap,
+                        rho,
+                        logp=_ar1_path_logp,
+                        shape=(J, T),
+                        support_point=lambda rv, size, *a: pt.zeros((J, T)),
+                    )
                     zz = _ar1_innovations(path, sigma_gap, rho)
                 else:
                     zz = pm.Normal("z_gap_innovation", 0.0, 1.0, shape=(J, T))
@@ -277,8 +318,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
                 r, q = cells.reference, cells.target
                 if centred:
                     lev_r = pm.Normal("level_reference", mu[r], sd_r, dims=("jurisdiction",))
-                    lev_q = pm.Normal("level_target", mu[q] + shift + k * (lev_r - mu[r]), sd_q,
-                                      dims=("jurisdiction",))
+                    lev_q = pm.Normal("level_target", mu[q] + shift + k * (lev_r - mu[r]), sd_q, dims=("jurisdiction",))
                 else:
                     z = pm.Normal("z_level", 0.0, 1.0, shape=(J, 2))
                     lev_r = mu[r] + sd_r * z[:, 0]
@@ -330,7 +370,7 @@ def build_family(cells: Cells, scales: dict[str, float], coords: dict, family: s
 
         def logp(value, eta, *rest):
             phi_ = rest[0] if family == "negbinomial" else None
-            dd = dict(zip(keys, rest[len(params) - 1:]))
+            dd = dict(zip(keys, rest[len(params) - 1 :]))
             dd["rec_y"] = value
             return record_loglik(family, dd, eta, phi_, xp=PT, n_cells=n_cells)
 

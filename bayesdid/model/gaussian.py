@@ -68,10 +68,14 @@ def jt_loglik(d, *, m_r, m_q, sigma_r, sigma_q, sigma_shock, sigma_gap, xp=NP, w
     means = d["p_r"] * _lognorm(dr, A, xp) + d["p_q"] * _lognorm(dq - k * dr, V + sigma_gap**2, xp)
     if not within:  # no separate residual sd: the cell means alone (see residual_rule)
         return d["w"] * means
-    within = (-0.5 * d["nm1_r"] * (LOG2PI + 2.0 * xp.log(sigma_r)) - 0.5 * d["logn_r"]
-              - 0.5 * d["ss_r"] / sigma_r**2
-              - 0.5 * d["nm1_q"] * (LOG2PI + 2.0 * xp.log(sigma_q)) - 0.5 * d["logn_q"]
-              - 0.5 * d["ss_q"] / sigma_q**2)
+    within = (
+        -0.5 * d["nm1_r"] * (LOG2PI + 2.0 * xp.log(sigma_r))
+        - 0.5 * d["logn_r"]
+        - 0.5 * d["ss_r"] / sigma_r**2
+        - 0.5 * d["nm1_q"] * (LOG2PI + 2.0 * xp.log(sigma_q))
+        - 0.5 * d["logn_q"]
+        - 0.5 * d["ss_q"] / sigma_q**2
+    )
     return d["w"] * (means + within)
 
 
@@ -132,10 +136,14 @@ def jt_loglik_ar1(d, *, m_r, m_q, sigma_r, sigma_q, sigma_shock, sigma_gap, rho,
     means = d["p_r"] * _lognorm(dr, A, xp) + d["p_q"] * ln_q
     if not within:  # no separate residual sd: the cell means alone (see residual_rule)
         return d["w"] * means
-    within = (-0.5 * d["nm1_r"] * (LOG2PI + 2.0 * xp.log(sigma_r)) - 0.5 * d["logn_r"]
-              - 0.5 * d["ss_r"] / sigma_r**2
-              - 0.5 * d["nm1_q"] * (LOG2PI + 2.0 * xp.log(sigma_q)) - 0.5 * d["logn_q"]
-              - 0.5 * d["ss_q"] / sigma_q**2)
+    within = (
+        -0.5 * d["nm1_r"] * (LOG2PI + 2.0 * xp.log(sigma_r))
+        - 0.5 * d["logn_r"]
+        - 0.5 * d["ss_r"] / sigma_r**2
+        - 0.5 * d["nm1_q"] * (LOG2PI + 2.0 * xp.log(sigma_q))
+        - 0.5 * d["logn_q"]
+        - 0.5 * d["ss_q"] / sigma_q**2
+    )
     return d["w"] * (means + within)
 
 
@@ -169,8 +177,7 @@ def ar1_smoothing_draws(y, V, o, sigma_gap2, rho, z):
     return e
 
 
-DATA_KEYS = ("ybar_r", "p_r", "inv_n_r", "nm1_r", "logn_r", "ss_r",
-             "p_q", "inv_n_q", "nm1_q", "logn_q", "ss_q", "w")
+DATA_KEYS = ("ybar_r", "p_r", "inv_n_r", "nm1_r", "logn_r", "ss_r", "p_q", "inv_n_q", "nm1_q", "logn_q", "ss_q", "w")
 #: Per (jurisdiction, period) covariate arrays of each side: cell means of the centred covariates
 #: (J, T, K), within-cell cross-products Wxx (J, T, K, K) and Wxy (J, T, K).
 COV_KEYS = ("xbar_r", "wxx_r", "wxy_r", "xbar_q", "wxx_q", "wxy_q")
@@ -189,8 +196,11 @@ def covariate_adjusted(d: dict, theta, ybar_q=None) -> dict:
     th_col, th_row = theta[..., :, None], theta[..., None, :]
     for tag in ("r", "q"):
         out[f"ybar_{tag}"] = out[f"ybar_{tag}"] - (d[f"xbar_{tag}"] * theta).sum(axis=-1)
-        out[f"ss_{tag}"] = (d[f"ss_{tag}"] - 2.0 * (d[f"wxy_{tag}"] * theta).sum(axis=-1)
-                            + (d[f"wxx_{tag}"] * th_col * th_row).sum(axis=(-1, -2)))
+        out[f"ss_{tag}"] = (
+            d[f"ss_{tag}"]
+            - 2.0 * (d[f"wxy_{tag}"] * theta).sum(axis=-1)
+            + (d[f"wxx_{tag}"] * th_col * th_row).sum(axis=(-1, -2))
+        )
     return out
 
 
@@ -200,9 +210,14 @@ def cell_arrays(cells: Cells) -> dict[str, np.ndarray]:
 
     def side(g, tag):
         n = cells.n[:, g]
-        return {f"ybar_{tag}": mean[:, g], f"p_{tag}": (n > 0).astype(float),
-                f"inv_n_{tag}": 1.0 / np.maximum(n, 1.0), f"nm1_{tag}": np.maximum(n - 1.0, 0.0),
-                f"logn_{tag}": np.log(np.maximum(n, 1.0)), f"ss_{tag}": cells.ss[:, g]}
+        return {
+            f"ybar_{tag}": mean[:, g],
+            f"p_{tag}": (n > 0).astype(float),
+            f"inv_n_{tag}": 1.0 / np.maximum(n, 1.0),
+            f"nm1_{tag}": np.maximum(n - 1.0, 0.0),
+            f"logn_{tag}": np.log(np.maximum(n, 1.0)),
+            f"ss_{tag}": cells.ss[:, g],
+        }
 
     out = side(cells.target, "q")
     out["w"] = cells.jt_weight()
@@ -216,8 +231,11 @@ def cell_arrays(cells: Cells) -> dict[str, np.ndarray]:
         safe = np.maximum(cells.n, 1.0)[..., None]
 
         def cside(g, tag):
-            return {f"xbar_{tag}": cov["sx"][:, g] / safe[:, g], f"wxx_{tag}": cov["wxx"][:, g],
-                    f"wxy_{tag}": cov["wxy"][:, g]}
+            return {
+                f"xbar_{tag}": cov["sx"][:, g] / safe[:, g],
+                f"wxx_{tag}": cov["wxx"][:, g],
+                f"wxy_{tag}": cov["wxy"][:, g],
+            }
 
         out.update(cside(cells.target, "q"))
         if cells.design == "DDD":
@@ -232,8 +250,9 @@ def n_covariates(cells: Cells) -> int:
     return 0 if cov is None else len(cov["names"])
 
 
-def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, *, gap: str = "independent",
-                   residual: bool = True, **terms) -> pm.Model:
+def build_gaussian(
+    cells: Cells, scales: dict[str, float], coords: dict, *, gap: str = "independent", residual: bool = True, **terms
+) -> pm.Model:
     """The Gaussian model; ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean`.
 
     ``gap`` is ``"persistent"`` (AR(1) gap noise over periods, :func:`jt_loglik_ar1`, with
@@ -242,6 +261,7 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, *, gap:
     row: :func:`~bayesdid.model.structure.residual_rule`).
     """
     from .structure import RHO_PRIOR
+
     J, G, T = cells.shape
     arr = cell_arrays(cells)
     K = n_covariates(cells)
@@ -257,8 +277,7 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, *, gap:
         # of the (J, T) observed variable (their extra dims are not batch dims).
         cov_data = {k: pm.Data(k, arr[k]) for k in COV_KEYS} if K else {}
         obs = pm.Data("ybar_q", arr["ybar_q"], dims=dims)
-        sigma = (pm.HalfNormal("sigma", S["residual"], dims=("group",)) if residual
-                 else pt.zeros((G,)))
+        sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",)) if residual else pt.zeros((G,))
         sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
         if gap == "persistent":
             u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))
@@ -277,20 +296,40 @@ def build_gaussian(cells: Cells, scales: dict[str, float], coords: dict, *, gap:
         m_q, sig_q = m[:, cells.target, :], sigma[cells.target]
 
         def logp(value, m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *rest):
-            data = rest[len(extra):]
+            data = rest[len(extra) :]
             dd = dict(zip(keys, data))
             dd["ybar_q"] = value
             if K:
                 dd = covariate_adjusted({**dd, **cov_data}, rest[0])
             if gap == "persistent":
-                return jt_loglik_ar1(dd, m_r=m_r, m_q=m_q, sigma_r=sig_r, sigma_q=sig_q, sigma_shock=sigma_shock,
-                                     sigma_gap=sigma_gap, rho=rest[len(extra) - 1], xp=PT, n_periods=T,
-                                     within=residual)
-            return jt_loglik(dd, m_r=m_r, m_q=m_q, sigma_r=sig_r, sigma_q=sig_q,
-                             sigma_shock=sigma_shock, sigma_gap=sigma_gap, xp=PT, within=residual)
+                return jt_loglik_ar1(
+                    dd,
+                    m_r=m_r,
+                    m_q=m_q,
+                    sigma_r=sig_r,
+                    sigma_q=sig_q,
+                    sigma_shock=sigma_shock,
+                    sigma_gap=sigma_gap,
+                    rho=rest[len(extra) - 1],
+                    xp=PT,
+                    n_periods=T,
+                    within=residual,
+                )
+            return jt_loglik(
+                dd,
+                m_r=m_r,
+                m_q=m_q,
+                sigma_r=sig_r,
+                sigma_q=sig_q,
+                sigma_shock=sigma_shock,
+                sigma_gap=sigma_gap,
+                xp=PT,
+                within=residual,
+            )
 
-        pm.CustomDist("cells", m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *extra, *d,
-                      logp=logp, observed=obs, dims=dims)
+        pm.CustomDist(
+            "cells", m_r, m_q, sig_r, sig_q, sigma_shock, sigma_gap, *extra, *d, logp=logp, observed=obs, dims=dims
+        )
     return model
 
 
@@ -323,8 +362,26 @@ def pointwise_loglik(fit, m: np.ndarray | None = None) -> np.ndarray:
     if n_covariates(cells):
         arr = covariate_adjusted(arr, fit.draws("theta")[:, None, None, :])
     if getattr(fit.spec, "gap", "independent") == "persistent":
-        return jt_loglik_ar1(arr, m_r=m_r, m_q=m[:, :, q, :], sigma_r=sig_r, sigma_q=sigma[:, q][:, None, None],
-                             sigma_shock=ss, sigma_gap=sg, rho=fit.draws("rho")[:, None, None], xp=NP,
-                             within=own)
-    return jt_loglik(arr, m_r=m_r, m_q=m[:, :, q, :], sigma_r=sig_r, sigma_q=sigma[:, q][:, None, None],
-                     sigma_shock=ss, sigma_gap=sg, xp=NP, within=own)
+        return jt_loglik_ar1(
+            arr,
+            m_r=m_r,
+            m_q=m[:, :, q, :],
+            sigma_r=sig_r,
+            sigma_q=sigma[:, q][:, None, None],
+            sigma_shock=ss,
+            sigma_gap=sg,
+            rho=fit.draws("rho")[:, None, None],
+            xp=NP,
+            within=own,
+        )
+    return jt_loglik(
+        arr,
+        m_r=m_r,
+        m_q=m[:, :, q, :],
+        sigma_r=sig_r,
+        sigma_q=sigma[:, q][:, None, None],
+        sigma_shock=ss,
+        sigma_gap=sg,
+        xp=NP,
+        within=own,
+    )

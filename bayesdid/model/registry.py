@@ -39,15 +39,20 @@ FAMILY_PRIORS = {"gaussian": ("residual",), "binomial": (), "poisson": (), "negb
 NATURAL_MEASURES = {
     "gaussian": ("the ATT in outcome units, or the percent change exp(ATT) - 1 for a log outcome",),
     "binomial": ("risk difference, percentage points", "risk ratio"),
-    "poisson": ("rate ratio", "rate difference per 1,000 units of exposure",
-                "events averted per 1,000 units of exposure", "events averted in the treated cells (total)"),
+    "poisson": (
+        "rate ratio",
+        "rate difference per 1,000 units of exposure",
+        "events averted per 1,000 units of exposure",
+        "events averted in the treated cells (total)",
+    ),
 }
 NATURAL_MEASURES["negbinomial"] = NATURAL_MEASURES["poisson"]
 _SHARED = ("intercept", "baseline_spread", "period", "gap_noise", "effect")
 
 
-def model_priors(family: str, design: str, n_adopters: int, covariates: bool, *, drift: bool = False,
-                 residual: bool = True) -> tuple[str, ...]:
+def model_priors(
+    family: str, design: str, n_adopters: int, covariates: bool, *, drift: bool = False, residual: bool = True
+) -> tuple[str, ...]:
     """The prior names the model of this family and design reads, in :data:`PRIOR_NAMES` order.
 
     ``drift``: the model has pooled linear gap drifts; ``residual=False``: a Gaussian model without a
@@ -70,22 +75,44 @@ def model_priors(family: str, design: str, n_adopters: int, covariates: bool, *,
 
 def study_priors(study) -> tuple[str, ...]:
     """:func:`model_priors` of a :class:`~bayesdid.study.Study` (read from its settings, no data)."""
-    return model_priors(study.model.family, "DDD" if study.columns.group else "DiD", len(study.policy.adopters),
-                        bool(study.model.covariates), drift=bool(getattr(study.model, "gap_drift", False)))
+    return model_priors(
+        study.model.family,
+        "DDD" if study.columns.group else "DiD",
+        len(study.policy.adopters),
+        bool(study.model.covariates),
+        drift=bool(getattr(study.model, "gap_drift", False)),
+    )
 
 
-def build_model(cells: Cells, scales: dict[str, float], family: str = "gaussian", *, effects: str = "att",
-                event_times: tuple | None = None, event_pooled: bool = False) -> tuple[pm.Model, ModelSpec]:
+def build_model(
+    cells: Cells,
+    scales: dict[str, float],
+    family: str = "gaussian",
+    *,
+    effects: str = "att",
+    event_times: tuple | None = None,
+    event_pooled: bool = False,
+) -> tuple[pm.Model, ModelSpec]:
     """Build the PyMC model of ``family`` on ``cells`` with the given prior scales."""
     spec = model_spec(cells, family, effects=effects, event_times=event_times, event_pooled=event_pooled)
-    terms = ({"drift": True} if spec.drift else {}) if spec.effects == "att" else {
-        "effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
+    terms = (
+        ({"drift": True} if spec.drift else {})
+        if spec.effects == "att"
+        else {"effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
+    )
     if family == "gaussian":
-        return build_gaussian(cells, scales, coords_of(cells, spec.event_times), gap=spec.gap,
-                              residual=spec.residual, **terms), spec
+        return build_gaussian(
+            cells, scales, coords_of(cells, spec.event_times), gap=spec.gap, residual=spec.residual, **terms
+        ), spec
     if family in FAMILY_BUILDERS:
-        return build_family(cells, scales, coords_of(cells, spec.event_times), family, gap=spec.gap,
-                            **{k: v for k, v in terms.items() if k != "drift"}), spec
+        return build_family(
+            cells,
+            scales,
+            coords_of(cells, spec.event_times),
+            family,
+            gap=spec.gap,
+            **{k: v for k, v in terms.items() if k != "drift"},
+        ), spec
     raise NotImplementedError(f"family '{family}' is not built yet")
 
 

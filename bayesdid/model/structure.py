@@ -41,8 +41,17 @@ import numpy as np
 
 from ..errors import PersistenceFallbackWarning
 
-__all__ = ["GAP_FORMS", "MIN_PRE_PERIODS", "RHO_PRIOR", "MIN_WITHIN_DF", "GapStructure", "resolve_gap",
-           "gap_structure", "rho_prior_logpdf", "residual_rule"]
+__all__ = [
+    "GAP_FORMS",
+    "MIN_PRE_PERIODS",
+    "RHO_PRIOR",
+    "MIN_WITHIN_DF",
+    "GapStructure",
+    "resolve_gap",
+    "gap_structure",
+    "rho_prior_logpdf",
+    "residual_rule",
+]
 
 #: Study-file values of ``model.gap_over_time``.
 GAP_FORMS = ("persistent", "independent")
@@ -66,7 +75,9 @@ class GapStructure:
         out["meaning"] = (
             "gap noise follows a stationary AR(1) over periods within each jurisdiction, one correlation "
             f"rho shared by all, prior (rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})"
-            if self.over_time == "persistent" else "gap noise independent over periods")
+            if self.over_time == "persistent"
+            else "gap noise independent over periods"
+        )
         return out
 
 
@@ -84,10 +95,12 @@ def resolve_gap(cells, requested: str = "persistent", drift: bool = False, *, wa
     if requested == "persistent":
         k = pre_periods(cells)
         if k < MIN_PRE_PERIODS:
-            reason = (f"the first adopter has {k} pre-policy period(s), fewer than {MIN_PRE_PERIODS}: the "
-                      "correlation of the gap noise over periods (rho) cannot be learned apart from the effect, "
-                      "so the gap noise is fitted as independent over periods (model.gap_over_time = "
-                      "'independent'); its intervals may be too narrow if the outcome is persistent.")
+            reason = (
+                f"the first adopter has {k} pre-policy period(s), fewer than {MIN_PRE_PERIODS}: the "
+                "correlation of the gap noise over periods (rho) cannot be learned apart from the effect, "
+                "so the gap noise is fitted as independent over periods (model.gap_over_time = "
+                "'independent'); its intervals may be too narrow if the outcome is persistent."
+            )
             if warn:
                 warnings.warn(reason, PersistenceFallbackWarning, stacklevel=2)
             return GapStructure(over_time="independent", requested=requested, fallback=reason, drift=drift)
@@ -132,8 +145,10 @@ def residual_rule(cells) -> dict:
     separate = df >= MIN_WITHIN_DF
     out = {"separate": bool(separate), "within_cell_df": int(df), "threshold": MIN_WITHIN_DF}
     if not separate:
-        out["reason"] = (f"the cells hold {int(df)} within-cell degree(s) of freedom (sum of rows - 1 over cells), "
-                         f"fewer than {MIN_WITHIN_DF}: the residual sd is not identified apart from the gap noise, "
-                         "so it is left out and the gap noise absorbs the rows' own noise (the fit uses the cell "
-                         "means alone).")
+        out["reason"] = (
+            f"the cells hold {int(df)} within-cell degree(s) of freedom (sum of rows - 1 over cells), "
+            f"fewer than {MIN_WITHIN_DF}: the residual sd is not identified apart from the gap noise, "
+            "so it is left out and the gap noise absorbs the rows' own noise (the fit uses the cell "
+            "means alone)."
+        )
     return out

@@ -27,8 +27,16 @@ from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
 from .structure import gap_structure, residual_rule
 
-__all__ = ["default_scales", "resolve_scales", "ModelSpec", "design_data",
-           "hierarchical_mean", "event_times_of", "event_time_data", "EFFECTS"]
+__all__ = [
+    "default_scales",
+    "resolve_scales",
+    "ModelSpec",
+    "design_data",
+    "hierarchical_mean",
+    "event_times_of",
+    "event_time_data",
+    "EFFECTS",
+]
 
 #: The ways the policy enters the mean: one effect per adopter ("att", the default) or one effect per
 #: event time k = t - start_j shared by the adopters ("event_time", reference k = -1).
@@ -64,9 +72,11 @@ def resolve_scales(cells: Cells, priors: PriorScales) -> dict[str, dict]:
     out = {}
     for name in PRIOR_NAMES:
         given = getattr(priors, name)
-        out[name] = {"scale": float(given) if given is not None else base[name],
-                     "source": "study" if given is not None else "data-scaled",
-                     "meaning": PRIOR_NAMES[name]}
+        out[name] = {
+            "scale": float(given) if given is not None else base[name],
+            "source": "study" if given is not None else "data-scaled",
+            "meaning": PRIOR_NAMES[name],
+        }
     return out
 
 
@@ -216,9 +226,16 @@ def drift_times(T: int) -> np.ndarray:
     return np.arange(T, dtype=float) - (T - 1) / 2.0
 
 
-def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = "att",
-                      event_times: tuple | None = None, event_pooled: bool = False, levels=None,
-                      drift: bool = False):
+def hierarchical_mean(
+    cells: Cells,
+    scales: dict[str, float],
+    *,
+    effects: str = "att",
+    event_times: tuple | None = None,
+    event_pooled: bool = False,
+    levels=None,
+    drift: bool = False,
+):
     """Add the shared terms to the current model; return (m, extras).
 
     ``m`` is the (J, G, T) mean without the jurisdiction-period shock and the gap noise (both are
@@ -311,8 +328,7 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
 
     if effects == "event_time":
         ks = tuple(event_times) if event_times is not None else event_times_of(cells)
-        E = pm.Data("event_by_k", event_time_data(cells, ks),
-                    dims=("event_time", "jurisdiction", "group", "period"))
+        E = pm.Data("event_by_k", event_time_data(cells, ks), dims=("event_time", "jurisdiction", "group", "period"))
         if event_pooled:
             sig = pm.HalfNormal("sigma_event", S["effect"])
             z = pm.Normal("z_event", 0.0, 1.0, dims=("event_time",))
@@ -322,8 +338,9 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         return m + (beta[:, None, None, None] * E).sum(axis=0), S
     if effects != "att":
         raise ValueError(f"effects must be one of {EFFECTS}, got {effects!r}")
-    treat = pm.Data("treat_by_adopter", design_data(cells)["treat_by_adopter"],
-                    dims=("adopter", "jurisdiction", "group", "period"))
+    treat = pm.Data(
+        "treat_by_adopter", design_data(cells)["treat_by_adopter"], dims=("adopter", "jurisdiction", "group", "period")
+    )
     if drift:  # free post-policy deviations per adopter, centred over its post periods (see `drift`)
         post = treat.sum(axis=(1, 2))  # (A, T): 1 at the adopter's post-policy periods
         raw = S["effect"] * pm.Normal("z_effect_deviation", 0.0, 1.0, shape=(A, T))
@@ -347,8 +364,9 @@ def hierarchical_mean(cells: Cells, scales: dict[str, float], *, effects: str = 
         v = se2 + s2a
         abar = pm.Normal("tau_adopter_mean", 0.0, pt.sqrt(v))
         w = pm.Normal("z_tau_contrast", 0.0, 1.0, shape=(A - 1,))
-        tau_a = pm.Deterministic("tau_adopter", abar + sigma_tau * small_matmul(w[None, :], zero_sum_basis(A).T)[0],
-                                 dims=("adopter",))
+        tau_a = pm.Deterministic(
+            "tau_adopter", abar + sigma_tau * small_matmul(w[None, :], zero_sum_basis(A).T)[0], dims=("adopter",)
+        )
         u = pm.Normal("u_tau", 0.0, 1.0)
         pm.Deterministic("tau", abar * se2 / v + pt.sqrt(se2 * s2a / v) * u)
         m = m + (tau_a[:, None, None, None] * treat).sum(axis=0)  # no BLAS call, see small_matmul
@@ -375,6 +393,7 @@ def coords_of(cells: Cells, event_times: tuple = ()) -> dict[str, list]:
 #: does (near a ratio of 1 both forms sample about as well, and a margin keeps similar data sets, and
 #: so sweeps and tests, on one compiled structure).
 CENTRE_MARGIN = 4.0
+
 
 def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
     """Centre the gap-noise and shock fields when the cells measure them better than their spread.
@@ -425,8 +444,14 @@ def fields_centred(cells: Cells, family: str) -> tuple[bool, bool]:
     return bool(m * v_cell < v_gap), False
 
 
-def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", event_times: tuple | None = None,
-               event_pooled: bool = False) -> ModelSpec:
+def model_spec(
+    cells: Cells,
+    family: str = "gaussian",
+    *,
+    effects: str = "att",
+    event_times: tuple | None = None,
+    event_pooled: bool = False,
+) -> ModelSpec:
     """The structure of the model; ``effects="event_time"`` fixes the event times in the key."""
     J, G, T = cells.shape
     cov = cells.extra.get("covariates")
@@ -438,13 +463,36 @@ def model_spec(cells: Cells, family: str = "gaussian", *, effects: str = "att", 
         fields = fields_centred(cells, family)
     if effects == "event_time":
         ks = tuple(int(k) for k in (event_times if event_times is not None else event_times_of(cells)))
-        return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                         centred=baseline_centred(cells), fields=fields, effects="event_time", event_times=ks,
-                         event_pooled=bool(event_pooled), gap=gap, residual=residual,
-                         K=0 if cov is None else len(cov["names"]))
-    return ModelSpec(family=family, design=cells.design, J=J, G=G, T=T, A=len(cells.adopters),
-                     centred=baseline_centred(cells), fields=fields, gap=gap, residual=residual, drift=drift,
-                     K=0 if cov is None else len(cov["names"]))
+        return ModelSpec(
+            family=family,
+            design=cells.design,
+            J=J,
+            G=G,
+            T=T,
+            A=len(cells.adopters),
+            centred=baseline_centred(cells),
+            fields=fields,
+            effects="event_time",
+            event_times=ks,
+            event_pooled=bool(event_pooled),
+            gap=gap,
+            residual=residual,
+            K=0 if cov is None else len(cov["names"]),
+        )
+    return ModelSpec(
+        family=family,
+        design=cells.design,
+        J=J,
+        G=G,
+        T=T,
+        A=len(cells.adopters),
+        centred=baseline_centred(cells),
+        fields=fields,
+        gap=gap,
+        residual=residual,
+        drift=drift,
+        K=0 if cov is None else len(cov["names"]),
+    )
 
 
 def mean_from_draws(fit) -> np.ndarray:

@@ -56,6 +56,7 @@ SECTIONS = [
 #: Every heading on the page, the headline first.
 HEADINGS = [("headline", "What happened"), *SECTIONS]
 
+
 def esc(v) -> str:
     """HTML-escape any value's text (quotes too, so it is safe inside attributes)."""
     return html.escape(str(v), quote=True)
@@ -70,14 +71,17 @@ def _img(svg: str, alt: str) -> str:
 
 
 def _absent(what: str, command: str) -> str:
-    return (f'<p class="absent"><strong>Not available in this run folder:</strong> {esc(what)} '
-            f'Produce it with <code>{esc(command)}</code>.</p>')
+    return (
+        f'<p class="absent"><strong>Not available in this run folder:</strong> {esc(what)} '
+        f"Produce it with <code>{esc(command)}</code>.</p>"
+    )
 
 
 def _table(header: list[str], rows: list[list], cls: str = "") -> str:
     h = "".join(f"<th>{esc(c)}</th>" for c in header)
-    body = "".join("<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else esc(c)}</td>" for c in r) + "</tr>"
-                   for r in rows)
+    body = "".join(
+        "<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else esc(c)}</td>" for c in r) + "</tr>" for r in rows
+    )
     return f'<table class="{cls}"><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>'
 
 
@@ -127,33 +131,59 @@ def _effect_section(run: RunFolder) -> str:
     if draws is not None and draws.size > 1:
         shown = np.expm1(draws) if pct else draws  # display scale: percent = exp(ATT) - 1 (effects.py)
         nm = names((run.manifest or {}).get("study"))
-        who = (nm["target"] or "target group") + " in adopting jurisdictions" if s["data"].get("design") == "DDD" \
+        who = (
+            (nm["target"] or "target group") + " in adopting jurisdictions"
+            if s["data"].get("design") == "DDD"
             else "adopting jurisdictions"
+        )
         unit = nm["unit"] or "outcome units"
         xlabel = f"change in {nm['outcome']} (%), {who}" if pct else f"change in {nm['outcome']} ({unit}), {who}"
         if (s.get("model") or {}).get("family", "gaussian") != "gaussian":  # the ATT is on the link scale
             xlabel = f"effect on {nm['outcome']}, {_model_scale(run)} scale (log of the ratio), {who}"
-        out.append(_img(plots.effect_figure(shown, interval=tuple(e.eti_90), threshold=e.threshold,
-                                            scale=100.0 if pct else 1.0, xlabel=xlabel, median=e.median),
-                        "Posterior distribution of the effect with its 90% interval and the decision threshold"))
-        out.append('<p class="caption">Posterior distribution of the average effect on the treated (ATT). '
-                   'Shaded: 90% equal-tailed interval. Solid line: no effect. Dashed: the decision threshold '
-                   'from the study file.</p>')
+        out.append(
+            _img(
+                plots.effect_figure(
+                    shown,
+                    interval=tuple(e.eti_90),
+                    threshold=e.threshold,
+                    scale=100.0 if pct else 1.0,
+                    xlabel=xlabel,
+                    median=e.median,
+                ),
+                "Posterior distribution of the effect with its 90% interval and the decision threshold",
+            )
+        )
+        out.append(
+            '<p class="caption">Posterior distribution of the average effect on the treated (ATT). '
+            "Shaded: 90% equal-tailed interval. Solid line: no effect. Dashed: the decision threshold "
+            "from the study file.</p>"
+        )
     else:
-        out.append(_absent("posterior draws of the effect (posterior.nc is missing or holds no 'att'), so the "
-                           "density figure cannot be drawn; the numbers below come from summary.json.",
-                           FIT_COMMAND))
+        out.append(
+            _absent(
+                "posterior draws of the effect (posterior.nc is missing or holds no 'att'), so the "
+                "density figure cannot be drawn; the numbers below come from summary.json.",
+                FIT_COMMAND,
+            )
+        )
     fmt = _pct if pct else (lambda v: _num(v, 3))
-    rows = [["central estimate (posterior median)", fmt(e.median)], ["mean", fmt(e.mean)],
-            ["90% interval (equal-tailed)", f"{fmt(e.eti_90[0])} to {fmt(e.eti_90[1])}"],
-            ["95% interval (equal-tailed)", f"{fmt(e.eti_95[0])} to {fmt(e.eti_95[1])}"],
-            ["90% highest-density interval", f"{fmt(e.hdi_90[0])} to {fmt(e.hdi_90[1])}"],
-            ["probability of an increase", f"{e.prob_gt_0:.1%}"],
-            ["probability of a reduction", f"{e.prob_lt_0:.1%}"]]
+    rows = [
+        ["central estimate (posterior median)", fmt(e.median)],
+        ["mean", fmt(e.mean)],
+        ["90% interval (equal-tailed)", f"{fmt(e.eti_90[0])} to {fmt(e.eti_90[1])}"],
+        ["95% interval (equal-tailed)", f"{fmt(e.eti_95[0])} to {fmt(e.eti_95[1])}"],
+        ["90% highest-density interval", f"{fmt(e.hdi_90[0])} to {fmt(e.hdi_90[1])}"],
+        ["probability of an increase", f"{e.prob_gt_0:.1%}"],
+        ["probability of a reduction", f"{e.prob_lt_0:.1%}"],
+    ]
     if e.prob_beyond_threshold is not None:
         t = e.threshold
-        rows.append([f"probability of {'a reduction' if t < 0 else 'an increase'} beyond the threshold "
-                     f"({fmt(t)})", f"{e.prob_beyond_threshold:.1%}"])
+        rows.append(
+            [
+                f"probability of {'a reduction' if t < 0 else 'an increase'} beyond the threshold ({fmt(t)})",
+                f"{e.prob_beyond_threshold:.1%}",
+            ]
+        )
     out.append(f"<h3>Average effect ({esc(e.measure)})</h3>")
     out.append(_table(["quantity", "value"], rows))
     per = s.get("per_adopter") or []
@@ -161,31 +191,78 @@ def _effect_section(run: RunFolder) -> str:
         prow = []
         for r in per:
             q = r.get("percent", r) if pct else r
-            prow.append([r["adopter"], r.get("start", ""), _num(r.get("weight"), 3), fmt(q["median"]),
-                         f"{fmt(q['eti_90'][0])} to {fmt(q['eti_90'][1])}", f"{q['prob_lt_0']:.1%}"])
+            prow.append(
+                [
+                    r["adopter"],
+                    r.get("start", ""),
+                    _num(r.get("weight"), 3),
+                    fmt(q["median"]),
+                    f"{fmt(q['eti_90'][0])} to {fmt(q['eti_90'][1])}",
+                    f"{q['prob_lt_0']:.1%}",
+                ]
+            )
         out.append("<h3>Each adopting jurisdiction</h3>")
         if len(per) > 1:
             qs = [r.get("percent", r) if pct else r for r in per]
             k = 100.0 if pct else 1.0
-            out.append(_img(plots.interval_figure(
-                [str(r["adopter"]) for r in per], [k * q["median"] for q in qs], [k * q["eti_90"][0] for q in qs],
-                [k * q["eti_90"][1] for q in qs], xlabel="effect (%)" if pct else f"effect ({e.measure})"),
-                "Effect in each adopting jurisdiction with its 90% interval"))
-        out.append(_table(["jurisdiction", "first treated period", "weight in the average", "central estimate",
-                           "90% interval", "probability of a reduction"], prow))
+            out.append(
+                _img(
+                    plots.interval_figure(
+                        [str(r["adopter"]) for r in per],
+                        [k * q["median"] for q in qs],
+                        [k * q["eti_90"][0] for q in qs],
+                        [k * q["eti_90"][1] for q in qs],
+                        xlabel="effect (%)" if pct else f"effect ({e.measure})",
+                    ),
+                    "Effect in each adopting jurisdiction with its 90% interval",
+                )
+            )
+        out.append(
+            _table(
+                [
+                    "jurisdiction",
+                    "first treated period",
+                    "weight in the average",
+                    "central estimate",
+                    "90% interval",
+                    "probability of a reduction",
+                ],
+                prow,
+            )
+        )
     nat = [n for n in run.natural if n.measure != e.measure]
     if nat:
         out.append("<h3>On the natural scale</h3>")
         nrows = []
         for n in nat:
             above, below = n.prob_above_no_effect(), n.prob_below_no_effect()
-            nrows.append([n.measure, _num(n.median), f"{_num(n.eti_90[0])} to {_num(n.eti_90[1])}",
-                          _num(n.no_effect), "—" if above is None else f"{above:.1%}",
-                          "—" if below is None else f"{below:.1%}"])
-        out.append(_table(["measure", "central estimate", "90% interval", "no effect at",
-                           "probability above", "probability below"], nrows))
-        out.append('<p class="caption">From counterfactual predictions over the treated cells, with and without '
-                   'the policy, averaged with the cells\' own trials or exposure.</p>')
+            nrows.append(
+                [
+                    n.measure,
+                    _num(n.median),
+                    f"{_num(n.eti_90[0])} to {_num(n.eti_90[1])}",
+                    _num(n.no_effect),
+                    "—" if above is None else f"{above:.1%}",
+                    "—" if below is None else f"{below:.1%}",
+                ]
+            )
+        out.append(
+            _table(
+                [
+                    "measure",
+                    "central estimate",
+                    "90% interval",
+                    "no effect at",
+                    "probability above",
+                    "probability below",
+                ],
+                nrows,
+            )
+        )
+        out.append(
+            '<p class="caption">From counterfactual predictions over the treated cells, with and without '
+            "the policy, averaged with the cells' own trials or exposure.</p>"
+        )
     out.extend(_persistence_words(s))
     return "\n".join(out)
 
@@ -240,14 +317,23 @@ def _event_time_section(run: RunFolder) -> str:
     df = run.table("event_time")
     if df is not None and len(df):
         d = df.sort_values("event_time")
-        out.append(_img(plots.event_time_figure(
-            d["event_time"].to_numpy(float), d["mean"].to_numpy(float), d["lower_90"].to_numpy(float),
-            d["upper_90"].to_numpy(float),
-            xlabel="event time k (periods since the policy started; k = -1 is the reference)",
-            ylabel=f"effect ({_model_scale(run)})"),
-            "Effects by event time with intervals"))
-        out.append('<p class="caption">Effect at each event time with its 90% interval. Leads (k &lt; -1) '
-                   'should sit near zero if the groups were on parallel paths before the policy.</p>')
+        out.append(
+            _img(
+                plots.event_time_figure(
+                    d["event_time"].to_numpy(float),
+                    d["mean"].to_numpy(float),
+                    d["lower_90"].to_numpy(float),
+                    d["upper_90"].to_numpy(float),
+                    xlabel="event time k (periods since the policy started; k = -1 is the reference)",
+                    ylabel=f"effect ({_model_scale(run)})",
+                ),
+                "Effects by event time with intervals",
+            )
+        )
+        out.append(
+            '<p class="caption">Effect at each event time with its 90% interval. Leads (k &lt; -1) '
+            "should sit near zero if the groups were on parallel paths before the policy.</p>"
+        )
         return "\n".join(out)
     out.append(_absent(f"the event-time table: the check wrote none ({sec.status}).", CHECKS_COMMAND))
     return "\n".join(out)
@@ -256,8 +342,7 @@ def _event_time_section(run: RunFolder) -> str:
 def _pretrend_section(run: RunFolder) -> str:
     sec, head = _check_status(run, "pretrend")
     if sec is None:
-        return _absent(f"the posterior predictive pre-trend check ({_why_no_check(run, 'pretrend')}).",
-                       CHECKS_COMMAND)
+        return _absent(f"the posterior predictive pre-trend check ({_why_no_check(run, 'pretrend')}).", CHECKS_COMMAND)
     out = [head]
     df = run.table("pretrend_band")
     if df is not None and len(df):
@@ -267,17 +352,29 @@ def _pretrend_section(run: RunFolder) -> str:
         series = []
         for name, part in df.groupby("adopter", sort=True):
             part = part.sort_values("period_index")
-            series.append({"label": str(name), "x": part["period_index"].map(pos).to_numpy(float),
-                           "observed": part["observed_gap"].to_numpy(float),
-                           "lower": part["band_lower_90"].to_numpy(float),
-                           "upper": part["band_upper_90"].to_numpy(float),
-                           "mid": part["band_median"].to_numpy(float)})
-        out.append(_img(plots.band_figure(series, xlabel="period",
-                                          ylabel=f"{_gap_words(run)} ({_model_scale(run)})", xticks=labels),
-                        "Observed gap of the adopters against the posterior predictive band"))
-        out.append(f'<p class="caption">Observed {esc(_gap_words(run))} of each adopting jurisdiction before the '
-                   'policy, against the 90% band the model predicts from the comparison jurisdictions. An '
-                   'observed path leaving the band suggests the groups were not on parallel paths.</p>')
+            series.append(
+                {
+                    "label": str(name),
+                    "x": part["period_index"].map(pos).to_numpy(float),
+                    "observed": part["observed_gap"].to_numpy(float),
+                    "lower": part["band_lower_90"].to_numpy(float),
+                    "upper": part["band_upper_90"].to_numpy(float),
+                    "mid": part["band_median"].to_numpy(float),
+                }
+            )
+        out.append(
+            _img(
+                plots.band_figure(
+                    series, xlabel="period", ylabel=f"{_gap_words(run)} ({_model_scale(run)})", xticks=labels
+                ),
+                "Observed gap of the adopters against the posterior predictive band",
+            )
+        )
+        out.append(
+            f'<p class="caption">Observed {esc(_gap_words(run))} of each adopting jurisdiction before the '
+            "policy, against the 90% band the model predicts from the comparison jurisdictions. An "
+            "observed path leaving the band suggests the groups were not on parallel paths.</p>"
+        )
         return "\n".join(out)
     out.append(_absent(f"the pre-trend band: the check wrote none ({sec.status}).", CHECKS_COMMAND))
     return "\n".join(out)
@@ -300,20 +397,31 @@ def _gap_words(run: RunFolder) -> str:
 def _comparison_section(run: RunFolder) -> str:
     sec, head = _check_status(run, "comparison")
     if sec is None:
-        return _absent(f"the check of the comparison jurisdictions ({_why_no_check(run, 'comparison')}).",
-                       CHECKS_COMMAND)
+        return _absent(
+            f"the check of the comparison jurisdictions ({_why_no_check(run, 'comparison')}).", CHECKS_COMMAND
+        )
     out = [head]
     df = run.table("comparison")
     if df is not None and len(df):
         flagged = df["flagged"].astype(str).str.lower().eq("true").tolist()
-        out.append(_img(plots.comparison_figure(
-            [str(v) for v in df["jurisdiction"]], df["mean"].to_numpy(float), df["lower_90"].to_numpy(float),
-            df["upper_90"].to_numpy(float), flagged,
-            xlabel=f"change in the {'group gap' if _gap_words(run) != 'outcome' else 'outcome'}, before to after "
-                   f"the policy start ({_model_scale(run)})"),
-            "Change in each comparison jurisdiction's gap, flagged ones marked"))
-        out.append('<p class="caption">Each comparison jurisdiction never adopted, so its gap should '
-                   'barely change. Plum diamonds are flagged as unusual.</p>')
+        out.append(
+            _img(
+                plots.comparison_figure(
+                    [str(v) for v in df["jurisdiction"]],
+                    df["mean"].to_numpy(float),
+                    df["lower_90"].to_numpy(float),
+                    df["upper_90"].to_numpy(float),
+                    flagged,
+                    xlabel=f"change in the {'group gap' if _gap_words(run) != 'outcome' else 'outcome'}, before to after "
+                    f"the policy start ({_model_scale(run)})",
+                ),
+                "Change in each comparison jurisdiction's gap, flagged ones marked",
+            )
+        )
+        out.append(
+            '<p class="caption">Each comparison jurisdiction never adopted, so its gap should '
+            "barely change. Plum diamonds are flagged as unusual.</p>"
+        )
         if any(flagged):
             out.append("<p>Flagged: " + ", ".join(esc(n) for n, f in zip(df["jurisdiction"], flagged) if f) + "</p>")
         return "\n".join(out)
@@ -323,8 +431,10 @@ def _comparison_section(run: RunFolder) -> str:
 
 def _placebo_section(run: RunFolder) -> str:
     out = []
-    for name, title in (("placebo_time", "Placebo in time (a fake start before the real one)"),
-                        ("placebo_space", "Placebo in space (each comparison jurisdiction as a fake adopter)")):
+    for name, title in (
+        ("placebo_time", "Placebo in time (a fake start before the real one)"),
+        ("placebo_space", "Placebo in space (each comparison jurisdiction as a fake adopter)"),
+    ):
         out.append(f"<h3>{esc(title)}</h3>")
         sec, head = _check_status(run, name)
         if sec is None:
@@ -345,31 +455,44 @@ def _placebo_space_body(run: RunFolder, sec) -> str:
     if real.empty or plc.empty:
         return ""
     r = float(real["mean"].iloc[0])
-    out = [_img(plots.placebo_figure(plc["mean"].to_numpy(float), r,
-                                     xlabel=f"estimated effect, posterior mean ({_model_scale(run)})"),
-                "Placebo estimates of the comparison jurisdictions with the real estimate marked"),
-           '<p class="caption">Each dot is the effect the model estimates when a comparison jurisdiction, '
-           'which never adopted, is treated as the adopter. The plum line is the real estimate; the shaded '
-           'region holds placebos at least as large in size.</p>']
+    out = [
+        _img(
+            plots.placebo_figure(
+                plc["mean"].to_numpy(float), r, xlabel=f"estimated effect, posterior mean ({_model_scale(run)})"
+            ),
+            "Placebo estimates of the comparison jurisdictions with the real estimate marked",
+        ),
+        '<p class="caption">Each dot is the effect the model estimates when a comparison jurisdiction, '
+        "which never adopted, is treated as the adopter. The plum line is the real estimate; the shaded "
+        "region holds placebos at least as large in size.</p>",
+    ]
     p_bayes = sec.extra.get("permutation_p")
     ls = run.summary.get("least_squares") or {}
     e = run.effect
     below = e.prob_lt_0 if e.median < 0 else e.prob_gt_0
-    parts = [f"<p><strong>Reading the probabilities together.</strong> The posterior gives a "
-             f"{below:.0%} probability that the effect is {'below' if e.median < 0 else 'above'} zero: it "
-             "judges the adopters' change against the gap noise the model learns from every comparison "
-             "jurisdiction and period. The placebo-in-space ranking asks a different question: how often does "
-             "a place without the policy show an estimate at least as large?"]
+    parts = [
+        f"<p><strong>Reading the probabilities together.</strong> The posterior gives a "
+        f"{below:.0%} probability that the effect is {'below' if e.median < 0 else 'above'} zero: it "
+        "judges the adopters' change against the gap noise the model learns from every comparison "
+        "jurisdiction and period. The placebo-in-space ranking asks a different question: how often does "
+        "a place without the policy show an estimate at least as large?"
+    ]
     if isinstance(p_bayes, (int, float)):
-        parts.append(f" Here {int(sec.extra.get('rank', 0)) - 1} of {int(sec.extra.get('n_placebos', 0))} "
-                     f"placebos are as large (permutation p = {p_bayes:.3f}, on the posterior means).")
+        parts.append(
+            f" Here {int(sec.extra.get('rank', 0)) - 1} of {int(sec.extra.get('n_placebos', 0))} "
+            f"placebos are as large (permutation p = {p_bayes:.3f}, on the posterior means)."
+        )
     if isinstance(ls.get("p_permutation"), (int, float)):
-        parts.append(f" The least-squares cross-check asks the same question of its own estimates "
-                     f"(permutation p = {ls['p_permutation']:.3f}).")
-    parts.append(" With few comparison jurisdictions such p-values can only take coarse values (1/(N+1) "
-                 "steps). A small posterior probability of no effect together with a large placebo p-value "
-                 "means the effect is clear relative to the model's noise but not rare among places without "
-                 "the policy: read it as weaker evidence.</p>")
+        parts.append(
+            f" The least-squares cross-check asks the same question of its own estimates "
+            f"(permutation p = {ls['p_permutation']:.3f})."
+        )
+    parts.append(
+        " With few comparison jurisdictions such p-values can only take coarse values (1/(N+1) "
+        "steps). A small posterior probability of no effect together with a large placebo p-value "
+        "means the effect is clear relative to the model's noise but not rare among places without "
+        "the policy: read it as weaker evidence.</p>"
+    )
     out.append("".join(parts))
     return "\n".join(out)
 
@@ -379,31 +502,63 @@ def _trends_words(run: RunFolder) -> list[str]:
     tr = run.summary.get("parallel_trends")
     out = ["<h3>Departures from parallel trends</h3>"]
     if not isinstance(tr, dict):
-        return out + [_absent("the parallel-trends sensitivity (summary.json has no 'parallel_trends' entry).",
-                              "bayesdid trends RUN_DIR")]
+        return out + [
+            _absent(
+                "the parallel-trends sensitivity (summary.json has no 'parallel_trends' entry).",
+                "bayesdid trends RUN_DIR",
+            )
+        ]
     if tr.get("status") != "ok" or not tr.get("grid"):
         return out + [f"<p>Not applicable: {esc(tr.get('reason', ''))}</p>"]
     pct = _is_percent(run.summary)
     conv = (lambda v: float(np.expm1(v)) * 100.0) if pct else (lambda v: float(v))
     grid = tr["grid"]
     thr = tr.get("threshold_model_scale")
-    out.append(_img(plots.trends_figure(
-        [g["M"] for g in grid], [conv(g["lower_95"]) for g in grid], [conv(g["upper_95"]) for g in grid],
-        breakdown=(tr.get("breakdown") or {}).get("M_zero"), threshold=None if thr is None else conv(thr),
-        ylabel="effect, 95% interval" + (" (%)" if pct else " (model scale)")),
-        "95% interval of the effect against M, with the breakdown value"))
+    out.append(
+        _img(
+            plots.trends_figure(
+                [g["M"] for g in grid],
+                [conv(g["lower_95"]) for g in grid],
+                [conv(g["upper_95"]) for g in grid],
+                breakdown=(tr.get("breakdown") or {}).get("M_zero"),
+                threshold=None if thr is None else conv(thr),
+                ylabel="effect, 95% interval" + (" (%)" if pct else " (model scale)"),
+            ),
+            "95% interval of the effect against M, with the breakdown value",
+        )
+    )
     out.append(f"<p><strong>{esc(tr.get('sentence', ''))}</strong></p>")
     fmt = (lambda v: f"{conv(v):.1f}%") if pct else (lambda v: _num(v, 3))
-    rows = [[_num(g["M"]), f"{fmt(g['lower_95'])} to {fmt(g['upper_95'])}", f"{g['prob_reduction']:.1%}",
-             f"{g['prob_increase']:.1%}", f"{g['prob_beyond_threshold']:.1%}"] for g in grid]
-    out.append(_table(["M", "95% interval", "P(reduction) for every allowed path", "P(increase) for every allowed path",
-                       "P(beyond the decision threshold)"], rows))
+    rows = [
+        [
+            _num(g["M"]),
+            f"{fmt(g['lower_95'])} to {fmt(g['upper_95'])}",
+            f"{g['prob_reduction']:.1%}",
+            f"{g['prob_increase']:.1%}",
+            f"{g['prob_beyond_threshold']:.1%}",
+        ]
+        for g in grid
+    ]
+    out.append(
+        _table(
+            [
+                "M",
+                "95% interval",
+                "P(reduction) for every allowed path",
+                "P(increase) for every allowed path",
+                "P(beyond the decision threshold)",
+            ],
+            rows,
+        )
+    )
     b = tr.get("breakdown") or {}
-    out.append(f'<p class="caption">After the policy the adopters\' gap may depart from its parallel path by up to M '
-               f'times the largest period-to-period change it showed before (relative magnitudes, after Rambachan '
-               f'and Roth 2023; a bound applied to every posterior draw). Breakdown values: {esc(b.get("M_zero_meaning", ""))}: '
-               f'{_num(b.get("M_zero"))}; {esc(b.get("M_decision_meaning", ""))}: {_num(b.get("M_decision"))}. '
-               f'Table: trends.csv.</p>')
+    out.append(
+        f'<p class="caption">After the policy the adopters\' gap may depart from its parallel path by up to M '
+        f"times the largest period-to-period change it showed before (relative magnitudes, after Rambachan "
+        f"and Roth 2023; a bound applied to every posterior draw). Breakdown values: {esc(b.get('M_zero_meaning', ''))}: "
+        f"{_num(b.get('M_zero'))}; {esc(b.get('M_decision_meaning', ''))}: {_num(b.get('M_decision'))}. "
+        f"Table: trends.csv.</p>"
+    )
     if tr.get("reason"):
         out.append(f"<p>{esc(tr['reason'])}.</p>")
     return out
@@ -419,14 +574,19 @@ def _sensitivity_section(run: RunFolder) -> str:
         if isinstance(items, dict):
             for par, val in items.items():
                 if isinstance(val, dict):
-                    rows.append([par] + [_num(val.get(k)) for k in ("prior", "likelihood")] +
-                                [val.get("diagnosis", val.get("verdict", ""))])
+                    rows.append(
+                        [par]
+                        + [_num(val.get(k)) for k in ("prior", "likelihood")]
+                        + [val.get("diagnosis", val.get("verdict", ""))]
+                    )
         elif isinstance(items, list):
             for val in items:
                 if isinstance(val, dict):
-                    rows.append([val.get("parameter", val.get("name", ""))] +
-                                [_num(val.get(k)) for k in ("prior", "likelihood")] +
-                                [val.get("diagnosis", val.get("verdict", ""))])
+                    rows.append(
+                        [val.get("parameter", val.get("name", ""))]
+                        + [_num(val.get(k)) for k in ("prior", "likelihood")]
+                        + [val.get("diagnosis", val.get("verdict", ""))]
+                    )
         if rows:
             out.append(_table(["parameter", "prior sensitivity", "likelihood sensitivity", "diagnosis"], rows))
         else:
@@ -441,37 +601,66 @@ def _sensitivity_section(run: RunFolder) -> str:
         out.append(f"<p>The sweep could not be judged: {esc(v.reason or v.status)}.</p>")
     else:
         rows = v.rows
-        out.append(_img(plots.interval_figure(
-            [r.label for r in rows], [r.effect_mean for r in rows], [r.eti_90[0] for r in rows],
-            [r.eti_90[1] for r in rows], xlabel=f"effect: mean and 90% interval ({_model_scale(run)})"),
-            "Effect interval per sensitivity variant"))
-        out.append(_table(["variant", "effect mean", "90% interval", "shift from the base (base posterior sd)"],
-                          [[r.label, _num(r.effect_mean), f"{_num(r.eti_90[0])} to {_num(r.eti_90[1])}",
-                            _num(r.shift_sd)] for r in rows]))
+        out.append(
+            _img(
+                plots.interval_figure(
+                    [r.label for r in rows],
+                    [r.effect_mean for r in rows],
+                    [r.eti_90[0] for r in rows],
+                    [r.eti_90[1] for r in rows],
+                    xlabel=f"effect: mean and 90% interval ({_model_scale(run)})",
+                ),
+                "Effect interval per sensitivity variant",
+            )
+        )
+        out.append(
+            _table(
+                ["variant", "effect mean", "90% interval", "shift from the base (base posterior sd)"],
+                [
+                    [r.label, _num(r.effect_mean), f"{_num(r.eti_90[0])} to {_num(r.eti_90[1])}", _num(r.shift_sd)]
+                    for r in rows
+                ],
+            )
+        )
         held = []
         for c in v.checks:
             if c.get("holds") is None:
                 held.append([c.get("what", c.get("check")), "not applicable", c.get("reason", "")])
             else:
-                held.append([c.get("what", c.get("check")), "holds" if c["holds"] else "breaks",
-                             f"{c.get('held_by')} of {c.get('of')} variants agree with the base"])
+                held.append(
+                    [
+                        c.get("what", c.get("check")),
+                        "holds" if c["holds"] else "breaks",
+                        f"{c.get('held_by')} of {c.get('of')} variants agree with the base",
+                    ]
+                )
         out.append(_table(["what is compared with the base study", "result", "detail"], held))
         if v.moves_most:
             mm = v.moves_most
-            out.append(f"<p>Moves the effect most: {esc(mm['label'])} ({mm['shift_sd']:.2f} posterior sd of "
-                       "the base).</p>")
+            out.append(
+                f"<p>Moves the effect most: {esc(mm['label'])} ({mm['shift_sd']:.2f} posterior sd of the base).</p>"
+            )
         if v.not_judged:
             out.append(f'<p class="note">Not judged (failed or unfinished): {esc(", ".join(v.not_judged))}.</p>')
     return "\n".join(out)
 
 
-_LS_LABELS = [("estimate", "least-squares DDD/DiD coefficient"), ("se_classical", "classical s.e."),
-              ("se_hc1", "heteroskedasticity-robust s.e. (HC1)"), ("se_cr1", "cluster-robust s.e. (CR1)"),
-              ("p_cr1", "p-value, CR1"), ("ci_cr1_95", "95% interval, CR1"),
-              ("p_wild", "p-value, wild cluster bootstrap"), ("ci_wild_95", "95% interval, wild cluster bootstrap"),
-              ("p_permutation", "p-value, placebo-in-space permutation"), ("clusters", "clusters (jurisdictions)"),
-              ("treated_clusters", "treated clusters"), ("cells", "cells"), ("regressors", "regressors"),
-              ("method", "method")]
+_LS_LABELS = [
+    ("estimate", "least-squares DDD/DiD coefficient"),
+    ("se_classical", "classical s.e."),
+    ("se_hc1", "heteroskedasticity-robust s.e. (HC1)"),
+    ("se_cr1", "cluster-robust s.e. (CR1)"),
+    ("p_cr1", "p-value, CR1"),
+    ("ci_cr1_95", "95% interval, CR1"),
+    ("p_wild", "p-value, wild cluster bootstrap"),
+    ("ci_wild_95", "95% interval, wild cluster bootstrap"),
+    ("p_permutation", "p-value, placebo-in-space permutation"),
+    ("clusters", "clusters (jurisdictions)"),
+    ("treated_clusters", "treated clusters"),
+    ("cells", "cells"),
+    ("regressors", "regressors"),
+    ("method", "method"),
+]
 
 
 #: family -> (natural measure of the posterior on the least-squares scale, factor from the least-squares
@@ -479,8 +668,7 @@ _LS_LABELS = [("estimate", "least-squares DDD/DiD coefficient"), ("se_classical"
 #: regresses the cells' proportions or rates (weighted by trials or exposure): a risk or rate difference.
 _LS_SCALES = {
     "binomial": ("risk difference, percentage points", 100.0, "risk difference (percentage points)"),
-    "poisson": ("rate difference per 1,000 units of exposure", 1000.0,
-                "rate difference per 1,000 units of exposure"),
+    "poisson": ("rate difference per 1,000 units of exposure", 1000.0, "rate difference per 1,000 units of exposure"),
 }
 _LS_SCALES["negbinomial"] = _LS_SCALES["poisson"]
 
@@ -500,23 +688,35 @@ def _crosscheck_section(run: RunFolder) -> str:
         measure, f, axis = _LS_SCALES[fam]
         nat = next((n for n in run.natural if n.measure == measure), None)
         if nat is None:
-            return (f"<p>The least-squares estimate ({_num(ls['estimate'] * f, 4)}, {esc(axis)}) cannot be set "
-                    "beside the posterior: this run folder has no posterior "
-                    f"{esc(measure)} (summary.json 'effect_natural').</p>")
+            return (
+                f"<p>The least-squares estimate ({_num(ls['estimate'] * f, 4)}, {esc(axis)}) cannot be set "
+                "beside the posterior: this run folder has no posterior "
+                f"{esc(measure)} (summary.json 'effect_natural').</p>"
+            )
         e = nat
-        scale_note = (f"Both on one scale, the {axis}: the least-squares regression on the cells' "
-                      f"{'proportions' if fam == 'binomial' else 'rates'} (weighted by their "
-                      f"{'trials' if fam == 'binomial' else 'exposure'}) estimates a "
-                      f"{'risk' if fam == 'binomial' else 'rate'} difference, multiplied here by {f:g}; the "
-                      "posterior's is the difference of its counterfactual predictions over the treated cells, "
-                      "with and without the policy.")
+        scale_note = (
+            f"Both on one scale, the {axis}: the least-squares regression on the cells' "
+            f"{'proportions' if fam == 'binomial' else 'rates'} (weighted by their "
+            f"{'trials' if fam == 'binomial' else 'exposure'}) estimates a "
+            f"{'risk' if fam == 'binomial' else 'rate'} difference, multiplied here by {f:g}; the "
+            "posterior's is the difference of its counterfactual predictions over the treated cells, "
+            "with and without the policy."
+        )
     else:
-        axis = "effect on the model scale" + (" (difference in log outcome)" if _is_percent(s) else
-                                              f" ({names((run.manifest or {}).get('study'))['unit'] or 'outcome units'})")
+        axis = "effect on the model scale" + (
+            " (difference in log outcome)"
+            if _is_percent(s)
+            else f" ({names((run.manifest or {}).get('study'))['unit'] or 'outcome units'})"
+        )
         scale_note = "Both on the model scale."
     nan = float("nan")
-    labels = ["posterior, 90% interval", "posterior, 95% interval", "least squares, CR1",
-              "least squares, wild cluster bootstrap", "least squares, permutation"]
+    labels = [
+        "posterior, 90% interval",
+        "posterior, 95% interval",
+        "least squares, CR1",
+        "least squares, wild cluster bootstrap",
+        "least squares, permutation",
+    ]
     est = ls["estimate"] * f
     mid = [e.median, e.median, est, est, est]
     ci_cr1 = ls.get("ci_cr1_95")
@@ -540,21 +740,33 @@ def _crosscheck_section(run: RunFolder) -> str:
     P, A = plots.PALETTE["posterior"], plots.PALETTE["alternative"]
     n = len(labels)
     fig = plots.interval_figure(
-        labels, mid, lower, upper, colors=[P, P, A, A, A][:n], markers=["o", "o", "s", "s", "s"][:n],
+        labels,
+        mid,
+        lower,
+        upper,
+        colors=[P, P, A, A, A][:n],
+        markers=["o", "o", "s", "s", "s"][:n],
         xlabel=axis,
-        legend=[("posterior median with interval", P, "o"), ("least-squares estimate with 95% interval", A, "s")])
-    out = [_img(fig, "Posterior interval against the least-squares estimate and its three kinds of inference"),
-           '<p class="caption">The Bayesian posterior against the least-squares fixed-effects estimate on the '
-           'same cells, with cluster-robust (CR1), wild cluster bootstrap and permutation inference. A bar is '
-           f'missing where that interval is not in the run folder. {esc(scale_note)}</p>']
+        legend=[("posterior median with interval", P, "o"), ("least-squares estimate with 95% interval", A, "s")],
+    )
+    out = [
+        _img(fig, "Posterior interval against the least-squares estimate and its three kinds of inference"),
+        '<p class="caption">The Bayesian posterior against the least-squares fixed-effects estimate on the '
+        "same cells, with cluster-robust (CR1), wild cluster bootstrap and permutation inference. A bar is "
+        f"missing where that interval is not in the run folder. {esc(scale_note)}</p>",
+    ]
     rows = [[lab, _num(ls[k], 4)] for k, lab in _LS_LABELS if k in ls]
-    out.append(_table(["quantity", "value" + (f" (least-squares scale; × {f:g} for the figure)" if f != 1 else "")],
-                      rows))
+    out.append(
+        _table(["quantity", "value" + (f" (least-squares scale; × {f:g} for the figure)" if f != 1 else "")], rows)
+    )
     missing = [lab for k, lab in _LS_LABELS[:10] if k not in ls and k != "ci_cr1_95"]
     if missing:
         why = ls.get("skipped") or {}
-        detail = "; ".join(lab + (f" ({why[k]})" if isinstance(why.get(k), str) else "")
-                           for k, lab in _LS_LABELS[:10] if k not in ls and k != "ci_cr1_95")
+        detail = "; ".join(
+            lab + (f" ({why[k]})" if isinstance(why.get(k), str) else "")
+            for k, lab in _LS_LABELS[:10]
+            if k not in ls and k != "ci_cr1_95"
+        )
         out.append(_absent("parts of the cross-check: " + detail + ".", FIT_COMMAND + " (with the full cross-check)"))
     if isinstance(ls.get("covariates_note"), str):
         out.append(f'<p class="note">Least squares {esc(ls["covariates_note"])}.</p>')
@@ -566,17 +778,26 @@ def _crosscheck_section(run: RunFolder) -> str:
 def _data_section(run: RunFolder) -> str:
     d = run.summary["data"]
     cols = ((run.manifest or {}).get("study") or {}).get("data") or {}
-    rows = [["rows in the table", _num(d.get("rows"))], ["cells (jurisdiction × group × period)", _num(d.get("cells"))],
-            ["jurisdictions", _num(d.get("jurisdictions"))], ["periods", _num(d.get("periods"))],
-            ["groups (reference first, target last)", ", ".join(map(str, d.get("groups", [])))],
-            ["design", d.get("design", "")], ["adopting jurisdictions", _num(len(d.get("adopters", [])))]]
+    rows = [
+        ["rows in the table", _num(d.get("rows"))],
+        ["cells (jurisdiction × group × period)", _num(d.get("cells"))],
+        ["jurisdictions", _num(d.get("jurisdictions"))],
+        ["periods", _num(d.get("periods"))],
+        ["groups (reference first, target last)", ", ".join(map(str, d.get("groups", [])))],
+        ["design", d.get("design", "")],
+        ["adopting jurisdictions", _num(len(d.get("adopters", [])))],
+    ]
     for role in ("outcome", "jurisdiction", "period", "group", "unit", "exposure", "trials"):
         if cols.get(role):
             rows.append([f"{role} column", cols[role]])
     m = run.summary.get("model") or {}
     if m:
-        rows.append(["model", f"{m.get('family', '')}{', log outcome' if m.get('log_outcome') else ''}; "
-                              f"{m.get('likelihood', '')}"])
+        rows.append(
+            [
+                "model",
+                f"{m.get('family', '')}{', log outcome' if m.get('log_outcome') else ''}; {m.get('likelihood', '')}",
+            ]
+        )
     out = [_table(["item", "value"], rows)]
     starts = d.get("starts") or {}
     if starts:
@@ -597,8 +818,9 @@ def _raw_paths(run: RunFolder) -> list[str]:
     jurisdictions' mean and 10-90% band, from the cell means in posterior.nc."""
     c = run.cell_means()
     if c is None:
-        return [_absent("the cell means (posterior.nc is missing), so the raw-data figure cannot be drawn.",
-                        FIT_COMMAND)]
+        return [
+            _absent("the cell means (posterior.nc is missing), so the raw-data figure cannot be drawn.", FIT_COMMAND)
+        ]
     mean, start = c["mean"], c["start"]
     T = mean.shape[2]
     ddd = mean.shape[1] == 2
@@ -611,8 +833,17 @@ def _raw_paths(run: RunFolder) -> list[str]:
         warnings.simplefilter("ignore", RuntimeWarning)  # a period where no comparison has rows
         cm = np.nanmean(path[comp], axis=0)
         lo, hi = np.nanpercentile(path[comp], [10, 90], axis=0)
-    series = [{"label": c["jurisdictions"][j], "observed": path[j], "mean": cm, "lower": lo, "upper": hi,
-               "start": int(start[j])} for j in adopters[:RAW_PANELS]]
+    series = [
+        {
+            "label": c["jurisdictions"][j],
+            "observed": path[j],
+            "mean": cm,
+            "lower": lo,
+            "upper": hi,
+            "start": int(start[j]),
+        }
+        for j in adopters[:RAW_PANELS]
+    ]
     nm = names((run.manifest or {}).get("study"))
     log = bool((run.summary.get("model") or {}).get("log_outcome"))
     what = f"log {nm['outcome']}" if log else nm["outcome"]
@@ -621,16 +852,23 @@ def _raw_paths(run: RunFolder) -> list[str]:
         ylabel = f"{what}: {grp[1]} minus {grp[0]}"
     else:
         ylabel = what
-    out = ["<h3>The raw data</h3>",
-           _img(plots.raw_path_figure(series, xlabel="period", ylabel=ylabel, xticks=c["periods"]),
-                "Each adopter's observed path against the comparison jurisdictions' mean and band")]
+    out = [
+        "<h3>The raw data</h3>",
+        _img(
+            plots.raw_path_figure(series, xlabel="period", ylabel=ylabel, xticks=c["periods"]),
+            "Each adopter's observed path against the comparison jurisdictions' mean and band",
+        ),
+    ]
     more = len(adopters) - RAW_PANELS
-    out.append('<p class="caption">Observed cell means, before any model: '
-               + ("the gap between the target and the reference group" if ddd else "the outcome")
-               + " in each adopting jurisdiction (orange) against the mean (dashed) and the 10-90% range (band) "
-               "of the comparison jurisdictions; the dotted line marks the policy start. Levels may differ; "
-               "what the analysis relies on is that the paths move alike before the start."
-               + (f" {more} more adopting jurisdiction(s) are not drawn." if more > 0 else "") + "</p>")
+    out.append(
+        '<p class="caption">Observed cell means, before any model: '
+        + ("the gap between the target and the reference group" if ddd else "the outcome")
+        + " in each adopting jurisdiction (orange) against the mean (dashed) and the 10-90% range (band) "
+        "of the comparison jurisdictions; the dotted line marks the policy start. Levels may differ; "
+        "what the analysis relies on is that the paths move alike before the start."
+        + (f" {more} more adopting jurisdiction(s) are not drawn." if more > 0 else "")
+        + "</p>"
+    )
     return out
 
 
@@ -638,25 +876,33 @@ def _priors_section(run: RunFolder) -> str:
     pr = run.summary.get("priors") or {}
     if not pr:
         return _absent("the prior scales (summary.json has no 'priors' entry).", FIT_COMMAND)
-    rows = [[k, _num(v.get("scale"), 4), v.get("source", ""), v.get("meaning", "")] for k, v in pr.items()
-            if isinstance(v, dict)]
-    return ('<p>Default scales are set from the data (for example from the outcome\'s pooled standard '
-            'deviation) and can be changed in the study file\'s [priors] section.</p>' +
-            _table(["prior", "scale", "source", "meaning"], rows))
+    rows = [
+        [k, _num(v.get("scale"), 4), v.get("source", ""), v.get("meaning", "")]
+        for k, v in pr.items()
+        if isinstance(v, dict)
+    ]
+    return (
+        "<p>Default scales are set from the data (for example from the outcome's pooled standard "
+        "deviation) and can be changed in the study file's [priors] section.</p>"
+        + _table(["prior", "scale", "source", "meaning"], rows)
+    )
 
 
 def _diagnostics_section(run: RunFolder) -> str:
     dg = run.summary.get("diagnostics") or {}
     th = dg.get("thresholds") or {}
     rows = []
-    spec = [("rhat_max", "largest R-hat", "below", lambda v, t: v < t),
-            ("ess_bulk_min", "smallest bulk ESS", "at least", lambda v, t: v >= t),
-            ("ess_tail_min", "smallest tail ESS", "at least", lambda v, t: v >= t),
-            ("divergences", "divergent transitions", "at most", lambda v, t: v <= t)]
+    spec = [
+        ("rhat_max", "largest R-hat", "below", lambda v, t: v < t),
+        ("ess_bulk_min", "smallest bulk ESS", "at least", lambda v, t: v >= t),
+        ("ess_tail_min", "smallest tail ESS", "at least", lambda v, t: v >= t),
+        ("divergences", "divergent transitions", "at most", lambda v, t: v <= t),
+    ]
     for key, label, word, ok in spec:
         if key in dg and key in th and dg[key] is not None:
-            rows.append([label, _num(dg[key], 4), f"{word} {_num(th[key])}",
-                         _badge("pass" if ok(dg[key], th[key]) else "fail")])
+            rows.append(
+                [label, _num(dg[key], 4), f"{word} {_num(th[key])}", _badge("pass" if ok(dg[key], th[key]) else "fail")]
+            )
     out = []
     if rows:
         out.append(_table(["measure", "value", "threshold", "result"], rows))
@@ -671,9 +917,11 @@ def _diagnostics_section(run: RunFolder) -> str:
         if ranks:
             out.append("<h3>Rank plots of the worst-mixing quantities</h3>")
             out.append(_img(plots.rank_figure(ranks), "Rank histograms per chain of the worst-mixing quantities"))
-            out.append('<p class="caption">Each draw ranked among all chains\' draws; one outline per chain. '
-                       'Chains that explore the same distribution give flat, overlapping outlines; an outline '
-                       'piled at one end is a chain stuck apart (Vehtari et al. 2021).</p>')
+            out.append(
+                '<p class="caption">Each draw ranked among all chains\' draws; one outline per chain. '
+                "Chains that explore the same distribution give flat, overlapping outlines; an outline "
+                "piled at one end is a chain stuck apart (Vehtari et al. 2021).</p>"
+            )
     return "\n".join(out)
 
 
@@ -710,28 +958,37 @@ def _assumptions_section(run: RunFolder) -> str:
     target = esc(groups[-1]) if ddd and groups else "outcome"
     gap = f"gap between the target group ({target}) and the reference group" if ddd else "outcome"
     return _ASSUMPTIONS.format(
-        design="triple difference (DDD)" if ddd else "difference in differences (DiD)", gap=gap,
+        design="triple difference (DDD)" if ddd else "difference in differences (DiD)",
+        gap=gap,
         target=f"target group ({target})" if ddd else "people covered",
         ref=" nor in the reference group of the adopting jurisdictions" if ddd else "",
         scale="log" if (run.summary.get("model") or {}).get("log_outcome") else "outcome",
-        n_ad=esc(len(d.get("adopters", []))))
+        n_ad=esc(len(d.get("adopters", []))),
+    )
 
 
 def _provenance_section(run: RunFolder) -> str:
     m = run.manifest or {}
     rows = [["run folder", str(run.path)]]
     if m:
-        rows += [["created", m.get("created", "")], ["seed", str(m.get("seed", ""))],
-                 ["sampler", ", ".join(f"{k} {v}" for k, v in (m.get("sampler") or {}).items())],
-                 ["data table", m.get("table", "")], ["data SHA-256", m.get("data_sha256", "")],
-                 ["command", " ".join(map(str, m.get("command") or []))],
-                 ["versions", ", ".join(f"{k} {v}" for k, v in (m.get("versions") or {}).items())]]
+        rows += [
+            ["created", m.get("created", "")],
+            ["seed", str(m.get("seed", ""))],
+            ["sampler", ", ".join(f"{k} {v}" for k, v in (m.get("sampler") or {}).items())],
+            ["data table", m.get("table", "")],
+            ["data SHA-256", m.get("data_sha256", "")],
+            ["command", " ".join(map(str, m.get("command") or []))],
+            ["versions", ", ".join(f"{k} {v}" for k, v in (m.get("versions") or {}).items())],
+        ]
     t = run.summary.get("timing") or {}
     if t:
-        rows.append(["timing (seconds)", ", ".join(f"{k.removesuffix('_s')} {v:.1f}" for k, v in t.items()
-                                                   if isinstance(v, (int, float)))])
-    files = sorted(str(p.relative_to(run.path)) for p in run.path.rglob("*") if p.is_file()
-                   and p.name != "report.html")
+        rows.append(
+            [
+                "timing (seconds)",
+                ", ".join(f"{k.removesuffix('_s')} {v:.1f}" for k, v in t.items() if isinstance(v, (int, float))),
+            ]
+        )
+    files = sorted(str(p.relative_to(run.path)) for p in run.path.rglob("*") if p.is_file() and p.name != "report.html")
     rows.append(["files read from", ", ".join(files)])
     out = [_table(["item", "value"], rows)]
     if not m:
@@ -784,10 +1041,18 @@ code { font-size: 13px; background: #f1f2f4; padding: 1px 4px; word-break: break
 """
 
 _SECTION_FUNCS = {
-    "effect": _effect_section, "event-time": _event_time_section, "pretrend": _pretrend_section,
-    "comparison": _comparison_section, "placebo": _placebo_section, "sensitivity": _sensitivity_section,
-    "cross-check": _crosscheck_section, "data": _data_section, "priors": _priors_section,
-    "diagnostics": _diagnostics_section, "assumptions": _assumptions_section, "provenance": _provenance_section,
+    "effect": _effect_section,
+    "event-time": _event_time_section,
+    "pretrend": _pretrend_section,
+    "comparison": _comparison_section,
+    "placebo": _placebo_section,
+    "sensitivity": _sensitivity_section,
+    "cross-check": _crosscheck_section,
+    "data": _data_section,
+    "priors": _priors_section,
+    "diagnostics": _diagnostics_section,
+    "assumptions": _assumptions_section,
+    "provenance": _provenance_section,
 }
 
 
@@ -804,8 +1069,10 @@ def render_report(run_dir: str | Path) -> str:
         try:
             body = _SECTION_FUNCS[anchor](run)
         except Exception as exc:  # noqa: BLE001 - a section that cannot be drawn says why, never vanishes
-            body = (f'<p class="absent"><strong>This section could not be drawn</strong> from the files in the '
-                    f'run folder: {esc(type(exc).__name__)}: {esc(exc)}</p>')
+            body = (
+                f'<p class="absent"><strong>This section could not be drawn</strong> from the files in the '
+                f"run folder: {esc(type(exc).__name__)}: {esc(exc)}</p>"
+            )
         parts.append(f'<section id="{anchor}"><h2>{esc(heading)}</h2>\n{body}\n</section>')
     toc = "".join(f'<li><a href="#{a}">{esc(h)}</a></li>' for a, h in SECTIONS)
     design = s["data"].get("design", "")
@@ -821,7 +1088,7 @@ def render_report(run_dir: str | Path) -> str:
 <body>
 <main>
 <h1>{esc(title)}</h1>
-<p class="sub">Bayesian {esc(design)} analysis by bayesdid · {esc((run.manifest or {}).get('created', ''))}</p>
+<p class="sub">Bayesian {esc(design)} analysis by bayesdid · {esc((run.manifest or {}).get("created", ""))}</p>
 <section id="headline"><h2>What happened</h2>
 <p class="headline {reading}">{esc(text)}</p>
 </section>

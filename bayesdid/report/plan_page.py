@@ -33,8 +33,10 @@ def layout_words(lay: dict, period_name: str) -> str:
     """'one adopter, 39 comparisons and 8 quarters after the start'."""
     post = lay["post_periods"]
     after = "after the start" if lay["adopters"] == 1 else "after the last start"
-    return (f"{_count(lay['adopters'], 'adopter')}, {_count(lay['comparisons'], 'comparison')} and "
-            f"{_count(post, period_name)} {after} (counting the start)")
+    return (
+        f"{_count(lay['adopters'], 'adopter')}, {_count(lay['comparisons'], 'comparison')} and "
+        f"{_count(post, period_name)} {after} (counting the start)"
+    )
 
 
 def _rule_words(plan: dict) -> str:
@@ -42,8 +44,11 @@ def _rule_words(plan: dict) -> str:
     log = plan["effect_scale"].startswith("relative")
     thr = d["threshold"]
     if log:
-        what = (f"a {'cut' if d['direction'] == 'below' else 'rise'} larger than {abs(thr) * 100:g}%" if thr
-                else f"any {'cut' if d['direction'] == 'below' else 'rise'}")
+        what = (
+            f"a {'cut' if d['direction'] == 'below' else 'rise'} larger than {abs(thr) * 100:g}%"
+            if thr
+            else f"any {'cut' if d['direction'] == 'below' else 'rise'}"
+        )
     else:
         what = f"an effect {d['direction']} {thr:g}"
     return f"the probability of {what} is at least {d['level']:g}"
@@ -61,16 +66,26 @@ def plan_sentences(summary: dict) -> list[str]:
             continue
         head = f"With {layout_words(lay, plan['period_name'])}"
         if row["effect"] == 0:
-            width = ("" if row["width_95_mean"] is None else
-                     f"; the 95% interval of the effect would typically be {row['width_95_mean']:.3g} wide"
-                     + (" on the log scale" if log else ""))
-            out.append(f"{head}, a policy with no effect would wrongly be judged to meet the rule with probability "
-                       f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){width}.")
+            width = (
+                ""
+                if row["width_95_mean"] is None
+                else f"; the 95% interval of the effect would typically be {row['width_95_mean']:.3g} wide"
+                + (" on the log scale" if log else "")
+            )
+            out.append(
+                f"{head}, a policy with no effect would wrongly be judged to meet the rule with probability "
+                f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){width}."
+            )
         else:
-            perm = ("" if row["permutation_power"] is None else
-                    f"; the permutation test would detect it with probability {row['permutation_power']:.2f}")
-            out.append(f"{head}, {effect_words(row['effect'], log)} would be detected with probability "
-                       f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){perm}.")
+            perm = (
+                ""
+                if row["permutation_power"] is None
+                else f"; the permutation test would detect it with probability {row['permutation_power']:.2f}"
+            )
+            out.append(
+                f"{head}, {effect_words(row['effect'], log)} would be detected with probability "
+                f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){perm}."
+            )
     return out
 
 
@@ -84,8 +99,16 @@ def plot_assurance(summary: dict, path: str | Path) -> Path:
     from .plots import PALETTE
 
     plan = summary["plan"]
-    colours = [PALETTE["posterior"], PALETTE["alternative"], PALETTE["flag"], PALETTE["reference"], "#2a8c82",
-               "#6b4fa0", "#a0522d", "#3d3d3d"]
+    colours = [
+        PALETTE["posterior"],
+        PALETTE["alternative"],
+        PALETTE["flag"],
+        PALETTE["reference"],
+        "#2a8c82",
+        "#6b4fa0",
+        "#a0522d",
+        "#3d3d3d",
+    ]
     markers = ["o", "s", "^", "D", "v", "P", "X", "*"]
     fig, ax = plt.subplots(figsize=(7.2, 4.2))
     for i, lay in enumerate(plan["layouts"]):
@@ -96,21 +119,34 @@ def plot_assurance(summary: dict, path: str | Path) -> Path:
         y = [r["assurance"] for r in rows]
         e = [2 * (r["assurance_mcse"] or 0) for r in rows]
         c = colours[i % len(colours)]
-        ax.errorbar(x, y, yerr=e, color=c, marker=markers[i % len(markers)], ms=5, lw=1.5, capsize=3,
-                    label=f"{lay['adopters']} adopter(s), {lay['comparisons']} comparisons, "
-                          f"{lay['post_periods']} {plan['period_name']}s after")
+        ax.errorbar(
+            x,
+            y,
+            yerr=e,
+            color=c,
+            marker=markers[i % len(markers)],
+            ms=5,
+            lw=1.5,
+            capsize=3,
+            label=f"{lay['adopters']} adopter(s), {lay['comparisons']} comparisons, "
+            f"{lay['post_periods']} {plan['period_name']}s after",
+        )
         na = [(xx, r["normal_assurance"]) for xx, r in zip(x, rows) if r.get("normal_assurance") is not None]
         if na:
             ax.plot(*zip(*na), color=c, lw=0.9, ls="--")
-    ax.axhline(1 - plan["decision"]["level"], color=PALETTE["reference"], lw=0.8, ls=":",
-               label=f"1 - level = {1 - plan['decision']['level']:g}")
+    ax.axhline(
+        1 - plan["decision"]["level"],
+        color=PALETTE["reference"],
+        lw=0.8,
+        ls=":",
+        label=f"1 - level = {1 - plan['decision']['level']:g}",
+    )
     ax.set_ylim(-0.02, 1.02)
     ax.set_ylabel("assurance (share of data sets concluding)")
     ax.set_xlabel("true effect" + (" (% change)" if plan["effect_scale"].startswith("relative") else ""))
     ax.grid(color=PALETTE["grid"], lw=0.6)
     ax.legend(fontsize=8, frameon=False, loc="best")
-    ax.set_title("Assurance by true effect (bars: +-2 Monte Carlo errors; dashed: normal approximation)",
-                 fontsize=9)
+    ax.set_title("Assurance by true effect (bars: +-2 Monte Carlo errors; dashed: normal approximation)", fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -125,52 +161,84 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
     """A single-file HTML page: the rule, the plain sentences, the figure and the table."""
     plan = summary["plan"]
     log = plan["effect_scale"].startswith("relative")
-    parts = [f"<h1>{esc(plan['title'])}</h1>",
-             '<p class="sub">Planning before the data: how likely the analysis is to reach a conclusion '
-             "(assurance), from simulated data sets fitted with the full model.</p>",
-             f"<p>The rule: conclude when {esc(_rule_words(plan))}. Each line below comes from "
-             f"{plan['simulation']['reps']} simulated data set(s) per layout and effect.</p>"]
+    parts = [
+        f"<h1>{esc(plan['title'])}</h1>",
+        '<p class="sub">Planning before the data: how likely the analysis is to reach a conclusion '
+        "(assurance), from simulated data sets fitted with the full model.</p>",
+        f"<p>The rule: conclude when {esc(_rule_words(plan))}. Each line below comes from "
+        f"{plan['simulation']['reps']} simulated data set(s) per layout and effect.</p>",
+    ]
     sentences = plan_sentences(summary)
     parts.append('<div class="headline">' + "<br>".join(esc(s) for s in sentences) + "</div>")
     if png is not None and Path(png).is_file():
         data = base64.b64encode(Path(png).read_bytes()).decode("ascii")
         parts.append(f'<figure><img src="data:image/png;base64,{data}" alt="assurance by true effect"></figure>')
-    header = ["layout", "true effect", "assurance", "MC error", "95% width (model scale)", "permutation power",
-              "normal approximation", "fits passing diagnostics"]
+    header = [
+        "layout",
+        "true effect",
+        "assurance",
+        "MC error",
+        "95% width (model scale)",
+        "permutation power",
+        "normal approximation",
+        "fits passing diagnostics",
+    ]
     rows = []
     for r in summary["assurance"]:
-        rows.append([r["layout"], effect_words(r["effect"], log), _f(r["assurance"]), _f(r["assurance_mcse"]),
-                     _f(r["width_95_mean"], 3), _f(r["permutation_power"]), _f(r["normal_assurance"]),
-                     _f(r["diagnostics_ok_share"])])
+        rows.append(
+            [
+                r["layout"],
+                effect_words(r["effect"], log),
+                _f(r["assurance"]),
+                _f(r["assurance_mcse"]),
+                _f(r["width_95_mean"], 3),
+                _f(r["permutation_power"]),
+                _f(r["normal_assurance"]),
+                _f(r["diagnostics_ok_share"]),
+            ]
+        )
     parts.append("<h2>Assurance by layout and true effect</h2>" + _table(header, rows))
-    parts.append('<p class="note">Layout keys: C = comparison jurisdictions, T = periods. Assurance: the share of '
-                 "simulated data sets on which the rule concludes; at no effect it is the false-decision rate, "
-                 f"which the rule keeps near or below {1 - plan['decision']['level']:g} when the threshold is 0. "
-                 "Monte Carlo error: sqrt(p (1 - p) / N). Permutation power: the least-squares placebo-in-space "
-                 f"test, one-sided, at level {1 - plan['decision']['level']:g}, on the same data sets. Normal "
-                 "approximation: known variance components and independent noise (empty where it does not "
-                 "apply).</p>")
+    parts.append(
+        '<p class="note">Layout keys: C = comparison jurisdictions, T = periods. Assurance: the share of '
+        "simulated data sets on which the rule concludes; at no effect it is the false-decision rate, "
+        f"which the rule keeps near or below {1 - plan['decision']['level']:g} when the threshold is 0. "
+        "Monte Carlo error: sqrt(p (1 - p) / N). Permutation power: the least-squares placebo-in-space "
+        f"test, one-sided, at level {1 - plan['decision']['level']:g}, on the same data sets. Normal "
+        "approximation: known variance components and independent noise (empty where it does not "
+        "apply).</p>"
+    )
     noise = plan["noise"]
     if noise["source"] == "stated":
         nrows = [[k, str(v), noise["meaning"].get(k, "")] for k, v in noise["scales"].items()]
         parts.append("<h2>Noise (stated, model scale)</h2>" + _table(["scale", "value", "meaning"], nrows))
     else:
         nrows = [[k, str(v), noise["meaning"].get(k, "")] for k, v in noise["posterior_medians"].items()]
-        parts.append(f"<h2>Noise (posterior of {esc(noise['run'])}, one draw per data set; medians)</h2>"
-                     + _table(["scale", "median", "meaning"], nrows))
+        parts.append(
+            f"<h2>Noise (posterior of {esc(noise['run'])}, one draw per data set; medians)</h2>"
+            + _table(["scale", "median", "meaning"], nrows)
+        )
     notes = list(plan.get("notes", []))
     if summary.get("failed"):
         notes.append(f"{len(summary['failed'])} rep(s) failed; their errors are in plan.json")
     if notes:
         parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>")
     run = summary["run"]
-    parts.append(f'<p class="note">Executor: {esc(run["executor"])}; reps run now {run["ran_now"]}, kept from an '
-                 f"earlier run {run['kept_from_earlier_run']}; compiles per worker "
-                 f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} chains of "
-                 f"{plan['simulation']['draws']} draws after {plan['simulation']['tune']} tuning steps.</p>")
-    parts.append('<p class="note">Simulated data are invented from the stated design; the assurance is only as good '
-                 "as the noise scales behind it. Results support, and do not replace, review by qualified people.</p>")
-    return ("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>"
-            + esc(plan["title"]) + "</title><style>" + _CSS + "</style></head><body><main>"
-            + "".join(str(p) for p in parts) + "</main></body></html>\n")
-
+    parts.append(
+        f'<p class="note">Executor: {esc(run["executor"])}; reps run now {run["ran_now"]}, kept from an '
+        f"earlier run {run['kept_from_earlier_run']}; compiles per worker "
+        f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} chains of "
+        f"{plan['simulation']['draws']} draws after {plan['simulation']['tune']} tuning steps.</p>"
+    )
+    parts.append(
+        '<p class="note">Simulated data are invented from the stated design; the assurance is only as good '
+        "as the noise scales behind it. Results support, and do not replace, review by qualified people.</p>"
+    )
+    return (
+        '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>'
+        + esc(plan["title"])
+        + "</title><style>"
+        + _CSS
+        + "</style></head><body><main>"
+        + "".join(str(p) for p in parts)
+        + "</main></body></html>\n"
+    )

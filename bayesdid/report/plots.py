@@ -21,9 +21,21 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-__all__ = ["PALETTE", "svg_of", "collect_figures", "in_section", "effect_figure", "interval_figure",
-           "event_time_figure", "band_figure", "comparison_figure", "placebo_figure", "trends_figure",
-           "raw_path_figure", "rank_figure"]
+__all__ = [
+    "PALETTE",
+    "svg_of",
+    "collect_figures",
+    "in_section",
+    "effect_figure",
+    "interval_figure",
+    "event_time_figure",
+    "band_figure",
+    "comparison_figure",
+    "placebo_figure",
+    "trends_figure",
+    "raw_path_figure",
+    "rank_figure",
+]
 
 #: name -> hex colour. Blue-teal for the posterior, amber for the least-squares/alternative
 #: readings, plum for flags, slate for reference lines, a pale blue for bands.
@@ -99,8 +111,15 @@ def _fig(width: float = 7.0, height: float = 3.4):
     return fig, ax
 
 
-def effect_figure(draws: np.ndarray, *, interval: tuple[float, float], threshold: float | None,
-                  scale: float = 1.0, xlabel: str, median: float | None = None) -> str:
+def effect_figure(
+    draws: np.ndarray,
+    *,
+    interval: tuple[float, float],
+    threshold: float | None,
+    scale: float = 1.0,
+    xlabel: str,
+    median: float | None = None,
+) -> str:
     """Histogram of the effect's posterior draws, its 90% interval shaded, zero and threshold marked.
 
     ``scale`` multiplies values for display only (100 turns a proportion into percent points).
@@ -111,24 +130,32 @@ def effect_figure(draws: np.ndarray, *, interval: tuple[float, float], threshold
         lo, hi = interval[0] * scale, interval[1] * scale
         ax.axvspan(lo, hi, color=PALETTE["band"], alpha=0.7, lw=0, label="90% interval")
         bins = max(20, min(60, int(np.sqrt(x.size))))
-        ax.hist(x, bins=bins, density=True, color=PALETTE["posterior"], alpha=0.9, lw=0,
-                label="posterior of the effect")
+        ax.hist(
+            x, bins=bins, density=True, color=PALETTE["posterior"], alpha=0.9, lw=0, label="posterior of the effect"
+        )
         ax.axvline(0, color=PALETTE["reference"], lw=1.2, ls="-", label="no effect")
         if median is not None:
             ax.axvline(median * scale, color=PALETTE["ink"], lw=1.2, ls=":", label="central estimate (median)")
         if threshold is not None:
-            ax.axvline(threshold * scale, color=PALETTE["threshold"], lw=2, ls="--",
-                       label="decision threshold")
+            ax.axvline(threshold * scale, color=PALETTE["threshold"], lw=2, ls="--", label="decision threshold")
         ax.set_xlabel(xlabel)
         ax.set_ylabel("posterior density")
         ax.legend(frameon=False, fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
         return svg_of(fig)
 
 
-def interval_figure(labels: list[str], mid: list[float], lower: list[float], upper: list[float], *,
-                    xlabel: str, colors: list[str] | None = None, zero: bool = True,
-                    markers: list[str] | None = None,
-                    legend: list[tuple[str, str, str]] | None = None) -> str:
+def interval_figure(
+    labels: list[str],
+    mid: list[float],
+    lower: list[float],
+    upper: list[float],
+    *,
+    xlabel: str,
+    colors: list[str] | None = None,
+    zero: bool = True,
+    markers: list[str] | None = None,
+    legend: list[tuple[str, str, str]] | None = None,
+) -> str:
     """One horizontal interval per row (variants, estimators), labelled on the left.
 
     ``lower``/``upper`` may hold NaN for a row whose interval is not available (a point only).
@@ -153,8 +180,14 @@ def interval_figure(labels: list[str], mid: list[float], lower: list[float], upp
             from matplotlib.lines import Line2D
 
             handles = [Line2D([], [], color=c, marker=m, lw=3, ms=7) for _, c, m in legend]
-            fig.legend(handles, [t for t, _, _ in legend], frameon=False, fontsize=8.5, loc="outside lower center",
-                       ncols=len(legend))
+            fig.legend(
+                handles,
+                [t for t, _, _ in legend],
+                frameon=False,
+                fontsize=8.5,
+                loc="outside lower center",
+                ncols=len(legend),
+            )
         return svg_of(fig)
 
 
@@ -165,11 +198,22 @@ def event_time_figure(k, mid, lower, upper, *, xlabel: str, ylabel: str) -> str:
         k = np.asarray(k, dtype=float)
         mid, lower, upper = (np.asarray(v, dtype=float) for v in (mid, lower, upper))
         lead = k < 0
-        for sel, c, m, lab in ((lead, PALETTE["reference"], "o", "before the policy (leads)"),
-                               (~lead, PALETTE["posterior"], "o", "after the policy starts")):
+        for sel, c, m, lab in (
+            (lead, PALETTE["reference"], "o", "before the policy (leads)"),
+            (~lead, PALETTE["posterior"], "o", "after the policy starts"),
+        ):
             if sel.any():
-                ax.errorbar(k[sel], mid[sel], yerr=[mid[sel] - lower[sel], upper[sel] - mid[sel]], fmt=m, color=c,
-                            ms=6, lw=2, capsize=0, label=lab)
+                ax.errorbar(
+                    k[sel],
+                    mid[sel],
+                    yerr=[mid[sel] - lower[sel], upper[sel] - mid[sel]],
+                    fmt=m,
+                    color=c,
+                    ms=6,
+                    lw=2,
+                    capsize=0,
+                    label=lab,
+                )
         ax.axhline(0, color=PALETTE["reference"], lw=1)
         ax.axvline(-0.5, color=PALETTE["threshold"], lw=1.5, ls="--", label="policy starts")
         ax.set_xticks(k)
@@ -177,11 +221,19 @@ def event_time_figure(k, mid, lower, upper, *, xlabel: str, ylabel: str) -> str:
         ax.set_ylabel(ylabel)
         from matplotlib.lines import Line2D
 
-        handles = [Line2D([], [], color=PALETTE["reference"], marker="o", lw=2),
-                   Line2D([], [], color=PALETTE["posterior"], marker="o", lw=2),
-                   Line2D([], [], color=PALETTE["threshold"], lw=1.5, ls="--")]
-        ax.legend(handles, ["before the policy (leads)", "after the policy starts", "policy starts"], frameon=False,
-                  fontsize=8.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        handles = [
+            Line2D([], [], color=PALETTE["reference"], marker="o", lw=2),
+            Line2D([], [], color=PALETTE["posterior"], marker="o", lw=2),
+            Line2D([], [], color=PALETTE["threshold"], lw=1.5, ls="--"),
+        ]
+        ax.legend(
+            handles,
+            ["before the policy (leads)", "after the policy starts", "policy starts"],
+            frameon=False,
+            fontsize=8.5,
+            loc="upper left",
+            bbox_to_anchor=(1.0, 1.0),
+        )
         return svg_of(fig)
 
 
@@ -194,8 +246,9 @@ def band_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list | 
     cols = min(n, 3)
     rows = int(np.ceil(n / cols))
     with plt.rc_context(_RC):
-        fig, axes = plt.subplots(rows, cols, figsize=(7.0, 2.9 * rows + 0.4), sharex=True, sharey=True,
-                                 layout="constrained", squeeze=False)
+        fig, axes = plt.subplots(
+            rows, cols, figsize=(7.0, 2.9 * rows + 0.4), sharex=True, sharey=True, layout="constrained", squeeze=False
+        )
         for i, ax in enumerate(axes.ravel()):
             if i >= n:
                 ax.set_visible(False)
@@ -211,8 +264,7 @@ def band_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list | 
             ax.axhline(0, color=PALETTE["reference"], lw=1)
             ax.set_title(s["label"], fontsize=10)
             if xticks is not None:
-                ax.set_xticks(np.arange(len(xticks)), [str(t) for t in xticks], rotation=45, ha="right",
-                              fontsize=8)
+                ax.set_xticks(np.arange(len(xticks)), [str(t) for t in xticks], rotation=45, ha="right", fontsize=8)
         fig.supxlabel(xlabel, fontsize=10)
         fig.supylabel(ylabel, fontsize=10)
         handles, labels = axes.ravel()[0].get_legend_handles_labels()
@@ -220,8 +272,15 @@ def band_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: list | 
         return svg_of(fig)
 
 
-def comparison_figure(names: list[str], mid: list[float], lower: list[float] | None,
-                      upper: list[float] | None, flagged: list[bool], *, xlabel: str) -> str:
+def comparison_figure(
+    names: list[str],
+    mid: list[float],
+    lower: list[float] | None,
+    upper: list[float] | None,
+    flagged: list[bool],
+    *,
+    xlabel: str,
+) -> str:
     """Each comparison jurisdiction's gap change as a dot (with interval), flagged ones as plum diamonds."""
     order = np.argsort(np.asarray(mid, dtype=float))
     n = len(names)
@@ -230,8 +289,9 @@ def comparison_figure(names: list[str], mid: list[float], lower: list[float] | N
         for rank, i in enumerate(order):
             c = PALETTE["flag"] if flagged[i] else PALETTE["posterior"]
             if lower is not None and upper is not None and np.isfinite(lower[i]) and np.isfinite(upper[i]):
-                ax.hlines(rank, lower[i], upper[i], color=c, lw=1.6 if flagged[i] else 1.0,
-                          alpha=1.0 if flagged[i] else 0.6)
+                ax.hlines(
+                    rank, lower[i], upper[i], color=c, lw=1.6 if flagged[i] else 1.0, alpha=1.0 if flagged[i] else 0.6
+                )
             ax.plot(mid[i], rank, marker="D" if flagged[i] else "o", color=c, ms=6 if flagged[i] else 4)
         ax.axvline(0, color=PALETTE["reference"], lw=1)
         ax.set_yticks(np.arange(n), [names[i] for i in order], fontsize=7 if n > 25 else 8.5)
@@ -239,10 +299,17 @@ def comparison_figure(names: list[str], mid: list[float], lower: list[float] | N
         ax.set_xlabel(xlabel)
         from matplotlib.lines import Line2D
 
-        ax.legend([Line2D([], [], color=PALETTE["posterior"], marker="o", lw=0),
-                   Line2D([], [], color=PALETTE["flag"], marker="D", lw=0)],
-                  ["comparison jurisdiction", "flagged"], frameon=False, fontsize=8.5,
-                  loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        ax.legend(
+            [
+                Line2D([], [], color=PALETTE["posterior"], marker="o", lw=0),
+                Line2D([], [], color=PALETTE["flag"], marker="D", lw=0),
+            ],
+            ["comparison jurisdiction", "flagged"],
+            frameon=False,
+            fontsize=8.5,
+            loc="upper left",
+            bbox_to_anchor=(1.0, 1.0),
+        )
         return svg_of(fig)
 
 
@@ -272,8 +339,15 @@ def placebo_figure(placebo: list[float], real: float, *, xlabel: str, names: lis
         return svg_of(fig)
 
 
-def trends_figure(M: list[float], lower: list[float], upper: list[float], *, breakdown: float | None,
-                  ylabel: str, threshold: float | None = None) -> str:
+def trends_figure(
+    M: list[float],
+    lower: list[float],
+    upper: list[float],
+    *,
+    breakdown: float | None,
+    ylabel: str,
+    threshold: float | None = None,
+) -> str:
     """The effect's 95% interval against M (departures from parallel trends), breakdown M marked."""
     with plt.rc_context(_RC):
         fig, ax = _fig(7.0, 3.2)
@@ -286,8 +360,14 @@ def trends_figure(M: list[float], lower: list[float], upper: list[float], *, bre
             ax.axhline(threshold, color=PALETTE["threshold"], lw=1, ls="--")
         if breakdown is not None and breakdown <= (M.max() if M.size else 0):
             ax.axvline(breakdown, color=PALETTE["flag"], lw=1.5, ls=":")
-            ax.annotate(f"breakdown M = {breakdown:.2g}", (breakdown, ax.get_ylim()[1]), xytext=(4, -12),
-                        textcoords="offset points", color=PALETTE["flag"], fontsize=9)
+            ax.annotate(
+                f"breakdown M = {breakdown:.2g}",
+                (breakdown, ax.get_ylim()[1]),
+                xytext=(4, -12),
+                textcoords="offset points",
+                color=PALETTE["flag"],
+                fontsize=9,
+            )
         ax.set_xlabel("M: post-policy departure per period, in multiples of the largest pre-policy change")
         ax.set_ylabel(ylabel)
         return svg_of(fig)
@@ -304,16 +384,18 @@ def raw_path_figure(series: list[dict], *, xlabel: str, ylabel: str, xticks: lis
     rows = int(np.ceil(n / cols))
     x = np.arange(len(xticks), dtype=float)
     with plt.rc_context(_RC):
-        fig, axes = plt.subplots(rows, cols, figsize=(7.0, 2.9 * rows + 0.5), sharex=True, squeeze=False,
-                                 layout="constrained")
+        fig, axes = plt.subplots(
+            rows, cols, figsize=(7.0, 2.9 * rows + 0.5), sharex=True, squeeze=False, layout="constrained"
+        )
         for i, ax in enumerate(axes.ravel()):
             if i >= n:
                 ax.set_visible(False)
                 continue
             s = series[i]
             ax.set_axisbelow(True)
-            ax.fill_between(x, s["lower"], s["upper"], color=PALETTE["band"], lw=0,
-                            label="comparison jurisdictions, 10-90%")
+            ax.fill_between(
+                x, s["lower"], s["upper"], color=PALETTE["band"], lw=0, label="comparison jurisdictions, 10-90%"
+            )
             ax.plot(x, s["mean"], color=PALETTE["posterior"], lw=1.5, ls="--", label="comparison mean")
             ax.plot(x, s["observed"], color=PALETTE["alternative"], lw=2, marker="o", ms=4, label="adopter")
             ax.axvline(s["start"] - 0.5, color=PALETTE["flag"], lw=1.2, ls=":", label="policy starts")

@@ -17,8 +17,16 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..contracts import (CHECK_NAMES, CheckSection, ContractError, CrossCheck, Diagnostics, EffectSummary,
-                         SweepVerdict, check_columns)
+from ..contracts import (
+    CHECK_NAMES,
+    CheckSection,
+    ContractError,
+    CrossCheck,
+    Diagnostics,
+    EffectSummary,
+    SweepVerdict,
+    check_columns,
+)
 from ..errors import ReportError
 
 __all__ = ["RunFolder", "FIT_COMMAND", "CHECKS_COMMAND", "SWEEP_COMMAND"]
@@ -61,12 +69,16 @@ class RunFolder:
     def __init__(self, path: str | Path):
         self.path = Path(path)
         if not self.path.is_dir():
-            raise ReportError(f"run folder '{self.path}' does not exist; create it with `{FIT_COMMAND}` and "
-                              "pass that folder to `bayesdid report`.")
+            raise ReportError(
+                f"run folder '{self.path}' does not exist; create it with `{FIT_COMMAND}` and "
+                "pass that folder to `bayesdid report`."
+            )
         sp = self.path / "summary.json"
         if not sp.is_file():
-            raise ReportError(f"run folder '{self.path}' has no summary.json; it is not the output of a fit. "
-                              f"Run `{FIT_COMMAND}` and report that folder.")
+            raise ReportError(
+                f"run folder '{self.path}' has no summary.json; it is not the output of a fit. "
+                f"Run `{FIT_COMMAND}` and report that folder."
+            )
         fix = f"rerun `{FIT_COMMAND}` to rewrite it."
         self.summary = _load(sp, fix)
         for key in ("effect", "data", "diagnostics"):
@@ -74,19 +86,27 @@ class RunFolder:
                 raise ReportError(f"'{sp}' lacks the '{key}' entry a fit writes; {fix}")
         s = self.summary
         self.effect = _typed(EffectSummary, s["effect"], f"{sp}: 'effect'", fix)
-        self.effect_percent = (_typed(EffectSummary, s["effect_percent"], f"{sp}: 'effect_percent'", fix)
-                               if "effect_percent" in s else None)
+        self.effect_percent = (
+            _typed(EffectSummary, s["effect_percent"], f"{sp}: 'effect_percent'", fix)
+            if "effect_percent" in s
+            else None
+        )
         nat = s.get("effect_natural") or []
         if not isinstance(nat, list):
             raise ReportError(f"'{sp}': 'effect_natural' should be a list of effects; {fix}")
         self.natural = [_typed(EffectSummary, e, f"{sp}: 'effect_natural'", fix) for e in nat]
         self.diagnostics = _typed(Diagnostics, s["diagnostics"], f"{sp}: 'diagnostics'", fix)
-        self.cross_check = (_typed(CrossCheck, s["least_squares"], f"{sp}: 'least_squares'", fix)
-                            if isinstance(s.get("least_squares"), dict) else None)
+        self.cross_check = (
+            _typed(CrossCheck, s["least_squares"], f"{sp}: 'least_squares'", fix)
+            if isinstance(s.get("least_squares"), dict)
+            else None
+        )
         mp = self.path / "manifest.json"
         self.manifest = _load(mp, fix) if mp.is_file() else None
-        self.identity = s.get("identity") or {"data_sha256": (self.manifest or {}).get("data_sha256"),
-                                              "run_id": (self.manifest or {}).get("run_id")}
+        self.identity = s.get("identity") or {
+            "data_sha256": (self.manifest or {}).get("data_sha256"),
+            "run_id": (self.manifest or {}).get("run_id"),
+        }
         self._read_checks()
         self._read_sweep()
 
@@ -137,7 +157,8 @@ class RunFolder:
             raise ReportError(
                 f"{rel} in '{self.path}' was computed from other data than the run: its table has SHA-256 "
                 f"{theirs[:12]}..., the run's {mine[:12]}.... A report would mix results of two data sets; "
-                f"rerun `{command}` with the run's study, or report each folder on its own.")
+                f"rerun `{command}` with the run's study, or report each folder on its own."
+            )
 
     # ---- posterior ------------------------------------------------------------------------------
     def cell_means(self):
@@ -160,10 +181,13 @@ class RunFolder:
                 return None
             mean = np.asarray(obs["cell_mean"].values, dtype=float)
             n = np.asarray(const["n"].values, dtype=float)
-            return {"mean": np.where(n > 0, mean, np.nan), "start": np.asarray(const["start_index"].values),
-                    "jurisdictions": [str(v) for v in obs["jurisdiction"].values],
-                    "groups": [str(v) for v in obs["group"].values],
-                    "periods": [str(v) for v in obs["period"].values]}
+            return {
+                "mean": np.where(n > 0, mean, np.nan),
+                "start": np.asarray(const["start_index"].values),
+                "jurisdictions": [str(v) for v in obs["jurisdiction"].values],
+                "groups": [str(v) for v in obs["group"].values],
+                "periods": [str(v) for v in obs["period"].values],
+            }
 
     def worst_mixing(self, most: int = 4):
         """Ranks of the draws of the ``most`` worst-mixing sampled quantities (largest R-hat, then smallest

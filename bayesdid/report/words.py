@@ -15,8 +15,18 @@ from __future__ import annotations
 
 __all__ = ["headline", "headline_of", "names", "evidence", "count_words", "check_flags"]
 
-_NUMBER_WORDS = {1: "one", 2: "two", 3: "three", 4: "four", 5: "five", 6: "six", 7: "seven", 8: "eight",
-                 9: "nine", 10: "ten"}
+_NUMBER_WORDS = {
+    1: "one",
+    2: "two",
+    3: "three",
+    4: "four",
+    5: "five",
+    6: "six",
+    7: "seven",
+    8: "eight",
+    9: "nine",
+    10: "ten",
+}
 
 
 def count_words(n: int) -> str:
@@ -63,8 +73,12 @@ def _natural(summary: dict, kind: str) -> dict | None:
 
 def _ratio_as_percent(r: dict) -> dict:
     """A rate or risk ratio read as a percent change (ratio - 1), with its probabilities against 1."""
-    out = {"median": r["median"] - 1.0, "eti_90": [r["eti_90"][0] - 1.0, r["eti_90"][1] - 1.0],
-           "prob_lt_0": r.get("prob_lt_1"), "prob_gt_0": r.get("prob_gt_1")}
+    out = {
+        "median": r["median"] - 1.0,
+        "eti_90": [r["eti_90"][0] - 1.0, r["eti_90"][1] - 1.0],
+        "prob_lt_0": r.get("prob_lt_1"),
+        "prob_gt_0": r.get("prob_gt_1"),
+    }
     if r.get("threshold") is not None:
         out["threshold"] = round(r["threshold"] - 1.0, 12)  # 0.95 - 1 is not exactly -0.05
         out["prob_beyond_threshold"] = r.get("prob_beyond_threshold")
@@ -108,11 +122,13 @@ def names(study: dict | None) -> dict:
     data = study.get("data") or {}
     col = data.get("outcome")
     level = (study.get("policy") or {}).get("target_group")
-    return {"policy": w.get("policy") or "the policy",
-            "outcome": w.get("outcome") or (f"the outcome ({col})" if col else "the outcome"),
-            "unit": w.get("unit"),
-            "target": w.get("target") or (f"the target group ({level})" if level is not None else None),
-            "given": bool(w)}
+    return {
+        "policy": w.get("policy") or "the policy",
+        "outcome": w.get("outcome") or (f"the outcome ({col})" if col else "the outcome"),
+        "unit": w.get("unit"),
+        "target": w.get("target") or (f"the target group ({level})" if level is not None else None),
+        "given": bool(w),
+    }
 
 
 def headline_of(summary: dict, study: dict | None, flags: list[str] | None = None) -> str:
@@ -124,8 +140,14 @@ def headline_of(summary: dict, study: dict | None, flags: list[str] | None = Non
     return headline(summary, outcome=what, policy=n["policy"], unit=n["unit"], flags=flags)
 
 
-def headline(summary: dict, *, outcome: str | None = None, policy: str = "the policy",
-             flags: list[str] | None = None, unit: str | None = None) -> str:
+def headline(
+    summary: dict,
+    *,
+    outcome: str | None = None,
+    policy: str = "the policy",
+    flags: list[str] | None = None,
+    unit: str | None = None,
+) -> str:
     """One paragraph a stakeholder can read: the central estimate, its interval, the probabilities.
 
     Parameters
@@ -175,33 +197,41 @@ def headline(summary: dict, *, outcome: str | None = None, policy: str = "the po
     verb = "lowered" if down else "raised"
     where = _where(data)
     if reading == "null" or (reading == "unreliable" and (lo < 0) != (hi < 0)):
-        main = (f"{where} the data show no clear effect of {policy} on {what}: the central estimate is "
-                f"{'a fall' if down else 'a rise'} of {size} ({interval}, which includes no change)")
+        main = (
+            f"{where} the data show no clear effect of {policy} on {what}: the central estimate is "
+            f"{'a fall' if down else 'a rise'} of {size} ({interval}, which includes no change)"
+        )
     else:
         main = f"{where} {policy} {verb} {what} by {size} as a central estimate ({interval})"
-    probs = (f"the probability of any reduction is {_prob(e['prob_lt_0'])}" if down
-             else f"the probability of any increase is {_prob(e['prob_gt_0'])}")
+    probs = (
+        f"the probability of any reduction is {_prob(e['prob_lt_0'])}"
+        if down
+        else f"the probability of any increase is {_prob(e['prob_gt_0'])}"
+    )
     if e.get("prob_beyond_threshold") is not None and e.get("threshold") is not None:
         t = e["threshold"]
         kind = "reduction" if t < 0 else "increase"
         amount = _pct(t, 0 if abs(t) * 100 == round(abs(t) * 100) else 1) if pct else f"{abs(t):g}"
-        probs += f", of {'a' if kind == 'reduction' else 'an'} {kind} larger than {amount} is " \
-                 f"{_prob(e['prob_beyond_threshold'])}"
+        probs += (
+            f", of {'a' if kind == 'reduction' else 'an'} {kind} larger than {amount} is "
+            f"{_prob(e['prob_beyond_threshold'])}"
+        )
     text = f"{main}; {probs}."
     if ratio is not None:
         text += f" That is the {ratio['measure']} over the treated cells, {ratio['median']:.3g}"
         if diff is not None:
             dlo, dhi = diff["eti_90"]
-            text += (f"; as a {diff['measure']}, {diff['median']:+.3g} (90% interval {dlo:+.3g} to "
-                     f"{dhi:+.3g})")
+            text += f"; as a {diff['measure']}, {diff['median']:+.3g} (90% interval {dlo:+.3g} to {dhi:+.3g})"
         text += "."
     if reading == "null":
         text += " The direction of the effect is not settled by these data."
     if flags:
         text += " Caution: " + "; ".join(flags) + "."
     if reading == "unreliable":
-        text = ("NOT RELIABLE: " + _why_unreliable(diag) + ". The sampler did not converge well enough for "
-                "these numbers to be trusted; rerun with more draws or chains before using them. " + text)
+        text = (
+            "NOT RELIABLE: " + _why_unreliable(diag) + ". The sampler did not converge well enough for "
+            "these numbers to be trusted; rerun with more draws or chains before using them. " + text
+        )
     return text
 
 
@@ -235,8 +265,11 @@ def check_flags(checks: dict | None, sensitivity: dict | None = None) -> list[st
         if st == "flag":
             if name == "comparison":
                 who = [o.get("jurisdiction") for o in get(sec, "offenders") or [] if isinstance(o, dict)]
-                phrase = f"comparison jurisdiction(s) {', '.join(map(str, who))} changed unlike the others" \
-                    if who else phrase
+                phrase = (
+                    f"comparison jurisdiction(s) {', '.join(map(str, who))} changed unlike the others"
+                    if who
+                    else phrase
+                )
             out.append(phrase)
         elif st == "failed":
             out.append(f"the {name.replace('_', ' ')} check could not be completed")
@@ -244,9 +277,11 @@ def check_flags(checks: dict | None, sensitivity: dict | None = None) -> list[st
     if sp is not None and get(sp, "status") in ("ok", "flag"):
         p, rank, n = get(sp, "permutation_p"), get(sp, "rank"), get(sp, "n_placebos")
         if isinstance(p, (int, float)) and p >= 0.05 and rank is not None and n is not None:
-            out.append(f"with each comparison jurisdiction as a fake adopter, the estimate ranks {rank} of "
-                       f"{n + 1} by size (permutation p = {p:.3f}): an effect this large is not rare among "
-                       "places without the policy")
+            out.append(
+                f"with each comparison jurisdiction as a fake adopter, the estimate ranks {rank} of "
+                f"{n + 1} by size (permutation p = {p:.3f}): an effect this large is not rare among "
+                "places without the policy"
+            )
     par = ((sensitivity or {}).get("parameters") or {}).get("att") or {}
     if par.get("diagnosis") in ("prior_data_conflict", "prior_dominates"):
         out.append(f"power-scaling finds the ATT sensitive to its prior ({par['diagnosis'].replace('_', ' ')})")
