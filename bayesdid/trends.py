@@ -216,11 +216,13 @@ def trend_bounds(
     rows = [_row(att, b, M, thr, sign) for M in multiples]
     m_zero = _bisect(lambda M: _row(att, b, M, thr, sign)["lower_95"] <= 0 <= _row(att, b, M, thr, sign)["upper_95"])
     m_dec = _bisect(lambda M: _row(att, b, M, thr, sign)["prob_beyond_threshold"] < level)
-    what = (
-        f"an effect beyond the threshold ({threshold:g} on the model scale)"
-        if threshold is not None
-        else f"{'a reduction' if sign < 0 else 'an increase'}"
-    )
+    ratio = {"binomial": "an odds ratio", "poisson": "a rate ratio", "negbinomial": "a rate ratio"}.get(fit.spec.family)
+    if threshold is not None and ratio:  # the link-scale threshold log(1 + t), read back as the ratio 1 + t
+        what = f"{ratio} {'below' if threshold < 0 else 'above'} {float(np.exp(threshold)):.3g}"
+    elif threshold is not None:
+        what = f"an effect beyond the threshold ({threshold:g} on the model scale)"
+    else:
+        what = f"{'a reduction' if sign < 0 else 'an increase'}"
     breakdown = {
         "M_zero": m_zero,
         "M_decision": m_dec,
