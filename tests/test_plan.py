@@ -428,3 +428,27 @@ def test_permutation_reuses_the_design_of_a_layout_exactly():
             assert a["p_value"] == b["p_value"]
             assert np.allclose(a["estimates"], b["estimates"], atol=1e-12)
     assert len(designs) == 2  # one per layout
+
+
+@pytest.mark.slow
+def test_lean_draws_are_the_full_fits_draws():
+    """sample.sample_draws (raw nutpie draws of a few variables) gives the draws of fit_cells, same seed."""
+    from bayesdid.model.terms import resolve_scales
+    from bayesdid.sample import fit_cells, sample_draws
+    from bayesdid.study import PriorScales, SamplerSettings
+
+    plan = make_plan(DID)
+    rng = np.random.default_rng(9)
+    cells = simulate_cells(plan, plan.layouts[0], simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng), 0)
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
+    settings = SamplerSettings(chains=2, draws=60, tune=60, seed=21)
+    full = fit_cells(cells, scales, settings)
+    for cores in (1, 2):  # threads do not change the draws: each chain has its own seeded stream
+        lean = sample_draws(cells, scales, settings, ["tau_adopter", "sigma_gap"], cores=cores)
+        assert lean.values["tau_adopter"].shape == (2, 60, 1)
+        assert np.array_equal(lean.draws("tau_adopter"), full.draws("tau_adopter"))
+        assert np.array_equal(lean.draws("sigma_gap"), full.draws("sigma_gap"))
+        assert lean.divergences == full.diagnostics["divergences"]
+        assert lean.spec.key() == full.spec.key()
+    with pytest.raises(KeyError, match="no variable 'tau_typo'"):
+        sample_draws(cells, scales, settings, ["tau_typo"])
