@@ -103,8 +103,8 @@ NOISE_MEANING = {
     "rho": "correlation of the gap noise from one period to the next within a jurisdiction (AR(1))",
 }
 #: The inner fits' sampler: one chain (both cores go to two data sets at once), 300 draws after 200
-#: tuning steps. Measured on the demo layout: median bulk ESS of the ATT 283, and the expected share of
-#: decisions a rerun would flip (flip_share) well below the assurance's Monte Carlo error (README).
+#: tuning steps. Measured on the demo layout: median bulk ESS of the ATT 283, and the expected net
+#: change of the assurance from the sampler's error (decision_noise) well below its Monte Carlo error.
 DEFAULT_CHAIN = {"chains": 1, "draws": 300, "tune": 200}
 PLAN_KEYS = {"title", "layout", "noise", "effects", "decision", "simulation", "vary"}
 LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name", "location"}
@@ -555,7 +555,7 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     sim = _section(raw, "simulation", SIM_KEYS)
     reps = _int(sim, "reps", "simulation", 200, low=1, high=100_000)
     seed = _int(sim, "seed", "simulation", 20261203, low=0, high=2**63 - 1)
-    # one chain of 300 draws after 200 tuning steps: enough for the decision (see flip_share and README)
+    # one chain of 300 draws after 200 tuning steps: enough for the decision (see decision_noise and README)
     draws = _int(sim, "draws", "simulation", DEFAULT_CHAIN["draws"], low=10, high=1_000_000)
     tune = _int(sim, "tune", "simulation", DEFAULT_CHAIN["tune"], low=10, high=1_000_000)
     chains = _int(sim, "chains", "simulation", DEFAULT_CHAIN["chains"], low=1, high=64)
@@ -1070,25 +1070,37 @@ def _decide(plan: Plan, att: np.ndarray, w: np.ndarray | None, truth: float, cha
     }
 
 
-def flip_share(plan: Plan, rows: list[dict]) -> float | None:
-    """Expected share of data sets whose decision another run of the sampler would reverse.
+def decision_noise(plan: Plan, rows: list[dict]) -> dict:
+    """How much the sampler's own Monte Carlo error can move the decisions of a set of data sets.
 
-    A data set's decision probability p_hat has Monte Carlo sd m (``prob_beyond_mcse``); a fresh chain
-    gives p_hat' ~ Normal(p, m^2), so the decision flips with probability about Phi(-|p_hat - level| / m)
-    (using p_hat for p). The mean over data sets bounds how far finite chains can move the assurance:
-    the net change is at most this share (flips in the two directions cancel in part). When it is
-    well below the assurance's own Monte Carlo error, longer chains would not change the reading.
+    A data set's decision probability p_hat has Monte Carlo sd m (``prob_beyond_mcse``); another run of
+    the sampler gives about Normal(p, m^2), so it concludes with probability Phi((p - level) / m) (p_hat
+    standing in for p). Averaged over data sets:
+
+    * ``flip_share``: mean Phi(-|p_hat - level| / m), the expected share of decisions a rerun would
+      reverse (gross: flips both ways);
+    * ``shift``: mean [Phi((p_hat - level) / m) - 1{p_hat >= level}], the expected net change of the
+      assurance (flips in the two directions cancel). Taking p_hat for p counts the noise twice, so this
+      overstates the shift between these chains and infinitely long ones (for a smooth density f of p
+      near the level the shift is about -f'(level) m^2 / 2, and the plug-in about twice that).
+
+    When ``shift`` is well below the assurance's own Monte Carlo error, longer chains would not change
+    the reading.
     """
     from scipy import stats
 
-    v = [
-        float(stats.norm.cdf(-abs(r["prob_beyond"] - plan.level) / r["prob_beyond_mcse"]))
-        if r.get("prob_beyond_mcse")
-        else 0.0
-        for r in rows
-        if r.get("prob_beyond_mcse") is not None
-    ]
-    return float(np.mean(v)) if v else None
+    flips, shifts = [], []
+    for r in rows:
+        m = r.get("prob_beyond_mcse")
+        if m is None:
+            continue
+        p, hit = r["prob_beyond"], r["prob_beyond"] >= plan.level
+        q = float(stats.norm.cdf((p - plan.level) / m)) if m > 0 else float(hit)
+        flips.append(1 - q if hit else q)
+        shifts.append(q - float(hit))
+    if not flips:
+        return {"flip_share": None, "shift": None}
+    return {"flip_share": float(np.mean(flips)), "shift": float(np.mean(shifts))}
 
 
 def _permutation_rows(plan: Plan, layout: Layout, noise_cells: dict, seed: int, effects_model: list) -> list[dict]:
@@ -1381,7 +1393,7 @@ def assurance_table(plan: Plan, rows: list[dict]) -> list[dict]:
                     "normal_assurance": na["assurance"],
                     "normal_width_95": na["width_95"],
                     "diagnostics_ok_share": float(np.mean([r["diagnostics_ok"] for r in rs])) if N else None,
-                    "decision_flip_share": flip_share(plan, rs),
+                    **{f"decision_{k}": v for k, v in decision_noise(plan, rs).items()},
                 }
             )
     return out
@@ -1531,8 +1543,10 @@ def run_plan(
             "permutation_power": "share of data sets on which the least-squares placebo-in-space permutation test, "
             f"one-sided ({plan.direction} 0), rejects at level {1 - plan.level:g}",
             "decision_flip_share": "expected share of data sets whose decision another run of the sampler would "
-            "reverse (Phi(-|P - level| / MCSE of P) averaged); it bounds how far finite chains move the assurance: "
-            "compare it with assurance_mcse (bayesdid.plan.flip_share)",
+            "reverse: Phi(-|P - level| / MCSE of P) averaged (bayesdid.plan.decision_noise)",
+            "decision_shift": "expected net change of the assurance from the sampler's Monte Carlo error: "
+            "Phi((P - level) / MCSE) - 1{P >= level} averaged; when well below assurance_mcse, longer chains "
+            "would not change the reading (bayesdid.plan.decision_noise)",
             "diagnostics": f"the share of inner fits whose ATT draws have R-hat below {PLAN_RHAT_MAX:g}, a bulk "
             f"ESS of at least {PLAN_ESS_MIN} and no divergent transition (the decision reads only the ATT)",
             "normal_assurance": "the normal approximation with known variance components (see "

@@ -499,7 +499,7 @@ def test_decision_probability_error_and_expected_flips():
     """prob_beyond_mcse is sqrt(p (1 - p) / S) for independent equally weighted draws; flip_share follows it."""
     from scipy import stats
 
-    from bayesdid.plan import _decide, flip_share
+    from bayesdid.plan import _decide, decision_noise
 
     plan = make_plan(DID)  # threshold 0, direction below, level 0.9
     rng = np.random.default_rng(8)
@@ -516,4 +516,7 @@ def test_decision_probability_error_and_expected_flips():
         {"prob_beyond": 0.94, "prob_beyond_mcse": 0.02},  # two errors away
         {"prob_beyond": 0.3, "prob_beyond_mcse": 0.0},  # all draws on one side
     ]
-    assert flip_share(plan, rows) == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+    out = decision_noise(plan, rows)
+    assert out["flip_share"] == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+    # net: the first concludes now and half the time after; the second concludes now, Phi(2) after
+    assert out["shift"] == pytest.approx((-0.5 - stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)

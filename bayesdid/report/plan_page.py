@@ -182,7 +182,7 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "permutation power",
         "normal approximation",
         "fits passing diagnostics",
-        "decisions a rerun of the sampler would flip",
+        "decisions a sampler rerun would flip (net change)",
     ]
     rows = []
     for r in summary["assurance"]:
@@ -196,7 +196,9 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
                 _f(r["permutation_power"]),
                 _f(r["normal_assurance"]),
                 _f(r["diagnostics_ok_share"]),
-                _f(r.get("decision_flip_share"), 3),
+                ""
+                if r.get("decision_flip_share") is None
+                else f"{r['decision_flip_share']:.3f} ({r['decision_shift']:+.3f})",
             ]
         )
     parts.append("<h2>Assurance by layout and true effect</h2>" + _table(header, rows))
@@ -209,9 +211,10 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "approximation: known variance components and independent noise (empty where it does not "
         "apply). Fits passing diagnostics: "
         + esc(summary.get("notes", {}).get("diagnostics", "the share of fits passing the sampler's checks"))
-        + ". Decisions a rerun of the sampler would flip: the expected share of data sets whose "
-        "conclusion depends on the Monte Carlo error of the posterior probability; when it is well below the "
-        "assurance's Monte Carlo error, longer chains would not change the reading.</p>"
+        + ". Decisions a sampler rerun would flip: the expected share of data sets whose conclusion "
+        "depends on the Monte Carlo error of the posterior probability, and in brackets the expected net "
+        "change of the assurance; when that is well below the assurance's Monte Carlo error, longer chains "
+        "would not change the reading.</p>"
     )
     noise = plan["noise"]
     if noise["source"] == "stated":
