@@ -135,11 +135,15 @@ BAD = [
     (with_(DID, "layout", starts=[1]), "layout.starts", "no pre-period"),
     (with_(DID, "layout", comparisons=0), "layout.comparisons", "no comparison"),
     (with_(DID, "layout", starts=[9]), "layout.starts", "start after the last period"),
+    (with_(DID, "layout", starts=[0]), "layout.starts", "start before the first period"),
+    (with_(DID, "layout", starts=[3, 9]), "layout.starts", "second adopter's start after the last period"),
     (with_(with_(DID, "layout", starts=[7]), "vary", periods=[6, 8]), "vary.periods", "start outside a varied layout"),
     (with_(DID, "vary", comparisons=[0, 29]), "vary.comparisons", "a varied layout without comparisons"),
     (with_(DID, "decision", level=1.0), "decision.level", "level 1"),
     (with_(DID, "decision", level=0), "decision.level", "level 0"),
     (with_(DID, "decision", level=1.5), "decision.level", "level above 1"),
+    (with_(DID, "decision", level=-0.2), "decision.level", "negative level"),
+    (with_(DID, "decision", level="0.9"), "decision.level", "level as text"),
     (with_(DID, "noise", rho=1.0), "noise.rho", "rho 1"),
     (with_(DID, "effects", values=[]), "effects.values", "no effects"),
     (with_(DID, "layout", colour="blue"), "colour", "unknown key"),
@@ -265,7 +269,7 @@ def test_shifted_draws_agree_with_refits_two_adopters():
         "noise": {"gap": 0.1, "residual": 1.0},
         "effects": {"values": [0.0, -0.3]},
         "decision": {"threshold": 0.0, "level": 0.9},
-        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0},
+        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "chains": 2, "placebos": 0},
     }
     shift = {(r["effect"], r["rep"]): r for r in run_plan(make_plan(raw), workers=1)["rows"]}
     refit = {
@@ -428,3 +432,91 @@ def test_permutation_reuses_the_design_of_a_layout_exactly():
             assert a["p_value"] == b["p_value"]
             assert np.allclose(a["estimates"], b["estimates"], atol=1e-12)
     assert len(designs) == 2  # one per layout
+
+
+@pytest.mark.slow
+def test_lean_draws_are_the_full_fits_draws():
+    """sample.sample_draws (raw nutpie draws of a few variables) gives the draws of fit_cells, same seed."""
+    from bayesdid.model.terms import resolve_scales
+    from bayesdid.sample import fit_cells, sample_draws
+    from bayesdid.study import PriorScales, SamplerSettings
+
+    plan = make_plan(DID)
+    rng = np.random.default_rng(9)
+    cells = simulate_cells(plan, plan.layouts[0], simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng), 0)
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
+    settings = SamplerSettings(chains=2, draws=60, tune=60, seed=21)
+    full = fit_cells(cells, scales, settings)
+    for cores in (1, 2):  # threads do not change the draws: each chain has its own seeded stream
+        lean = sample_draws(cells, scales, settings, ["tau_adopter", "sigma_gap"], cores=cores)
+        assert lean.values["tau_adopter"].shape == (2, 60, 1)
+        assert np.array_equal(lean.draws("tau_adopter"), full.draws("tau_adopter"))
+        assert np.array_equal(lean.draws("sigma_gap"), full.draws("sigma_gap"))
+        assert lean.divergences == full.diagnostics["divergences"]
+        assert lean.spec.key() == full.spec.key()
+    with pytest.raises(KeyError, match="no variable 'tau_typo'"):
+        sample_draws(cells, scales, settings, ["tau_typo"])
+
+
+def test_permutation_at_every_effect_from_two_passes():
+    """The linear shortcut (est(c) = est(0) + c (est(1) - est(0))) against a permutation test per effect."""
+    from bayesdid.crosscheck import permutation_test
+    from bayesdid.plan import _one_sided_p, _permutation_rows
+
+    for raw in (DID, with_(with_(DID, "layout", design="DDD", starts=[4, 6]), "decision", direction="above")):
+        plan = make_plan(with_(raw, "simulation", placebos=39))
+        lay = plan.layouts[0]
+        rng = np.random.default_rng(11)
+        noise = simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng)
+        effects = [0.0, -0.2, 0.35, -1.0]
+        rows = _permutation_rows(plan, lay, noise, 5, effects)
+        for c, row in zip(effects, rows, strict=True):
+            direct = permutation_test(simulate_cells(plan, lay, noise, c), placebos=39, seed=5)
+            assert row["ls_estimate"] == pytest.approx(direct["estimate"], abs=1e-10)
+            assert row["p_permutation_two_sided"] == pytest.approx(direct["p_value"], abs=1e-12)
+            assert row["permutation_assignments"] == direct["assignments"]
+            p1 = _one_sided_p(direct["estimate"], direct["estimates"], plan.direction)
+            assert row["p_permutation"] == pytest.approx(p1, abs=1e-12)
+            assert row["permutation_reject"] == (p1 <= 1 - plan.level + 1e-12)
+
+
+def test_att_diagnostics_judge_the_inner_fits():
+    """The plan's pass rule on the ATT draws: R-hat (halves of one chain), bulk ESS, divergences."""
+    from bayesdid.plan import PLAN_ESS_MIN, _att_diagnostics
+
+    rng = np.random.default_rng(4)
+    iid = rng.standard_normal((1, 400))
+    d = _att_diagnostics(iid, 0)
+    assert d["ok"] and abs(d["rhat_max"] - 1) < 0.02 and d["ess_bulk_att"] > PLAN_ESS_MIN
+    assert not _att_diagnostics(iid, 1)["ok"]  # a divergence fails the fit
+    drift = iid + np.linspace(0, 3, 400)  # one chain whose halves disagree
+    assert _att_diagnostics(drift, 0)["rhat_max"] > 1.1 and not _att_diagnostics(drift, 0)["ok"]
+    sticky = np.repeat(rng.standard_normal((2, 20)), 20, axis=1)  # two chains, 20 distinct values each
+    assert _att_diagnostics(sticky, 0)["ess_bulk_att"] < PLAN_ESS_MIN and not _att_diagnostics(sticky, 0)["ok"]
+
+
+def test_decision_probability_error_and_expected_flips():
+    """prob_beyond_mcse is sqrt(p (1 - p) / S) for independent equally weighted draws; flip_share follows it."""
+    from scipy import stats
+
+    from bayesdid.plan import _decide, decision_noise
+
+    plan = make_plan(DID)  # threshold 0, direction below, level 0.9
+    rng = np.random.default_rng(8)
+    att = rng.normal(-0.25, 0.2, size=2000)  # P(att < 0) = Phi(1.25) = 0.894
+    d = _decide(plan, att, None, -0.25, chains=2)
+    p = d["prob_beyond"]
+    # bulk of 2,000 independent draws: the ESS of the indicator is near 2,000 (within its own noise)
+    assert d["prob_beyond_mcse"] == pytest.approx(math.sqrt(p * (1 - p) / 2000), rel=0.15)
+    # a chain stuck in blocks of 20 has about 20 times fewer effective draws: about sqrt(20) times the error
+    sticky = np.repeat(att[:100], 20)
+    assert _decide(plan, sticky, None, -0.25, chains=1)["prob_beyond_mcse"] > 3 * d["prob_beyond_mcse"]
+    rows = [
+        {"prob_beyond": 0.9, "prob_beyond_mcse": 0.02},  # at the level: a coin flip
+        {"prob_beyond": 0.94, "prob_beyond_mcse": 0.02},  # two errors away
+        {"prob_beyond": 0.3, "prob_beyond_mcse": 0.0},  # all draws on one side
+    ]
+    out = decision_noise(plan, rows)
+    assert out["flip_share"] == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+    # net: the first concludes now and half the time after; the second concludes now, Phi(2) after
+    assert out["shift"] == pytest.approx((-0.5 - stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
