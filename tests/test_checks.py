@@ -299,3 +299,18 @@ def test_placebo_fits_sample_at_most_placebo_draws():
     assert placebo_settings(FAST) == FAST  # shorter than the cap: the study's own
     assert placebo_settings(long, None) == long
     assert placebo_settings(long, 500) == SamplerSettings(chains=4, draws=500, tune=500, seed=7)
+
+
+def test_lean_placebo_fit_draws_equal_full_fit():
+    """The inner fits of the checks keep only the draws they read (no ArviZ tree, no diagnostics):
+    the same numbers, bit for bit and in the same order, as a full fit of the same placebo."""
+    cells, scales, _ = cells_of(5, tau=0.0)
+    pc, slot = placebo_space_cells(cells, int(cells.comparisons[0]))
+    full = sample.fit_cells(pc, scales, FAST)
+    lean = sample.sample_draws(pc, scales, FAST, ("tau_adopter", "sigma_gap"))
+    for name in ("tau_adopter", "sigma_gap"):
+        assert lean.draws(name).shape == full.draws(name).shape
+        assert np.array_equal(lean.draws(name), full.draws(name)), name
+    assert lean.draws("tau_adopter").shape == (FAST.chains * FAST.draws, 2)
+    with pytest.raises(KeyError, match="'tau'.*not kept by sample_draws"):
+        lean.draws("tau")

@@ -29,6 +29,8 @@ cases against the study's chains (copay_cap 2 x 2000 after 1000, nurse_line 2 x 
 second seed and with 1000 draws); 200 draws moved copay_cap's rank by one, because two of its
 placebos lie within 0.0011 of |real| (figures in DEVELOPERS.md). ``threshold`` records the draws and
 tune used.
+Each placebo fit keeps only the draws of ``tau_adopter`` (:func:`bayesdid.sample.sample_draws`): the
+same draws as a full fit, without the ArviZ tree and the convergence diagnostics it never reads.
 """
 
 from __future__ import annotations
@@ -41,7 +43,7 @@ from scipy import stats
 from ..cells import Cells
 from ..effects import summarize
 from ..progress import Progress
-from ..sample import fit_cells
+from ..sample import fit_cells, sample_draws
 from ..study import SamplerSettings
 from .base import (
     CheckResult,
@@ -174,7 +176,7 @@ def placebo_space_check(
     bar = Progress("placebo in space", len(comps), log=progress)
     for i, c in enumerate(comps):
         pc, slot = placebo_space_cells(cells, c)
-        fit = fit_cells(pc, scales, reseed(ps, 100 + i), family=family)
+        fit = sample_draws(pc, scales, reseed(ps, 100 + i), ("tau_adopter",), family=family)
         x = fit.draws("tau_adopter")[:, slot]
         r = interval_row(x)
         rows.append({"jurisdiction": cells.jurisdictions[c], "role": "placebo", **r})
