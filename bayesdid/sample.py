@@ -9,10 +9,12 @@ once, by any process, loads in about a second. :data:`COMPILES` counts real comp
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 import time
 import warnings
-from contextlib import contextmanager
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -30,6 +32,7 @@ __all__ = [
     "Draws",
     "fit_cells",
     "sample_draws",
+    "sample_draws_many",
     "diagnose",
     "COMPILES",
     "LOADS",
@@ -162,8 +165,37 @@ def compile_exact(model):
         return nutpie.compile_pymc_model(model)
 
 
-def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
+#: One thread at a time builds or re-targets a compiled model (two threads asking for a structure not
+#: yet compiled then compile it once).
+_COMPILE_LOCK = threading.Lock()
+_INIT_LOCK = threading.Lock()
 
+
+def _pinned(compiled, model, values: dict):
+    """``compiled`` whose initial-point function first sets the model's data containers to ``values``.
+
+    nutpie's initial points come from PyMC's function, which reads the PyMC model's own data containers
+    (HalfNormal priors start at their scale, group means at the outcome's location) when a chain
+    starts, not when ``with_data`` is called. Fits sampled at the same time in threads
+    (:func:`sample_draws_many`) share that model; pinned, each chain starts from its own fit's data.
+    """
+    base = compiled.initial_point_func
+
+    def init(seed=None):
+        with _INIT_LOCK:
+            for k, v in values.items():
+                model[k].set_value(v)
+            return base(seed)
+
+    return dataclasses.replace(compiled, initial_point_func=init)
+
+
+def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
+    with _COMPILE_LOCK:
+        return _compiled_for_locked(cells, scales, family, terms)
+
+
+def _compiled_for_locked(cells: Cells, scales: dict, family: str, terms: dict | None = None):
     terms = terms or {}
     spec = model_spec(cells, family, **terms)
     key = spec.key()
@@ -174,9 +206,10 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         # PyMC's and reads the model's own data containers (HalfNormal priors start at their scale,
         # the group means at the outcome's location). Set them too, so that a fit does not depend on
         # which variant happened to compile this structure in this process.
-        for k, v in upd.items():
-            model[k].set_value(np.asarray(v, dtype=model[k].dtype))
-        return compiled.with_data(**upd), spec, 0.0
+        values = {k: np.asarray(v, dtype=model[k].dtype) for k, v in upd.items()}
+        for k, v in values.items():
+            model[k].set_value(v)
+        return _pinned(compiled.with_data(**upd), model, values), spec, 0.0
     _stop_if_asked()
     model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
@@ -190,8 +223,10 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
     # cell counts of a model without a residual sd, folded away as 0 * x) is not among them, and
     # nutpie's with_data refuses names it does not know.
     used = {var.name for var in compiled.shared_var_keys}
-    _CACHE[key] = (compiled, set(model.named_vars) & used, model)
-    return compiled, spec, dt
+    names = set(model.named_vars) & used
+    _CACHE[key] = (compiled, names, model)
+    values = {k: np.array(model[k].get_value(), copy=True) for k in names}
+    return _pinned(compiled, model, values), spec, dt
 
 
 def fit_cells(
@@ -263,11 +298,12 @@ class Draws:
 
 
 def _arrow_draws(raw, names) -> dict:
-    """The post-tuning draws of ``names`` from nutpie's raw (Arrow) trace: name -> (chains * draws, ...)."""
+    """The post-tuning draws of ``names`` from nutpie's raw (Arrow) trace: name -> (chains * draws, ...),
+    and under ``__gradients__`` the gradient evaluations of all chains, tuning included (the work done)."""
     import pyarrow
 
     draw_batches, stat_batches = raw.get_arrow_trace()
-    out = {}
+    out = {"__gradients__": int(sum(np.asarray(stats.column("n_steps")).sum() for stats in stat_batches))}
     for name in names:
         parts = []
         for draws, stats in zip(draw_batches, stat_batches):
@@ -301,15 +337,50 @@ def sample_draws(
     ArviZ tree and the convergence diagnostics over every variable (together about a third of a short
     placebo fit on the demo). Per-adopter effects (``effects="att"``) only.
     """
-    compiled, spec, compile_s = _compiled_for(cells, scales, family, {})
-    t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        raw = _sample(compiled, return_raw_trace=True, **_sampler_kwargs(settings, False))
+        return _sample_draws(cells, scales, settings, names, family=family)
+
+
+def _sample_draws(cells, scales, settings, names, *, family):
+    # warnings.catch_warnings is not thread-safe: callers set the filter once, around all their fits
+    compiled, spec, compile_s = _compiled_for(cells, scales, family, {})
+    t0 = time.perf_counter()
+    raw = _sample(compiled, return_raw_trace=True, **_sampler_kwargs(settings, False))
     sample_s = time.perf_counter() - t0
+    arrays = _arrow_draws(raw, tuple(names))
+    gradients = arrays.pop("__gradients__")
     return Draws(
-        arrays=_arrow_draws(raw, tuple(names)), spec=spec, timing={"compile_s": compile_s, "sample_s": sample_s}
+        arrays=arrays,
+        spec=spec,
+        timing={"compile_s": compile_s, "sample_s": sample_s, "gradients": gradients},
     )
+
+
+def sample_draws_many(jobs: list[dict], *, workers: int = 2, done=None) -> list[Draws]:
+    """:func:`sample_draws` for each job (a dict of its keyword arguments), ``workers`` fits at a time.
+
+    The fits run in threads (nutpie samples outside the GIL), so while one fit's chains finish or its
+    draws are read, the other keeps the cores busy. Each fit's draws depend only on its own data and
+    seed (initial points are pinned, see :func:`_pinned`), so they equal those of the fits run one by
+    one. Results come back in the order of ``jobs``; ``done(i)``, if given, is called in that order as
+    each is ready. A :func:`stop_when` check of the calling thread applies to every fit.
+    """
+    check = getattr(_STOP, "check", None)
+
+    def one(job):
+        job = {"names": ("tau_adopter",), "family": "gaussian", **job}
+        with stop_when(check) if check is not None else nullcontext():
+            return _sample_draws(**job)
+
+    out = []
+    with warnings.catch_warnings(), ThreadPoolExecutor(max_workers=max(1, workers)) as pool:
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for i, result in enumerate(pool.map(one, jobs)):
+            out.append(result)
+            if done is not None:
+                done(i)
+    return out
 
 
 def _sampler_kwargs(settings: SamplerSettings, progress: bool) -> dict:
