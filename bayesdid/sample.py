@@ -29,10 +29,7 @@ from .study import SamplerSettings
 
 __all__ = [
     "Fit",
-    "Draws",
     "fit_cells",
-    "sample_draws",
-    "sample_draws_many",
     "diagnose",
     "COMPILES",
     "LOADS",
@@ -41,6 +38,9 @@ __all__ = [
     "compile_exact",
     "Stopped",
     "stop_when",
+    "LeanDraws",
+    "sample_draws",
+    "sample_draws_many",
 ]
 
 #: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
@@ -196,6 +196,7 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
 
 
 def _compiled_for_locked(cells: Cells, scales: dict, family: str, terms: dict | None = None):
+
     terms = terms or {}
     spec = model_spec(cells, family, **terms)
     key = spec.key()
@@ -261,7 +262,17 @@ def fit_cells(
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        tree = _sample(compiled, **_sampler_kwargs(settings, progress))
+        tree = _sample(
+            compiled,
+            draws=settings.draws,
+            tune=settings.tune,
+            chains=settings.chains,
+            cores=min(settings.chains, 2),
+            seed=settings.seed,
+            progress_bar=progress,
+            save_warmup=False,
+            target_accept=TARGET_ACCEPT,
+        )
     sample_s = time.perf_counter() - t0
     tree = _relabel(tree, cells, spec)
     fit = Fit(
@@ -277,101 +288,100 @@ def fit_cells(
 
 
 @dataclass
-class Draws:
-    """Draws of a few variables of one fit, without the ArviZ tree and without diagnostics.
+class LeanDraws:
+    """Raw draws of a few variables, for callers that fit many data sets (``bayesdid plan``).
 
-    What the inner fits of the checks return (a placebo in space, a refit without one comparison
-    jurisdiction): they read one or two variables and never the convergence diagnostics. The draws are
-    the same numbers, in the same order (chain-major, as :meth:`Fit.draws` stacks them), as a
-    :func:`fit_cells` with the same arguments gives.
+    ``values[name]`` has shape (chains, draws, *shape); no ArviZ tree, no coordinates, no diagnostics
+    beyond the count of divergent transitions (the caller judges what it needs).
     """
 
-    arrays: dict
+    values: dict
     spec: object
+    divergences: int
     timing: dict = field(default_factory=dict)
 
     def draws(self, name: str) -> np.ndarray:
-        """Draws of ``name`` with chain and draw stacked first: shape (S, ...)."""
-        if name not in self.arrays:
-            raise KeyError(f"variable '{name}' was not kept by sample_draws (kept: {sorted(self.arrays)})")
-        return self.arrays[name]
-
-
-def _arrow_draws(raw, names) -> dict:
-    """The post-tuning draws of ``names`` from nutpie's raw (Arrow) trace: name -> (chains * draws, ...),
-    and under ``__gradients__`` the gradient evaluations of all chains, tuning included (the work done)."""
-    import pyarrow
-
-    draw_batches, stat_batches = raw.get_arrow_trace()
-    out = {"__gradients__": int(sum(np.asarray(stats.column("n_steps")).sum() for stats in stat_batches))}
-    for name in names:
-        parts = []
-        for draws, stats in zip(draw_batches, stat_batches):
-            n_tune = int(np.asarray(stats.column("tuning")).sum())
-            field_ = draws.schema.field(name)
-            meta = field_.metadata or {}
-            shape = tuple(int(s) for s in meta.get(b"shape", b"").decode().split(",") if s)
-            col = pyarrow.array(draws.column(name))  # nutpie hands arro3 arrays; pyarrow reads them
-            if hasattr(col, "flatten"):
-                col = col.flatten()
-            values = np.asarray(col.to_numpy(zero_copy_only=False)).reshape((draws.num_rows, *shape))
-            parts.append(values[n_tune:])
-        lengths = {len(p) for p in parts}
-        if len(lengths) != 1:
-            raise RuntimeError(f"chains returned different numbers of draws for '{name}': {sorted(lengths)}")
-        out[name] = np.concatenate(parts, axis=0)
-    return out
+        """Draws of ``name`` with chain and draw stacked first: shape (S, ...), as :meth:`Fit.draws`."""
+        v = self.values[name]
+        return v.reshape((-1,) + v.shape[2:])
 
 
 def sample_draws(
     cells: Cells,
     scales: dict,
     settings: SamplerSettings,
-    names: tuple = ("tau_adopter",),
+    var_names,
     *,
     family: str = "gaussian",
-) -> Draws:
-    """Sample as :func:`fit_cells` does (same model, seed and draws) and keep only the draws of ``names``.
+    cores: int = 1,
+) -> LeanDraws:
+    """Sample as :func:`fit_cells` (same compiled model, sampler settings and seed) and keep only ``var_names``.
 
-    It skips what the inner fits of the checks never read: nutpie's conversion of the whole trace to an
-    ArviZ tree and the convergence diagnostics over every variable (together about a third of a short
-    placebo fit on the demo). Per-adopter effects (``effects="att"``) only.
+    The lean path for many inner fits: nutpie's raw trace is read column by column, so there is no
+    conversion to an ArviZ tree and no ESS/R-hat over every parameter (about 40% of a 2 x 300 draw
+    fit of the demo model). ``cores`` threads sample the chains (1: the caller runs several fits in
+    parallel processes). Honours :func:`stop_when` like every fit. Raises ``KeyError`` naming a
+    variable the model does not have.
     """
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        return _sample_draws(cells, scales, settings, names, family=family)
+        return _lean_sample(cells, scales, settings, var_names, family=family, cores=cores)
 
 
-def _sample_draws(cells, scales, settings, names, *, family):
-    # warnings.catch_warnings is not thread-safe: callers set the filter once, around all their fits
-    compiled, spec, compile_s = _compiled_for(cells, scales, family, {})
+def _lean_sample(cells, scales, settings, var_names, *, family, cores) -> LeanDraws:
+    # the body of sample_draws; warnings.catch_warnings is not thread-safe, so callers set the filter
+    # once around all their fits (sample_draws_many)
+    compiled, spec, compile_s = _compiled_for(cells, scales, family)
     t0 = time.perf_counter()
-    raw = _sample(compiled, return_raw_trace=True, **_sampler_kwargs(settings, False))
-    sample_s = time.perf_counter() - t0
-    arrays = _arrow_draws(raw, tuple(names))
-    gradients = arrays.pop("__gradients__")
-    return Draws(
-        arrays=arrays,
-        spec=spec,
-        timing={"compile_s": compile_s, "sample_s": sample_s, "gradients": gradients},
+    raw = _sample(
+        compiled,
+        draws=settings.draws,
+        tune=settings.tune,
+        chains=settings.chains,
+        cores=max(1, int(cores)),
+        seed=settings.seed,
+        progress_bar=False,
+        save_warmup=False,
+        target_accept=TARGET_ACCEPT,
+        return_raw_trace=True,
     )
+    sample_s = time.perf_counter() - t0
+    draw_batches, stat_batches = raw.get_arrow_trace()
+    names = list(var_names)
+    chains: dict[str, list] = {k: [] for k in names}
+    divergences = gradients = 0
+    for draw, stat in zip(draw_batches, stat_batches, strict=True):
+        gradients += int(_column(stat, "n_steps").sum())
+        post = ~_column(stat, "tuning").astype(bool)
+        if "diverging" in stat.column_names:
+            divergences += int(_column(stat, "diverging").astype(bool)[post].sum())
+        for k in names:
+            if k not in draw.column_names:
+                have = sorted(c for c in draw.column_names if not c.endswith("__"))
+                raise KeyError(f"the model has no variable {k!r}; it has {have}")
+            chains[k].append(_column(draw, k)[post])
+    values = {k: np.stack(v) for k, v in chains.items()}
+    # gradients: evaluations of the log density's gradient in all chains, tuning included (the work done)
+    timing = {"compile_s": compile_s, "sample_s": sample_s, "gradients": gradients}
+    return LeanDraws(values=values, spec=spec, divergences=divergences, timing=timing)
 
 
-def sample_draws_many(jobs: list[dict], *, workers: int = 2, done=None) -> list[Draws]:
+def sample_draws_many(jobs: list[dict], *, workers: int = 2, done=None) -> list[LeanDraws]:
     """:func:`sample_draws` for each job (a dict of its keyword arguments), ``workers`` fits at a time.
 
-    The fits run in threads (nutpie samples outside the GIL), so while one fit's chains finish or its
-    draws are read, the other keeps the cores busy. Each fit's draws depend only on its own data and
-    seed (initial points are pinned, see :func:`_pinned`), so they equal those of the fits run one by
-    one. Results come back in the order of ``jobs``; ``done(i)``, if given, is called in that order as
-    each is ready. A :func:`stop_when` check of the calling thread applies to every fit.
+    The fits run in threads (nutpie samples outside the GIL): with ``cores=1`` per job (the default)
+    two workers keep two cores busy without the idle tail of a fit whose chains end at different
+    times. Each fit's draws depend only on its own data and seed (initial points are pinned, see
+    :func:`_pinned`; the number of threads does not change the draws), so they equal those of the fits
+    run one by one. Results come back in the order of ``jobs``; ``done(i)``, if given, is called in
+    that order as each is ready. A :func:`stop_when` check of the calling thread applies to every fit.
     """
     check = getattr(_STOP, "check", None)
 
     def one(job):
-        job = {"names": ("tau_adopter",), "family": "gaussian", **job}
+        job = {"family": "gaussian", "cores": 1, **job}
         with stop_when(check) if check is not None else nullcontext():
-            return _sample_draws(**job)
+            return _lean_sample(**job)
 
     out = []
     with warnings.catch_warnings(), ThreadPoolExecutor(max_workers=max(1, workers)) as pool:
@@ -383,19 +393,18 @@ def sample_draws_many(jobs: list[dict], *, workers: int = 2, done=None) -> list[
     return out
 
 
-def _sampler_kwargs(settings: SamplerSettings, progress: bool) -> dict:
-    """nutpie's keyword arguments for a study's sampler settings (one place, so that a fit and its lean
-    twin sample the same chains)."""
-    return {
-        "draws": settings.draws,
-        "tune": settings.tune,
-        "chains": settings.chains,
-        "cores": min(settings.chains, 2),
-        "seed": settings.seed,
-        "progress_bar": progress,
-        "save_warmup": False,
-        "target_accept": TARGET_ACCEPT,
-    }
+def _column(batch, name: str) -> np.ndarray:
+    """One column of a nutpie arrow batch as an array of shape (rows, *shape), as nutpie reads it."""
+    import pyarrow
+
+    col = batch.column(name)
+    meta = col.field.metadata or {}
+    shape = meta.get(b"shape", b"")
+    shape = tuple(int(x) for x in shape.decode().split(",")) if shape else ()
+    arr = pyarrow.array(col)
+    if hasattr(arr, "flatten"):
+        arr = arr.flatten()
+    return np.asarray(arr.to_numpy(zero_copy_only=False)).reshape((batch.num_rows,) + shape)
 
 
 def _relabel(tree, cells: Cells, spec):

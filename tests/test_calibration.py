@@ -18,6 +18,9 @@ import numpy as np
 import pytest
 
 from bayesdid import calibration as cal
+from bayesdid.calibration.coverage import _shift_treated
+from bayesdid.calibration.sbc import _draw_prior
+from bayesdid.calibration.scenarios import _cells_of
 from bayesdid.errors import BayesDidError
 
 TIMING = {"wall_s", "sample_s", "compile_s"}
@@ -163,10 +166,10 @@ def test_shifting_the_treated_cells_moves_the_estimate_by_the_shift():
 
     sc = cal.SCENARIOS["staggered"].scenario
     frame, truth = simulate(sc, 11)
-    cells = cal._cells_of(frame, sc, truth)
+    cells = _cells_of(frame, sc, truth)
     d = np.where(cells.start < len(cells.periods), 0.3, 0.0)
     a = cross_check(cells, full=False)
-    b = cross_check(cal._shift_treated(cells, d), full=False)
+    b = cross_check(_shift_treated(cells, d), full=False)
     assert b["estimate"] == pytest.approx(a["estimate"] - 0.3, abs=1e-9)
     assert b["se_cr1"] == pytest.approx(a["se_cr1"], rel=1e-9)
 
@@ -180,9 +183,9 @@ def test_prior_draws_follow_the_stated_prior():
     prior = cal.sbc_prior("staggered", 5)
     sc = cal.SCENARIOS["staggered"].scenario
     frame, truth = simulate(sc, 5)
-    cells = cal._cells_of(frame, sc, truth)
+    cells = _cells_of(frame, sc, truth)
     rng = np.random.default_rng(0)
-    draws = [cal._draw_prior(cells, prior, rng)[0] for _ in range(4000)]
+    draws = [_draw_prior(cells, prior, rng)[0] for _ in range(4000)]
     tau = np.array([d["tau"] for d in draws])
     gap = np.array([d["sigma_gap"] for d in draws])
     s_e, s_g = prior["scales"]["effect"], prior["scales"]["gap_noise"]

@@ -86,7 +86,19 @@ LAYERS = [
             "bayesdid.trends_rerun",
         ],
     ),
-    ("batches", ["bayesdid.sweep", "bayesdid.calibration"]),
+    (
+        "batches",
+        [
+            "bayesdid.sweep",
+            "bayesdid.calibration",
+            "bayesdid.calibration.scenarios",
+            "bayesdid.calibration.tasks",
+            "bayesdid.calibration.coverage",
+            "bayesdid.calibration.sbc",
+            "bayesdid.calibration.summary",
+            "bayesdid.calibration.runner",
+        ],
+    ),
     (
         "report",
         [

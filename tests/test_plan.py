@@ -135,11 +135,15 @@ BAD = [
     (with_(DID, "layout", starts=[1]), "layout.starts", "no pre-period"),
     (with_(DID, "layout", comparisons=0), "layout.comparisons", "no comparison"),
     (with_(DID, "layout", starts=[9]), "layout.starts", "start after the last period"),
+    (with_(DID, "layout", starts=[0]), "layout.starts", "start before the first period"),
+    (with_(DID, "layout", starts=[3, 9]), "layout.starts", "second adopter's start after the last period"),
     (with_(with_(DID, "layout", starts=[7]), "vary", periods=[6, 8]), "vary.periods", "start outside a varied layout"),
     (with_(DID, "vary", comparisons=[0, 29]), "vary.comparisons", "a varied layout without comparisons"),
     (with_(DID, "decision", level=1.0), "decision.level", "level 1"),
     (with_(DID, "decision", level=0), "decision.level", "level 0"),
     (with_(DID, "decision", level=1.5), "decision.level", "level above 1"),
+    (with_(DID, "decision", level=-0.2), "decision.level", "negative level"),
+    (with_(DID, "decision", level="0.9"), "decision.level", "level as text"),
     (with_(DID, "noise", rho=1.0), "noise.rho", "rho 1"),
     (with_(DID, "effects", values=[]), "effects.values", "no effects"),
     (with_(DID, "layout", colour="blue"), "colour", "unknown key"),
@@ -428,3 +432,64 @@ def test_permutation_reuses_the_design_of_a_layout_exactly():
             assert a["p_value"] == b["p_value"]
             assert np.allclose(a["estimates"], b["estimates"], atol=1e-12)
     assert len(designs) == 2  # one per layout
+
+
+@pytest.mark.slow
+def test_lean_draws_are_the_full_fits_draws():
+    """sample.sample_draws (raw nutpie draws of a few variables) gives the draws of fit_cells, same seed."""
+    from bayesdid.model.terms import resolve_scales
+    from bayesdid.sample import fit_cells, sample_draws
+    from bayesdid.study import PriorScales, SamplerSettings
+
+    plan = make_plan(DID)
+    rng = np.random.default_rng(9)
+    cells = simulate_cells(plan, plan.layouts[0], simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng), 0)
+    scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
+    settings = SamplerSettings(chains=2, draws=60, tune=60, seed=21)
+    full = fit_cells(cells, scales, settings)
+    for cores in (1, 2):  # threads do not change the draws: each chain has its own seeded stream
+        lean = sample_draws(cells, scales, settings, ["tau_adopter", "sigma_gap"], cores=cores)
+        assert lean.values["tau_adopter"].shape == (2, 60, 1)
+        assert np.array_equal(lean.draws("tau_adopter"), full.draws("tau_adopter"))
+        assert np.array_equal(lean.draws("sigma_gap"), full.draws("sigma_gap"))
+        assert lean.divergences == full.diagnostics["divergences"]
+        assert lean.spec.key() == full.spec.key()
+    with pytest.raises(KeyError, match="no variable 'tau_typo'"):
+        sample_draws(cells, scales, settings, ["tau_typo"])
+
+
+def test_permutation_at_every_effect_from_two_passes():
+    """The linear shortcut (est(c) = est(0) + c (est(1) - est(0))) against a permutation test per effect."""
+    from bayesdid.crosscheck import permutation_test
+    from bayesdid.plan import _one_sided_p, _permutation_rows
+
+    for raw in (DID, with_(with_(DID, "layout", design="DDD", starts=[4, 6]), "decision", direction="above")):
+        plan = make_plan(with_(raw, "simulation", placebos=39))
+        lay = plan.layouts[0]
+        rng = np.random.default_rng(11)
+        noise = simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng)
+        effects = [0.0, -0.2, 0.35, -1.0]
+        rows = _permutation_rows(plan, lay, noise, 5, effects)
+        for c, row in zip(effects, rows, strict=True):
+            direct = permutation_test(simulate_cells(plan, lay, noise, c), placebos=39, seed=5)
+            assert row["ls_estimate"] == pytest.approx(direct["estimate"], abs=1e-10)
+            assert row["p_permutation_two_sided"] == pytest.approx(direct["p_value"], abs=1e-12)
+            assert row["permutation_assignments"] == direct["assignments"]
+            p1 = _one_sided_p(direct["estimate"], direct["estimates"], plan.direction)
+            assert row["p_permutation"] == pytest.approx(p1, abs=1e-12)
+            assert row["permutation_reject"] == (p1 <= 1 - plan.level + 1e-12)
+
+
+def test_att_diagnostics_judge_the_inner_fits():
+    """The plan's pass rule on the ATT draws: R-hat (halves of one chain), bulk ESS, divergences."""
+    from bayesdid.plan import PLAN_ESS_MIN, _att_diagnostics
+
+    rng = np.random.default_rng(4)
+    iid = rng.standard_normal((1, 400))
+    d = _att_diagnostics(iid, 0)
+    assert d["ok"] and abs(d["rhat_max"] - 1) < 0.02 and d["ess_bulk_att"] > PLAN_ESS_MIN
+    assert not _att_diagnostics(iid, 1)["ok"]  # a divergence fails the fit
+    drift = iid + np.linspace(0, 3, 400)  # one chain whose halves disagree
+    assert _att_diagnostics(drift, 0)["rhat_max"] > 1.1 and not _att_diagnostics(drift, 0)["ok"]
+    sticky = np.repeat(rng.standard_normal((2, 20)), 20, axis=1)  # two chains, 20 distinct values each
+    assert _att_diagnostics(sticky, 0)["ess_bulk_att"] < PLAN_ESS_MIN and not _att_diagnostics(sticky, 0)["ok"]

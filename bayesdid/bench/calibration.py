@@ -29,7 +29,8 @@ def bench_calibration(
     seed: int = 20261202,
     replace: bool = False,
 ) -> dict:
-    from ..calibration import _scenario, run_calibration, write_calibration
+    from ..calibration import run_calibration, write_calibration
+    from ..calibration.scenarios import _scenario
     from ..run import atomic_folder
 
     _scenario(scenario)

@@ -126,7 +126,12 @@ def comparison_check(
             w = cells.jt_weight().copy()
             w[comps[i]] = 0.0
             lf = sample_draws(
-                cells.with_weight(w), scales, reseed(settings, 300 + n_done), ("tau_adopter",), family=family
+                cells.with_weight(w),
+                scales,
+                reseed(settings, 300 + n_done),
+                ("tau_adopter",),
+                family=family,
+                cores=min(settings.chains, 2),
             )
             loo = interval_row(lf.draws("tau_adopter") @ effect_weights(cells))
             rows[i].update(

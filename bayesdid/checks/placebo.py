@@ -30,7 +30,9 @@ second seed and with 1000 draws); 200 draws moved copay_cap's rank by one, becau
 placebos lie within 0.0011 of |real| (figures in DEVELOPERS.md). ``threshold`` records the draws and
 tune used.
 Each placebo fit keeps only the draws of ``tau_adopter`` (:func:`bayesdid.sample.sample_draws`): the
-same draws as a full fit, without the ArviZ tree and the convergence diagnostics it never reads.
+same draws as a full fit, without the ArviZ tree and the convergence diagnostics it never reads. Two
+placebo fits run at a time, one thread each (:func:`bayesdid.sample.sample_draws_many`), with the same
+draws as one by one.
 """
 
 from __future__ import annotations
@@ -178,7 +180,13 @@ def placebo_space_check(
     bar = Progress("placebo in space", len(comps), log=progress)
     placebos = [placebo_space_cells(cells, c) for c in comps]
     jobs = [
-        {"cells": pc, "scales": scales, "settings": reseed(ps, 100 + i), "names": ("tau_adopter",), "family": family}
+        {
+            "cells": pc,
+            "scales": scales,
+            "settings": reseed(ps, 100 + i),
+            "var_names": ("tau_adopter",),
+            "family": family,
+        }
         for i, (pc, _) in enumerate(placebos)
     ]
     fits = sample_draws_many(jobs, workers=PLACEBO_WORKERS, done=lambda i: bar.step(str(cells.jurisdictions[comps[i]])))
