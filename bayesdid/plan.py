@@ -102,6 +102,10 @@ NOISE_MEANING = {
     "group_period": "sd of the target group's own period effects (DDD only)",
     "rho": "correlation of the gap noise from one period to the next within a jurisdiction (AR(1))",
 }
+#: The inner fits' sampler: one chain (both cores go to two data sets at once), 300 draws after 200
+#: tuning steps. Measured on the demo layout: median bulk ESS of the ATT 283, and the expected net
+#: change of the assurance from the sampler's error (decision_noise) well below its Monte Carlo error.
+DEFAULT_CHAIN = {"chains": 1, "draws": 300, "tune": 200}
 PLAN_KEYS = {"title", "layout", "noise", "effects", "decision", "simulation", "vary"}
 LAYOUT_KEYS = {"design", "comparisons", "periods", "starts", "rows_per_cell", "log_outcome", "period_name", "location"}
 NOISE_KEYS = set(DEFAULT_NOISE) | {"run", "pilot"}
@@ -551,9 +555,10 @@ def _parse(raw: Mapping, base_dir: Path, path: str | None) -> Plan:
     sim = _section(raw, "simulation", SIM_KEYS)
     reps = _int(sim, "reps", "simulation", 200, low=1, high=100_000)
     seed = _int(sim, "seed", "simulation", 20261203, low=0, high=2**63 - 1)
-    draws = _int(sim, "draws", "simulation", 500, low=10, high=1_000_000)
-    tune = _int(sim, "tune", "simulation", 500, low=10, high=1_000_000)
-    chains = _int(sim, "chains", "simulation", 2, low=1, high=64)
+    # one chain of 300 draws after 200 tuning steps: enough for the decision (see decision_noise and README)
+    draws = _int(sim, "draws", "simulation", DEFAULT_CHAIN["draws"], low=10, high=1_000_000)
+    tune = _int(sim, "tune", "simulation", DEFAULT_CHAIN["tune"], low=10, high=1_000_000)
+    chains = _int(sim, "chains", "simulation", DEFAULT_CHAIN["chains"], low=1, high=64)
     placebos = _int(sim, "placebos", "simulation", 199, low=0, high=100_000)
     gap_fit = sim.get("gap_over_time", "persistent")
     if gap_fit not in ("persistent", "independent"):
@@ -1033,21 +1038,69 @@ def _att_diagnostics(att: np.ndarray, divergences: int) -> dict:
     }
 
 
-def _decide(plan: Plan, att: np.ndarray, w: np.ndarray | None, truth: float) -> dict:
+def _decide(plan: Plan, att: np.ndarray, w: np.ndarray | None, truth: float, chains: int = 1) -> dict:
+    """The rule on one posterior (draws ``att``, chain-major, optional weights ``w``), with its Monte Carlo error.
+
+    ``prob_beyond_mcse``: the Monte Carlo sd of the decision probability, sqrt(sum w^2 (b - p)^2 * S / ESS)
+    with b the indicator of a draw beyond the threshold and ESS its effective sample size over the
+    ``chains`` (autocorrelation of the unweighted chain; the weighted variance is p (1 - p) / S for
+    equal weights, so this is sqrt(p (1 - p) / ESS) then).
+    """
+    from arviz_stats.base import array_stats
+
     thr = plan.model_threshold
-    w = np.full(att.size, 1.0 / att.size) if w is None else w
+    S = att.size
+    w = np.full(S, 1.0 / S) if w is None else w
     beyond = att < thr if plan.direction == "below" else att > thr
     prob = float(np.sum(w * beyond))
     lo, hi = _wquantile(att, w, [0.025, 0.975])
     mean = float(np.sum(w * att))
+    mcse = 0.0
+    if 0 < beyond.sum() < S and S // chains >= 8:
+        ess = float(array_stats.ess(beyond.reshape(chains, -1).astype(float), chain_axis=0, draw_axis=1, method="mean"))
+        mcse = math.sqrt(float(np.sum(w**2 * (beyond - prob) ** 2)) * S / max(ess, 1.0))
     return {
         "prob_beyond": prob,
+        "prob_beyond_mcse": mcse,
         "decide": bool(prob >= plan.level),
         "posterior_mean": mean,
         "posterior_sd": float(math.sqrt(max(np.sum(w * (att - mean) ** 2), 0.0))),
         "width_95": float(hi - lo),
         "cover_95": bool(lo <= truth <= hi),
     }
+
+
+def decision_noise(plan: Plan, rows: list[dict]) -> dict:
+    """How much the sampler's own Monte Carlo error can move the decisions of a set of data sets.
+
+    A data set's decision probability p_hat has Monte Carlo sd m (``prob_beyond_mcse``); another run of
+    the sampler gives about Normal(p, m^2), so it concludes with probability Phi((p - level) / m) (p_hat
+    standing in for p). Averaged over data sets:
+
+    * ``flip_share``: mean Phi(-|p_hat - level| / m), the expected share of decisions a rerun would
+      reverse (gross: flips both ways);
+    * ``shift``: mean [Phi((p_hat - level) / m) - 1{p_hat >= level}], the expected net change of the
+      assurance (flips in the two directions cancel). Taking p_hat for p counts the noise twice, so this
+      overstates the shift between these chains and infinitely long ones (for a smooth density f of p
+      near the level the shift is about -f'(level) m^2 / 2, and the plug-in about twice that).
+
+    When ``shift`` is well below the assurance's own Monte Carlo error, longer chains would not change
+    the reading.
+    """
+    from scipy import stats
+
+    flips, shifts = [], []
+    for r in rows:
+        m = r.get("prob_beyond_mcse")
+        if m is None:
+            continue
+        p, hit = r["prob_beyond"], r["prob_beyond"] >= plan.level
+        q = float(stats.norm.cdf((p - plan.level) / m)) if m > 0 else float(hit)
+        flips.append(1 - q if hit else q)
+        shifts.append(q - float(hit))
+    if not flips:
+        return {"flip_share": None, "shift": None}
+    return {"flip_share": float(np.mean(flips)), "shift": float(np.mean(shifts))}
 
 
 def _permutation_rows(plan: Plan, layout: Layout, noise_cells: dict, seed: int, effects_model: list) -> list[dict]:
@@ -1147,7 +1200,7 @@ def _rep(task: RepTask) -> dict:
                 "effect": effect,
                 "method": how,
                 "weights_ess_share": ess,
-                **_decide(plan, att, w, truth),
+                **_decide(plan, att, w, truth, chains=plan.chains),
                 "rhat_max": diag["rhat_max"],
                 "ess_bulk_att": diag["ess_bulk_att"],
                 "divergences": diag["divergences"],
@@ -1340,6 +1393,7 @@ def assurance_table(plan: Plan, rows: list[dict]) -> list[dict]:
                     "normal_assurance": na["assurance"],
                     "normal_width_95": na["width_95"],
                     "diagnostics_ok_share": float(np.mean([r["diagnostics_ok"] for r in rs])) if N else None,
+                    **{f"decision_{k}": v for k, v in decision_noise(plan, rs).items()},
                 }
             )
     return out
@@ -1488,6 +1542,13 @@ def run_plan(
             "width_95": "width of the equal-tailed 95% posterior interval of the ATT, mean over data sets (model scale)",
             "permutation_power": "share of data sets on which the least-squares placebo-in-space permutation test, "
             f"one-sided ({plan.direction} 0), rejects at level {1 - plan.level:g}",
+            "decision_flip_share": "expected share of data sets whose decision another run of the sampler would "
+            "reverse: Phi(-|P - level| / MCSE of P) averaged (bayesdid.plan.decision_noise)",
+            "decision_shift": "expected net change of the assurance from the sampler's Monte Carlo error: "
+            "Phi((P - level) / MCSE) - 1{P >= level} averaged; when well below assurance_mcse, longer chains "
+            "would not change the reading (bayesdid.plan.decision_noise)",
+            "diagnostics": f"the share of inner fits whose ATT draws have R-hat below {PLAN_RHAT_MAX:g}, a bulk "
+            f"ESS of at least {PLAN_ESS_MIN} and no divergent transition (the decision reads only the ATT)",
             "normal_assurance": "the normal approximation with known variance components (see "
             "bayesdid.plan.normal_assurance); empty where it does not apply",
         },

@@ -269,7 +269,7 @@ def test_shifted_draws_agree_with_refits_two_adopters():
         "noise": {"gap": 0.1, "residual": 1.0},
         "effects": {"values": [0.0, -0.3]},
         "decision": {"threshold": 0.0, "level": 0.9},
-        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0},
+        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "chains": 2, "placebos": 0},
     }
     shift = {(r["effect"], r["rep"]): r for r in run_plan(make_plan(raw), workers=1)["rows"]}
     refit = {
@@ -493,3 +493,30 @@ def test_att_diagnostics_judge_the_inner_fits():
     assert _att_diagnostics(drift, 0)["rhat_max"] > 1.1 and not _att_diagnostics(drift, 0)["ok"]
     sticky = np.repeat(rng.standard_normal((2, 20)), 20, axis=1)  # two chains, 20 distinct values each
     assert _att_diagnostics(sticky, 0)["ess_bulk_att"] < PLAN_ESS_MIN and not _att_diagnostics(sticky, 0)["ok"]
+
+
+def test_decision_probability_error_and_expected_flips():
+    """prob_beyond_mcse is sqrt(p (1 - p) / S) for independent equally weighted draws; flip_share follows it."""
+    from scipy import stats
+
+    from bayesdid.plan import _decide, decision_noise
+
+    plan = make_plan(DID)  # threshold 0, direction below, level 0.9
+    rng = np.random.default_rng(8)
+    att = rng.normal(-0.25, 0.2, size=2000)  # P(att < 0) = Phi(1.25) = 0.894
+    d = _decide(plan, att, None, -0.25, chains=2)
+    p = d["prob_beyond"]
+    # bulk of 2,000 independent draws: the ESS of the indicator is near 2,000 (within its own noise)
+    assert d["prob_beyond_mcse"] == pytest.approx(math.sqrt(p * (1 - p) / 2000), rel=0.15)
+    # a chain stuck in blocks of 20 has about 20 times fewer effective draws: about sqrt(20) times the error
+    sticky = np.repeat(att[:100], 20)
+    assert _decide(plan, sticky, None, -0.25, chains=1)["prob_beyond_mcse"] > 3 * d["prob_beyond_mcse"]
+    rows = [
+        {"prob_beyond": 0.9, "prob_beyond_mcse": 0.02},  # at the level: a coin flip
+        {"prob_beyond": 0.94, "prob_beyond_mcse": 0.02},  # two errors away
+        {"prob_beyond": 0.3, "prob_beyond_mcse": 0.0},  # all draws on one side
+    ]
+    out = decision_noise(plan, rows)
+    assert out["flip_share"] == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+    # net: the first concludes now and half the time after; the second concludes now, Phi(2) after
+    assert out["shift"] == pytest.approx((-0.5 - stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)

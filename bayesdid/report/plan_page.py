@@ -129,7 +129,7 @@ def plot_assurance(summary: dict, path: str | Path) -> Path:
             lw=1.5,
             capsize=3,
             label=f"{lay['adopters']} adopter(s), {lay['comparisons']} comparisons, "
-            f"{lay['post_periods']} {plan['period_name']}s after",
+            f"{lay['post_periods']} {plan['period_name']}s from the last start",
         )
         na = [(xx, r["normal_assurance"]) for xx, r in zip(x, rows) if r.get("normal_assurance") is not None]
         if na:
@@ -182,6 +182,7 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "permutation power",
         "normal approximation",
         "fits passing diagnostics",
+        "decisions a sampler rerun would flip (net change)",
     ]
     rows = []
     for r in summary["assurance"]:
@@ -195,6 +196,9 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
                 _f(r["permutation_power"]),
                 _f(r["normal_assurance"]),
                 _f(r["diagnostics_ok_share"]),
+                ""
+                if r.get("decision_flip_share") is None
+                else f"{r['decision_flip_share']:.3f} ({r['decision_shift']:+.3f})",
             ]
         )
     parts.append("<h2>Assurance by layout and true effect</h2>" + _table(header, rows))
@@ -205,7 +209,12 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "Monte Carlo error: sqrt(p (1 - p) / N). Permutation power: the least-squares placebo-in-space "
         f"test, one-sided, at level {1 - plan['decision']['level']:g}, on the same data sets. Normal "
         "approximation: known variance components and independent noise (empty where it does not "
-        "apply).</p>"
+        "apply). Fits passing diagnostics: "
+        + esc(summary.get("notes", {}).get("diagnostics", "the share of fits passing the sampler's checks"))
+        + ". Decisions a sampler rerun would flip: the expected share of data sets whose conclusion "
+        "depends on the Monte Carlo error of the posterior probability, and in brackets the expected net "
+        "change of the assurance; when that is well below the assurance's Monte Carlo error, longer chains "
+        "would not change the reading.</p>"
     )
     noise = plan["noise"]
     if noise["source"] == "stated":
@@ -226,7 +235,8 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
     parts.append(
         f'<p class="note">Executor: {esc(run["executor"])}; reps run now {run["ran_now"]}, kept from an '
         f"earlier run {run['kept_from_earlier_run']}; compiles per worker "
-        f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} chains of "
+        f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} "
+        f"chain{'s' if plan['simulation']['chains'] != 1 else ''} of "
         f"{plan['simulation']['draws']} draws after {plan['simulation']['tune']} tuning steps.</p>"
     )
     parts.append(
