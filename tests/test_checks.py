@@ -299,3 +299,23 @@ def test_placebo_fits_sample_at_most_placebo_draws():
     assert placebo_settings(FAST) == FAST  # shorter than the cap: the study's own
     assert placebo_settings(long, None) == long
     assert placebo_settings(long, 500) == SamplerSettings(chains=4, draws=500, tune=500, seed=7)
+
+
+def test_placebo_fits_in_threads_equal_fits_one_by_one():
+    """Fits sampled two at a time in threads give the draws each gives alone: each chain starts from its
+    own fit's data (prior scales differ between the jobs here) whichever fit set the shared model last."""
+    cells, scales, _ = cells_of(5, tau=0.0)
+    wide = {k: 3.0 * v for k, v in scales.items()}
+    jobs = []
+    for c in cells.comparisons[:2]:
+        pc, _ = placebo_space_cells(cells, int(c))
+        jobs += [{"cells": pc, "scales": s, "settings": FAST, "var_names": ("tau_adopter",)} for s in (scales, wide)]
+    order = []
+    both = sample.sample_draws_many(jobs, workers=2, done=order.append)
+    alone = sample.sample_draws_many(jobs, workers=1)
+    assert order == [0, 1, 2, 3]
+    for a, b in zip(both, alone):
+        assert np.array_equal(a.draws("tau_adopter"), b.draws("tau_adopter"))
+    # the same placebo under wider priors is another fit (so a chain started from the other job's
+    # data would show)
+    assert not np.array_equal(both[0].draws("tau_adopter"), both[1].draws("tau_adopter"))

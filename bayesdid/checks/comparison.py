@@ -20,7 +20,7 @@ smoothing distribution given all its periods (forward filter, backward sampling)
 It should be near zero. Outliers: robust z_j = (mean(delta_j) - median) / (1.4826 MAD) over the
 comparison jurisdictions; flag |z_j| > 3 (common practice). For each flagged one (the 5 most
 extreme at most) the main model is refitted without it (weight 0 on all its periods, the same
-compiled model) and the ATT reported.
+compiled model) and the ATT reported (only its effect's draws are kept, no diagnostics).
 
 Table ``comparison.csv`` columns: ``jurisdiction``, ``mean``, ``sd``, ``lower_90``, ``upper_90``,
 ``prob_gt_0`` (of delta_j), ``robust_z``, ``flagged`` (bool), ``loo_effect_mean``,
@@ -35,7 +35,7 @@ from ..cells import Cells
 from ..model import families
 from ..model.gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
 from ..model.terms import mean_from_draws
-from ..sample import fit_cells
+from ..sample import sample_draws
 from ..study import SamplerSettings
 from .base import CheckResult, earliest_start, effect_weights, frame, interval_row, not_applicable, reseed
 
@@ -125,7 +125,14 @@ def comparison_check(
         if refit and n_done < MAX_REFITS:
             w = cells.jt_weight().copy()
             w[comps[i]] = 0.0
-            lf = fit_cells(cells.with_weight(w), scales, reseed(settings, 300 + n_done), family=family)
+            lf = sample_draws(
+                cells.with_weight(w),
+                scales,
+                reseed(settings, 300 + n_done),
+                ("tau_adopter",),
+                family=family,
+                cores=min(settings.chains, 2),
+            )
             loo = interval_row(lf.draws("tau_adopter") @ effect_weights(cells))
             rows[i].update(
                 {"loo_effect_mean": loo["mean"], "loo_lower_90": loo["lower_90"], "loo_upper_90": loo["upper_90"]}

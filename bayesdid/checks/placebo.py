@@ -29,6 +29,10 @@ cases against the study's chains (copay_cap 2 x 2000 after 1000, nurse_line 2 x 
 second seed and with 1000 draws); 200 draws moved copay_cap's rank by one, because two of its
 placebos lie within 0.0011 of |real| (figures in DEVELOPERS.md). ``threshold`` records the draws and
 tune used.
+Each placebo fit keeps only the draws of ``tau_adopter`` (:func:`bayesdid.sample.sample_draws`): the
+same draws as a full fit, without the ArviZ tree and the convergence diagnostics it never reads. Two
+placebo fits run at a time, one thread each (:func:`bayesdid.sample.sample_draws_many`), with the same
+draws as one by one.
 """
 
 from __future__ import annotations
@@ -41,7 +45,7 @@ from scipy import stats
 from ..cells import Cells
 from ..effects import summarize
 from ..progress import Progress
-from ..sample import fit_cells
+from ..sample import fit_cells, sample_draws_many
 from ..study import SamplerSettings
 from .base import (
     CheckResult,
@@ -61,6 +65,8 @@ TIME, SPACE = "placebo_time", "placebo_space"
 NOMINAL = 0.10
 #: Draws (and tuning steps) per chain of each placebo-in-space fit, at most (module docstring).
 PLACEBO_DRAWS = 300
+#: Placebo fits sampled at the same time (threads; each fit's draws are those it gives alone).
+PLACEBO_WORKERS = 2
 
 
 def placebo_settings(settings: SamplerSettings, draws: int | None = PLACEBO_DRAWS) -> SamplerSettings:
@@ -172,14 +178,23 @@ def placebo_space_check(
         )
     rows, means = [], []
     bar = Progress("placebo in space", len(comps), log=progress)
-    for i, c in enumerate(comps):
-        pc, slot = placebo_space_cells(cells, c)
-        fit = fit_cells(pc, scales, reseed(ps, 100 + i), family=family)
+    placebos = [placebo_space_cells(cells, c) for c in comps]
+    jobs = [
+        {
+            "cells": pc,
+            "scales": scales,
+            "settings": reseed(ps, 100 + i),
+            "var_names": ("tau_adopter",),
+            "family": family,
+        }
+        for i, (pc, _) in enumerate(placebos)
+    ]
+    fits = sample_draws_many(jobs, workers=PLACEBO_WORKERS, done=lambda i: bar.step(str(cells.jurisdictions[comps[i]])))
+    for c, (_, slot), fit in zip(comps, placebos, fits):
         x = fit.draws("tau_adopter")[:, slot]
         r = interval_row(x)
         rows.append({"jurisdiction": cells.jurisdictions[c], "role": "placebo", **r})
         means.append(r["mean"])
-        bar.step(str(cells.jurisdictions[c]))
     real = interval_row(real_att)
     rows.append({"jurisdiction": "+".join(cells.jurisdictions[j] for j in cells.adopters), "role": "real", **real})
     means = np.asarray(means)
