@@ -313,7 +313,12 @@ def test_command_writes_its_folder_resumes_and_shares_one_structure(tmp_path, di
     assert len(s["assurance"]) == 4 * 2 and len(s["false_decision"]) == 4
     tab = pd.read_csv(out / "assurance.csv")
     assert set(tab["layout"]) == {"C29-T8", "C9-T6", "C9-T8", "C29-T6"}
-    assert "would be detected with probability" in (out / "report.html").read_text()
+    page = (out / "report.html").read_text()
+    assert "would be detected with probability" in page
+    # the planned layout's sentences lead; the three other layouts of the grid are folded below
+    head, folded = page.split("<details>")[0], page.split("<details>")[1].split("</details>")[0]
+    assert "29 comparisons and four quarters" in head and "nine comparisons" not in head
+    assert "other 3 layout(s)" in folded and "nine comparisons and two quarters" in folded
     # an existing folder is refused without --replace, before any work
     assert main(["plan", path, "--out", str(out), "--quiet"]) == 2
 
@@ -520,3 +525,13 @@ def test_decision_probability_error_and_expected_flips():
     assert out["flip_share"] == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
     # net: the first concludes now and half the time after; the second concludes now, Phi(2) after
     assert out["shift"] == pytest.approx((-0.5 - stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+
+
+def test_plain_words_of_a_share_at_zero_or_one():
+    """No (or only) detections: the exact one-sided 95% bound (Clopper-Pearson), not an error of 0."""
+    from bayesdid.report.plan_page import _prob_words
+
+    assert _prob_words(0.62, 0.0343, 200) == "0.62 (Monte Carlo error 0.03)"
+    # 1 - 0.05^(1/15) = 0.181 (exact binomial bound with no success in 15 trials)
+    assert _prob_words(0.0, 0.0, 15) == "0.00 (in none of 15 simulated data sets: at most 0.18 with 95% confidence)"
+    assert _prob_words(1.0, 0.0, 200) == "1.00 (in all 200 simulated data sets: at least 0.99 with 95% confidence)"

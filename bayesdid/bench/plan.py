@@ -98,4 +98,10 @@ def bench_plan(
         "sample_s_per_fit_median": run["sample_s_per_fit_median"],
         "assurance": {f"{r['effect']:g}": [r["assurance"], r["assurance_mcse"]] for r in s["assurance"]},
         "permutation_power": {f"{r['effect']:g}": r["permutation_power"] for r in s["assurance"]},
+        # how far the short chains can move each assurance (compare with its MCSE): flip share, net shift
+        "decision_noise": {
+            f"{r['effect']:g}": [r.get("decision_flip_share"), r.get("decision_shift")] for r in s["assurance"]
+        },
+        "coverage_95": {f"{r['effect']:g}": r["coverage_95"] for r in s["assurance"]},
+        "diagnostics_ok_share": min(r["diagnostics_ok_share"] for r in s["assurance"]),
     }
