@@ -77,7 +77,11 @@ def render_report(run_dir: str | Path) -> str:
     """The report of ``run_dir`` as HTML text (see the module docstring for what it reads)."""
     run = RunFolder(run_dir)
     s = run.summary
-    text = headline_of(s, (run.manifest or {}).get("study"), flags=check_flags(run.checks, s.get("sensitivity")))
+    text = headline_of(
+        s,
+        (run.manifest or {}).get("study"),
+        flags=check_flags(run.checks, s.get("sensitivity"), s.get("parallel_trends")),
+    )
     reading = evidence(s)
     title = s.get("title") or "bayesdid run"
     parts = []
