@@ -3,42 +3,15 @@
 from __future__ import annotations
 
 import shutil
-import sys
 import time
 from pathlib import Path
 
 from ..errors import SweepError
+from ..progress import Progress
 from .executors import EXECUTORS
 from .resume import _Lock, _rows_now, check_sweep_folder, read_results, variant_is_complete
 from .spec import SweepPlan, load_sweep
 from .tables import _write_tables
-
-
-class _Progress:
-    def __init__(self, total: int, skipped: int, enabled: bool, stream=None):
-        self.total, self.done, self.failed, self.skipped = total, 0, 0, skipped
-        self.enabled, self.stream = enabled, stream or sys.stderr
-        self.t0 = time.perf_counter()
-        self._draw()
-
-    def step(self, rec: dict):
-        self.done += 1
-        self.failed += rec.get("status") == "failed"
-        self._draw()
-
-    def _draw(self):
-        if not self.enabled:
-            return
-        n = self.total
-        k = self.done
-        width = 30
-        bar = "#" * (width * k // n if n else width) + "." * (width - (width * k // n if n else width))
-        msg = (
-            f"\rbayesdid: variants [{bar}] {k}/{n} run, {self.failed} failed, {self.skipped} already done, "
-            f"{time.perf_counter() - self.t0:.0f}s"
-        )
-        self.stream.write(msg + ("\n" if k == n else ""))
-        self.stream.flush()
 
 
 def run_sweep(
@@ -121,7 +94,8 @@ def run_sweep(
             "last_run": {"ran": [], "skipped": skipped},
         }
         failed, compiles, loads = {}, {}, {}
-        bar = _Progress(len(todo), len(skipped), progress)
+        # a bar with counts and time left on a terminal, one line per variant otherwise (bayesdid.progress)
+        bar = Progress(f"variants ({len(skipped)} already done)", len(todo), log=(say if progress else None))
         rows = read_results(out, plan)
         if todo:
             for rec in EXECUTORS[executor](todo, workers, cluster):
@@ -135,7 +109,7 @@ def run_sweep(
                 meta["cache_loads_per_worker"] = loads
                 rows = _rows_now(out, plan, failed)
                 _write_tables(out, plan, rows, meta)
-                bar.step(rec)
+                bar.step(f"{rec['id']} {rec['status']}")
         rows = _rows_now(out, plan, failed)
         meta["seconds"] = time.perf_counter() - t0
         ver = _write_tables(out, plan, rows, meta)
