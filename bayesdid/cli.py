@@ -325,10 +325,13 @@ def cmd_trends(args, argv):
     if tb.status != "ok":
         print(f"parallel-trends sensitivity: {tb.status} ({tb.reason})")
         return EXIT_OK
-    print("M      95% interval of the effect (model scale)   P(reduction)  P(increase)")
+    ratio = tb.scale.startswith("link")  # binomial and count families: the link-scale ends read as ratios
+    what = ("odds ratio" if "odds" in tb.scale else "rate ratio") if ratio else "model scale"
+    print(f"M      95% interval of the effect ({what}){' ' * max(1, 15 - len(what))}P(reduction)  P(increase)")
     for r in tb.rows:
+        lo, hi = (math.exp(r["lower_95"]), math.exp(r["upper_95"])) if ratio else (r["lower_95"], r["upper_95"])
         print(
-            f"{r['M']:<6g} {r['lower_95']:>10.4g} to {r['upper_95']:<10.4g}                 "
+            f"{r['M']:<6g} {lo:>10.4g} to {hi:<10.4g}                 "
             f"{r['prob_reduction']:>8.1%}  {r['prob_increase']:>10.1%}"
         )
     print(tb.sentence)

@@ -9,10 +9,12 @@ once, by any process, loads in about a second. :data:`COMPILES` counts real comp
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 import time
 import warnings
-from contextlib import contextmanager
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -38,6 +40,7 @@ __all__ = [
     "stop_when",
     "LeanDraws",
     "sample_draws",
+    "sample_draws_many",
 ]
 
 #: Vehtari et al. (2021), Bayesian Analysis 16(2): R-hat below 1.01, bulk and tail ESS of at least 400.
@@ -162,7 +165,37 @@ def compile_exact(model):
         return nutpie.compile_pymc_model(model)
 
 
+#: One thread at a time builds or re-targets a compiled model (two threads asking for a structure not
+#: yet compiled then compile it once).
+_COMPILE_LOCK = threading.Lock()
+_INIT_LOCK = threading.Lock()
+
+
+def _pinned(compiled, model, values: dict):
+    """``compiled`` whose initial-point function first sets the model's data containers to ``values``.
+
+    nutpie's initial points come from PyMC's function, which reads the PyMC model's own data containers
+    (HalfNormal priors start at their scale, group means at the outcome's location) when a chain
+    starts, not when ``with_data`` is called. Fits sampled at the same time in threads
+    (:func:`sample_draws_many`) share that model; pinned, each chain starts from its own fit's data.
+    """
+    base = compiled.initial_point_func
+
+    def init(seed=None):
+        with _INIT_LOCK:
+            for k, v in values.items():
+                model[k].set_value(v)
+            return base(seed)
+
+    return dataclasses.replace(compiled, initial_point_func=init)
+
+
 def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = None):
+    with _COMPILE_LOCK:
+        return _compiled_for_locked(cells, scales, family, terms)
+
+
+def _compiled_for_locked(cells: Cells, scales: dict, family: str, terms: dict | None = None):
 
     terms = terms or {}
     spec = model_spec(cells, family, **terms)
@@ -174,9 +207,10 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
         # PyMC's and reads the model's own data containers (HalfNormal priors start at their scale,
         # the group means at the outcome's location). Set them too, so that a fit does not depend on
         # which variant happened to compile this structure in this process.
-        for k, v in upd.items():
-            model[k].set_value(np.asarray(v, dtype=model[k].dtype))
-        return compiled.with_data(**upd), spec, 0.0
+        values = {k: np.asarray(v, dtype=model[k].dtype) for k, v in upd.items()}
+        for k, v in values.items():
+            model[k].set_value(v)
+        return _pinned(compiled.with_data(**upd), model, values), spec, 0.0
     _stop_if_asked()
     model, spec = build_model(cells, scales, family, **terms)
     t0 = time.perf_counter()
@@ -190,8 +224,10 @@ def _compiled_for(cells: Cells, scales: dict, family: str, terms: dict | None = 
     # cell counts of a model without a residual sd, folded away as 0 * x) is not among them, and
     # nutpie's with_data refuses names it does not know.
     used = {var.name for var in compiled.shared_var_keys}
-    _CACHE[key] = (compiled, set(model.named_vars) & used, model)
-    return compiled, spec, dt
+    names = set(model.named_vars) & used
+    _CACHE[key] = (compiled, names, model)
+    values = {k: np.array(model[k].get_value(), copy=True) for k in names}
+    return _pinned(compiled, model, values), spec, dt
 
 
 def fit_cells(
@@ -287,28 +323,35 @@ def sample_draws(
     parallel processes). Honours :func:`stop_when` like every fit. Raises ``KeyError`` naming a
     variable the model does not have.
     """
-    compiled, spec, compile_s = _compiled_for(cells, scales, family)
-    t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        raw = _sample(
-            compiled,
-            draws=settings.draws,
-            tune=settings.tune,
-            chains=settings.chains,
-            cores=max(1, int(cores)),
-            seed=settings.seed,
-            progress_bar=False,
-            save_warmup=False,
-            target_accept=TARGET_ACCEPT,
-            return_raw_trace=True,
-        )
+        return _lean_sample(cells, scales, settings, var_names, family=family, cores=cores)
+
+
+def _lean_sample(cells, scales, settings, var_names, *, family, cores) -> LeanDraws:
+    # the body of sample_draws; warnings.catch_warnings is not thread-safe, so callers set the filter
+    # once around all their fits (sample_draws_many)
+    compiled, spec, compile_s = _compiled_for(cells, scales, family)
+    t0 = time.perf_counter()
+    raw = _sample(
+        compiled,
+        draws=settings.draws,
+        tune=settings.tune,
+        chains=settings.chains,
+        cores=max(1, int(cores)),
+        seed=settings.seed,
+        progress_bar=False,
+        save_warmup=False,
+        target_accept=TARGET_ACCEPT,
+        return_raw_trace=True,
+    )
     sample_s = time.perf_counter() - t0
     draw_batches, stat_batches = raw.get_arrow_trace()
     names = list(var_names)
     chains: dict[str, list] = {k: [] for k in names}
-    divergences = 0
+    divergences = gradients = 0
     for draw, stat in zip(draw_batches, stat_batches, strict=True):
+        gradients += int(_column(stat, "n_steps").sum())
         post = ~_column(stat, "tuning").astype(bool)
         if "diverging" in stat.column_names:
             divergences += int(_column(stat, "diverging").astype(bool)[post].sum())
@@ -318,9 +361,36 @@ def sample_draws(
                 raise KeyError(f"the model has no variable {k!r}; it has {have}")
             chains[k].append(_column(draw, k)[post])
     values = {k: np.stack(v) for k, v in chains.items()}
-    return LeanDraws(
-        values=values, spec=spec, divergences=divergences, timing={"compile_s": compile_s, "sample_s": sample_s}
-    )
+    # gradients: evaluations of the log density's gradient in all chains, tuning included (the work done)
+    timing = {"compile_s": compile_s, "sample_s": sample_s, "gradients": gradients}
+    return LeanDraws(values=values, spec=spec, divergences=divergences, timing=timing)
+
+
+def sample_draws_many(jobs: list[dict], *, workers: int = 2, done=None) -> list[LeanDraws]:
+    """:func:`sample_draws` for each job (a dict of its keyword arguments), ``workers`` fits at a time.
+
+    The fits run in threads (nutpie samples outside the GIL): with ``cores=1`` per job (the default)
+    two workers keep two cores busy without the idle tail of a fit whose chains end at different
+    times. Each fit's draws depend only on its own data and seed (initial points are pinned, see
+    :func:`_pinned`; the number of threads does not change the draws), so they equal those of the fits
+    run one by one. Results come back in the order of ``jobs``; ``done(i)``, if given, is called in
+    that order as each is ready. A :func:`stop_when` check of the calling thread applies to every fit.
+    """
+    check = getattr(_STOP, "check", None)
+
+    def one(job):
+        job = {"family": "gaussian", "cores": 1, **job}
+        with stop_when(check) if check is not None else nullcontext():
+            return _lean_sample(**job)
+
+    out = []
+    with warnings.catch_warnings(), ThreadPoolExecutor(max_workers=max(1, workers)) as pool:
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for i, result in enumerate(pool.map(one, jobs)):
+            out.append(result)
+            if done is not None:
+                done(i)
+    return out
 
 
 def _column(batch, name: str) -> np.ndarray:

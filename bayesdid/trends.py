@@ -33,6 +33,17 @@ Breakdown values: ``M_zero``, the smallest M at which the 95% interval includes 
 decision level (0.9 unless the study's ``[decision] level`` says otherwise). Both are found by
 bisection to 1e-3 on the same draws; ``None`` when no M up to :data:`M_MAX` reaches it.
 
+Binomial and count families: the same bound on the link scale (log odds, log rate). Their parallel-trends
+assumption is stated there (the adopter's link-scale gap would have moved as the comparisons' did), the
+effect tau is a constant shift on it, and so a departure of the gap adds to tau one for one; on the
+natural scale the same departure would change size with the baseline rate, and a largest pre-policy
+change of a rate or a probability would not carry over from low-rate to high-rate periods. The gap
+path is each cell's empirical link value, log((Y + 1/2) / E) or logit with the same half (the
+pre-trend check's path, :func:`bayesdid.model.families.replicate_gap_path`), minus the model's expected
+link value without the gap noise; its Poisson or binomial sampling noise enters Delta_j as the cell
+mean's sampling noise does in the gaussian case, which makes the bound wider, never narrower. The
+report states the interval's ends as ratios exp(x).
+
 Needs at least :data:`MIN_PRE_PERIODS` observed pre-policy periods for some adopter (two changes to
 take a largest from); otherwise the result is "not applicable", with the reason.
 """
@@ -179,13 +190,6 @@ def trend_bounds(
     from .effects import att_weights
 
     multiples = tuple(float(m) for m in multiples)
-    if fit.spec.family != "gaussian":
-        return TrendBounds(
-            "not applicable",
-            f"the parallel-trends bound is built for the gaussian family; family "
-            f"'{fit.spec.family}' is not covered yet.",
-            multiples,
-        )
     if getattr(fit.spec, "effects", "att") != "att":
         return TrendBounds("not applicable", "the bound reads the per-adopter effects of the main fit.", multiples)
     paths = _pre_paths(fit)
@@ -212,18 +216,21 @@ def trend_bounds(
     rows = [_row(att, b, M, thr, sign) for M in multiples]
     m_zero = _bisect(lambda M: _row(att, b, M, thr, sign)["lower_95"] <= 0 <= _row(att, b, M, thr, sign)["upper_95"])
     m_dec = _bisect(lambda M: _row(att, b, M, thr, sign)["prob_beyond_threshold"] < level)
-    what = (
-        f"an effect beyond the threshold ({threshold:g} on the model scale)"
-        if threshold is not None
-        else f"{'a reduction' if sign < 0 else 'an increase'}"
-    )
+    ratio = {"binomial": "an odds ratio", "poisson": "a rate ratio", "negbinomial": "a rate ratio"}.get(fit.spec.family)
+    if threshold is not None and ratio:  # the link-scale threshold log(1 + t), read back as the ratio 1 + t
+        what = f"{ratio} {'below' if threshold < 0 else 'above'} {float(np.exp(threshold)):.3g}"
+    elif threshold is not None:
+        what = f"an effect beyond the threshold ({threshold:g} on the model scale)"
+    else:
+        what = f"{'a reduction' if sign < 0 else 'an increase'}"
     breakdown = {
         "M_zero": m_zero,
         "M_decision": m_dec,
-        "M_zero_meaning": "smallest M at which the 95% interval includes zero",
+        "M_zero_meaning": "smallest M at which the 95% interval includes zero"
+        + ("" if fit.spec.family == "gaussian" else " (on the link scale: a ratio of 1)"),
         "M_decision_meaning": f"smallest M at which P({what}) drops below {level:g}",
     }
-    tb = TrendBounds("ok", "", multiples, rows, breakdown, threshold, level, "model", pre)
+    tb = TrendBounds("ok", "", multiples, rows, breakdown, threshold, level, scale_of(fit.spec.family), pre)
     if missing:
         tb.reason = (
             f"adopter(s) {missing} have fewer than {MIN_PRE_PERIODS} observed pre-policy periods and are "
@@ -267,8 +274,19 @@ def write_trends(tb: TrendBounds, folder: Path) -> Path:
     return path
 
 
+def scale_of(family: str) -> str:
+    """The scale the bound is computed on: the model scale for the gaussian family, the link for the others."""
+    return {
+        "binomial": "link: log odds (the interval's ends read as odds ratios exp(x))",
+        "poisson": "link: log rate (the interval's ends read as rate ratios exp(x))",
+        "negbinomial": "link: log rate (the interval's ends read as rate ratios exp(x))",
+    }.get(family, "model")
+
+
 def model_threshold(study, cells) -> float | None:
+    """The decision threshold on the model scale: log(1 + t) for a log outcome and for the binomial and
+    count families (whose threshold is a relative change of the ratio), t itself otherwise."""
     t = study.decision.threshold
     if t is None:
         return None
-    return float(np.log1p(t)) if cells.log_outcome else float(t)
+    return float(np.log1p(t)) if (cells.log_outcome or study.model.family != "gaussian") else float(t)

@@ -245,6 +245,10 @@ def test_placebo_space_rank_and_no_recompile():
     r1 = placebo_space_check(big, scales_b, SETTINGS, real_b.draws("tau_adopter") @ effect_weights(big))
     assert sample.COMPILES["count"] == before
     assert r1.details["rank"] == 1 and r1.details["permutation_p"] == pytest.approx(1 / 19)
+    # a large effect is far beyond Monte Carlo error of every placebo: no ties, p is settled
+    assert r1.details["ties_within_mc_error"] == 0
+    assert r1.details["permutation_p_range"] == pytest.approx([1 / 19, 1 / 19])
+    assert len(r1.details["placebo_mcse"]) == 18 and 0 < r1.details["real_mcse"] < 0.1
     assert r1.status == "ok", r1.reason
 
 
@@ -330,3 +334,36 @@ def test_placebo_fits_sample_at_most_placebo_draws():
     assert placebo_settings(FAST) == FAST  # shorter than the cap: the study's own
     assert placebo_settings(long, None) == long
     assert placebo_settings(long, 500) == SamplerSettings(chains=4, draws=500, tune=500, seed=7)
+
+
+def test_placebo_fits_in_threads_equal_fits_one_by_one():
+    """Fits sampled two at a time in threads give the draws each gives alone: each chain starts from its
+    own fit's data (prior scales differ between the jobs here) whichever fit set the shared model last."""
+    cells, scales, _ = cells_of(5, tau=0.0)
+    wide = {k: 3.0 * v for k, v in scales.items()}
+    jobs = []
+    for c in cells.comparisons[:2]:
+        pc, _ = placebo_space_cells(cells, int(c))
+        jobs += [{"cells": pc, "scales": s, "settings": FAST, "var_names": ("tau_adopter",)} for s in (scales, wide)]
+    order = []
+    both = sample.sample_draws_many(jobs, workers=2, done=order.append)
+    alone = sample.sample_draws_many(jobs, workers=1)
+    assert order == [0, 1, 2, 3]
+    for a, b in zip(both, alone):
+        assert np.array_equal(a.draws("tau_adopter"), b.draws("tau_adopter"))
+    # the same placebo under wider priors is another fit (so a chain started from the other job's
+    # data would show)
+    assert not np.array_equal(both[0].draws("tau_adopter"), both[1].draws("tau_adopter"))
+
+
+def test_p_value_range_counts_ties_within_monte_carlo_error():
+    from bayesdid.checks.placebo import p_value_range
+
+    means = [0.30, -0.181, 0.10, 0.175, -0.05]
+    # combined MCSE 0.005, so placebos within 0.01 of |real| = 0.178 tie: -0.181 and 0.175
+    r = p_value_range(means, [0.004] * 5, -0.178, 0.003)
+    assert r["ties"] == 2
+    assert r["p"] == pytest.approx(3 / 6)  # 0.30 and -0.181 as they fell
+    assert (r["p_low"], r["p_high"]) == (pytest.approx(2 / 6), pytest.approx(4 / 6))
+    exact = p_value_range(means, [0.0] * 5, -0.178, 0.0)
+    assert exact["ties"] == 0 and exact["p_low"] == exact["p"] == exact["p_high"]

@@ -66,4 +66,6 @@ def test_organ_all_checks_run(organ_report):
     sp = res["placebo_space"]
     assert sp.details["n_placebos"] == 26
     assert (sp.threshold["placebo_draws"], sp.threshold["placebo_tune"]) == (300, 300)  # the study's 400 capped
+    cmp_ = res["comparison"].threshold  # leave-one-out refits sample as the placebos do
+    assert (cmp_["refit_draws"], cmp_["refit_tune"]) == (sp.threshold["placebo_draws"], sp.threshold["placebo_tune"])
     assert 1 <= sp.details["rank"] <= 27 and 1 / 27 <= sp.details["permutation_p"] <= 1

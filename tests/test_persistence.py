@@ -499,3 +499,91 @@ def pd_read(study):
     import pandas as pd
 
     return pd.read_csv(study.table)
+
+
+@pytest.mark.slow
+def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
+    """The bound for a count outcome (Poisson), on the link scale, where the construction puts it.
+
+    Invented Poisson DiD, 30 jurisdictions x 12 periods, one row per cell with about 40,000 expected
+    events (Poisson noise of a cell's log rate about 0.005) and gap noise sd 0.005. The adopter's
+    log-rate gap alternates +-0.1 before its start (changes of 0.2) and departs by 0.2 (k + 1)
+    after it: the effect (truth 0) reads as 0.2 x mean(k + 1) = 0.7 on the log scale, and the bound
+    M x 0.2 x 3.5 reaches it at M = 1 by construction (the same arithmetic as the gaussian test
+    above; the interval's own half-width moves the breakdown a little below 1). M = 0 is the main
+    fit's interval exactly; ``bayesdid trends`` on the run folder the fit writes gives the same M.
+    Independent gap noise, as in the gaussian test: the bound's arithmetic is what is checked."""
+    import json
+
+    import pandas as pd
+
+    from bayesdid import analyse
+    from bayesdid.cli import main
+    from bayesdid.run import write_run
+
+    rng = np.random.default_rng(2026)
+    J, T, s = 30, 12, 6
+    k = np.arange(T) - s
+    eta = (
+        np.log(40.0)
+        + 0.3 * rng.standard_normal((J, 1))
+        + 0.1 * rng.standard_normal((1, T))
+        + 0.005 * rng.standard_normal((J, T))
+    )
+    eta[0] += np.where(k < 0, 0.1 * (-1.0) ** np.arange(T), 0.2 * (k + 1))
+    exposure = 1000.0
+    y = rng.poisson(exposure * np.exp(eta))
+    names = [f"R{j:02d}" for j in range(J)]
+    frame = pd.DataFrame(
+        {
+            "region": np.repeat(names, T),
+            "period": np.tile(np.arange(1, T + 1), J),
+            "y": y.ravel().astype(float),
+            "exposure": exposure,
+        }
+    )
+    path = tmp_path / "counts.csv"
+    frame.to_csv(path, index=False)
+    st = make_study(
+        table=path,
+        outcome="y",
+        jurisdiction="region",
+        period="period",
+        adopters={names[0]: s + 1},
+        family="poisson",
+        exposure="exposure",
+        draws=400,
+        tune=400,
+        chains=2,
+        seed=4,
+    ).replace(model={"gap_over_time": "independent"})
+    cells = collapse(st, frame)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        an = analyse(st, cells=cells, full_cross_check=False)
+    tb = an.trends
+    assert tb.status == "ok", tb.reason
+    assert tb.scale.startswith("link: log rate")
+    assert tb.pre_change[names[0]]["median"] == pytest.approx(0.2, abs=0.04)
+    assert an.effects["effect"].summary["mean"] == pytest.approx(0.7, abs=0.1)
+    m0 = tb.breakdown["M_zero"]
+    assert 0.7 < m0 < 1.02
+    grid = {r["M"]: r for r in tb.rows}
+    assert grid[0.5]["lower_95"] > 0 > grid[1.5]["lower_95"]
+    e = an.effects["effect"].summary
+    assert [grid[0.0]["lower_95"], grid[0.0]["upper_95"]] == e["eti_95"]  # M = 0 is the main fit, exactly
+    run = write_run(an, tmp_path / "run")
+    s_json = json.loads((run / "summary.json").read_text())["parallel_trends"]
+    assert s_json["status"] == "ok" and s_json["breakdown"]["M_zero"] == pytest.approx(m0, abs=1e-9)
+    from bayesdid.report.html import render_report
+
+    html = render_report(run)
+    assert (
+        "Departures from parallel trends" in html
+        and "Not applicable" not in html.split("parallel trends</h3>")[1][:200]
+    )
+    assert "95% interval (rate ratio)" in html and f"{np.exp(grid[0.0]['lower_95']):.3f}" in html
+    assert main(["trends", str(run), "--multiples", "0,0.5,1"]) == 0
+    again = json.loads((run / "summary.json").read_text())["parallel_trends"]
+    assert again["breakdown"]["M_zero"] == pytest.approx(m0, abs=1e-9)
+    assert again["grid"][1]["lower_95"] == pytest.approx(grid[0.5]["lower_95"], rel=1e-12)

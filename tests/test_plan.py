@@ -135,11 +135,15 @@ BAD = [
     (with_(DID, "layout", starts=[1]), "layout.starts", "no pre-period"),
     (with_(DID, "layout", comparisons=0), "layout.comparisons", "no comparison"),
     (with_(DID, "layout", starts=[9]), "layout.starts", "start after the last period"),
+    (with_(DID, "layout", starts=[0]), "layout.starts", "start before the first period"),
+    (with_(DID, "layout", starts=[3, 9]), "layout.starts", "second adopter's start after the last period"),
     (with_(with_(DID, "layout", starts=[7]), "vary", periods=[6, 8]), "vary.periods", "start outside a varied layout"),
     (with_(DID, "vary", comparisons=[0, 29]), "vary.comparisons", "a varied layout without comparisons"),
     (with_(DID, "decision", level=1.0), "decision.level", "level 1"),
     (with_(DID, "decision", level=0), "decision.level", "level 0"),
     (with_(DID, "decision", level=1.5), "decision.level", "level above 1"),
+    (with_(DID, "decision", level=-0.2), "decision.level", "negative level"),
+    (with_(DID, "decision", level="0.9"), "decision.level", "level as text"),
     (with_(DID, "noise", rho=1.0), "noise.rho", "rho 1"),
     (with_(DID, "effects", values=[]), "effects.values", "no effects"),
     (with_(DID, "layout", colour="blue"), "colour", "unknown key"),
@@ -265,7 +269,7 @@ def test_shifted_draws_agree_with_refits_two_adopters():
         "noise": {"gap": 0.1, "residual": 1.0},
         "effects": {"values": [0.0, -0.3]},
         "decision": {"threshold": 0.0, "level": 0.9},
-        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "placebos": 0},
+        "simulation": {"reps": 3, "seed": 77, "draws": 200, "tune": 200, "chains": 2, "placebos": 0},
     }
     shift = {(r["effect"], r["rep"]): r for r in run_plan(make_plan(raw), workers=1)["rows"]}
     refit = {
@@ -309,7 +313,12 @@ def test_command_writes_its_folder_resumes_and_shares_one_structure(tmp_path, di
     assert len(s["assurance"]) == 4 * 2 and len(s["false_decision"]) == 4
     tab = pd.read_csv(out / "assurance.csv")
     assert set(tab["layout"]) == {"C29-T8", "C9-T6", "C9-T8", "C29-T6"}
-    assert "would be detected with probability" in (out / "report.html").read_text()
+    page = (out / "report.html").read_text()
+    assert "would be detected with probability" in page
+    # the planned layout's sentences lead; the three other layouts of the grid are folded below
+    head, folded = page.split("<details>")[0], page.split("<details>")[1].split("</details>")[0]
+    assert "29 comparisons and four quarters" in head and "nine comparisons" not in head
+    assert "other 3 layout(s)" in folded and "nine comparisons and two quarters" in folded
     # an existing folder is refused without --replace, before any work
     assert main(["plan", path, "--out", str(out), "--quiet"]) == 2
 
@@ -452,3 +461,77 @@ def test_lean_draws_are_the_full_fits_draws():
         assert lean.spec.key() == full.spec.key()
     with pytest.raises(KeyError, match="no variable 'tau_typo'"):
         sample_draws(cells, scales, settings, ["tau_typo"])
+
+
+def test_permutation_at_every_effect_from_two_passes():
+    """The linear shortcut (est(c) = est(0) + c (est(1) - est(0))) against a permutation test per effect."""
+    from bayesdid.crosscheck import permutation_test
+    from bayesdid.plan import _one_sided_p, _permutation_rows
+
+    for raw in (DID, with_(with_(DID, "layout", design="DDD", starts=[4, 6]), "decision", direction="above")):
+        plan = make_plan(with_(raw, "simulation", placebos=39))
+        lay = plan.layouts[0]
+        rng = np.random.default_rng(11)
+        noise = simulate_noise(plan.frame, plan.noise.for_rep(rng), (0, 0), rng)
+        effects = [0.0, -0.2, 0.35, -1.0]
+        rows = _permutation_rows(plan, lay, noise, 5, effects)
+        for c, row in zip(effects, rows, strict=True):
+            direct = permutation_test(simulate_cells(plan, lay, noise, c), placebos=39, seed=5)
+            assert row["ls_estimate"] == pytest.approx(direct["estimate"], abs=1e-10)
+            assert row["p_permutation_two_sided"] == pytest.approx(direct["p_value"], abs=1e-12)
+            assert row["permutation_assignments"] == direct["assignments"]
+            p1 = _one_sided_p(direct["estimate"], direct["estimates"], plan.direction)
+            assert row["p_permutation"] == pytest.approx(p1, abs=1e-12)
+            assert row["permutation_reject"] == (p1 <= 1 - plan.level + 1e-12)
+
+
+def test_att_diagnostics_judge_the_inner_fits():
+    """The plan's pass rule on the ATT draws: R-hat (halves of one chain), bulk ESS, divergences."""
+    from bayesdid.plan import PLAN_ESS_MIN, _att_diagnostics
+
+    rng = np.random.default_rng(4)
+    iid = rng.standard_normal((1, 400))
+    d = _att_diagnostics(iid, 0)
+    assert d["ok"] and abs(d["rhat_max"] - 1) < 0.02 and d["ess_bulk_att"] > PLAN_ESS_MIN
+    assert not _att_diagnostics(iid, 1)["ok"]  # a divergence fails the fit
+    drift = iid + np.linspace(0, 3, 400)  # one chain whose halves disagree
+    assert _att_diagnostics(drift, 0)["rhat_max"] > 1.1 and not _att_diagnostics(drift, 0)["ok"]
+    sticky = np.repeat(rng.standard_normal((2, 20)), 20, axis=1)  # two chains, 20 distinct values each
+    assert _att_diagnostics(sticky, 0)["ess_bulk_att"] < PLAN_ESS_MIN and not _att_diagnostics(sticky, 0)["ok"]
+
+
+def test_decision_probability_error_and_expected_flips():
+    """prob_beyond_mcse is sqrt(p (1 - p) / S) for independent equally weighted draws; flip_share follows it."""
+    from scipy import stats
+
+    from bayesdid.plan import _decide, decision_noise
+
+    plan = make_plan(DID)  # threshold 0, direction below, level 0.9
+    rng = np.random.default_rng(8)
+    att = rng.normal(-0.25, 0.2, size=2000)  # P(att < 0) = Phi(1.25) = 0.894
+    d = _decide(plan, att, None, -0.25, chains=2)
+    p = d["prob_beyond"]
+    # bulk of 2,000 independent draws: the ESS of the indicator is near 2,000 (within its own noise)
+    assert d["prob_beyond_mcse"] == pytest.approx(math.sqrt(p * (1 - p) / 2000), rel=0.15)
+    # a chain stuck in blocks of 20 has about 20 times fewer effective draws: about sqrt(20) times the error
+    sticky = np.repeat(att[:100], 20)
+    assert _decide(plan, sticky, None, -0.25, chains=1)["prob_beyond_mcse"] > 3 * d["prob_beyond_mcse"]
+    rows = [
+        {"prob_beyond": 0.9, "prob_beyond_mcse": 0.02},  # at the level: a coin flip
+        {"prob_beyond": 0.94, "prob_beyond_mcse": 0.02},  # two errors away
+        {"prob_beyond": 0.3, "prob_beyond_mcse": 0.0},  # all draws on one side
+    ]
+    out = decision_noise(plan, rows)
+    assert out["flip_share"] == pytest.approx((0.5 + stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+    # net: the first concludes now and half the time after; the second concludes now, Phi(2) after
+    assert out["shift"] == pytest.approx((-0.5 - stats.norm.cdf(-2.0) + 0.0) / 3, rel=1e-9)
+
+
+def test_plain_words_of_a_share_at_zero_or_one():
+    """No (or only) detections: the exact one-sided 95% bound (Clopper-Pearson), not an error of 0."""
+    from bayesdid.report.plan_page import _prob_words
+
+    assert _prob_words(0.62, 0.0343, 200) == "0.62 (Monte Carlo error 0.03)"
+    # 1 - 0.05^(1/15) = 0.181 (exact binomial bound with no success in 15 trials)
+    assert _prob_words(0.0, 0.0, 15) == "0.00 (in none of 15 simulated data sets: at most 0.18 with 95% confidence)"
+    assert _prob_words(1.0, 0.0, 200) == "1.00 (in all 200 simulated data sets: at least 0.99 with 95% confidence)"

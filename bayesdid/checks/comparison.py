@@ -20,7 +20,11 @@ smoothing distribution given all its periods (forward filter, backward sampling)
 It should be near zero. Outliers: robust z_j = (mean(delta_j) - median) / (1.4826 MAD) over the
 comparison jurisdictions; flag |z_j| > 3 (common practice). For each flagged one (the 5 most
 extreme at most) the main model is refitted without it (weight 0 on all its periods, the same
-compiled model) and the ATT reported.
+compiled model) and the ATT reported. These refits sample as a placebo in space does (at most 300
+draws after 300 tuning steps per chain, the study's chains, two refits at a time, only the effect's
+draws kept; ``refit_draws`` and ``refit_tune`` in the threshold). Measured on copay_cap (2 flagged)
+against the study's 2 x 2000 draws after 1000: the effect without each moved by 0.03-0.04 posterior
+sd, 0.7-0.8 times the combined Monte Carlo standard error, with 4.4 times fewer gradient evaluations.
 
 Table ``comparison.csv`` columns: ``jurisdiction``, ``mean``, ``sd``, ``lower_90``, ``upper_90``,
 ``prob_gt_0`` (of delta_j), ``robust_z``, ``flagged`` (bool), ``loo_effect_mean``,
@@ -35,9 +39,10 @@ from ..cells import Cells
 from ..model import families
 from ..model.gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
 from ..model.terms import mean_from_draws
-from ..sample import fit_cells
+from ..sample import sample_draws_many
 from ..study import SamplerSettings
 from .base import CheckResult, earliest_start, effect_weights, frame, interval_row, not_applicable, reseed
+from .placebo import placebo_settings
 
 __all__ = ["comparison_check", "gap_noise_draws", "Z_LIMIT"]
 
@@ -119,14 +124,27 @@ def comparison_check(
         )
     flagged = sorted([i for i in range(len(comps)) if abs(z[i]) > Z_LIMIT], key=lambda i: -abs(z[i]))
     att_full = interval_row(fit.draws("tau_adopter") @ effect_weights(cells))
+    rs = placebo_settings(settings)
+    thr.update({"refit_draws": rs.draws, "refit_tune": rs.tune, "refit_chains": rs.chains})
+    jobs = []
+    for n_done, i in enumerate(flagged[:MAX_REFITS] if refit else []):
+        w = cells.jt_weight().copy()
+        w[comps[i]] = 0.0
+        jobs.append(
+            {
+                "cells": cells.with_weight(w),
+                "scales": scales,
+                "settings": reseed(rs, 300 + n_done),
+                "var_names": ("tau_adopter",),
+                "family": family,
+            }
+        )
+    refits = sample_draws_many(jobs, workers=2)
     offenders = []
     for n_done, i in enumerate(flagged):
         off = {"jurisdiction": rows[i]["jurisdiction"], "change_mean": rows[i]["mean"], "robust_z": float(z[i])}
-        if refit and n_done < MAX_REFITS:
-            w = cells.jt_weight().copy()
-            w[comps[i]] = 0.0
-            lf = fit_cells(cells.with_weight(w), scales, reseed(settings, 300 + n_done), family=family)
-            loo = interval_row(lf.draws("tau_adopter") @ effect_weights(cells))
+        if n_done < len(refits):
+            loo = interval_row(refits[n_done].draws("tau_adopter") @ effect_weights(cells))
             rows[i].update(
                 {"loo_effect_mean": loo["mean"], "loo_lower_90": loo["lower_90"], "loo_upper_90": loo["upper_90"]}
             )

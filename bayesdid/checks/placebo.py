@@ -13,7 +13,10 @@ adopter, that adopter is set to never adopt, and every real adopter's jurisdicti
 weight 0 (so the number of adopters, and the compiled model, stay the same: one compile, new data
 for each placebo). The placebo effect is tau[c]. The real effect is the ATT of the main fit.
 Statistic: the posterior mean. Rank: position of |real| among all |effects| (1 = most extreme);
-permutation p-value p = (1 + #{placebos with |mean| >= |real mean|}) / (1 + N).
+permutation p-value p = (1 + #{placebos with |mean| >= |real mean|}) / (1 + N). A placebo whose |mean|
+lies within 2 combined Monte Carlo standard errors of |real| is a tie (which is larger is not settled
+by the draws); ``permutation_p_range`` gives p with none and with all ties counted, and the reason
+says so when there are ties.
 Status "flag" when more placebos have a 90% interval excluding 0 than Binomial(N, 0.10) gives with
 probability 0.95 (the model is then over-confident about effects where none exist); offenders are
 those placebos.
@@ -29,6 +32,10 @@ cases against the study's chains (copay_cap 2 x 2000 after 1000, nurse_line 2 x 
 second seed and with 1000 draws); 200 draws moved copay_cap's rank by one, because two of its
 placebos lie within 0.0011 of |real| (figures in DEVELOPERS.md). ``threshold`` records the draws and
 tune used.
+Each placebo fit keeps only the draws of ``tau_adopter`` (:func:`bayesdid.sample.sample_draws`): the
+same draws as a full fit, without the ArviZ tree and the convergence diagnostics it never reads. Two
+placebo fits run at a time, one thread each (:func:`bayesdid.sample.sample_draws_many`), with the same
+draws as one by one.
 """
 
 from __future__ import annotations
@@ -41,7 +48,7 @@ from scipy import stats
 from ..cells import Cells
 from ..effects import summarize
 from ..progress import Progress
-from ..sample import fit_cells
+from ..sample import fit_cells, sample_draws_many
 from ..study import SamplerSettings
 from .base import (
     CheckResult,
@@ -55,12 +62,14 @@ from .base import (
     reseed,
 )
 
-__all__ = ["placebo_time_check", "placebo_space_check", "placebo_space_cells", "default_lag"]
+__all__ = ["placebo_time_check", "placebo_space_check", "placebo_space_cells", "default_lag", "p_value_range"]
 
 TIME, SPACE = "placebo_time", "placebo_space"
 NOMINAL = 0.10
 #: Draws (and tuning steps) per chain of each placebo-in-space fit, at most (module docstring).
 PLACEBO_DRAWS = 300
+#: Placebo fits sampled at the same time (threads; each fit's draws are those it gives alone).
+PLACEBO_WORKERS = 2
 
 
 def placebo_settings(settings: SamplerSettings, draws: int | None = PLACEBO_DRAWS) -> SamplerSettings:
@@ -71,6 +80,38 @@ def placebo_settings(settings: SamplerSettings, draws: int | None = PLACEBO_DRAW
     return dataclasses.replace(
         settings, draws=min(int(settings.draws), int(draws)), tune=min(int(settings.tune), int(draws))
     )
+
+
+#: A placebo whose |mean| lies within this many combined Monte Carlo standard errors of |real| is a tie.
+TIE_MCSE = 2.0
+
+
+def mcse_of_mean(x: np.ndarray, chains: int) -> float:
+    """Monte Carlo standard error of the mean of chain-major draws ``x`` (S,) from ``chains`` chains
+    (arviz-stats, method "mean": sd / sqrt(ESS))."""
+    import arviz_stats as azs
+
+    return float(azs.mcse(np.asarray(x, dtype=float).reshape(int(chains), -1), method="mean"))
+
+
+def p_value_range(means, mcses, real_mean: float, real_mcse: float, *, z: float = TIE_MCSE) -> dict:
+    """The permutation p-value and how far Monte Carlo error could move it.
+
+    A placebo ties with the real effect when ``| |mean| - |real| | < z * sqrt(mcse^2 + real_mcse^2)``: which
+    of the two is larger is then not settled by the draws. ``p`` counts placebos with |mean| >= |real|
+    as they fell; ``p_low`` counts none of the ties, ``p_high`` all of them.
+    """
+    m, se = np.abs(np.asarray(means, dtype=float)), np.asarray(mcses, dtype=float)
+    r = abs(float(real_mean))
+    N = len(m)
+    tie = np.abs(m - r) < z * np.sqrt(se**2 + float(real_mcse) ** 2)
+    sure = int(np.sum((m >= r) & ~tie))
+    return {
+        "p": (1 + int(np.sum(m >= r))) / (1 + N),
+        "p_low": (1 + sure) / (1 + N),
+        "p_high": (1 + sure + int(tie.sum())) / (1 + N),
+        "ties": int(tie.sum()),
+    }
 
 
 def default_lag(cells: Cells) -> int:
@@ -170,22 +211,35 @@ def placebo_space_check(
             "after the start; a placebo distribution needs at least 2.",
             thr,
         )
-    rows, means = [], []
+    rows, means, mcses = [], [], []
     bar = Progress("placebo in space", len(comps), log=progress)
-    for i, c in enumerate(comps):
-        pc, slot = placebo_space_cells(cells, c)
-        fit = fit_cells(pc, scales, reseed(ps, 100 + i), family=family)
+    placebos = [placebo_space_cells(cells, c) for c in comps]
+    jobs = [
+        {
+            "cells": pc,
+            "scales": scales,
+            "settings": reseed(ps, 100 + i),
+            "var_names": ("tau_adopter",),
+            "family": family,
+        }
+        for i, (pc, _) in enumerate(placebos)
+    ]
+    fits = sample_draws_many(jobs, workers=PLACEBO_WORKERS, done=lambda i: bar.step(str(cells.jurisdictions[comps[i]])))
+    for c, (_, slot), fit in zip(comps, placebos, fits):
         x = fit.draws("tau_adopter")[:, slot]
         r = interval_row(x)
         rows.append({"jurisdiction": cells.jurisdictions[c], "role": "placebo", **r})
         means.append(r["mean"])
-        bar.step(str(cells.jurisdictions[c]))
+        mcses.append(mcse_of_mean(x, ps.chains))
     real = interval_row(real_att)
+    real_mcse = mcse_of_mean(real_att, settings.chains) if np.size(real_att) % settings.chains == 0 else 0.0
     rows.append({"jurisdiction": "+".join(cells.jurisdictions[j] for j in cells.adopters), "role": "real", **real})
     means = np.asarray(means)
     N = len(means)
     exceed = int(np.sum(np.abs(means) >= abs(real["mean"])))
     p = (1 + exceed) / (1 + N)
+    mc = p_value_range(means, mcses, real["mean"], real_mcse)
+    thr["tie_rule"] = f"| |placebo mean| - |real mean| | < {TIE_MCSE:g} x combined Monte Carlo standard error"
     order = np.argsort(-np.abs([r_["mean"] for r_ in rows]), kind="stable")
     for rank, i in enumerate(order, start=1):
         rows[i]["rank"] = rank
@@ -203,6 +257,12 @@ def placebo_space_check(
             if flag
             else f"(at most {limit} expected by chance)."
         )
+        + (
+            f" {mc['ties']} placebo(s) lie within Monte Carlo error of |real|, so p could be anywhere from "
+            f"{mc['p_low']:.3f} to {mc['p_high']:.3f} with other seeds or longer chains."
+            if mc["ties"]
+            else ""
+        )
     )
     details = {
         "real_effect": real,
@@ -211,6 +271,10 @@ def placebo_space_check(
         "permutation_p": p,
         "placebo_means": [float(v) for v in means],
         "placebo_excluding_zero": len(excl),
+        "placebo_mcse": [float(v) for v in mcses],
+        "real_mcse": real_mcse,
+        "ties_within_mc_error": mc["ties"],
+        "permutation_p_range": [mc["p_low"], mc["p_high"]],
     }
     offenders = [{"jurisdiction": r_["jurisdiction"], "mean": r_["mean"]} for r_ in excl] if flag else []
     return CheckResult(SPACE, "flag" if flag else "ok", reason, thr, offenders, details, {"placebo_space": frame(rows)})

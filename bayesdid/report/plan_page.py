@@ -54,16 +54,33 @@ def _rule_words(plan: dict) -> str:
     return f"the probability of {what} is at least {d['level']:g}"
 
 
-def plan_sentences(summary: dict) -> list[str]:
-    """One plain sentence per layout and non-zero effect, and one per layout for the false decisions."""
+def _prob_words(p: float, se: float, n: int) -> str:
+    """'0.62 (Monte Carlo error 0.04)'; at 0 or 1 the exact one-sided 95% bound instead of an error of 0.
+
+    With no (or only) successes in n data sets the binomial error sqrt(p (1 - p) / n) is 0, which reads
+    as certainty; the Clopper-Pearson bound 1 - 0.05^(1/n) (common practice) says what n data sets allow.
+    """
+    if n and p == 0:
+        return f"0.00 (in none of {n} simulated data sets: at most {1 - 0.05 ** (1 / n):.2f} with 95% confidence)"
+    if n and p == 1:
+        return f"1.00 (in all {n} simulated data sets: at least {0.05 ** (1 / n):.2f} with 95% confidence)"
+    return f"{p:.2f} (Monte Carlo error {se:.2f})"
+
+
+def plan_sentences(summary: dict, layouts: set[str] | None = None) -> list[str]:
+    """One plain sentence per layout and non-zero effect, and one per layout for the false decisions.
+
+    ``layouts``: only these layout keys (default: every layout).
+    """
     plan = summary["plan"]
     log = plan["effect_scale"].startswith("relative")
     lays = {x["key"]: x for x in plan["layouts"]}
     out = []
     for row in summary["assurance"]:
         lay = lays[row["layout"]]
-        if row["assurance"] is None:
+        if row["assurance"] is None or (layouts is not None and row["layout"] not in layouts):
             continue
+        prob = _prob_words(row["assurance"], row["assurance_mcse"], row.get("reps") or 0)
         head = f"With {layout_words(lay, plan['period_name'])}"
         if row["effect"] == 0:
             width = (
@@ -74,7 +91,7 @@ def plan_sentences(summary: dict) -> list[str]:
             )
             out.append(
                 f"{head}, a policy with no effect would wrongly be judged to meet the rule with probability "
-                f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){width}."
+                f"{prob}{width}."
             )
         else:
             perm = (
@@ -82,10 +99,7 @@ def plan_sentences(summary: dict) -> list[str]:
                 if row["permutation_power"] is None
                 else f"; the permutation test would detect it with probability {row['permutation_power']:.2f}"
             )
-            out.append(
-                f"{head}, {effect_words(row['effect'], log)} would be detected with probability "
-                f"{row['assurance']:.2f} (Monte Carlo error {row['assurance_mcse']:.2f}){perm}."
-            )
+            out.append(f"{head}, {effect_words(row['effect'], log)} would be detected with probability {prob}{perm}.")
     return out
 
 
@@ -129,7 +143,7 @@ def plot_assurance(summary: dict, path: str | Path) -> Path:
             lw=1.5,
             capsize=3,
             label=f"{lay['adopters']} adopter(s), {lay['comparisons']} comparisons, "
-            f"{lay['post_periods']} {plan['period_name']}s after",
+            f"{lay['post_periods']} {plan['period_name']}s from the last start",
         )
         na = [(xx, r["normal_assurance"]) for xx, r in zip(x, rows) if r.get("normal_assurance") is not None]
         if na:
@@ -168,8 +182,18 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         f"<p>The rule: conclude when {esc(_rule_words(plan))}. Each line below comes from "
         f"{plan['simulation']['reps']} simulated data set(s) per layout and effect.</p>",
     ]
-    sentences = plan_sentences(summary)
+    # the planned layout in the headline; the [vary] layouts' sentences folded below it (the figure
+    # and the table show them all)
+    keys = [x["key"] for x in plan["layouts"]]
+    sentences = plan_sentences(summary, {keys[0]})
     parts.append('<div class="headline">' + "<br>".join(esc(s) for s in sentences) + "</div>")
+    others = plan_sentences(summary, set(keys[1:])) if len(keys) > 1 else []
+    if others:
+        parts.append(
+            f"<details><summary>The same for the other {len(keys) - 1} layout(s) of the grid</summary><p>"
+            + "<br>".join(esc(s) for s in others)
+            + "</p></details>"
+        )
     if png is not None and Path(png).is_file():
         data = base64.b64encode(Path(png).read_bytes()).decode("ascii")
         parts.append(f'<figure><img src="data:image/png;base64,{data}" alt="assurance by true effect"></figure>')
@@ -182,6 +206,7 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "permutation power",
         "normal approximation",
         "fits passing diagnostics",
+        "decisions a sampler rerun would flip (net change)",
     ]
     rows = []
     for r in summary["assurance"]:
@@ -195,6 +220,9 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
                 _f(r["permutation_power"]),
                 _f(r["normal_assurance"]),
                 _f(r["diagnostics_ok_share"]),
+                ""
+                if r.get("decision_flip_share") is None
+                else f"{r['decision_flip_share']:.3f} ({r['decision_shift']:+.3f})",
             ]
         )
     parts.append("<h2>Assurance by layout and true effect</h2>" + _table(header, rows))
@@ -205,7 +233,12 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
         "Monte Carlo error: sqrt(p (1 - p) / N). Permutation power: the least-squares placebo-in-space "
         f"test, one-sided, at level {1 - plan['decision']['level']:g}, on the same data sets. Normal "
         "approximation: known variance components and independent noise (empty where it does not "
-        "apply).</p>"
+        "apply). Fits passing diagnostics: "
+        + esc(summary.get("notes", {}).get("diagnostics", "the share of fits passing the sampler's checks"))
+        + ". Decisions a sampler rerun would flip: the expected share of data sets whose conclusion "
+        "depends on the Monte Carlo error of the posterior probability, and in brackets the expected net "
+        "change of the assurance; when that is well below the assurance's Monte Carlo error, longer chains "
+        "would not change the reading.</p>"
     )
     noise = plan["noise"]
     if noise["source"] == "stated":
@@ -226,7 +259,8 @@ def render_plan_page(summary: dict, png: str | Path | None = None) -> str:
     parts.append(
         f'<p class="note">Executor: {esc(run["executor"])}; reps run now {run["ran_now"]}, kept from an '
         f"earlier run {run['kept_from_earlier_run']}; compiles per worker "
-        f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} chains of "
+        f"{esc(run['compiles_per_worker'])}. Sampler: {plan['simulation']['chains']} "
+        f"chain{'s' if plan['simulation']['chains'] != 1 else ''} of "
         f"{plan['simulation']['draws']} draws after {plan['simulation']['tune']} tuning steps.</p>"
     )
     parts.append(

@@ -347,15 +347,18 @@ def trends_figure(
     breakdown: float | None,
     ylabel: str,
     threshold: float | None = None,
+    no_effect: float = 0.0,
 ) -> str:
-    """The effect's 95% interval against M (departures from parallel trends), breakdown M marked."""
+    """The effect's 95% interval against M (departures from parallel trends), breakdown M marked.
+
+    ``no_effect``: where the line of no effect is drawn (0 for differences, 1 for ratios)."""
     with plt.rc_context(_RC):
         fig, ax = _fig(7.0, 3.2)
         M = np.asarray(M, dtype=float)
         ax.fill_between(M, lower, upper, color=PALETTE["band"], step=None, lw=0)
         ax.plot(M, lower, color=PALETTE["posterior"], marker="o", ms=4, lw=1.5)
         ax.plot(M, upper, color=PALETTE["posterior"], marker="o", ms=4, lw=1.5)
-        ax.axhline(0, color=PALETTE["reference"], lw=1)
+        ax.axhline(no_effect, color=PALETTE["reference"], lw=1)
         if threshold is not None:
             ax.axhline(threshold, color=PALETTE["threshold"], lw=1, ls="--")
         if breakdown is not None and breakdown <= (M.max() if M.size else 0):

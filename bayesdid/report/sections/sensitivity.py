@@ -25,7 +25,13 @@ def _trends_words(run: RunFolder) -> list[str]:
     if tr.get("status") != "ok" or not tr.get("grid"):
         return out + [f"<p>Not applicable: {esc(tr.get('reason', ''))}</p>"]
     pct = _is_percent(run.summary)
-    conv = (lambda v: float(np.expm1(v)) * 100.0) if pct else (lambda v: float(v))
+    scale = str(tr.get("scale", "model"))
+    ratio = scale.startswith("link")  # binomial and count families: the link-scale bound read as ratios
+    ratio_name = "odds ratio" if "odds" in scale else "rate ratio"
+    if ratio:
+        conv = lambda v: float(np.exp(v))  # noqa: E731
+    else:
+        conv = (lambda v: float(np.expm1(v)) * 100.0) if pct else (lambda v: float(v))
     grid = tr["grid"]
     thr = tr.get("threshold_model_scale")
     out.append(
@@ -36,13 +42,17 @@ def _trends_words(run: RunFolder) -> list[str]:
                 [conv(g["upper_95"]) for g in grid],
                 breakdown=(tr.get("breakdown") or {}).get("M_zero"),
                 threshold=None if thr is None else conv(thr),
-                ylabel="effect, 95% interval" + (" (%)" if pct else " (model scale)"),
+                ylabel="effect, 95% interval" + (f" ({ratio_name})" if ratio else " (%)" if pct else " (model scale)"),
+                no_effect=1.0 if ratio else 0.0,
             ),
             "95% interval of the effect against M, with the breakdown value",
         )
     )
     out.append(f"<p><strong>{esc(tr.get('sentence', ''))}</strong></p>")
-    fmt = (lambda v: f"{conv(v):.1f}%") if pct else (lambda v: _num(v, 3))
+    if ratio:
+        fmt = lambda v: f"{conv(v):.3f}"  # noqa: E731
+    else:
+        fmt = (lambda v: f"{conv(v):.1f}%") if pct else (lambda v: _num(v, 3))
     rows = [
         [
             _num(g["M"]),
@@ -57,7 +67,7 @@ def _trends_words(run: RunFolder) -> list[str]:
         _table(
             [
                 "M",
-                "95% interval",
+                f"95% interval ({ratio_name})" if ratio else "95% interval",
                 "P(reduction) for every allowed path",
                 "P(increase) for every allowed path",
                 "P(beyond the decision threshold)",
@@ -67,9 +77,15 @@ def _trends_words(run: RunFolder) -> list[str]:
     )
     b = tr.get("breakdown") or {}
     out.append(
-        f'<p class="caption">After the policy the adopters\' gap may depart from its parallel path by up to M '
-        f"times the largest period-to-period change it showed before (relative magnitudes, after Rambachan "
-        f"and Roth 2023; a bound applied to every posterior draw). Breakdown values: {esc(b.get('M_zero_meaning', ''))}: "
+        '<p class="caption">After the policy the adopters\' gap may depart from its parallel path by up to M '
+        "times the largest period-to-period change it showed before (relative magnitudes, after Rambachan "
+        "and Roth 2023; a bound applied to every posterior draw)"
+        + (
+            f"; computed on the link scale, where the model states parallel trends, and shown as {ratio_name}s"
+            if ratio
+            else ""
+        )
+        + f". Breakdown values: {esc(b.get('M_zero_meaning', ''))}: "
         f"{_num(b.get('M_zero'))}; {esc(b.get('M_decision_meaning', ''))}: {_num(b.get('M_decision'))}. "
         f"Table: trends.csv.</p>"
     )
