@@ -293,9 +293,9 @@ def cmd_checks(args, argv):
 
 def cmd_trends(args, argv):
     """Parallel-trends sensitivity of a run folder: rewrite its trends.csv and summary.json's section."""
-    import os
 
-    from .run import dump_json
+    from .outputs import atomic_write
+    from .run import json_text
     from .trends import write_trends
     from .trends_rerun import trends_from_run
 
@@ -319,11 +319,9 @@ def cmd_trends(args, argv):
     summary_path = run / "summary.json"
     summary = json.loads(summary_path.read_text(encoding="utf-8"))
     summary["parallel_trends"] = tb.to_dict()
-    tmp = run / ".summary.json.tmp"
-    dump_json(summary, tmp)
     if tb.rows:
         write_trends(tb, run)
-    os.replace(tmp, summary_path)
+    atomic_write(summary_path, json_text(summary))
     if tb.status != "ok":
         print(f"parallel-trends sensitivity: {tb.status} ({tb.reason})")
         return EXIT_OK

@@ -23,6 +23,7 @@ __all__ = [
     "hdi",
     "Effect",
     "att_weights",
+    "att_draws",
     "compute_effects",
     "beyond_text",
     "percent_change",
@@ -33,15 +34,11 @@ __all__ = [
 
 
 def hdi(x: np.ndarray, prob: float = 0.9) -> tuple[float, float]:
-    """Narrowest interval holding ``prob`` of the draws (unimodal reading)."""
-    x = np.sort(np.asarray(x, dtype=float).ravel())
-    n = x.size
-    k = int(np.floor(prob * n))
-    if k < 1 or k >= n:
-        return float(x[0]), float(x[-1])
-    widths = x[k:] - x[: n - k]
-    i = int(np.argmin(widths))
-    return float(x[i]), float(x[i + k])
+    """Narrowest interval holding ``prob`` of the draws (unimodal reading), by :func:`arviz.hdi`."""
+    import arviz as az
+
+    lo, hi = np.asarray(az.hdi(np.asarray(x, dtype=float).ravel(), prob=prob), dtype=float)
+    return float(lo), float(hi)
 
 
 def summarize(x: np.ndarray, threshold: float | None = None) -> dict:
@@ -123,12 +120,32 @@ def percent_change(b):
 def att_weights(cells) -> np.ndarray:
     """w_j: treated target-group rows of adopter j over all treated target-group rows.
 
-    With sampling weights (``cells.extra["weights"]``) rows count by their weights: w_j is the share of
-    the weighted population of the treated target-group cells that adopter j holds.
+    The one rule of the ATT's weights, used by the headline, the run folder's ``att``, every check and
+    the notebook. With sampling weights (``cells.extra["weights"]``) rows count by their weights: w_j is
+    the share of the weighted population of the treated target-group cells that adopter j holds. Only
+    cells that carry likelihood weight count (a check or a sweep variant may leave some out); an adopter
+    whose treated cells are all left out gets weight 0, and the weights are all 0 when none is left.
     """
     size = cells.extra.get("weights", {}).get("sum_w", cells.n) if cells.extra else cells.n
-    treated_rows = (size * cells.treated).sum(axis=(1, 2))[cells.adopters]
-    return treated_rows / treated_rows.sum()
+    in_likelihood = cells.jt_weight()[:, None, :] > 0
+    treated_rows = (size * cells.treated * in_likelihood).sum(axis=(1, 2))[cells.adopters]
+    total = treated_rows.sum()
+    return treated_rows / total if total > 0 else treated_rows
+
+
+def att_draws(tau_adopter, cells):
+    """The ATT's draws, sum_j w_j tau_adopter[..., j] with w = :func:`att_weights`.
+
+    ``tau_adopter`` is an array whose last axis runs over the adopters (draws x adopters), or an
+    xarray DataArray with an ``adopter`` dimension (the posterior's), which gives a DataArray back.
+    """
+    w = att_weights(cells)
+    if hasattr(tau_adopter, "dims"):
+        import xarray as xr
+
+        wd = xr.DataArray(w, dims=("adopter",), coords={"adopter": tau_adopter["adopter"]})
+        return (tau_adopter * wd).sum("adopter")
+    return np.asarray(tau_adopter) @ w
 
 
 def compute_effects(fit, threshold: float | None = None) -> dict:
@@ -139,7 +156,7 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     cells = fit.cells
     tau_a = fit.draws("tau_adopter")  # (S, A)
     w = att_weights(cells)
-    att = tau_a @ w
+    att = att_draws(tau_a, cells)  # (S,)
     family = getattr(getattr(fit, "spec", None), "family", "gaussian")
     log = cells.log_outcome or family != "gaussian"
     thr_model = np.log1p(threshold) if (log and threshold is not None) else threshold
@@ -256,7 +273,7 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
     cells = fit.cells
     if family == "gaussian":
         if att is None:
-            att = fit.draws("tau_adopter") @ att_weights(cells)
+            att = att_draws(fit.draws("tau_adopter"), cells)
         if cells.log_outcome:
             return NaturalEffects([Effect("ATT", "percent change, exp(ATT) - 1", "percent", np.expm1(att), threshold)])
         return NaturalEffects(

@@ -36,7 +36,6 @@ import os
 import pickle
 import platform
 import re
-import tempfile
 import time
 from contextlib import contextmanager
 from pathlib import Path
@@ -44,6 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from . import cachedir
+from .outputs import atomic_write
 from .version import __version__
 
 __all__ = ["FORMAT", "fingerprint", "graph_fingerprint", "compile_cached", "entry_ok", "STATS", "LOG_ENV", "read_log"]
@@ -209,19 +209,8 @@ def _payload(compiled, material: dict) -> dict:
 
 def _write_entry(path: Path, payload: dict) -> None:
     body = pickle.dumps(payload, protocol=pickle.HIGHEST_PROTOCOL)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.stem[:16]}-", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(MAGIC + hashlib.sha256(body).hexdigest().encode() + b"\n" + body)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    # fsync before the rename: other processes load the entry, possibly after the machine crashed
+    atomic_write(path, MAGIC + hashlib.sha256(body).hexdigest().encode() + b"\n" + body, fsync=True)
 
 
 class DamagedEntry(Exception):

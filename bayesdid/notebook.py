@@ -44,10 +44,11 @@ class Result:
         variable per natural-scale measure (``effect_natural`` of summary.json), named by the measure."""
         post = self.analysis.fit.posterior
         C, D = post.sizes["chain"], post.sizes["draw"]
-        from .effects import att_weights
+        from .effects import att_draws
 
-        w = xr.DataArray(att_weights(self.analysis.cells), dims=("adopter",), coords={"adopter": post["adopter"]})
-        ds = xr.Dataset({"att": (post["tau_adopter"] * w).sum("adopter"), "tau_adopter": post["tau_adopter"]})
+        ds = xr.Dataset(
+            {"att": att_draws(post["tau_adopter"], self.analysis.cells), "tau_adopter": post["tau_adopter"]}
+        )
         ds["att"].attrs = {"scale": "model", "meaning": "sum_j w_j tau_adopter[j], w_j: share of treated rows"}
         for e in self.analysis.effects.get("effect_natural", []) or []:
             name = e.measure

@@ -20,6 +20,7 @@ import json
 import os
 import shutil
 import socket
+import tempfile
 import time
 import uuid
 from pathlib import Path
@@ -37,6 +38,7 @@ __all__ = [
     "process_start",
     "probe_writable",
     "MANIFEST",
+    "atomic_write",
 ]
 
 MANIFEST = "manifest.json"
@@ -238,7 +240,32 @@ def clean_leftovers(target: str | Path) -> list[str]:
     return handled
 
 
-# ---- the atomic writer ---------------------------------------------------------------------------------
+# ---- the atomic writers --------------------------------------------------------------------------------
+def atomic_write(target: str | Path, data: str | bytes, *, fsync: bool = False, mode: int = 0o644) -> Path:
+    """Write one file atomically: a hidden sibling ``.NAME.partial-HOST-PID-RANDOM``, renamed onto ``target``.
+
+    Readers see the old file or the new one, never a part. What killed writers of the same target
+    left is removed first (:func:`clean_leftovers`); on any error the partial file is removed and
+    the target is untouched. ``fsync`` flushes the bytes to disk before the rename (the compile cache
+    asks for it: an entry is read back by other processes, possibly after a crash of the machine).
+    """
+    t = Path(target)
+    clean_leftovers(t)
+    fd, tmp = tempfile.mkstemp(prefix=f".{t.name}.partial-{owner_tag()}-", dir=t.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data.encode("utf-8") if isinstance(data, str) else data)
+            if fsync:
+                fh.flush()
+                os.fsync(fh.fileno())
+        os.chmod(tmp, mode)
+        os.replace(tmp, t)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return t
+
+
 class atomic_folder:
     """Write into a hidden sibling folder; rename it to ``target`` only on success.
 

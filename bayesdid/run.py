@@ -333,15 +333,14 @@ def analyse(
 
 def _tree_for_file(an: Analysis) -> xr.DataTree:
     """posterior + log_likelihood + sample_stats + observed/constant data, with the data's labels."""
-    from .effects import att_weights
+    from .effects import att_draws
     from .model.registry import pointwise_loglik
     from .sensitivity import log_prior_dataset
 
     fit = an.fit
     cells = an.cells
     post = fit.posterior.copy()
-    w = xr.DataArray(att_weights(cells), dims=("adopter",), coords={"adopter": post["adopter"]})
-    post["att"] = (post["tau_adopter"] * w).sum("adopter")
+    post["att"] = att_draws(post["tau_adopter"], cells)
     post["att"].attrs = {"meaning": "ATT = sum_j w_j tau_adopter[j], w_j = share of treated target-group rows"}
     coords = {
         "jurisdiction": list(cells.jurisdictions),
@@ -388,6 +387,12 @@ def _tree_for_file(an: Analysis) -> xr.DataTree:
 
 
 def dump_json(obj, path: Path) -> None:
+    path.write_text(json_text(obj), encoding="utf-8")
+
+
+def json_text(obj) -> str:
+    """The JSON text bayesdid writes (indented; numpy numbers and arrays, paths as plain values)."""
+
     def default(o):
         if isinstance(o, (np.integer,)):
             return int(o)
@@ -399,7 +404,7 @@ def dump_json(obj, path: Path) -> None:
             return str(o)
         return str(o)
 
-    path.write_text(json.dumps(obj, indent=2, default=default, allow_nan=True) + "\n", encoding="utf-8")
+    return json.dumps(obj, indent=2, default=default, allow_nan=True) + "\n"
 
 
 def write_run(an: Analysis, out: str | Path, *, replace: bool = False, argv=None) -> Path:

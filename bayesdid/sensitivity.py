@@ -171,15 +171,14 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
     """
     import arviz as az
 
-    from .effects import att_weights
+    from .effects import att_draws
 
     lp = log_prior_dataset(fit)
     ll = log_likelihood_dataset(fit)
     names = [n for n in CHECKED_PARAMETERS if n in fit.posterior]
     post = fit.posterior[names]
     if "tau_adopter" in fit.posterior:  # the headline ATT, sum_j w_j tau[j] (effects.py)
-        w = xr.DataArray(att_weights(fit.cells), dims=("adopter",), coords={"adopter": fit.posterior["adopter"]})
-        post = post.assign(att=(fit.posterior["tau_adopter"] * w).sum("adopter"))
+        post = post.assign(att=att_draws(fit.posterior["tau_adopter"], fit.cells))
         names = ["att", *names]
     tree = xr.DataTree.from_dict({"posterior": post, "log_prior": lp, "log_likelihood": ll})
     out = {

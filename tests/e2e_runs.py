@@ -15,6 +15,7 @@ from __future__ import annotations
 import contextlib
 import io
 import json
+import os
 import warnings
 from pathlib import Path
 
@@ -37,6 +38,9 @@ CASES = {
     "gaussian_log_did": ("gaussian", "DiD", True),
 }
 DEFAULT_CASES = ("gaussian_ddd", "gaussian_did", "poisson_ddd")
+#: The cases this session runs: all of CASES with BAYESDID_E2E_ALL=1, else DEFAULT_CASES (the end-to-end
+#: test and the browser test run over the same reports).
+MATRIX = tuple(CASES) if os.environ.get("BAYESDID_E2E_ALL") == "1" else DEFAULT_CASES
 
 
 def _table(name: str, seed: int = 2026):

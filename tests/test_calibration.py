@@ -243,3 +243,29 @@ def test_executor_adapter():
     assert list(cal.make_executor(1).map(math.sqrt, [9.0, 4.0])) == [3.0, 2.0]  # in-process, in order
     with pytest.raises(BayesDidError, match="--workers: expected a whole number of at least 1"):
         cal.make_executor(0)
+
+
+def test_reps_show_progress_one_line_each_off_a_terminal(monkeypatch):
+    # the rep itself replaced (no fit): what is checked is the progress of the loop over reps
+    from bayesdid.calibration import runner
+
+    def fake(task):
+        return {
+            "kind": task.kind,
+            "scenario": task.scenario,
+            "rep": task.rep,
+            "ok": task.rep != 1,
+            "error": "",
+            "wall_s": 0,
+        }
+
+    monkeypatch.setattr(runner, "run_rep", fake)
+    monkeypatch.setattr(runner, "coverage_table", lambda rows: {})
+    lines = []
+    runner.run_calibration(reps=3, sbc_reps=0, workers=1, log=lines.append)
+    assert [m.split(", about")[0].split(", ")[0] for m in lines] == [
+        "calibration reps (one_adopter) 1/3 coverage rep 0",
+        "calibration reps (one_adopter) 2/3 coverage rep 1 failed",
+        "calibration reps (one_adopter) 3/3 coverage rep 2",
+    ]
+    assert "left" in lines[0] and lines[-1].endswith("in all")

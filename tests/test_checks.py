@@ -105,6 +105,37 @@ def test_not_applicable_without_enough_pre_periods():
     assert r.status == "not applicable" and "placebo_lag" in r.reason
 
 
+def test_event_time_status_and_sentence_agree():
+    # The status asks "is there evidence of a pre-trend?"; P(all leads within tolerance) asks "are the
+    # leads shown to be small?". Draws given directly (no sampling): leads at zero measured tightly,
+    # leads at zero measured loosely (status ok, yet the sentence says a pre-trend as large as the
+    # tolerance cannot be ruled out), and leads away from zero (flag).
+    cells, _, _ = cells_of(1)
+    ks = event_times_of(cells)
+    lead = np.array([k < -1 for k in ks])
+    rng = np.random.default_rng(5)
+
+    class Fake:
+        diagnostics = {"ok": True}
+
+        def __init__(self, centre, sd):
+            self.beta = rng.normal(0.0, sd, size=(2000, len(ks))) + centre * lead
+
+        def draws(self, name):
+            assert name == "event_effect"
+            return self.beta
+
+    tight = event_time_check(cells, {}, SETTINGS, tolerance=0.05, fit=Fake(0.0, 0.005))
+    loose = event_time_check(cells, {}, SETTINGS, tolerance=0.05, fit=Fake(0.0, 0.5))
+    away = event_time_check(cells, {}, SETTINGS, tolerance=0.05, fit=Fake(0.3, 0.02))
+    assert tight.status == "ok" and tight.details["leads_shown_small"] and "probably small" in tight.reason
+    assert loose.details["prob_all_leads_within_tolerance"] < 0.05
+    assert loose.status == "ok" and not loose.details["leads_shown_small"]
+    assert "no evidence of a pre-trend" in loose.reason and "cannot be ruled out" in loose.reason
+    assert "probably small" not in loose.reason
+    assert away.status == "flag" and "jointly away from zero" in away.reason
+
+
 def test_placebo_space_cells_keep_adopter_count():
     cells, _, _ = cells_of(1)
     c, a0 = int(cells.comparisons[3]), int(cells.adopters[0])

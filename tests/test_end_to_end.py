@@ -11,17 +11,14 @@ from __future__ import annotations
 
 import html
 import json
-import os
 import re
 import shutil
 
 import pytest
-from e2e_runs import CASES, DEFAULT_CASES, quiet_main
+from e2e_runs import MATRIX, quiet_main
 
 from bayesdid.report import HEADINGS
 from bayesdid.report.html import render_report
-
-MATRIX = tuple(CASES) if os.environ.get("BAYESDID_E2E_ALL") == "1" else DEFAULT_CASES
 
 
 def sections(text: str) -> dict:
@@ -95,6 +92,47 @@ def test_raw_paths_adopter_effects_and_rank_plots(name, e2e_run):
         assert np.array_equal(np.sort(r.reshape(-1)), np.arange(r.size))
 
 
+def test_the_report_opens_posterior_nc_once(e2e_run, monkeypatch):
+    # the raw-data figure, the effect's density and (on failed diagnostics) the rank plots all read
+    # posterior.nc; the report opens it once for all of them
+    import xarray as xr
+
+    run = e2e_run("gaussian_ddd")["run"]
+    opened = []
+    real = xr.open_datatree
+    monkeypatch.setattr(xr, "open_datatree", lambda *a, **k: opened.append(a[0]) or real(*a, **k))
+    text = render_report(run)
+    assert "Each adopter" in text and opened == [run / "posterior.nc"]
+
+
+@pytest.mark.parametrize("name", MATRIX)
+def test_the_att_is_one_number_in_the_summary_the_posterior_file_and_the_checks(name, e2e_run):
+    # summary.json's effect (effects.compute_effects), posterior.nc's `att` (run.py) and the real
+    # effect of the placebo-in-space check (checks) come from one weight rule (effects.att_weights)
+    import numpy as np
+    import pandas as pd
+
+    run = e2e_run(name)["run"]
+    s = json.loads((run / "summary.json").read_text())
+    with xr_open(run / "posterior.nc") as tree:
+        att = np.asarray(tree["posterior"]["att"].values).reshape(-1)
+    assert att.mean() == pytest.approx(s["effect"]["mean"], rel=1e-9, abs=1e-12)
+    # the checks refit the main model (same settings and seed): two estimates of one posterior mean,
+    # equal when the sampler repeats itself, else within 4 sd of their difference, sd sqrt(2 / ESS)
+    ps = pd.read_csv(run / "checks" / "placebo_space.csv")
+    real = ps.loc[ps["role"] == "real", "mean"]
+    if len(real):
+        ess = max(float(s["diagnostics"]["ess_bulk_min"]), 4.0)
+        tol = 4 * s["effect"]["sd"] * (2 / ess) ** 0.5
+        assert float(real.iloc[0]) == pytest.approx(s["effect"]["mean"], abs=tol)
+
+
+def xr_open(path):
+    import xarray as xr
+
+    return xr.open_datatree(path, engine="h5netcdf")
+
+
 @pytest.mark.parametrize("name", MATRIX)
 def test_checks_sweep_and_run_carry_one_identity(name, e2e_run):
     run = e2e_run(name)["run"]
@@ -115,6 +153,7 @@ def test_the_report_refuses_checks_from_other_data(e2e_run, tmp_path):
     shutil.copytree(b["run"] / "checks", mixed / "checks")
     code, out, err = quiet_main(["report", str(mixed)])
     assert code == 2
+    err = " ".join(err.split())  # the message is wrapped to the terminal: where depends on the path's length
     assert "checks/checks.json" in err and "other data than the run" in err
     assert (
         not (mixed / "report.html").exists()

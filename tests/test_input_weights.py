@@ -156,3 +156,43 @@ def test_weights_recover_the_population_att_of_the_bench_survey():
     assert abs(np.mean(ew)) < 3 * mcse
     diff = np.array(eu) - np.array(ew)
     assert np.mean(diff) == pytest.approx(0.15, abs=3 * np.std(diff, ddof=1) / np.sqrt(len(diff)) + 0.02)
+
+
+def test_the_att_has_one_weight_rule_for_the_headline_the_run_folder_and_the_checks(tmp_path, rng):
+    # The headline (effects.compute_effects), the run folder's posterior `att` (an xarray sum over
+    # adopters) and the checks (checks.base.effect_weights: the placebo-in-space real effect, the
+    # comparison check's refits) take one rule. Before it was one, the checks counted Kish sizes
+    # where the headline counted summed sampling weights, so the two ATTs differed on weighted data.
+    from types import SimpleNamespace
+
+    import xarray as xr
+
+    from bayesdid.checks.base import effect_weights
+    from bayesdid.effects import att_draws, compute_effects
+
+    f = _rows(rng, ddd=True)
+    cells = collapse(_study(tmp_path, f, weight="w"), f)
+    tgt = f["group"] == "target"
+    tw = {a: f.loc[(f.region == a) & (f.quarter >= s) & tgt, "w"].sum() for a, s in ADOPTERS.items()}
+    expect = np.array([tw[cells.jurisdictions[k]] for k in cells.adopters])
+    np.testing.assert_allclose(effect_weights(cells), expect / expect.sum(), rtol=1e-12)
+    np.testing.assert_allclose(att_weights(cells), effect_weights(cells), rtol=0, atol=0)
+    kish = (cells.n * cells.treated).sum(axis=(1, 2))[cells.adopters]  # the checks' old rule
+    assert not np.allclose(effect_weights(cells), kish / kish.sum(), rtol=1e-3)
+
+    tau = rng.normal(-0.3, 0.1, size=(2, 250, len(cells.adopters)))  # (chain, draw, adopter)
+    post = xr.DataArray(tau, dims=("chain", "draw", "adopter"), coords={"adopter": ["a0", "a1"]})
+    fit = SimpleNamespace(cells=cells, draws=lambda name: tau.reshape(-1, tau.shape[-1]), spec=None)
+    headline = compute_effects(fit)["effect"].draws
+    in_folder = att_draws(post, cells).values.reshape(-1)
+    in_checks = tau.reshape(-1, tau.shape[-1]) @ effect_weights(cells)
+    np.testing.assert_allclose(headline, in_folder, rtol=1e-13)
+    np.testing.assert_allclose(headline, in_checks, rtol=1e-13)
+
+    # cells left out of the likelihood (a check's or a sweep's weight 0) do not count
+    j = cells.jurisdictions.index("Dunmore")
+    w = cells.jt_weight().copy()
+    w[j, :] = 0.0
+    dropped = cells.with_weight(w)
+    order = [cells.jurisdictions[k] for k in cells.adopters]
+    np.testing.assert_array_equal(att_weights(dropped), [float(a != "Dunmore") for a in order])

@@ -105,3 +105,38 @@ def test_the_same_check_and_message_from_the_file_the_api_and_the_command_line(t
     # unknown nested keys are named with the allowed list, not a TypeError
     with pytest.raises(StudyError, match=r"unknown key\(s\) \['drws'\] in \[sampler\]"):
         make_study(**kw).replace(sampler={"drws": 5})
+
+
+def test_atomic_write_replaces_whole_removes_dead_leftovers_and_leaves_nothing_on_failure(tmp_path):
+    from bayesdid.outputs import atomic_write
+
+    target = tmp_path / "summary.csv"
+    target.write_text("old\n")
+    dead = tmp_path / f".summary.csv.partial-{owner_tag(2**22 + 12345)}-zz"  # no such process: a dead writer
+    dead.write_text("half")
+    live = tmp_path / f".summary.csv.partial-{owner_tag()}-keep"  # this process: a writer still running
+    live.write_text("half")
+    assert atomic_write(target, "new\n") == target
+    assert target.read_text() == "new\n" and (target.stat().st_mode & 0o777) == 0o644
+    assert not dead.exists() and live.exists()
+    live.unlink()
+    atomic_write(target, b"\x00bytes", fsync=True)
+    assert target.read_bytes() == b"\x00bytes"
+    with pytest.raises(TypeError):
+        atomic_write(target, 12345)  # neither text nor bytes: fails while writing the partial file
+    assert target.read_bytes() == b"\x00bytes"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.csv"]
+
+
+def test_one_atomic_writer_renames_files_into_place():
+    # Every file put in place by renaming goes through outputs.atomic_write (or atomic_folder); the
+    # one other rename moves a finished sweep variant's folder from .staging into variants/.
+    import re
+
+    root = Path(__file__).resolve().parent.parent / "bayesdid"
+    found = {
+        str(p.relative_to(root)): len(re.findall(r"os\.replace\(|\.rename\(", p.read_text(encoding="utf-8")))
+        for p in root.rglob("*.py")
+    }
+    found = {k: v for k, v in found.items() if v}
+    assert found == {"outputs.py": 5, "sweep/worker.py": 1}, found

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import pytest
 from cdp_client import Browser, find_chromium
+from e2e_runs import MATRIX
 from report_fixtures import SCRIPT_NAME, write_fake_run
 
 from bayesdid.cli import main
@@ -118,7 +119,7 @@ def test_the_detectors_see_a_script_a_console_error_and_a_fetch(tmp_path):
         assert b.evaluate("document.images[0].naturalWidth") == 0
 
 
-@pytest.mark.parametrize("name", ["poisson_ddd", "gaussian_did"])
+@pytest.mark.parametrize("name", MATRIX)
 def test_end_to_end_reports_in_chromium(name, e2e_run, capsys):
     """The reports of the end-to-end matrix (real fit, checks, sweep) open cleanly, every figure drawn."""
     page = e2e_run(name)["run"] / "report.html"

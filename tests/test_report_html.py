@@ -55,6 +55,7 @@ def test_absent_results_keep_their_section_and_name_the_command(tmp_path):
         assert "Not available in this run folder" in sections[sec], sec
         assert "bayesdid checks STUDY.toml" in sections[sec], sec
     assert "bayesdid sweep SWEEP.toml" in sections["sensitivity"]
+    assert "analyze" not in sections["sensitivity"]  # analyze runs no sweep: it is not offered as one
     assert "cluster-robust s.e. (CR1)" in sections["cross-check"]  # named as missing
     assert "Not available" in sections["cross-check"]
     # the effect, per-adopter (two adopters) and posterior-versus-least-squares figures remain

@@ -35,6 +35,15 @@ def test_flagged_checks_reach_the_headline():
     assert "the event time check could not be completed" in caution
     assert "ranks 3 of 39 by size (permutation p = 0.077)" in caution
     assert "placebo in time" not in caution  # an ok check is not a caution
+    # a parallel-trends breakdown below 1 is a caution; at 1 or above, or when not computed, it is not
+    trend = {"status": "ok", "breakdown": {"M_zero": 0.62}}
+    assert check_flags({}, None, trend) == [
+        "the parallel-trends sensitivity breaks down at M = 0.62: a departure after the policy smaller than "
+        "the largest change before it would put zero inside the 95% interval"
+    ]
+    assert "M = 0.62" in headline(s, flags=check_flags({}, None, trend))
+    assert check_flags({}, None, {"status": "ok", "breakdown": {"M_zero": 1.4}}) == []
+    assert check_flags({}, None, {"status": "not applicable", "breakdown": {"M_zero": 0.5}}) == []
     assert (
         check_flags(
             {"placebo_space": {"status": "ok", "reason": "r", "permutation_p": 0.02, "rank": 1, "n_placebos": 38}}

@@ -177,8 +177,20 @@ def serial_run(tmp_path_factory):
     plan = load_sweep(write(out.parent, GRID))
     cached = _key_of() in sample._CACHE
     before = sample.COMPILES["count"] + sample.LOADS["count"]
-    rep = run_sweep(plan, out, executor="serial")
+    lines = []
+    rep = run_sweep(plan, out, executor="serial", progress=True, log=lines.append)
+    serial_run_lines[:] = lines
     return plan, out, rep, sample.COMPILES["count"] + sample.LOADS["count"] - before, cached
+
+
+serial_run_lines: list = []
+
+
+def test_serial_run_shows_one_progress_line_per_variant_off_a_terminal(serial_run):
+    plan, *_ = serial_run
+    steps = [m for m in serial_run_lines if m.startswith("variants (0 already done) ")]
+    assert [m.split()[4] for m in steps] == [f"{k}/7" for k in range(1, 8)]
+    assert all(" done" in m for m in steps) and "left" in steps[0] and steps[-1].endswith("in all")
 
 
 def test_serial_grid_one_compile_and_tables(serial_run):

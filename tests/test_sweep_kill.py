@@ -143,7 +143,7 @@ def test_sigkill_of_the_main_process_takes_the_workers_along_and_the_rerun_compl
 def test_lock_of_a_dead_or_reused_pid_is_stale_and_a_live_one_refuses(tmp_path):
     from bayesdid.errors import SweepError
     from bayesdid.outputs import process_start
-    from bayesdid.sweep import _Lock
+    from bayesdid.sweep.resume import _Lock
 
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
     pid = int(dead.stdout)

@@ -10,6 +10,7 @@ run: 4 reps, 200 draws.
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 __all__ = ["bench_calibration"]
@@ -53,6 +54,7 @@ def bench_calibration(
         workers=workers,
         cluster=cluster,
         progress_path=progress,
+        log=lambda m: print(f"bayesdid: {m}", file=sys.stderr, flush=True),  # a bar on a terminal
     )
     write_calibration(result, out, replace=replace)
     progress.unlink(missing_ok=True)

@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import BayesDidError
+from ..progress import Progress
 from .coverage import _coverage_rep
 from .sbc import _sbc_rep, sbc_prior
 from .scenarios import _scenario
@@ -94,6 +95,7 @@ def run_calibration(
     cluster: str | None = None,
     cross_check_draws: int = 999,
     progress_path: str | Path | None = None,
+    log=None,
 ) -> dict:
     """Run the coverage and SBC reps of one scenario; return the summary and the per-rep rows.
 
@@ -103,6 +105,8 @@ def run_calibration(
         ``summary`` (scenario, settings, ``coverage`` by method, ``sbc``, failures, timing) and
         ``rows`` (coverage reps) and ``sbc_rows``. With ``progress_path`` each rep's row is also
         appended to that file (JSON lines) as it arrives, so a long run that is stopped keeps its reps.
+        With ``log`` (a function of one line) the reps show progress: a bar with counts and time left on
+        a terminal, one line per rep otherwise (:mod:`bayesdid.progress`).
     """
     cs = _scenario(scenario)
     sbc_reps = reps if sbc_reps is None else sbc_reps
@@ -126,17 +130,19 @@ def run_calibration(
     ex = make_executor(workers, cluster)
     t0 = time.perf_counter()
     results = []
-    log = open(progress_path, "a", encoding="utf-8") if progress_path else None
+    jsonl = open(progress_path, "a", encoding="utf-8") if progress_path else None
     try:
+        steps = Progress(f"calibration reps ({scenario})", len(tasks), log=log)
         for r in ex.map(run_rep, tasks):
             results.append(r)
-            if log:
-                log.write(json.dumps(r, default=str) + "\n")
-                log.flush()
+            steps.step(f"{r['kind']} rep {r['rep']}" + ("" if r["ok"] else " failed"))
+            if jsonl:
+                jsonl.write(json.dumps(r, default=str) + "\n")
+                jsonl.flush()
     finally:
         ex.close()
-        if log:
-            log.close()
+        if jsonl:
+            jsonl.close()
     wall = time.perf_counter() - t0
     results.sort(key=lambda r: (r["kind"] != "coverage", r["rep"]))  # executors yield as reps complete
     rows = [r for r in results if r["kind"] == "coverage"]

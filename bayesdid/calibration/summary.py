@@ -98,21 +98,19 @@ def ecdf_band(N: int, L: int = SBC_DRAWS, prob: float = 0.95, sims: int = 2000, 
     """Simultaneous band for the ECDF of N uniform ranks on 0..L, minus its expectation.
 
     Returns (z, lower, upper) on the grid z_k = k / (L + 1), k = 1..L+1. The pointwise binomial level
-    gamma is chosen by simulation so that the whole uniform ECDF stays inside with probability ``prob``
-    (Säilynoja, Bürkner and Vehtari 2022, their simulation method).
+    is chosen by simulation so that the whole uniform ECDF stays inside with probability ``prob``
+    (Säilynoja, Bürkner and Vehtari 2022, their simulation method), by ArviZ's own band functions
+    (``arviz_stats.ecdf_utils``). They simulate continuous uniform values; at the grid points the
+    share of values below z_k has the same binomial law as the share of discrete ranks below k, so
+    the band is the same. At z = 1 the ECDF is 1 for certain: the band closes there.
     """
-    from scipy import stats
+    from arviz_stats.ecdf_utils import get_pointwise_confidence_band, simulate_confidence_bands
 
-    rng = np.random.default_rng(seed)
     z = np.arange(1, L + 2) / (L + 1)
-    sim = rng.integers(0, L + 1, size=(sims, N))
-    F = (sim[:, :, None] < np.arange(1, L + 2)[None, None, :]).sum(axis=1)  # counts <= k-1
-    cdf = stats.binom.cdf(F, N, z[None, :])
-    sf = stats.binom.sf(F - 1, N, z[None, :])
-    gamma = np.quantile(2 * np.minimum(cdf, sf).min(axis=1), 1 - prob)
-    lo = stats.binom.ppf(gamma / 2, N, z) / N - z
-    hi = stats.binom.ppf(1 - gamma / 2, N, z) / N - z
-    return z, lo, hi
+    inner = z[:-1]
+    level = simulate_confidence_bands(N, 1, inner, prob, sims, np.random.default_rng(seed))
+    lo, hi = get_pointwise_confidence_band(level, N, inner)
+    return z, np.append(lo, 1.0) - z, np.append(hi, 1.0) - z
 
 
 def plot_sbc(rows: list[dict], path: Path, title: str) -> Path:

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from ..cells import Cells
+from ..effects import att_weights as effect_weights  # the ATT's one weight rule, under the checks' name
 
 __all__ = [
     "CheckResult",
@@ -95,18 +96,6 @@ def pre_weight(cells: Cells) -> np.ndarray:
     for j in cells.adopters:
         w[j, cells.start[j] :] = 0.0
     return w
-
-
-def effect_weights(cells: Cells) -> np.ndarray:
-    """w_a over adopters: treated target-group rows that carry likelihood weight, normalised.
-
-    The same rule as :func:`bayesdid.effects.att_weights`, counting only the cells left in the
-    likelihood (weight > 0); an adopter whose treated cells are all dropped gets weight 0.
-    """
-    jw = cells.jt_weight()[:, None, :]
-    rows = (cells.n * cells.treated * (jw > 0)).sum(axis=(1, 2))[cells.adopters]
-    tot = rows.sum()
-    return rows / tot if tot > 0 else rows
 
 
 def interval_row(x: np.ndarray, prob: float = 0.9) -> dict:

@@ -15,6 +15,10 @@ Status: "flag" when zero lies outside the 95% joint credible region of the leads
 Wald-type region of their posterior: d^2 = mu' Sigma^-1 mu > chi2_{0.95}(n_leads), with mu and Sigma
 the posterior mean and covariance of the leads (common practice; a joint reading keeps the false-flag
 rate near 5% however many leads there are). Offenders: the leads whose own 95% interval excludes 0.
+The status answers "is there evidence of a pre-trend?", not "are the leads shown to be small?": when it
+is "ok" but P(all leads within +-tolerance) < 0.5, the reason says in words that the leads are too
+imprecise to rule out a pre-trend as large as the tolerance (``leads_shown_small`` is false), so the
+status and its sentence never read as a contradiction.
 
 Table ``event_time.csv`` columns: ``event_time`` (k, int), ``role`` ("lead", "reference", "lag"),
 ``mean``, ``sd``, ``lower_90``, ``upper_90``, ``prob_gt_0`` (reference row: 0, 0, 0, 0, NaN),
@@ -158,6 +162,8 @@ def event_time_check(
     )
     thr["joint_critical"] = crit
     flag = d2 > crit
+    small = bool(within.mean() >= 0.5)
+    details["leads_shown_small"] = small
     tol_txt = f"P(all {len(lead_idx)} leads within +-{tolerance:.3g}) = {within.mean():.2f}"
     lg = details["largest_lead"]
     if flag:
@@ -165,9 +171,16 @@ def event_time_check(
             f"the leads are jointly away from zero (d^2 = {d2:.1f} > {crit:.1f}); the largest is "
             f"k = {lg['event_time']} with mean {lg['mean']:+.3g}: the gap moved before the policy. {tol_txt}."
         )
+    elif small:
+        reason = (
+            f"the leads are jointly consistent with zero (d^2 = {d2:.1f} <= {crit:.1f}) and probably small: "
+            f"{tol_txt}; the largest is k = {lg['event_time']} with mean {lg['mean']:+.3g}."
+        )
     else:
         reason = (
-            f"the leads are jointly consistent with zero (d^2 = {d2:.1f} <= {crit:.1f}); the largest is "
-            f"k = {lg['event_time']} with mean {lg['mean']:+.3g}. {tol_txt}."
+            f"no evidence of a pre-trend: the leads are jointly consistent with zero (d^2 = {d2:.1f} <= "
+            f"{crit:.1f}); the largest is k = {lg['event_time']} with mean {lg['mean']:+.3g}. But they are too "
+            f"imprecise to show that a pre-trend is smaller than the tolerance: {tol_txt}, so one as large as "
+            f"+-{tolerance:.3g} cannot be ruled out."
         )
     return CheckResult(NAME, "flag" if flag else "ok", reason, thr, offenders, details, {"event_time": table})

@@ -8,7 +8,7 @@ from __future__ import annotations
 import base64
 from pathlib import Path
 
-from .html import _CSS, _table, esc
+from .pieces import _CSS, _table, esc
 
 __all__ = ["plot_assurance", "render_plan_page", "effect_words", "layout_words", "plan_sentences"]
 

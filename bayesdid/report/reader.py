@@ -32,7 +32,11 @@ from ..errors import ReportError
 __all__ = ["RunFolder", "FIT_COMMAND", "CHECKS_COMMAND", "SWEEP_COMMAND"]
 
 CHECKS_COMMAND = "bayesdid checks STUDY.toml --out RUN_DIR/checks (or bayesdid analyze STUDY.toml --out RUN_DIR)"
-SWEEP_COMMAND = "bayesdid sweep SWEEP.toml --out RUN_DIR/sweep (or bayesdid analyze STUDY.toml --out RUN_DIR)"
+#: `analyze` runs no sweep (only `demo` runs a short one), so the hint names the sweep command alone.
+SWEEP_COMMAND = (
+    "bayesdid sweep SWEEP.toml --out RUN_DIR/sweep (SWEEP.toml names the study and its variants; see the "
+    "README's sweep section)"
+)
 FIT_COMMAND = "bayesdid fit STUDY.toml --out RUN_DIR"
 
 
@@ -109,6 +113,33 @@ class RunFolder:
         }
         self._read_checks()
         self._read_sweep()
+        self._tree = None  # posterior.nc, opened once on first use (see _posterior)
+        self.posterior_opens = 0
+
+    def _posterior(self):
+        """posterior.nc as a lazily read DataTree, opened once for every figure; None when it is absent."""
+        if self._tree is None:
+            p = self.path / "posterior.nc"
+            if not p.is_file():
+                return None
+            import xarray as xr
+
+            self._tree = xr.open_datatree(p, engine="h5netcdf")
+            self.posterior_opens += 1
+        return self._tree
+
+    def close(self) -> None:
+        """Close posterior.nc if it was opened (the report does when the page is drawn)."""
+        if self._tree is not None:
+            self._tree.close()
+            self._tree = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
 
     # ---- checks ---------------------------------------------------------------------------------
     def _read_checks(self):
@@ -167,40 +198,33 @@ class RunFolder:
         Returns a dict: ``mean`` (J, G, T) with NaN where a cell holds no rows, ``start`` (J,) index of
         each jurisdiction's first treated period (T for comparisons), ``jurisdictions``, ``groups``, ``periods``.
         """
-        p = self.path / "posterior.nc"
-        if not p.is_file():
+        tree = self._posterior()
+        if tree is None or "observed_data" not in tree or "constant_data" not in tree:
             return None
-        import xarray as xr
-
-        with xr.open_datatree(p, engine="h5netcdf") as tree:
-            if "observed_data" not in tree or "constant_data" not in tree:
-                return None
-            obs = tree["observed_data"].to_dataset()
-            const = tree["constant_data"].to_dataset()
-            if "cell_mean" not in obs or "n" not in const or "start_index" not in const:
-                return None
-            mean = np.asarray(obs["cell_mean"].values, dtype=float)
-            n = np.asarray(const["n"].values, dtype=float)
-            return {
-                "mean": np.where(n > 0, mean, np.nan),
-                "start": np.asarray(const["start_index"].values),
-                "jurisdictions": [str(v) for v in obs["jurisdiction"].values],
-                "groups": [str(v) for v in obs["group"].values],
-                "periods": [str(v) for v in obs["period"].values],
-            }
+        obs = tree["observed_data"].to_dataset()
+        const = tree["constant_data"].to_dataset()
+        if "cell_mean" not in obs or "n" not in const or "start_index" not in const:
+            return None
+        mean = np.asarray(obs["cell_mean"].values, dtype=float)
+        n = np.asarray(const["n"].values, dtype=float)
+        return {
+            "mean": np.where(n > 0, mean, np.nan),
+            "start": np.asarray(const["start_index"].values),
+            "jurisdictions": [str(v) for v in obs["jurisdiction"].values],
+            "groups": [str(v) for v in obs["group"].values],
+            "periods": [str(v) for v in obs["period"].values],
+        }
 
     def worst_mixing(self, most: int = 4):
         """Ranks of the draws of the ``most`` worst-mixing sampled quantities (largest R-hat, then smallest
         bulk ESS), for rank plots: {label: (chains, draws) ranks}, or None without posterior.nc or with one
         chain."""
-        p = self.path / "posterior.nc"
-        if not p.is_file():
+        tree = self._posterior()
+        if tree is None:
             return None
         import arviz as az
-        import xarray as xr
 
-        with xr.open_datatree(p, engine="h5netcdf") as tree:
-            post = tree["posterior"].to_dataset().load()
+        post = tree["posterior"].to_dataset().load()
         if post.sizes.get("chain", 1) < 2:
             return None
         rh = az.rhat(post)
@@ -230,13 +254,10 @@ class RunFolder:
 
     def effect_draws(self):
         """Posterior draws of the headline ATT on the model scale (``att`` in posterior.nc), or None."""
-        p = self.path / "posterior.nc"
-        if not p.is_file():
+        tree = self._posterior()
+        if tree is None:
             return None
-        import xarray as xr
-
-        with xr.open_datatree(p, engine="h5netcdf") as tree:
-            post = tree["posterior"].to_dataset()
-            if "att" not in post:
-                return None
-            return np.asarray(post["att"].values).reshape(-1)
+        post = tree["posterior"].to_dataset()
+        if "att" not in post:
+            return None
+        return np.asarray(post["att"].values).reshape(-1)

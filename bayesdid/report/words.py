@@ -235,10 +235,12 @@ def headline(
     return text
 
 
-def check_flags(checks: dict | None, sensitivity: dict | None = None) -> list[str]:
+def check_flags(checks: dict | None, sensitivity: dict | None = None, trends: dict | None = None) -> list[str]:
     """Phrases for the headline's caution: every check that flagged or failed, a placebo-in-space
     permutation p-value of 0.05 or more (so the probability statements and that p-value are read
-    together), and a prior-data conflict on the ATT.
+    together), a prior-data conflict on the ATT, and a parallel-trends breakdown value below 1
+    (``trends``: summary.json's ``parallel_trends``; its M_zero between 0 and 1 means a post-policy
+    departure smaller than the largest pre-policy change already puts zero in the 95% interval).
 
     ``checks`` maps a check's name to an object with ``status``, ``reason`` and ``extra`` (the
     typed sections of :class:`bayesdid.report.reader.RunFolder`) or to a plain dict.
@@ -285,4 +287,10 @@ def check_flags(checks: dict | None, sensitivity: dict | None = None) -> list[st
     par = ((sensitivity or {}).get("parameters") or {}).get("att") or {}
     if par.get("diagnosis") in ("prior_data_conflict", "prior_dominates"):
         out.append(f"power-scaling finds the ATT sensitive to its prior ({par['diagnosis'].replace('_', ' ')})")
+    m_zero = ((trends or {}).get("breakdown") or {}).get("M_zero") if (trends or {}).get("status") == "ok" else None
+    if isinstance(m_zero, (int, float)) and 0 < m_zero < 1:
+        out.append(
+            f"the parallel-trends sensitivity breaks down at M = {m_zero:.2f}: a departure after the policy "
+            "smaller than the largest change before it would put zero inside the 95% interval"
+        )
     return out
