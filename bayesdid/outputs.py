@@ -15,6 +15,7 @@ Needs only the standard library.
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import json
 import os
@@ -264,6 +265,20 @@ def atomic_write(target: str | Path, data: str | bytes, *, fsync: bool = False, 
         Path(tmp).unlink(missing_ok=True)
         raise
     return t
+
+
+def write_rows_csv(rows: list[dict], path: str | Path) -> Path:
+    """Write records as CSV, columns in the order they first appear across the rows (a key missing
+    from a row is an empty field). Used for per-rep tables inside an :class:`atomic_folder`."""
+    keys: list[str] = []
+    for r in rows:
+        keys += [k for k in r if k not in keys]
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=keys)
+        w.writeheader()
+        for r in rows:
+            w.writerow(r)
+    return Path(path)
 
 
 class atomic_folder:

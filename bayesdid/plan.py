@@ -40,7 +40,6 @@ left off when the same command is run again.
 
 from __future__ import annotations
 
-import csv
 import dataclasses
 import hashlib
 import json
@@ -59,6 +58,7 @@ from typing import Any
 import numpy as np
 
 from .errors import PlanError
+from .outputs import write_rows_csv
 
 __all__ = [
     "Layout",
@@ -1556,17 +1556,6 @@ def run_plan(
     return {"summary": summary, "rows": rows, "records": records}
 
 
-def _write_csv(rows: list[dict], path: Path) -> None:
-    keys: list[str] = []
-    for r in rows:
-        keys += [k for k in r if k not in keys]
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=keys)
-        w.writeheader()
-        for r in rows:
-            w.writerow(r)
-
-
 def write_plan(result: dict, out: str | Path, *, replace: bool = False, argv=None) -> Path:
     """Write plan.json, assurance.csv, false_decision.csv, reps.csv, assurance.png and report.html atomically."""
     from .report.plan_page import plot_assurance, render_plan_page
@@ -1575,9 +1564,9 @@ def write_plan(result: dict, out: str | Path, *, replace: bool = False, argv=Non
     s = result["summary"]
     with atomic_folder(out, replace=replace, kind="plan") as tmp:
         dump_json(s, tmp / "plan.json")
-        _write_csv(s["assurance"], tmp / "assurance.csv")
-        _write_csv(s["false_decision"], tmp / "false_decision.csv")
-        _write_csv(result["rows"], tmp / "reps.csv")
+        write_rows_csv(s["assurance"], tmp / "assurance.csv")
+        write_rows_csv(s["false_decision"], tmp / "false_decision.csv")
+        write_rows_csv(result["rows"], tmp / "reps.csv")
         plot_assurance(s, tmp / "assurance.png")
         (tmp / "report.html").write_text(render_plan_page(s, tmp / "assurance.png"), encoding="utf-8")
         dump_json(

@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import csv
 import math
 from pathlib import Path
 
 import numpy as np
 
+from ..outputs import write_rows_csv
 from .tasks import LEVELS, METHODS, SBC_BINS, SBC_DRAWS, SBC_PARAMETERS, _pct
 
 
@@ -150,17 +150,6 @@ def plot_sbc(rows: list[dict], path: Path, title: str) -> Path:
 # ---- the study ---------------------------------------------------------------------------------------
 
 
-def _write_csv(rows: list[dict], path: Path) -> None:
-    keys: list[str] = []
-    for r in rows:
-        keys += [k for k in r if k not in keys]
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=keys)
-        w.writeheader()
-        for r in rows:
-            w.writerow(r)
-
-
 def write_calibration(result: dict, out: str | Path, *, replace: bool = False) -> Path:
     """Write calibration.json, coverage_reps.csv, sbc_reps.csv and sbc_ranks.png into ``out`` atomically."""
     from ..run import atomic_folder, dump_json
@@ -168,7 +157,7 @@ def write_calibration(result: dict, out: str | Path, *, replace: bool = False) -
     s = result["summary"]
     with atomic_folder(out, replace=replace, kind="calibration") as tmp:
         dump_json(s, tmp / "calibration.json")
-        _write_csv(result["rows"], tmp / "coverage_reps.csv")
-        _write_csv(result["sbc_rows"], tmp / "sbc_reps.csv")
+        write_rows_csv(result["rows"], tmp / "coverage_reps.csv")
+        write_rows_csv(result["sbc_rows"], tmp / "sbc_reps.csv")
         plot_sbc(result["sbc_rows"], tmp / "sbc_ranks.png", s["scenario"])
     return Path(out)
