@@ -18,6 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .model.family import family_record
+
 __all__ = [
     "summarize",
     "hdi",
@@ -157,10 +159,10 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     tau_a = fit.draws("tau_adopter")  # (S, A)
     w = att_weights(cells)
     att = att_draws(tau_a, cells)  # (S,)
-    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
-    log = cells.log_outcome or family != "gaussian"
+    rec = family_record(getattr(getattr(fit, "spec", None), "family", "gaussian"))
+    log = cells.log_outcome or rec.ratio_scale
     thr_model = np.log1p(threshold) if (log and threshold is not None) else threshold
-    measure = MODEL_MEASURES.get(family) or ("difference in log outcome" if log else "difference in outcome")
+    measure = rec.model_measure or ("difference in log outcome" if log else "difference in outcome")
     out = {"effect": Effect("ATT", measure, "model", att, thr_model)}
     if cells.log_outcome:
         out["effect_percent"] = Effect("ATT", "percent change, exp(ATT) - 1", "percent", percent_change(att), threshold)
@@ -185,14 +187,6 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
 
 def _plain(v):
     return v.item() if hasattr(v, "item") else v
-
-
-#: What tau measures on the model (link) scale of each non-Gaussian family.
-MODEL_MEASURES = {
-    "binomial": "difference in log odds (log odds ratio), conditional on cell and covariates",
-    "poisson": "difference in log rate (log rate ratio), conditional on cell and covariates",
-    "negbinomial": "difference in log rate (log rate ratio), conditional on cell and covariates",
-}
 
 
 class NaturalEffects(list):
@@ -269,9 +263,9 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
     For ratios and percent changes a decision threshold is a relative change (``-0.05``: a ratio
     below 0.95); difference measures carry no threshold (it is stated on the ratio).
     """
-    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
+    rec = family_record(getattr(getattr(fit, "spec", None), "family", "gaussian"))
     cells = fit.cells
-    if family == "gaussian":
+    if rec.cell_model:
         if att is None:
             att = att_draws(fit.draws("tau_adopter"), cells)
         if cells.log_outcome:
@@ -282,18 +276,11 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
     p1, p0, w = counterfactual_means(fit)
     W = w.sum()
     m1, m0 = p1 @ w / W, p0 @ w / W
-    if family == "binomial":
-        return NaturalEffects(
-            [
-                _difference_effect("ATT", "risk difference, percentage points", 100.0 * (m1 - m0)),
-                _ratio_effect("ATT", "risk ratio", m1 / m0, threshold),
-            ]
-        )
     return NaturalEffects(
         [
-            _ratio_effect("ATT", "rate ratio", m1 / m0, threshold),
-            _difference_effect("ATT", "rate difference per 1,000 units of exposure", 1000.0 * (m1 - m0)),
-            _difference_effect("ATT", "events averted per 1,000 units of exposure", 1000.0 * (m0 - m1)),
-            _difference_effect("ATT", "events averted in the treated cells (total)", W * (m0 - m1)),
+            _ratio_effect("ATT", measure, draws, threshold)
+            if kind == "ratio"
+            else _difference_effect("ATT", measure, draws)
+            for measure, kind, draws in rec.natural(m1, m0, W)
         ]
     )

@@ -25,6 +25,7 @@ from .crosscheck import cross_check, cross_check_not_applicable
 from .data import file_sha256, read_table
 from .effects import compute_effects
 from .errors import BayesDidError, PersistenceFallbackWarning
+from .model.family import family_record
 from .model.registry import model_priors
 from .model.structure import RHO_PRIOR, gap_structure, residual_rule
 from .model.terms import resolve_scales
@@ -92,7 +93,9 @@ class Analysis:
                 ),
                 "sampled_as": _sampled_as(self.fit.spec),
                 "gap_noise": gap_structure(self.cells).to_dict(),
-                **({"residual_sd": residual_rule(self.cells)} if self.fit.spec.family == "gaussian" else {}),
+                **(
+                    {"residual_sd": residual_rule(self.cells)} if family_record(self.fit.spec.family).cell_model else {}
+                ),
                 **(
                     {
                         "covariates": {
@@ -156,7 +159,7 @@ def persistence_summary(fit) -> dict | None:
 def _sampled_as(spec) -> dict:
     """The parameterisation choices of the compiled structure (they change the sampler's path only)."""
     base = "centred" if spec.centred else "non-centred"
-    if spec.family != "gaussian":
+    if not family_record(spec.family).cell_model:
         base += ", as levels with each latent field's mean over periods folded in"
     elif spec.G == 2:
         base += ", as level and gap per jurisdiction"
@@ -238,7 +241,8 @@ def analyse(
     t0 = time.perf_counter()
     x = study.crosscheck
     ls_cells, ls_note = cells, None
-    if study.model.family != "gaussian" and "covariates" in cells.extra:
+    rec = family_record(study.model.family)
+    if not rec.cell_model and "covariates" in cells.extra:
         # Least squares on cells regresses the cells' proportions or rates; the model's covariates act
         # on the link scale, which a linear regression on cell means cannot reproduce. The cross-check
         # is then the unadjusted one, and says so.
@@ -247,10 +251,8 @@ def analyse(
         ls_cells = dataclasses.replace(cells, extra={k: v for k, v in cells.extra.items() if k != "covariates"})
         ls_note = (
             f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
-            f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
-            "regression on the cells' "
-            + ("proportions" if study.model.family == "binomial" else "rates")
-            + " cannot reproduce; read it as the unadjusted difference"
+            f"{rec.link_label.replace(' ', '-')} scale, which a linear regression on the cells' "
+            f"{rec.cell_quantity} cannot reproduce; read it as the unadjusted difference"
         )
     try:
         ls = (
@@ -278,7 +280,7 @@ def analyse(
         notes.append(gs.fallback)
         say("WARNING: " + gs.fallback)
         warnings.warn(gs.fallback, PersistenceFallbackWarning, stacklevel=2)
-    if fit.spec.family == "gaussian" and not fit.spec.residual:
+    if family_record(fit.spec.family).cell_model and not fit.spec.residual:
         notes.append("No separate residual sd: " + residual_rule(cells)["reason"])
     if cells.extra.get("fallback"):
         notes.append(cells.extra["fallback"])

@@ -26,7 +26,7 @@ def _effect_section(run: RunFolder) -> str:
         )
         unit = nm["unit"] or "outcome units"
         xlabel = f"change in {nm['outcome']} (%), {who}" if pct else f"change in {nm['outcome']} ({unit}), {who}"
-        if (s.get("model") or {}).get("family", "gaussian") != "gaussian":  # the ATT is on the link scale
+        if run.family.ratio_scale:  # the ATT is on the link scale
             xlabel = f"effect on {nm['outcome']}, {_model_scale(run)} scale (log of the ratio), {who}"
         out.append(
             _img(
