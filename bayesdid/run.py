@@ -23,7 +23,7 @@ from .cells import Cells, collapse
 from .contracts import run_id
 from .crosscheck import cross_check, cross_check_not_applicable
 from .data import file_sha256, read_table
-from .effects import compute_effects
+from .effects import Effects, compute_effects
 from .errors import BayesDidError, PersistenceFallbackWarning
 from .model.family import family_record
 from .model.registry import model_priors
@@ -64,7 +64,7 @@ class Analysis:
     study: Study
     cells: Cells
     fit: Fit
-    effects: dict
+    effects: Effects
     least_squares: dict
     priors: dict
     timing: dict
@@ -74,10 +74,10 @@ class Analysis:
     trends: object = None  # bayesdid.trends.TrendBounds
 
     def summary(self) -> dict:
-        e = self.effects
+        e = self.effects.to_dict()
         out = {
             "title": self.study.title,
-            "effect": e["effect"].summary,
+            "effect": e["effect"],
             "per_adopter": e["per_adopter"],
             "least_squares": self.least_squares,
             "diagnostics": {k: v for k, v in self.fit.diagnostics.items()},
@@ -117,11 +117,9 @@ class Analysis:
         pers = persistence_summary(self.fit)
         if pers is not None:
             out["persistence"] = pers
-        if "effect_percent" in e:
-            out["effect_percent"] = e["effect_percent"].summary
-        for k in ("effect_natural",):
+        for k in ("effect_percent", "effect_natural"):  # after the rest, as summary.json has always had them
             if k in e:
-                out[k] = e[k].summary
+                out[k] = e[k]
         return out
 
 
