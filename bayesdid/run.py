@@ -15,6 +15,7 @@ import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import xarray as xr
@@ -33,6 +34,9 @@ from .outputs import atomic_folder
 from .sample import Fit, fit_cells
 from .study import Study, study_to_dict
 from .version import __version__
+
+if TYPE_CHECKING:
+    from .sensitivity import PowerScaling
 
 __all__ = ["Analysis", "prepare", "analyse", "write_run", "versions", "atomic_folder", "dump_json"]
 
@@ -70,7 +74,7 @@ class Analysis:
     timing: dict
     data_sha256: str | None = None
     notes: list = field(default_factory=list)
-    sensitivity: dict | None = None
+    sensitivity: PowerScaling | None = None
     trends: object = None  # bayesdid.trends.TrendBounds
 
     def summary(self) -> dict:
@@ -111,7 +115,7 @@ class Analysis:
             "notes": self.notes,
         }
         if self.sensitivity is not None:
-            out["sensitivity"] = self.sensitivity
+            out["sensitivity"] = self.sensitivity.to_dict()
         if self.trends is not None:
             out["parallel_trends"] = self.trends.to_dict()
         pers = persistence_summary(self.fit)

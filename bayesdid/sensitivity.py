@@ -30,6 +30,8 @@ prior and likelihood sensitivity with power-scaling. Statistics and Computing 34
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 import xarray as xr
 from scipy import stats
@@ -38,6 +40,8 @@ __all__ = [
     "log_prior_dataset",
     "log_likelihood_dataset",
     "power_scaling",
+    "PowerScaling",
+    "ParameterSensitivity",
     "SENSITIVE",
     "CHECKED_PARAMETERS",
     "diagnosis",
@@ -148,7 +152,75 @@ def diagnosis(prior: float, likelihood: float, *, threshold: float = SENSITIVE) 
     return "ok", "the data dominate; the prior is not driving this parameter."
 
 
-def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> dict:
+@dataclass
+class ParameterSensitivity:
+    """One parameter's power-scaling sensitivities and their reading (see :func:`power_scaling`)."""
+
+    prior: float
+    likelihood: float
+    joint_prior: float
+    diagnosis: str
+    joint_diagnosis: str
+    reading: str
+    meaning: str
+    note: str = ""
+
+    def to_dict(self) -> dict:
+        d = {
+            "prior": self.prior,
+            "likelihood": self.likelihood,
+            "joint_prior": self.joint_prior,
+            "diagnosis": self.diagnosis,
+            "joint_diagnosis": self.joint_diagnosis,
+            "reading": self.reading,
+            "meaning": self.meaning,
+        }
+        if self.note:
+            d["note"] = self.note
+        return d
+
+
+@dataclass
+class PowerScaling:
+    """The result of :func:`power_scaling`; ``to_dict()`` is summary.json's ``sensitivity`` entry.
+
+    ``status`` is "ok", "attention" (a parameter flagged) or "not applicable" (importance sampling
+    failed: ``ok`` is None, ``reason`` says why, ``joint_flagged`` is None and not written).
+    """
+
+    method: str
+    threshold: float
+    alphas: list
+    priors_scaled: list
+    parameters: dict[str, ParameterSensitivity] = field(default_factory=dict)
+    flagged: list = field(default_factory=list)
+    joint_flagged: list | None = None
+    expected: list | None = None
+    ok: bool | None = None
+    status: str = "ok"
+    reason: str = ""
+
+    def to_dict(self) -> dict:
+        d = {
+            "method": self.method,
+            "threshold": self.threshold,
+            "alphas": list(self.alphas),
+            "priors_scaled": list(self.priors_scaled),
+            "parameters": {k: v.to_dict() for k, v in self.parameters.items()},
+            "flagged": list(self.flagged),
+        }
+        if self.joint_flagged is not None:
+            d["joint_flagged"] = list(self.joint_flagged)
+        if self.expected is not None:
+            d["expected"] = list(self.expected)
+        d["ok"] = self.ok
+        d["status"] = self.status
+        if self.reason:
+            d["reason"] = self.reason
+        return d
+
+
+def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> PowerScaling:
     """Prior and likelihood power-scaling sensitivity of tau and the variance parameters.
 
     For each parameter, ``prior`` is its sensitivity to power-scaling its *own* prior (the one set by
@@ -160,11 +232,12 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
 
     Returns
     -------
-    dict
-        ``{"method", "threshold", "alphas", "priors_scaled", "parameters": {name: {"prior",
-        "likelihood", "joint_prior", "diagnosis", "joint_diagnosis", "reading", "meaning"}},
-        "flagged": [names], "joint_flagged": [names], "ok": bool}``. A parameter with several
-        elements (``sigma`` per group) reports its largest sensitivity.
+    PowerScaling
+        ``method``, ``threshold``, ``alphas``, ``priors_scaled``, ``parameters`` (name ->
+        :class:`ParameterSensitivity`: ``prior``, ``likelihood``, ``joint_prior``, ``diagnosis``,
+        ``joint_diagnosis``, ``reading``, ``meaning``), ``flagged``, ``joint_flagged``, ``ok``;
+        ``to_dict()`` writes them in that order. A parameter with several elements (``sigma`` per
+        group) reports its largest sensitivity.
         ``flagged`` lists the parameters with a prior-data conflict or prior dominance; ``ok`` is
         true when none is flagged. ``sigma_tau`` with at most :data:`FEW_ADOPTERS` adopters is
         listed under ``expected`` instead (its spread is barely learnable from so few).
@@ -181,23 +254,21 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
         post = post.assign(att=att_draws(fit.posterior["tau_adopter"], fit.cells))
         names = ["att", *names]
     tree = xr.DataTree.from_dict({"posterior": post, "log_prior": lp, "log_likelihood": ll})
-    out = {
-        "method": "power-scaling sensitivity, arviz.psense (Kallioinen et al. 2023)",
-        "threshold": threshold,
-        "alphas": list(alphas),
-        "priors_scaled": sorted(lp.data_vars),
-        "parameters": {},
-        "flagged": [],
-    }
+    out = PowerScaling(
+        method="power-scaling sensitivity, arviz.psense (Kallioinen et al. 2023)",
+        threshold=threshold,
+        alphas=list(alphas),
+        priors_scaled=sorted(lp.data_vars),
+    )
     try:
         ps_p = az.psense(tree, var_names=names, group="prior", alphas=alphas)
         ps_l = az.psense(tree, var_names=names, group="likelihood", alphas=alphas)
     except Exception as exc:  # importance sampling can fail on degenerate draws; report, do not crash
-        out["ok"] = None
-        out["status"] = "not applicable"
-        out["reason"] = f"power-scaling could not be computed: {type(exc).__name__}: {exc}"
+        out.ok = None
+        out.status = "not applicable"
+        out.reason = f"power-scaling could not be computed: {type(exc).__name__}: {exc}"
         return out
-    out["joint_flagged"] = []
+    out.joint_flagged = []
 
     def top(ds, n):
         a = np.asarray(ds[n])
@@ -229,38 +300,37 @@ def power_scaling(fit, *, threshold: float = SENSITIVE, alphas=(0.99, 1.01)) -> 
             own = float("nan")
         code, reading = diagnosis(own, li, threshold=threshold)
         jcode, _ = diagnosis(joint, li, threshold=threshold)
-        out["parameters"][n] = {
-            "prior": own,
-            "likelihood": li,
-            "joint_prior": joint,
-            "diagnosis": code,
-            "joint_diagnosis": jcode,
-            "reading": reading,
-            "meaning": _MEANING.get(n, ""),
-        }
-        if note:
-            out["parameters"][n]["note"] = note
+        out.parameters[n] = ParameterSensitivity(
+            prior=own,
+            likelihood=li,
+            joint_prior=joint,
+            diagnosis=code,
+            joint_diagnosis=jcode,
+            reading=reading,
+            meaning=_MEANING.get(n, ""),
+            note=note,
+        )
         if code in ("prior_data_conflict", "prior_dominates"):
-            out["flagged"].append(n)
+            out.flagged.append(n)
         if jcode in ("prior_data_conflict", "prior_dominates"):
-            out["joint_flagged"].append(n)
+            out.joint_flagged.append(n)
             if code not in ("prior_data_conflict", "prior_dominates"):
-                out["parameters"][n]["reading"] += (
+                out.parameters[n].reading += (
                     f" Power-scaling all priors together moves it more ({joint:.3f}): another prior acts on it "
                     "through the model (with few adopters, usually 'adopter_spread'); a sweep over that scale "
                     "shows by how much."
                 )
     n_adopters = len(fit.cells.adopters)
-    if "sigma_tau" in out["parameters"] and n_adopters <= FEW_ADOPTERS and "sigma_tau" in out["flagged"]:
+    if "sigma_tau" in out.parameters and n_adopters <= FEW_ADOPTERS and "sigma_tau" in out.flagged:
         # With two or three adopters the spread of their effects cannot be learnt from the data; its
         # posterior leans on the prior by design (the prior is what keeps partial pooling sane).
         # Reported, with that reading, but not counted as a warning sign (common practice).
-        out["flagged"].remove("sigma_tau")
-        out["expected"] = ["sigma_tau"]
-        out["parameters"]["sigma_tau"]["reading"] += (
+        out.flagged.remove("sigma_tau")
+        out.expected = ["sigma_tau"]
+        out.parameters["sigma_tau"].reading += (
             f" Expected with {n_adopters} adopters: their spread is barely learnable, so this prior carries it;"
             " judge the effect by tau's own sensitivity and by a sweep over 'adopter_spread'."
         )
-    out["ok"] = not out["flagged"]
-    out["status"] = "ok" if out["ok"] else "attention"
+    out.ok = not out.flagged
+    out.status = "ok" if out.ok else "attention"
     return out

@@ -21,7 +21,7 @@ import pytest
 import xarray as xr
 
 from bayesdid import analyse, load_study, write_run
-from bayesdid.sensitivity import SENSITIVE, diagnosis, log_prior_dataset
+from bayesdid.sensitivity import SENSITIVE, ParameterSensitivity, PowerScaling, diagnosis, log_prior_dataset
 
 DEMO = Path(__file__).resolve().parent.parent / "case_files" / "copay_cap" / "study.toml"
 
@@ -45,21 +45,22 @@ def demo_tight(demo_study, demo_default):
 
 def test_defaults_do_not_flag_tau_or_variances(demo_default):
     s = demo_default.sensitivity
-    assert s["threshold"] == SENSITIVE == 0.05
-    tau = s["parameters"]["tau"]
-    assert tau["diagnosis"] == "ok", tau
-    assert tau["prior"] < SENSITIVE <= tau["likelihood"]
+    assert isinstance(s, PowerScaling) and all(isinstance(p, ParameterSensitivity) for p in s.parameters.values())
+    assert s.threshold == SENSITIVE == 0.05
+    tau = s.parameters["tau"]
+    assert tau.diagnosis == "ok", tau
+    assert tau.prior < SENSITIVE <= tau.likelihood
     # The defaults must not drive the variances: prior sensitivity below the threshold. How strongly
     # the likelihood moves a variance is not the claim here (sigma_baseline sits near 0.05, within
     # the Monte Carlo error of 1,000 draws), so "weak_both" is accepted beside "ok".
     for name in ("sigma_gap", "sigma_shock", "sigma", "sigma_baseline"):
-        p = s["parameters"][name]
-        assert p["prior"] < SENSITIVE and p["diagnosis"] in ("ok", "weak_both"), (name, p)
+        p = s.parameters[name]
+        assert p.prior < SENSITIVE and p.diagnosis in ("ok", "weak_both"), (name, p)
     # two adopters: their spread is prior-driven, reported but not flagged (see bayesdid.sensitivity)
-    assert s["flagged"] == []
-    assert s.get("expected", []) in ([], ["sigma_tau"])
-    assert s["ok"] is True
-    assert np.isfinite(tau["joint_prior"]) and tau["joint_diagnosis"] in (
+    assert s.flagged == []
+    assert (s.expected or []) in ([], ["sigma_tau"])
+    assert s.ok is True
+    assert np.isfinite(tau.joint_prior) and tau.joint_diagnosis in (
         "ok",
         "prior_data_conflict",
         "prior_dominates",
@@ -68,18 +69,34 @@ def test_defaults_do_not_flag_tau_or_variances(demo_default):
 
 def test_tight_misplaced_prior_on_tau_is_flagged(demo_tight):
     s = demo_tight.sensitivity
-    tau = s["parameters"]["tau"]
-    assert tau["prior"] >= SENSITIVE
-    assert tau["diagnosis"] in ("prior_data_conflict", "prior_dominates")
-    assert "tau" in s["flagged"]
-    assert s["ok"] is False
-    assert "prior" in tau["reading"]
+    tau = s.parameters["tau"]
+    assert tau.prior >= SENSITIVE
+    assert tau.diagnosis in ("prior_data_conflict", "prior_dominates")
+    assert "tau" in s.flagged
+    assert s.ok is False
+    assert "prior" in tau.reading
 
 
 def test_summary_and_file_carry_sensitivity_and_log_prior(demo_default, tmp_path):
     out = write_run(demo_default, tmp_path / "run")
     summary = json.loads((out / "summary.json").read_text())
     assert set(summary["sensitivity"]["parameters"]) >= {"tau", "sigma_tau", "sigma_gap", "sigma"}
+    # the typed result is written as the dict power_scaling returned before: same keys in the same order
+    assert summary["sensitivity"] == json.loads(json.dumps(demo_default.sensitivity.to_dict()))
+    keys = ["method", "threshold", "alphas", "priors_scaled", "parameters", "flagged", "joint_flagged"]
+    assert list(summary["sensitivity"]) == keys + (["expected"] if "expected" in summary["sensitivity"] else []) + [
+        "ok",
+        "status",
+    ]
+    assert list(summary["sensitivity"]["parameters"]["tau"])[:7] == [
+        "prior",
+        "likelihood",
+        "joint_prior",
+        "diagnosis",
+        "joint_diagnosis",
+        "reading",
+        "meaning",
+    ]
     tree = xr.open_datatree(out / "posterior.nc", engine="h5netcdf")
     assert {"log_prior", "log_likelihood", "posterior"} <= set(tree.children)
     lp = tree["log_prior"].to_dataset()
