@@ -181,10 +181,15 @@ def test_the_natural_scale_caption_is_the_familys_and_two_probabilities_are_expl
     case = e2e_run(name)
     rec = family_record(case["family"])
     text = _effect_text(case["run"])
-    assert rec.natural_caption in text
+    s = json.loads((case["run"] / "summary.json").read_text())
+    # the natural-scale table is shown when it adds a measure to the effect table (not for a log outcome,
+    # whose percent change is the effect table itself); its caption is then the family's
+    headline = (s.get("effect_percent") or s["effect"])["measure"]
+    shown = any(n["measure"] != headline for n in s["effect_natural"])
+    assert ("On the natural scale" in text) == shown == ("effect_percent" not in s)
+    assert (rec.natural_caption in text) == shown
     if rec.cell_model:  # a Gaussian model has no trials or exposure to average with
         assert "trials" not in text and "exposure" not in text
-    s = json.loads((case["run"] / "summary.json").read_text())
     ratio = next((n for n in s["effect_natural"] if n.get("no_effect") == 1.0), None)
     assert (ratio is not None) == rec.ratio_scale
     explained = "because the two average differently" in text
