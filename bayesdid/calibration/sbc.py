@@ -39,7 +39,7 @@ def _draw_prior(cells, prior: dict, rng: np.random.Generator) -> tuple[dict, np.
     else:
         sigma_tau, tau_a = None, np.array([tau])
     m += np.tensordot(tau_a, _treat_by_adopter(cells), axes=1)
-    from ..model.structure import RHO_PRIOR, gap_structure, residual_rule
+    from ..model.structure import OMEGA_SCALE, RHO_PRIOR, gap_structure, residual_rule
 
     sigma = hn(S["residual"], G) if residual_rule(cells)["separate"] else np.zeros(G)
     sigma_gap = hn(S["gap_noise"])
@@ -49,7 +49,12 @@ def _draw_prior(cells, prior: dict, rng: np.random.Generator) -> tuple[dict, np.
         rho = 2.0 * rng.beta(RHO_PRIOR["a"], RHO_PRIOR["b"]) - 1.0
         for t in range(1, T):  # stationary AR(1), marginal sd sigma_gap
             e[:, t] = rho * e[:, t - 1] + np.sqrt(1.0 - rho * rho) * e[:, t]
-    m[:, cells.target, :] += sigma_gap * e
+    omega = None
+    scale_j = sigma_gap
+    if gap_structure(cells).scale == "per_jurisdiction":  # as gap_scale_terms: non-centred log-normal
+        omega = hn(OMEGA_SCALE)
+        scale_j = sigma_gap * np.exp(omega * rng.standard_normal(J))[:, None]
+    m[:, cells.target, :] += scale_j * e
     if G == 2:
         sigma_shock = hn(S["shock_spread"])
         sd_j = np.where(is_adopter, S["period"], sigma_shock)
@@ -57,6 +62,8 @@ def _draw_prior(cells, prior: dict, rng: np.random.Generator) -> tuple[dict, np.
     truth = {"tau": float(tau), "sigma_gap": float(sigma_gap)}
     if rho is not None:
         truth["rho"] = float(rho)
+    if omega is not None:
+        truth["omega"] = float(omega)
     return truth, m, np.broadcast_to(sigma[None, :, None], (J, G, T))
 
 

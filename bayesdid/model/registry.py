@@ -102,7 +102,13 @@ def build_model(
     )
     if family == "gaussian":
         return build_gaussian(
-            cells, scales, coords_of(cells, spec.event_times), gap=spec.gap, residual=spec.residual, **terms
+            cells,
+            scales,
+            coords_of(cells, spec.event_times),
+            gap=spec.gap,
+            gap_scale=spec.gap_scale,
+            residual=spec.residual,
+            **terms,
         ), spec
     if family in FAMILY_BUILDERS:
         return build_family(
@@ -111,6 +117,7 @@ def build_model(
             coords_of(cells, spec.event_times),
             family,
             gap=spec.gap,
+            gap_scale=spec.gap_scale,
             **{k: v for k, v in terms.items() if k != "drift"},
         ), spec
     raise NotImplementedError(f"family '{family}' is not built yet")

@@ -14,6 +14,7 @@ import numpy as np
 
 from .families import replicate_gap_path
 from .gaussian import residual_draws
+from .structure import gap_scale_draws
 from .terms import mean_from_draws
 
 __all__ = ["replicate_gaps"]
@@ -30,7 +31,7 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
     sigma = residual_draws(fit)  # (S, G)
-    sg = fit.draws("sigma_gap")
+    sg = gap_scale_draws(fit)[:, j]  # jurisdiction j's own gap-noise scale (S,)
     S = sigma.shape[0]
     q = cells.target
     n_q = cells.n[j, q, periods]
@@ -38,7 +39,7 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
     e = sg[:, None] * rng.standard_normal((S, len(periods)))
     if getattr(fit.spec, "gap", "independent") == "persistent":
         # AR(1) gap noise (bayesdid.model.structure): the same normals, chained over the periods
-        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap
+        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap_j
         rho = fit.draws("rho")
         z = e.copy()
         for i in range(1, len(periods)):
