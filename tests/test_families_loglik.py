@@ -402,9 +402,10 @@ def test_rho_zero_equals_the_independent_field_log_density(gap_centred, monkeypa
     cells = collapse(_study(frame, truth, "poisson", "C(sex) + C(risk)", exposure="exposure"), frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
     J, _, T = cells.shape
-    cells.extra["gap"] = GapStructure(over_time="independent", requested="independent")
+    one = {"scale": "shared", "scale_requested": "shared"}  # one scale: this test is about rho
+    cells.extra["gap"] = GapStructure(over_time="independent", requested="independent", **one)
     ind, _ = build_model(cells, scales, "poisson")
-    cells.extra["gap"] = GapStructure()
+    cells.extra["gap"] = GapStructure(**one)
     per, spec = build_model(cells, scales, "poisson")
     assert spec.gap == "persistent"
     rng = np.random.default_rng(5)
