@@ -72,6 +72,10 @@ def test_sbc_ranks_not_degenerate(small_run):
         # uniform ranks all three at an extreme has probability (2/100)^3 = 8e-6.
         assert not all(k in (0, cal.SBC_DRAWS) for k in ranks), ranks
         assert small_run["summary"]["sbc"][name]["p_value"] is not None
+        # each rep's bulk ESS of the parameter (2 chains x 150 draws), and the summary's share below 99
+        ess = np.array([r[f"{name}_ess"] for r in small_run["sbc_rows"]])
+        assert np.all((ess > 0) & (ess < 3 * 300)), ess
+        assert small_run["summary"]["sbc"][name]["share_ess_below_ranked"] == pytest.approx(np.mean(ess < 99))
 
 
 def test_reproducible_for_a_fixed_seed(small_run):
@@ -204,6 +208,9 @@ def test_sbc_chi_square_tells_uniform_from_piled_ranks():
     t = cal.sbc_table(piled)
     assert t["tau"]["p_value"] < 1e-10 and t["sigma_gap"]["share_at_extremes"] == 1.0
     assert cal.sbc_table([])["tau"]["reason"].startswith("not applicable")
+    with_ess = [{**r, "tau_ess": e} for r, e in zip(uniform[:4], (50.0, 150.0, 400.0, float("nan")))]
+    assert cal.sbc_table(with_ess)["tau"]["share_ess_below_ranked"] == pytest.approx(1 / 3)
+    assert cal.sbc_table(uniform)["tau"]["share_ess_below_ranked"] is None
 
 
 def test_ecdf_band_holds_uniform_ecdfs_95_percent_of_the_time():

@@ -58,6 +58,11 @@ def coverage_table(rows: list[dict]) -> dict:
     return out
 
 
+def _share_below(values, limit: float) -> float | None:
+    v = np.array([x for x in values if x is not None and np.isfinite(x)], float)
+    return float(np.mean(v < limit)) if v.size else None
+
+
 def sbc_table(rows: list[dict]) -> dict:
     """Rank-uniformity tests per parameter: chi-square over SBC_BINS equal bins of the ranks 0..SBC_DRAWS."""
     from scipy import stats
@@ -85,6 +90,8 @@ def sbc_table(rows: list[dict]) -> dict:
             "mean_rank": float(ranks.mean()),
             "share_at_extremes": float(np.mean((ranks == 0) | (ranks == SBC_DRAWS))),
             "uniform_at_0.01": bool(chi.pvalue > 0.01),
+            # ranks among autocorrelated draws are over-dispersed: read the test with this share
+            "share_ess_below_ranked": _share_below([r.get(f"{name}_ess") for r in ok], SBC_DRAWS),
             "note": (
                 "fewer than 5 reps expected per bin: the chi-square approximation is rough"
                 if ranks.size / SBC_BINS < 5
