@@ -320,8 +320,10 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     # Independent gap noise: the construction's arithmetic (effect 0.7) holds for it. With the default
     # AR(1) noise a steady post-policy departure with near-noiseless comparisons is read as a
     # persistent (rho near 1) gap path and the effect shrinks toward 0.13; the bound's own arithmetic,
-    # which is what this test checks, does not depend on which noise produced the draws.
-    st = st.replace(model={"gap_over_time": "independent"})
+    # which is what this test checks, does not depend on which noise produced the draws. One shared
+    # gap-noise scale likewise: the adopter alone carries the injected wiggle and departure, which
+    # its own pooled scale would read as noise (widening the effect's interval, not the bound).
+    st = st.replace(model={"gap_over_time": "independent", "gap_scale": "shared"})
     cells = collapse(st, frame)
     an = analyse(st, cells=cells, full_cross_check=False)
     tb = an.trends
