@@ -526,7 +526,8 @@ def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
     M x 0.2 x 3.5 reaches it at M = 1 by construction (the same arithmetic as the gaussian test
     above; the interval's own half-width moves the breakdown a little below 1). M = 0 is the main
     fit's interval exactly; ``bayesdid trends`` on the run folder the fit writes gives the same M.
-    Independent gap noise, as in the gaussian test: the bound's arithmetic is what is checked."""
+    Independent gap noise and one shared scale, as in the gaussian test: the bound's arithmetic is
+    what is checked."""
     import json
 
     import pandas as pd
@@ -570,7 +571,7 @@ def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
         tune=400,
         chains=2,
         seed=4,
-    ).replace(model={"gap_over_time": "independent"})
+    ).replace(model={"gap_over_time": "independent", "gap_scale": "shared"})
     cells = collapse(st, frame)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
