@@ -5,7 +5,7 @@ Typical use::
 
     from bayesdid import load_study, analyse, write_run
     an = analyse(load_study("study.toml"))
-    print(an.effects["effect"])
+    print(an.effects.effect)
     write_run(an, "runs/first")
 """
 

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .data import check_roles, period_levels
+from .model.family import family_record
 from .panels import check_units, within_units
 from .study import Study
 from .summaries import as_count_rows, check_summary_rows, check_weights, mean_sums, weighted_sums
@@ -207,7 +208,7 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
         return replace(
             cells,
             extra={
-                "family": "gaussian",
+                "family": study.model.family,
                 "panel": panel,
                 "likelihood": "exact on cells of the outcome centred within units (unit fixed "
                 "effects; balanced panel), within-cell spread scaled by T/(T-1)",
@@ -218,7 +219,7 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
         return replace(
             cells,
             extra={
-                "family": "gaussian",
+                "family": study.model.family,
                 "weights": {
                     "column": cols.weight,
                     **{k: weighted[k].reshape(shape) for k in ("sum_w", "ss_w", "rows", "sum_w2", "w2_dev", "w2_dev2")},
@@ -227,7 +228,11 @@ def collapse_frame(study: Study, frame: pd.DataFrame) -> Cells:
                 "and gap noise integrated out); within-cell spread by moment match",
             },
         )
-    if study.model.family == "gaussian" and not study.model.covariates and not frame.attrs.get("dropped_rows"):
+    if (
+        family_record(study.model.family).cell_model
+        and not study.model.covariates
+        and not frame.attrs.get("dropped_rows")
+    ):
         return cells
     return attach_family(study, frame, cells, idx, y)
 
@@ -275,6 +280,7 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
     from .fixed_effects import check_identified
 
     fam = study.model.family
+    family = family_record(fam)
     cols = study.columns
     J, G, T = cells.shape
     size = J * G * T
@@ -282,7 +288,7 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
     if frame.attrs.get("dropped_rows"):
         extra["dropped_rows"] = dict(frame.attrs["dropped_rows"])
     cov = design_matrix(study.model.covariates, frame) if study.model.covariates else None
-    if fam == "gaussian":
+    if family.cell_model:
         if cov is not None:
             sums = cell_sums(cov["X"], y, idx, size, cells.n.ravel())
             check_identified(cells, sums, cov["names"])
@@ -303,10 +309,8 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
         return replace(cells, extra=extra)
 
     yr = frame[cols.outcome].to_numpy(dtype=float)
-    if fam == "binomial":
-        sz = frame[cols.trials].to_numpy(dtype=float) if cols.trials else np.ones(len(frame))
-    else:
-        sz = frame[cols.exposure].to_numpy(dtype=float)
+    size_col = getattr(cols, family.size_role)  # trials or exposure; rows without trials are single trials
+    sz = frame[size_col].to_numpy(dtype=float) if size_col else np.ones(len(frame))
     n = np.bincount(idx, weights=sz, minlength=size)
     sum_y = np.bincount(idx, weights=yr, minlength=size)
     new = replace(cells, n=n.reshape(J, G, T), sum_y=sum_y.reshape(J, G, T))
@@ -353,17 +357,11 @@ def attach_family(study: Study, frame: pd.DataFrame, cells: Cells, idx: np.ndarr
             "x": np.zeros((len(cell_ids), 0)),
         }
         extra["likelihood"] = (
-            "exact on cells (successes and trials per cell)"
-            if fam == "binomial"
-            else "exact on cells (events and exposure per cell)"
-        ) + ", jurisdiction-period shock and gap noise as non-centred latent terms"
+            f"exact on cells ({'successes' if family.size_role == 'trials' else 'events'} and {family.size_role} per cell)"
+            ", jurisdiction-period shock and gap noise as non-centred latent terms"
+        )
     extra["records"] = rec
-    Y, N = float(yr.sum()), float(sz.sum())
-    if fam == "binomial":
-        p = min(max(Y / N, 0.5 / N), 1 - 0.5 / N)
-        loc = float(np.log(p / (1 - p)))
-    else:
-        loc = float(np.log(max(Y, 0.5) / N))
+    loc = family.link_location(yr.sum(), sz.sum())
     return replace(new, extra=extra, outcome_mean=loc, outcome_sd=1.0)
 
 
@@ -379,17 +377,18 @@ def _refuse_constant(study: Study, frame: pd.DataFrame, cells: Cells) -> None:
     from .errors import DataRoleError
 
     col, fam = study.columns.outcome, study.model.family
+    rec = family_record(fam)
     y = frame[col].to_numpy(dtype=float)
-    if fam == "binomial":
+    if rec.size_role == "trials":
         trials = frame[study.columns.trials].to_numpy(dtype=float) if study.columns.trials else np.ones(len(y))
         if y.sum() == 0 or y.sum() == trials.sum():
             what = "no success" if y.sum() == 0 else "only successes"
             raise DataRoleError(
-                f"outcome column '{col}' holds {what} in every row, so family 'binomial' has nothing "
+                f"outcome column '{col}' holds {what} in every row, so family '{fam}' has nothing "
                 "to estimate an effect from. Check that the outcome column is the right one."
             )
         return
-    if fam in ("poisson", "negbinomial"):
+    if rec.size_role == "exposure":
         if y.sum() == 0:
             raise DataRoleError(
                 f"outcome column '{col}' is 0 in every row: there are no events to estimate an effect "

@@ -158,6 +158,7 @@ def _demo_steps(study, path, log, study_file, an=None):
     import tempfile
 
     from .checks.runner import checks_into_run
+    from .model.family import family_record
     from .sweep import run_sweep
 
     say = log or (lambda m: None)
@@ -175,7 +176,7 @@ def _demo_steps(study, path, log, study_file, an=None):
         seed=sp.seed,
         effect=effect,
     )
-    drift = study.model.family == "gaussian" and not study.model.gap_drift
+    drift = family_record(study.model.family).allows("gap_drift") and not study.model.gap_drift
     if drift:
         text += DRIFT_VARIANT
     with tempfile.TemporaryDirectory() as tmp:

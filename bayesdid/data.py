@@ -13,6 +13,7 @@ import pandas as pd
 
 from . import frames
 from .errors import DataRoleError
+from .model.family import family_record
 from .study import Study
 
 __all__ = ["read_table", "file_sha256", "check_roles", "period_levels", "check_family_inputs"]
@@ -415,17 +416,18 @@ def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
         Naming the column, how many rows and which table lines are at fault, and the fix.
     """
     cols, fam = study.columns, study.model.family
+    rec = family_record(fam)
     y = out[cols.outcome].to_numpy(dtype=float)
-    if fam == "binomial" and cols.trials is None:
+    if rec.size_role == "trials" and cols.trials is None:
         bad = (y != 0) & (y != 1)
         if bad.any():
             raise DataRoleError(
-                f"outcome column '{cols.outcome}' must be 0 or 1 for family 'binomial' without a trials column; "
+                f"outcome column '{cols.outcome}' must be 0 or 1 for family '{fam}' without a trials column; "
                 f"{_rows_text(bad)} hold other values (e.g. {sorted(set(y[bad].tolist()))[:3]}). Recode it to 0/1, "
                 "or give aggregated data with successes in the outcome and 'data.trials' naming the trials column."
             )
-    if fam in ("binomial", "poisson", "negbinomial") and not (fam == "binomial" and cols.trials is None):
-        what = "successes" if fam == "binomial" else "counts"
+    if not rec.cell_model and not (rec.size_role == "trials" and cols.trials is None):
+        what = rec.outcome_word
         neg = y < 0
         if neg.any():
             raise DataRoleError(
@@ -440,7 +442,7 @@ def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
                 f"{_rows_text(frac)} are not whole numbers (e.g. {y[frac][0]:g}). Give whole "
                 "numbers, or use family 'gaussian' for a continuous outcome."
             )
-    if fam == "binomial" and cols.trials is not None:
+    if rec.size_role == "trials" and cols.trials is not None:
         tr = _numeric(out, cols.trials, "trials")
         miss = ~np.isfinite(tr)
         if miss.any():
@@ -463,7 +465,7 @@ def check_family_inputs(study: Study, out: pd.DataFrame) -> pd.DataFrame:
                 "Successes cannot exceed trials; check which column is which."
             )
         out[cols.trials] = tr
-    if fam in ("poisson", "negbinomial") and cols.exposure is not None:
+    if rec.size_role == "exposure" and cols.exposure is not None:
         ex = _numeric(out, cols.exposure, "exposure")
         miss = ~np.isfinite(ex)
         if miss.any():

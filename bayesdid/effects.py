@@ -18,6 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .model.family import family_record
+
 __all__ = [
     "summarize",
     "hdi",
@@ -25,6 +27,8 @@ __all__ = [
     "att_weights",
     "att_draws",
     "compute_effects",
+    "Effects",
+    "AdopterEffect",
     "beyond_text",
     "percent_change",
     "NaturalEffects",
@@ -148,8 +152,48 @@ def att_draws(tau_adopter, cells):
     return np.asarray(tau_adopter) @ w
 
 
-def compute_effects(fit, threshold: float | None = None) -> dict:
-    """The ATT (model scale and, for log outcomes, percent) and per-adopter effects.
+@dataclass
+class AdopterEffect:
+    """One adopter's effect: its name, first treated period, ATT weight and effect (model scale, and
+    percent for a log outcome). ``to_dict()`` is its row of summary.json's ``per_adopter``."""
+
+    adopter: str
+    start: object
+    weight: float
+    effect: Effect
+    percent: Effect | None = None
+
+    def to_dict(self) -> dict:
+        row = {"adopter": self.adopter, "start": self.start, "weight": self.weight, **self.effect.summary}
+        if self.percent is not None:
+            row["percent"] = self.percent.summary
+        return row
+
+
+@dataclass
+class Effects:
+    """The effects of one fit (:func:`compute_effects`): the ATT on the model scale (``effect``), as a
+    percent change for a log outcome (``percent``), on the natural scale (``natural``) and per adopter.
+
+    ``to_dict()`` gives summary.json's ``effect``, ``effect_percent`` (log outcome only),
+    ``effect_natural`` and ``per_adopter`` entries; the draws stay on the :class:`Effect` objects."""
+
+    effect: Effect
+    natural: NaturalEffects
+    per_adopter: list[AdopterEffect]
+    percent: Effect | None = None
+
+    def to_dict(self) -> dict:
+        out = {"effect": self.effect.summary}
+        if self.percent is not None:
+            out["effect_percent"] = self.percent.summary
+        out["effect_natural"] = self.natural.summary
+        out["per_adopter"] = [a.to_dict() for a in self.per_adopter]
+        return out
+
+
+def compute_effects(fit, threshold: float | None = None) -> Effects:
+    """The ATT (model scale and, for log outcomes, percent), its natural-scale measures and per-adopter effects.
 
     For a log outcome the threshold is a relative change; on the model scale it becomes log(1 + t).
     """
@@ -157,42 +201,34 @@ def compute_effects(fit, threshold: float | None = None) -> dict:
     tau_a = fit.draws("tau_adopter")  # (S, A)
     w = att_weights(cells)
     att = att_draws(tau_a, cells)  # (S,)
-    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
-    log = cells.log_outcome or family != "gaussian"
+    rec = family_record(getattr(getattr(fit, "spec", None), "family", "gaussian"))
+    log = cells.log_outcome or rec.ratio_scale
     thr_model = np.log1p(threshold) if (log and threshold is not None) else threshold
-    measure = MODEL_MEASURES.get(family) or ("difference in log outcome" if log else "difference in outcome")
-    out = {"effect": Effect("ATT", measure, "model", att, thr_model)}
-    if cells.log_outcome:
-        out["effect_percent"] = Effect("ATT", "percent change, exp(ATT) - 1", "percent", percent_change(att), threshold)
-    out["effect_natural"] = natural_effects(fit, threshold, att=att)
-    per = []
-    for a, j in enumerate(cells.adopters):
-        e = Effect(cells.jurisdictions[j], measure, "model", tau_a[:, a], thr_model)
-        row = {
-            "adopter": cells.jurisdictions[j],
-            "start": _plain(cells.periods[cells.start[j]]),
-            "weight": float(w[a]),
-            **e.summary,
-        }
-        if cells.log_outcome:
-            row["percent"] = Effect(
-                cells.jurisdictions[j], "percent change", "percent", percent_change(tau_a[:, a]), threshold
-            ).summary
-        per.append(row)
-    out["per_adopter"] = per
-    return out
+    measure = rec.model_measure or ("difference in log outcome" if log else "difference in outcome")
+    per = [
+        AdopterEffect(
+            adopter=cells.jurisdictions[j],
+            start=_plain(cells.periods[cells.start[j]]),
+            weight=float(w[a]),
+            effect=Effect(cells.jurisdictions[j], measure, "model", tau_a[:, a], thr_model),
+            percent=Effect(cells.jurisdictions[j], "percent change", "percent", percent_change(tau_a[:, a]), threshold)
+            if cells.log_outcome
+            else None,
+        )
+        for a, j in enumerate(cells.adopters)
+    ]
+    return Effects(
+        effect=Effect("ATT", measure, "model", att, thr_model),
+        natural=natural_effects(fit, threshold, att=att),
+        per_adopter=per,
+        percent=Effect("ATT", "percent change, exp(ATT) - 1", "percent", percent_change(att), threshold)
+        if cells.log_outcome
+        else None,
+    )
 
 
 def _plain(v):
     return v.item() if hasattr(v, "item") else v
-
-
-#: What tau measures on the model (link) scale of each non-Gaussian family.
-MODEL_MEASURES = {
-    "binomial": "difference in log odds (log odds ratio), conditional on cell and covariates",
-    "poisson": "difference in log rate (log rate ratio), conditional on cell and covariates",
-    "negbinomial": "difference in log rate (log rate ratio), conditional on cell and covariates",
-}
 
 
 class NaturalEffects(list):
@@ -269,9 +305,9 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
     For ratios and percent changes a decision threshold is a relative change (``-0.05``: a ratio
     below 0.95); difference measures carry no threshold (it is stated on the ratio).
     """
-    family = getattr(getattr(fit, "spec", None), "family", "gaussian")
+    rec = family_record(getattr(getattr(fit, "spec", None), "family", "gaussian"))
     cells = fit.cells
-    if family == "gaussian":
+    if rec.cell_model:
         if att is None:
             att = att_draws(fit.draws("tau_adopter"), cells)
         if cells.log_outcome:
@@ -282,18 +318,11 @@ def natural_effects(fit, threshold: float | None = None, *, att: np.ndarray | No
     p1, p0, w = counterfactual_means(fit)
     W = w.sum()
     m1, m0 = p1 @ w / W, p0 @ w / W
-    if family == "binomial":
-        return NaturalEffects(
-            [
-                _difference_effect("ATT", "risk difference, percentage points", 100.0 * (m1 - m0)),
-                _ratio_effect("ATT", "risk ratio", m1 / m0, threshold),
-            ]
-        )
     return NaturalEffects(
         [
-            _ratio_effect("ATT", "rate ratio", m1 / m0, threshold),
-            _difference_effect("ATT", "rate difference per 1,000 units of exposure", 1000.0 * (m1 - m0)),
-            _difference_effect("ATT", "events averted per 1,000 units of exposure", 1000.0 * (m0 - m1)),
-            _difference_effect("ATT", "events averted in the treated cells (total)", W * (m0 - m1)),
+            _ratio_effect("ATT", measure, draws, threshold)
+            if kind == "ratio"
+            else _difference_effect("ATT", measure, draws)
+            for measure, kind, draws in rec.natural(m1, m0, W)
         ]
     )

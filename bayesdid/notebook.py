@@ -50,7 +50,7 @@ class Result:
             {"att": att_draws(post["tau_adopter"], self.analysis.cells), "tau_adopter": post["tau_adopter"]}
         )
         ds["att"].attrs = {"scale": "model", "meaning": "sum_j w_j tau_adopter[j], w_j: share of treated rows"}
-        for e in self.analysis.effects.get("effect_natural", []) or []:
+        for e in self.analysis.effects.natural:
             name = e.measure
             if name in ds or np.size(e.draws) != C * D:
                 continue
@@ -97,7 +97,7 @@ class Result:
         return out
 
     def __repr__(self) -> str:
-        e = self.analysis.effects["effect"].summary
+        e = self.analysis.effects.effect.summary
         return f"<bayesdid Result: ATT median {e['median']:.4g}, 90% interval {e['eti_90'][0]:.4g} to {e['eti_90'][1]:.4g}>"
 
 

@@ -58,6 +58,7 @@ from typing import Any
 import numpy as np
 
 from .errors import PlanError
+from .model.family import family_record
 from .outputs import write_rows_csv
 
 __all__ = [
@@ -671,7 +672,7 @@ def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, 
         raise PlanError(f"plan key 'noise.run': cannot read {folder / 'summary.json'} ({exc}).") from None
     model = summary.get("model", {})
     fam = model.get("family", "gaussian")
-    if fam != "gaussian":
+    if not family_record(fam).cell_model:
         raise PlanError(
             f"plan key 'noise.run': the run folder '{folder}' fitted the {fam} family; a plan simulates "
             "the Gaussian model. Use a Gaussian pilot fit or state the noise scales."
@@ -757,7 +758,7 @@ def noise_from_pilot(
     path = Path(pilot) if Path(pilot).is_absolute() else base_dir / pilot
     try:
         study = load_study(path)
-        if study.model.family != "gaussian":
+        if not family_record(study.model.family).cell_model:
             raise PlanError(
                 f"plan key 'noise.pilot': the pilot study '{path}' uses the {study.model.family} "
                 "family; a plan simulates the Gaussian model. Use a Gaussian pilot or state the noise."

@@ -23,8 +23,9 @@ from .cells import Cells, collapse
 from .contracts import run_id
 from .crosscheck import cross_check, cross_check_not_applicable
 from .data import file_sha256, read_table
-from .effects import compute_effects
+from .effects import Effects, compute_effects
 from .errors import BayesDidError, PersistenceFallbackWarning
+from .model.family import family_record
 from .model.registry import model_priors
 from .model.structure import RHO_PRIOR, gap_structure, residual_rule
 from .model.terms import resolve_scales
@@ -63,7 +64,7 @@ class Analysis:
     study: Study
     cells: Cells
     fit: Fit
-    effects: dict
+    effects: Effects
     least_squares: dict
     priors: dict
     timing: dict
@@ -73,10 +74,10 @@ class Analysis:
     trends: object = None  # bayesdid.trends.TrendBounds
 
     def summary(self) -> dict:
-        e = self.effects
+        e = self.effects.to_dict()
         out = {
             "title": self.study.title,
-            "effect": e["effect"].summary,
+            "effect": e["effect"],
             "per_adopter": e["per_adopter"],
             "least_squares": self.least_squares,
             "diagnostics": {k: v for k, v in self.fit.diagnostics.items()},
@@ -92,7 +93,9 @@ class Analysis:
                 ),
                 "sampled_as": _sampled_as(self.fit.spec),
                 "gap_noise": gap_structure(self.cells).to_dict(),
-                **({"residual_sd": residual_rule(self.cells)} if self.fit.spec.family == "gaussian" else {}),
+                **(
+                    {"residual_sd": residual_rule(self.cells)} if family_record(self.fit.spec.family).cell_model else {}
+                ),
                 **(
                     {
                         "covariates": {
@@ -114,11 +117,9 @@ class Analysis:
         pers = persistence_summary(self.fit)
         if pers is not None:
             out["persistence"] = pers
-        if "effect_percent" in e:
-            out["effect_percent"] = e["effect_percent"].summary
-        for k in ("effect_natural",):
+        for k in ("effect_percent", "effect_natural"):  # after the rest, as summary.json has always had them
             if k in e:
-                out[k] = e[k].summary
+                out[k] = e[k]
         return out
 
 
@@ -156,7 +157,7 @@ def persistence_summary(fit) -> dict | None:
 def _sampled_as(spec) -> dict:
     """The parameterisation choices of the compiled structure (they change the sampler's path only)."""
     base = "centred" if spec.centred else "non-centred"
-    if spec.family != "gaussian":
+    if not family_record(spec.family).cell_model:
         base += ", as levels with each latent field's mean over periods folded in"
     elif spec.G == 2:
         base += ", as level and gap per jurisdiction"
@@ -238,7 +239,8 @@ def analyse(
     t0 = time.perf_counter()
     x = study.crosscheck
     ls_cells, ls_note = cells, None
-    if study.model.family != "gaussian" and "covariates" in cells.extra:
+    rec = family_record(study.model.family)
+    if not rec.cell_model and "covariates" in cells.extra:
         # Least squares on cells regresses the cells' proportions or rates; the model's covariates act
         # on the link scale, which a linear regression on cell means cannot reproduce. The cross-check
         # is then the unadjusted one, and says so.
@@ -247,10 +249,8 @@ def analyse(
         ls_cells = dataclasses.replace(cells, extra={k: v for k, v in cells.extra.items() if k != "covariates"})
         ls_note = (
             f"computed without the covariates ({study.model.covariates}): the model adjusts for them on the "
-            f"{'log-odds' if study.model.family == 'binomial' else 'log-rate'} scale, which a linear "
-            "regression on the cells' "
-            + ("proportions" if study.model.family == "binomial" else "rates")
-            + " cannot reproduce; read it as the unadjusted difference"
+            f"{rec.link_label.replace(' ', '-')} scale, which a linear regression on the cells' "
+            f"{rec.cell_quantity} cannot reproduce; read it as the unadjusted difference"
         )
     try:
         ls = (
@@ -278,7 +278,7 @@ def analyse(
         notes.append(gs.fallback)
         say("WARNING: " + gs.fallback)
         warnings.warn(gs.fallback, PersistenceFallbackWarning, stacklevel=2)
-    if fit.spec.family == "gaussian" and not fit.spec.residual:
+    if family_record(fit.spec.family).cell_model and not fit.spec.residual:
         notes.append("No separate residual sd: " + residual_rule(cells)["reason"])
     if cells.extra.get("fallback"):
         notes.append(cells.extra["fallback"])

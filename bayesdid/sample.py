@@ -23,6 +23,7 @@ import xarray as xr
 from .cells import Cells
 from .errors import DiagnosticsWarning
 from .model.registry import build_model
+from .model.registry import data_arrays as registry_data_arrays
 from .model.terms import design_data, model_spec
 from .modelcache import compile_cached
 from .study import SamplerSettings
@@ -138,14 +139,7 @@ def _data_updates(cells: Cells, scales: dict, family: str, event_times: tuple = 
     upd = {f"prior_{k}": np.asarray(float(v)) for k, v in scales.items()}
     upd["outcome_location"] = np.asarray(float(cells.outcome_mean))
     upd.update(design_data(cells, event_times))
-    if family == "gaussian":
-        from .model.gaussian import cell_arrays
-
-        upd.update(cell_arrays(cells))
-    else:  # pragma: no cover - other families register their arrays
-        from .model import families
-
-        upd.update(families.data_arrays(cells, family))
+    upd.update(registry_data_arrays(cells, family))
     return upd
 
 

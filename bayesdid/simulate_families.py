@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
+from .model.family import family_record
 from .simulate import region_names
 
 __all__ = ["CountScenario", "simulate_family"]
@@ -100,20 +101,22 @@ def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = N
         frame["score"] = score
     treat = D[jr, gr, tr]
     lin1 = lin + sc.tau * treat
-    if sc.family == "binomial":
+    rec = family_record(sc.family)
+    binomial = rec.size_role == "trials"  # successes of trials on the logit link; else counts on the log link
+    if binomial:
         size = np.full(R, float(sc.trials))
         y = rng.binomial(sc.trials, special.expit(lin1)).astype(float)
         mean1, mean0 = special.expit(lin1), special.expit(lin)
     else:
         size = rng.uniform(*sc.exposure, R)
         mu = size * np.exp(lin1)
-        if sc.family == "negbinomial":
+        if "dispersion" in rec.extra_priors:  # gamma-mixed Poisson (negative binomial) per cell
             u = rng.gamma(sc.phi, 1.0 / sc.phi, size=(J, G, T))
             mu = mu * u[jr, gr, tr]
         y = rng.poisson(mu).astype(float)
         mean1, mean0 = np.exp(lin1), np.exp(lin)
     frame["y"] = y
-    if sc.family == "binomial":
+    if binomial:
         if sc.trials > 1:
             frame["trials"] = size
     else:
@@ -129,7 +132,7 @@ def simulate_family(sc: CountScenario, seed: int, *, names: list[str] | None = N
         "treated_mean_with": p1,
         "treated_mean_without": p0,
     }
-    if sc.family == "binomial":
+    if binomial:
         truth.update(risk_difference_pp=100 * (p1 - p0), risk_ratio=p1 / p0)
     else:
         truth.update(

@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DataRoleError
+from .model.family import family_record
 from .study import Study
 
 __all__ = ["collapse_stream", "stream_sources", "partial_of_file", "merge_partials", "listing_digest", "should_stream"]
@@ -240,10 +241,11 @@ def _numbers(batch, col: str, what: str, where: str) -> np.ndarray:
 def _count_rows(y: np.ndarray, size: np.ndarray | None, roles: dict, family: str, where: str) -> np.ndarray:
     """Checks of a batch of binomial or count rows (as the in-memory checks); returns the sizes."""
     col = roles["outcome"]
-    if family == "binomial" and size is None:
+    rec = family_record(family)
+    if rec.size_role == "trials" and size is None:
         if ((y != 0) & (y != 1)).any():
             raise DataRoleError(
-                f"outcome column '{col}' must be 0 or 1 for family 'binomial' without a trials column; "
+                f"outcome column '{col}' must be 0 or 1 for family '{family}' without a trials column; "
                 f"{where} hold other values. Recode it, or name the trials in 'data.trials'."
             )
         return np.ones_like(y)
@@ -251,7 +253,7 @@ def _count_rows(y: np.ndarray, size: np.ndarray | None, roles: dict, family: str
         raise DataRoleError(
             f"outcome column '{col}' must hold whole, non-negative counts for family '{family}'; {where} do not."
         )
-    if family == "binomial":
+    if rec.size_role == "trials":
         if (size < 1).any() or (size != np.round(size)).any():
             raise DataRoleError(
                 f"trials column '{roles['size']}' must hold whole numbers of at least 1; {where} do not."
@@ -293,12 +295,9 @@ def _add_batch(
     size = dims[0] * dims[1] * dims[2]
     n_b = np.bincount(idx, minlength=size).astype(float)
     s_b = np.bincount(idx, weights=y, minlength=size)
-    if family != "gaussian":
-        sz = (
-            _numbers(batch, roles["size"], "trials" if family == "binomial" else "exposure", where)
-            if roles.get("size")
-            else None
-        )
+    rec = family_record(family)
+    if not rec.cell_model:
+        sz = _numbers(batch, roles["size"], rec.size_role, where) if roles.get("size") else None
         sz = _count_rows(y, sz, roles, family, where)
         part = {"n": n_b, "sy": s_b, "sz": np.bincount(idx, weights=sz, minlength=size), "dims": dims}
         state["acc"] = _merge_dense(state["acc"], part)
@@ -430,7 +429,8 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
     c = study.columns
     files, kind = stream_sources(study.table)
     family = study.model.family
-    size_col = c.trials if family == "binomial" else c.exposure if family != "gaussian" else None
+    rec = family_record(family)
+    size_col = getattr(c, rec.size_role) if rec.size_role else None
     roles = {
         "outcome": c.outcome,
         "jurisdiction": c.jurisdiction,
@@ -466,7 +466,7 @@ def collapse_stream(study: Study, *, cluster: str | None = None):
 
     from .cells import collapse
 
-    if family == "gaussian":
+    if rec.cell_model:
         mean, ss = (acc[k].reshape(J, G, T) for k in ("mean", "ss"))
         k = n[jj, gg, tt]
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -19,6 +19,7 @@ from typing import Any
 
 from . import frames
 from .errors import StudyError
+from .model.family import FAMILIES, FAMILY_RECORDS, families_allowing, families_reading, family_record
 
 __all__ = [
     "Columns",
@@ -39,7 +40,6 @@ __all__ = [
     "read_text_utf8",
 ]
 
-FAMILIES = ("gaussian", "binomial", "poisson", "negbinomial")
 
 #: Names of the prior scales and what each one governs (all in outcome units on the model scale).
 PRIOR_NAMES = {
@@ -593,7 +593,8 @@ def _validated(study: Study) -> Study:
         raise _where("model.family", study.model.family, f"one of {list(FAMILIES)}")
     if study.model.missing not in ("error", "drop"):
         raise _where("model.missing", study.model.missing, "'error' or 'drop'")
-    if study.model.gap_drift and study.model.family != "gaussian":
+    rec = family_record(study.model.family)
+    if study.model.gap_drift and not rec.allows("gap_drift"):
         raise _where(
             "model.gap_drift",
             True,
@@ -607,7 +608,7 @@ def _validated(study: Study) -> Study:
             "'persistent' or 'independent'",
             "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.",
         )
-    if study.model.log_outcome and study.model.family != "gaussian":
+    if study.model.log_outcome and not rec.allows("log_outcome"):
         raise _where(
             "model.log_outcome",
             True,
@@ -624,14 +625,15 @@ def _validated(study: Study) -> Study:
             "study key 'policy.target_group' is set but 'data.group' is not: name the group "
             "column for a DDD, or drop target_group for a DiD."
         )
-    if study.model.family == "poisson" or study.model.family == "negbinomial":
+    if rec.size_role == "exposure" and rec.size_required:
         if study.columns.exposure is None:
             raise StudyError(
                 f"family '{study.model.family}' needs 'data.exposure' (person-time per row); "
                 "add a column of ones if every row counts one unit."
             )
-    if study.columns.trials is not None and study.model.family != "binomial":
-        raise _where("data.trials", study.columns.trials, "no trials column unless model.family = 'binomial'")
+    if study.columns.trials is not None and rec.size_role != "trials":
+        trials_families = " or ".join(repr(n) for n, f in FAMILY_RECORDS.items() if f.size_role == "trials")
+        raise _where("data.trials", study.columns.trials, f"no trials column unless model.family = {trials_families}")
     _validate_shape(study)
     roles = {f"data.{k}": v for k, v in dataclasses.asdict(study.columns).items() if v is not None}
     seen: dict[str, str] = {}
@@ -643,7 +645,7 @@ def _validated(study: Study) -> Study:
             )
         seen[col] = key
     t = study.decision.threshold
-    if t is not None and t <= -1 and (study.model.log_outcome or study.model.family != "gaussian"):
+    if t is not None and t <= -1 and (study.model.log_outcome or rec.ratio_scale):
         scale = (
             "a log outcome (model.log_outcome = true)"
             if study.model.log_outcome
@@ -677,7 +679,7 @@ def _validate_shape(study: Study) -> None:
                     'Set data.summary = "mean" (or "proportion") when each row summarises a cell.',
                 )
     else:
-        need = {"mean": ("gaussian",), "proportion": ("binomial",), "rate": ("poisson", "negbinomial")}[summary]
+        need = families_reading(summary)
         if fam not in need:
             raise _where("model.family", fam, f"{' or '.join(repr(f) for f in need)} with data.summary = '{summary}'")
         if summary in ("mean", "proportion") and c.count is None:
@@ -737,11 +739,11 @@ def _validate_shape(study: Study) -> None:
                     "A summary row already stands for many observations; give the observation-level rows.",
                 )
     if c.unit is not None:
-        if fam != "gaussian":
+        if not family_record(fam).allows("unit"):
             raise _where(
                 "data.unit",
                 c.unit,
-                "a unit column with family 'gaussian' only",
+                f"a unit column with family {families_allowing('unit')} only",
                 f"Unit fixed effects for family '{fam}' are not supported; leave out data.unit (pooled).",
             )
         if study.model.covariates or c.weight is not None:
@@ -753,11 +755,11 @@ def _validate_shape(study: Study) -> None:
                 "Unit fixed effects are supported without covariates and weights; leave out one of them.",
             )
     if c.weight is not None:
-        if fam != "gaussian":
+        if not family_record(fam).allows("weight"):
             raise _where(
                 "data.weight",
                 c.weight,
-                "sampling weights with family 'gaussian' only",
+                f"sampling weights with family {families_allowing('weight')} only",
                 f"Weighted likelihoods for family '{fam}' are not supported; drop data.weight.",
             )
         if study.model.covariates:

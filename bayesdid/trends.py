@@ -56,6 +56,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .model.family import family_record
+
 __all__ = ["DEFAULT_MULTIPLES", "DECISION_LEVEL", "TrendBounds", "trend_bounds", "write_trends", "CSV_COLUMNS"]
 
 DEFAULT_MULTIPLES = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
@@ -216,7 +218,9 @@ def trend_bounds(
     rows = [_row(att, b, M, thr, sign) for M in multiples]
     m_zero = _bisect(lambda M: _row(att, b, M, thr, sign)["lower_95"] <= 0 <= _row(att, b, M, thr, sign)["upper_95"])
     m_dec = _bisect(lambda M: _row(att, b, M, thr, sign)["prob_beyond_threshold"] < level)
-    ratio = {"binomial": "an odds ratio", "poisson": "a rate ratio", "negbinomial": "a rate ratio"}.get(fit.spec.family)
+    rec = family_record(fit.spec.family)
+    ratio = f"an {rec.ratio_name}" if rec.ratio_name[:1] in "aeiou" else f"a {rec.ratio_name}"
+    ratio = ratio if rec.ratio_scale else None
     if threshold is not None and ratio:  # the link-scale threshold log(1 + t), read back as the ratio 1 + t
         what = f"{ratio} {'below' if threshold < 0 else 'above'} {float(np.exp(threshold)):.3g}"
     elif threshold is not None:
@@ -227,7 +231,7 @@ def trend_bounds(
         "M_zero": m_zero,
         "M_decision": m_dec,
         "M_zero_meaning": "smallest M at which the 95% interval includes zero"
-        + ("" if fit.spec.family == "gaussian" else " (on the link scale: a ratio of 1)"),
+        + (" (on the link scale: a ratio of 1)" if rec.ratio_scale else ""),
         "M_decision_meaning": f"smallest M at which P({what}) drops below {level:g}",
     }
     tb = TrendBounds("ok", "", multiples, rows, breakdown, threshold, level, scale_of(fit.spec.family), pre)
@@ -276,11 +280,10 @@ def write_trends(tb: TrendBounds, folder: Path) -> Path:
 
 def scale_of(family: str) -> str:
     """The scale the bound is computed on: the model scale for the gaussian family, the link for the others."""
-    return {
-        "binomial": "link: log odds (the interval's ends read as odds ratios exp(x))",
-        "poisson": "link: log rate (the interval's ends read as rate ratios exp(x))",
-        "negbinomial": "link: log rate (the interval's ends read as rate ratios exp(x))",
-    }.get(family, "model")
+    rec = family_record(family)
+    if not rec.ratio_scale:
+        return "model"
+    return f"link: {rec.link_label} (the interval's ends read as {rec.ratio_name}s exp(x))"
 
 
 def model_threshold(study, cells) -> float | None:
@@ -289,4 +292,4 @@ def model_threshold(study, cells) -> float | None:
     t = study.decision.threshold
     if t is None:
         return None
-    return float(np.log1p(t)) if (cells.log_outcome or study.model.family != "gaussian") else float(t)
+    return float(np.log1p(t)) if (cells.log_outcome or family_record(study.model.family).ratio_scale) else float(t)

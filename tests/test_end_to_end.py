@@ -168,3 +168,48 @@ def test_the_report_reads_a_table_by_its_declared_columns(e2e_run, tmp_path):
     secs = sections(render_report(run))
     assert "table &#x27;event_time&#x27; should have the columns" in secs["event-time"]
     assert "missing [&#x27;event_time&#x27;" in secs["event-time"]
+
+
+def _effect_text(run_dir) -> str:
+    return html.unescape(sections(render_report(run_dir))["effect"])
+
+
+@pytest.mark.parametrize("name", MATRIX)
+def test_the_natural_scale_caption_is_the_familys_and_two_probabilities_are_explained(name, e2e_run):
+    from bayesdid.model.family import family_record
+
+    case = e2e_run(name)
+    rec = family_record(case["family"])
+    text = _effect_text(case["run"])
+    s = json.loads((case["run"] / "summary.json").read_text())
+    # the natural-scale table is shown when it adds a measure to the effect table (not for a log outcome,
+    # whose percent change is the effect table itself); its caption is then the family's
+    headline = (s.get("effect_percent") or s["effect"])["measure"]
+    shown = any(n["measure"] != headline for n in s["effect_natural"])
+    assert ("On the natural scale" in text) == shown == ("effect_percent" not in s)
+    assert (rec.natural_caption in text) == shown
+    if rec.cell_model:  # a Gaussian model has no trials or exposure to average with
+        assert "trials" not in text and "exposure" not in text
+    ratio = next((n for n in s["effect_natural"] if n.get("no_effect") == 1.0), None)
+    assert (ratio is not None) == rec.ratio_scale
+    explained = "because the two average differently" in text
+    if ratio is None:
+        assert not explained
+        return
+    model_p, natural_p = f"{s['effect']['prob_gt_0']:.1%}", f"{ratio['prob_gt_1']:.1%}"
+    assert explained == (model_p != natural_p)
+    # the same run with the two probabilities apart (88% and 86%, as seen on a count DDD): explained
+    # in one sentence naming both; with them equal as shown: no sentence
+    for p_model, p_natural, expect in ((0.88, 0.86, True), (0.861, 0.8612, False)):
+        s2 = json.loads(json.dumps(s))
+        s2["effect"]["prob_gt_0"] = p_model
+        next(n for n in s2["effect_natural"] if n.get("no_effect") == 1.0)["prob_gt_1"] = p_natural
+        copy = case["run"].parent / f"two_probabilities_{p_model}"
+        shutil.rmtree(copy, ignore_errors=True)
+        shutil.copytree(case["run"], copy)
+        (copy / "summary.json").write_text(json.dumps(s2), encoding="utf-8")
+        t = _effect_text(copy)
+        assert ("because the two average differently" in t) == expect
+        if expect:
+            assert f"{p_model:.1%} on the model scale and {p_natural:.1%} for the {ratio['measure']}" in t
+        shutil.rmtree(copy)

@@ -108,7 +108,7 @@ def test_one_structure_for_demo_and_simulations(poisson_recovery):
 
 def test_rate_ratio_recovered_and_natural_estimands_direct(poisson_recovery):
     an, truth = poisson_recovery
-    nat = {e.measure: e for e in an.effects["effect_natural"]}
+    nat = {e.measure: e for e in an.effects.natural}
     rr = nat["rate ratio"]
     # known truth: the rate ratio over the treated cells from the true linear predictors; with a
     # fixed seed the posterior mean is within 3 posterior sd of it (a 3-sd band, common practice)
@@ -224,7 +224,7 @@ def test_risk_difference_recovered_and_direct(binomial_fit):
     from scipy.special import expit
 
     an, truth = binomial_fit
-    nat = {e.measure: e for e in an.effects["effect_natural"]}
+    nat = {e.measure: e for e in an.effects.natural}
     rd = nat["risk difference, percentage points"]
     # known truth from the generator's own linear predictors; 3 posterior sd (common practice)
     assert abs(rd.summary["mean"] - truth["risk_difference_pp"]) < 3 * rd.summary["sd"]
@@ -235,7 +235,7 @@ def test_risk_difference_recovered_and_direct(binomial_fit):
     # recomputing from the fit alone gives the same draws
     again = natural_effects(an.fit, -0.1)
     np.testing.assert_allclose(again[0].draws, rd.draws)
-    assert "log odds" in an.effects["effect"].measure
+    assert "log odds" in an.effects.effect.measure
 
 
 @pytest.mark.slow

@@ -65,7 +65,7 @@ def test_gruber_table3_least_squares_and_posterior(tmp_path):
     ddd = (1.513 - 1.547) - (1.397 - 1.369) - ((1.748 - 1.759) - (1.627 - 1.630))
     assert ddd == pytest.approx(-0.054, abs=1e-9)
     assert an.least_squares["estimate"] == pytest.approx(ddd, abs=1e-9)
-    e = an.effects["effect"].summary
+    e = an.effects.effect.summary
     # posterior mean within 0.005 when cells are large (issue target); MC error of the mean is
     # sd / sqrt(ESS) ~ 0.02 / sqrt(400) = 0.001, well inside the tolerance
     assert abs(e["mean"] - ddd) < 0.005
@@ -93,7 +93,7 @@ def test_organ_donations_did(tmp_path, organ_donations):
     assert ref == pytest.approx(-0.02246, abs=5e-6)
     an = analyse(st)
     assert an.least_squares["estimate"] == pytest.approx(ref, rel=1e-8)
-    assert abs(an.effects["effect"].summary["mean"] - ref) < 0.01
+    assert abs(an.effects.effect.summary["mean"] - ref) < 0.01
 
 
 @pytest.mark.parametrize(
@@ -105,12 +105,12 @@ def test_recovers_known_tau(tmp_path_factory, groups, starts):
     sc = Scenario(jurisdictions=25, periods=8, groups=groups, starts=starts, tau=-0.3, gap_sd=0.05, rows_per_cell=40)
     st, cells, _, truth = sim_study(tmp_path_factory, sc, 21, "rec", draws=500, tune=500, seed=3)
     an = analyse(st, cells=cells)
-    e = an.effects["effect"].summary
+    e = an.effects.effect.summary
     # the truth lies within 4 posterior sds (a calibrated posterior fails this with p < 1e-4)
     assert abs(e["mean"] - truth["tau"]) < 4 * e["sd"]
     assert e["eti_95"][0] < truth["tau"] < e["eti_95"][1] or abs(e["mean"] - truth["tau"]) < 3 * e["sd"]
     assert e["prob_lt_0"] > 0.95
-    assert len(an.effects["per_adopter"]) == len(starts)
+    assert len(an.effects.per_adopter) == len(starts)
 
 
 def test_same_seed_same_draws_and_loglik_matches_pymc(tmp_path_factory):

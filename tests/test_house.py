@@ -9,7 +9,8 @@ the notebook API and the package's own facade, bayesdid/__init__.py). A module m
 layer and those below, never one above; within a layer the graph must have no cycle. Importing
 ``a.b.c`` also counts as importing the package ``a.b`` (Python runs its ``__init__`` first), except the
 root facade. ``model.structure`` (numpy rules read off the cells) sits on the cells floor: the
-collapse reads it. Every module of the package must be placed here, so a new module has to be
+collapse reads it; ``model.family`` (the family records, no imports) sits on the foundation: the study
+file and the data checks read it. Every module of the package must be placed here, so a new module has to be
 given its floor.
 """
 
@@ -34,9 +35,10 @@ LAYERS = [
             "bayesdid.modelcache",
             "bayesdid.study",
             "bayesdid.model",
+            "bayesdid.model.family",
             "bayesdid.lifeline",
         ],
-    ),  # the model package's __init__ imports nothing
+    ),  # the model package's __init__ imports nothing; model.family (the family records) imports nothing
     (
         "data",
         [
@@ -256,3 +258,90 @@ def test_the_checks_can_fail():
     g = {"bayesdid.study": {"bayesdid.cli"}, "bayesdid.cli": {"bayesdid.study"}}
     assert upward(g) == ["bayesdid.study (foundation) imports bayesdid.cli (interface)"]
     assert cycles(g) == [["bayesdid.cli", "bayesdid.study"]]
+
+
+# --- no branch on a family's name outside model/ ------------------------------------------------------
+#
+# The rule: in every module of the package outside bayesdid/model/, a string literal that is a family
+# name (one of model.family.FAMILIES) must not be
+#   * an operand of a comparison (==, !=, in, not in, is), directly or as an element of a tuple, list
+#     or set that is an operand (`fam == "binomial"`, `fam in ("poisson", "negbinomial")`);
+#   * a key of a dict literal (`{"binomial": ...}`), a dict comprehension key, or a subscript
+#     (`TABLE["poisson"]`);
+#   * a `match` case value.
+# Allowed: a family name as a value (a default argument `family="gaussian"`, the study file's default,
+# a bench case naming the family it runs) and inside messages. No module is exempt: the study file
+# checks the key against `FAMILIES` (a name, not a literal) and asks the record for everything else.
+# What a module needs of a family it asks the family's record (model.family.Family).
+
+MODEL_DIR = ROOT / "model"
+
+
+def family_branches(source: str, names) -> list[tuple[int, str]]:
+    """(line, what) of every family-name literal used as a comparison operand, dict key, subscript or case."""
+    names = set(names)
+    tree = ast.parse(source)
+    out = []
+
+    def lit(node):
+        return isinstance(node, ast.Constant) and isinstance(node.value, str) and node.value in names
+
+    def lits(node):
+        if lit(node):
+            return [node]
+        if isinstance(node, (ast.Tuple, ast.List, ast.Set)):
+            return [e for e in node.elts if lit(e)]
+        return []
+
+    for node in ast.walk(tree):
+        found = []
+        if isinstance(node, ast.Compare):
+            for operand in [node.left, *node.comparators]:
+                found += [(n, "compared") for n in lits(operand)]
+        elif isinstance(node, ast.Dict):
+            found += [(k, "dict key") for k in node.keys if k is not None and lit(k)]
+        elif isinstance(node, ast.DictComp):
+            found += [(n, "dict key") for n in lits(node.key)]
+        elif isinstance(node, ast.Subscript):
+            found += [(n, "subscript") for n in lits(node.slice)]
+        elif isinstance(node, ast.MatchValue):
+            found += [(n, "match case") for n in lits(node.value)]
+        out += [(n.lineno, f"{what} {n.value!r}") for n, what in found]
+    return sorted(out)
+
+
+def test_no_module_outside_model_branches_on_a_family_name():
+    from bayesdid.model.family import FAMILIES
+
+    bad = []
+    for path in sorted(modules().values()):
+        if path.is_relative_to(MODEL_DIR):
+            continue
+        for line, what in family_branches(path.read_text(encoding="utf-8"), FAMILIES):
+            bad.append(f"{path.relative_to(ROOT.parent)}:{line}: {what}")
+    assert not bad, "ask the family record (bayesdid/model/family.py) instead of the name:\n" + "\n".join(bad)
+
+
+def test_the_family_branch_rule_can_fail():
+    src = (
+        'def f(fam, family="gaussian"):\n'
+        '    if fam == "binomial":\n'
+        "        pass\n"
+        '    if fam in ("poisson", "negbinomial"):\n'
+        "        pass\n"
+        '    t = {"poisson": 1}\n'
+        '    u = T["gaussian"]\n'
+        "    match fam:\n"
+        '        case "binomial":\n'
+        "            pass\n"
+        '    return f"family {fam!r} is not \'gaussian\'", "gaussian"\n'
+    )
+    got = family_branches(src, ("gaussian", "binomial", "poisson", "negbinomial"))
+    assert got == [
+        (2, "compared 'binomial'"),
+        (4, "compared 'negbinomial'"),
+        (4, "compared 'poisson'"),
+        (6, "dict key 'poisson'"),
+        (7, "subscript 'gaussian'"),
+        (9, "match case 'binomial'"),
+    ]

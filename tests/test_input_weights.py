@@ -183,7 +183,7 @@ def test_the_att_has_one_weight_rule_for_the_headline_the_run_folder_and_the_che
     tau = rng.normal(-0.3, 0.1, size=(2, 250, len(cells.adopters)))  # (chain, draw, adopter)
     post = xr.DataArray(tau, dims=("chain", "draw", "adopter"), coords={"adopter": ["a0", "a1"]})
     fit = SimpleNamespace(cells=cells, draws=lambda name: tau.reshape(-1, tau.shape[-1]), spec=None)
-    headline = compute_effects(fit)["effect"].draws
+    headline = compute_effects(fit).effect.draws
     in_folder = att_draws(post, cells).values.reshape(-1)
     in_checks = tau.reshape(-1, tau.shape[-1]) @ effect_weights(cells)
     np.testing.assert_allclose(headline, in_folder, rtol=1e-13)

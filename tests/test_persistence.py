@@ -285,7 +285,7 @@ def test_castle_one_row_per_cell_fits_cleanly(tmp_path, castle_one_adopter):
     before = sample.COMPILES["count"]
     other = sorted(set(df["state"]) - {adopter})[0]
     pl = analyse(st.replace(policy={"adopters": {other: 2005}}), full_cross_check=False)
-    assert sample.COMPILES["count"] == before and np.isfinite(pl.effects["effect"].summary["mean"])
+    assert sample.COMPILES["count"] == before and np.isfinite(pl.effects.effect.summary["mean"])
 
 
 # ---- parallel-trends sensitivity (bayesdid.trends) ------------------------------------------------------
@@ -320,7 +320,7 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     assert 0.7 < m0 < 1.02
     grid = {r["M"]: r for r in tb.rows}
     assert grid[0.5]["lower_95"] > 0 > grid[1.5]["lower_95"]  # excludes zero at 0.5, includes it at 1.5
-    assert grid[0.0]["lower_95"] == pytest.approx(an.effects["effect"].summary["eti_95"][0], abs=1e-12)
+    assert grid[0.0]["lower_95"] == pytest.approx(an.effects.effect.summary["eti_95"][0], abs=1e-12)
     # the command on the run folder the fit writes: same numbers, its own grid, CSV and summary section
     import json
 
@@ -344,7 +344,7 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     st2, cells2, _, _ = sim_study(tmp_path_factory, clean, 9, "nodrift", draws=400, tune=400, seed=4)
     an2 = analyse(st2, cells=cells2, full_cross_check=False)
     row0 = an2.trends.rows[0]
-    e = an2.effects["effect"].summary
+    e = an2.effects.effect.summary
     assert row0["M"] == 0.0
     assert [row0["lower_95"], row0["upper_95"]] == e["eti_95"]  # M = 0 is the main fit, exactly
     assert row0["prob_reduction"] == e["prob_lt_0"]
@@ -482,13 +482,13 @@ def test_drift_recovered_and_effect_freed_of_it(tmp_path_factory):
 
     sc = Scenario(**_DRIFT, tau=-0.1, gap_sd=0.03, adopter_trend=0.05, trend_sd=0.005)
     st, cells, _, _ = sim_study(tmp_path_factory, sc, 6, "adrift", draws=400, tune=400, seed=2)
-    plain = analyse(st, cells=cells, full_cross_check=False).effects["effect"].summary
+    plain = analyse(st, cells=cells, full_cross_check=False).effects.effect.summary
     assert not (plain["eti_95"][0] <= -0.1 <= plain["eti_95"][1])
     assert plain["mean"] > 0.05  # pulled up by the drift
     st_d = st.replace(model={"gap_drift": True})
     cells_d = collapse(st_d, pd_read(st_d))
     an = analyse(st_d, cells=cells_d, full_cross_check=False)
-    e = an.effects["effect"].summary
+    e = an.effects.effect.summary
     assert e["eti_95"][0] <= -0.1 <= e["eti_95"][1]
     g = an.fit.draws("gap_drift")[:, cells_d.adopters[0]]
     assert abs(np.median(g) - 0.05) < 0.015
@@ -565,12 +565,12 @@ def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
     assert tb.status == "ok", tb.reason
     assert tb.scale.startswith("link: log rate")
     assert tb.pre_change[names[0]]["median"] == pytest.approx(0.2, abs=0.04)
-    assert an.effects["effect"].summary["mean"] == pytest.approx(0.7, abs=0.1)
+    assert an.effects.effect.summary["mean"] == pytest.approx(0.7, abs=0.1)
     m0 = tb.breakdown["M_zero"]
     assert 0.7 < m0 < 1.02
     grid = {r["M"]: r for r in tb.rows}
     assert grid[0.5]["lower_95"] > 0 > grid[1.5]["lower_95"]
-    e = an.effects["effect"].summary
+    e = an.effects.effect.summary
     assert [grid[0.0]["lower_95"], grid[0.0]["upper_95"]] == e["eti_95"]  # M = 0 is the main fit, exactly
     run = write_run(an, tmp_path / "run")
     s_json = json.loads((run / "summary.json").read_text())["parallel_trends"]

@@ -52,7 +52,7 @@ def _gaussian_frame(rows_per_cell, seed):
     return frame, truth
 
 
-def _count_frame(family, rows_per_cell, seed):
+def _count_frame(family, rows_per_cell, seed, level=(-2.0, -1.6)):
     from ..simulate_families import CountScenario, simulate_family
 
     sc = CountScenario(
@@ -61,7 +61,7 @@ def _count_frame(family, rows_per_cell, seed):
         periods=8,
         starts={0: 4, 1: 5},
         rows_per_cell=rows_per_cell,
-        level=(-1.5, -1.2) if family == "binomial" else (-2.0, -1.6),
+        level=level,
     )
     return simulate_family(sc, seed)
 
@@ -96,22 +96,19 @@ def bench_families(*, quick: bool = False, small: int | None = None, large: int 
     large = large or (200_000 if quick else 2_000_000)
     cells_n = 20 * 2 * 8
     out = {"benchmark": "families", "small_rows": small, "large_rows": large, "target_ratio": 2.0}
+    # (family, covariates, study keys, table maker, label of the covariates)
     cases = [
-        ("binomial", "C(sex) + C(risk)", {}),
-        ("poisson", "C(sex) + C(risk)", {"exposure": "exposure"}),
-        ("gaussian", "age + income + score", {}),
+        ("binomial", "C(sex) + C(risk)", {}, lambda r: _count_frame("binomial", r, 7, (-1.5, -1.2)), "discrete2"),
+        ("poisson", "C(sex) + C(risk)", {"exposure": "exposure"}, lambda r: _count_frame("poisson", r, 7), "discrete2"),
+        ("gaussian", "age + income + score", {}, lambda r: _gaussian_frame(r, 7), "continuous3"),
     ]
-    for family, cov, kw in cases:
+    for family, cov, kw, make, what in cases:
         res = {}
         for label, rows in (("small", small), ("large", large)):
-            rpc = max(1, rows // cells_n)
-            if family == "gaussian":
-                frame, truth = _gaussian_frame(rpc, 7)
-            else:
-                frame, truth = _count_frame(family, rpc, 7)
+            frame, truth = make(max(1, rows // cells_n))
             res[label] = _time_one(family, frame, truth, cov, **kw)
             del frame
-        key = f"{family}_{'continuous3' if family == 'gaussian' else 'discrete2'}"
+        key = f"{family}_{what}"
         out[f"{key}_sample_ratio"] = res["large"]["sample_s"] / res["small"]["sample_s"]
         out[f"{key}_detail"] = res
     out["all_within_target"] = all(v <= 2.0 for k, v in out.items() if k.endswith("_sample_ratio"))

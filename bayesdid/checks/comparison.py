@@ -36,9 +36,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..cells import Cells
-from ..model import families
-from ..model.gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
-from ..model.terms import mean_from_draws
+from ..model.twins import gap_noise_draws
 from ..sample import sample_draws_many
 from ..study import SamplerSettings
 from .base import CheckResult, earliest_start, effect_weights, frame, interval_row, not_applicable, reseed
@@ -49,41 +47,6 @@ __all__ = ["comparison_check", "gap_noise_draws", "Z_LIMIT"]
 NAME = "comparison"
 Z_LIMIT = 3.0
 MAX_REFITS = 5
-
-
-def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
-    """Draws of e[j,t] from its conditional posterior (module docstring): shape (S, J, T)."""
-    if fit.spec.family != "gaussian":  # latent fields: drawn with the model (their period means are in the baselines)
-        return families.gap_noise_draws(fit)
-    cells = fit.cells
-    arr = cell_arrays(cells)
-    m = mean_from_draws(fit)
-    sigma = residual_draws(fit)
-    sg2 = fit.draws("sigma_gap")[:, None, None] ** 2
-    q = cells.target
-    dq = arr["ybar_q"][None] - m[:, :, q, :]
-    C = sigma[:, q][:, None, None] ** 2 * arr["inv_n_q"][None]
-    if cells.design == "DDD":
-        r = cells.reference
-        s2 = fit.draws("sigma_shock")[:, None, None] ** 2
-        A = sigma[:, r][:, None, None] ** 2 * arr["inv_n_r"][None] + s2
-        dr = arr["ybar_r"][None] - m[:, :, r, :]
-        k = arr["p_r"][None] * s2 / A
-    else:
-        s2 = np.zeros_like(sg2)
-        dr = np.zeros_like(dq)
-        k = np.zeros_like(dq)
-    V = C + s2 + sg2 - k * s2
-    if getattr(fit.spec, "gap", "independent") == "persistent":
-        # AR(1) gap noise: draw each jurisdiction's whole path jointly (forward filter, backward sampling)
-        o = arr["p_q"][None] * arr["w"][None] + 0.0 * dq
-        return ar1_smoothing_draws(
-            dq - k * dr, C + (s2 - k * s2), o, sg2, fit.draws("rho")[:, None, None], rng.standard_normal(dq.shape)
-        )
-    pq = arr["p_q"][None]
-    mean = pq * sg2 * (dq - k * dr) / V
-    var = np.maximum(sg2 - pq * sg2 * sg2 / V, 0.0)
-    return mean + np.sqrt(var) * rng.standard_normal(mean.shape)
 
 
 def comparison_check(

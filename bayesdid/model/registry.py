@@ -1,8 +1,12 @@
 """The family registry: how each outcome family's model is built, what it has, and what it reports.
 
-:func:`build_model` dispatches on the family (Gaussian on cells, the others on records) and
-:func:`pointwise_loglik` likewise; the tables below say which priors and natural-scale measures each
-family has, so nothing outside ``model/`` needs to branch on the family's name for these.
+Each family is one :class:`~bayesdid.model.family.Family` record (defined in :mod:`.family`, which
+imports nothing of the package so that the study file and the data checks below the model can read
+it; re-exported here): which sufficient statistics its cells keep, the size column of its rows, its
+link and whether the effect reads as a ratio, its natural-scale measures, the priors and study
+options it has. :func:`build_model`, :func:`data_arrays` and :func:`pointwise_loglik` dispatch on
+the record (the cell model, or records with latent fields), so nothing outside ``model/`` needs to
+branch on the family's name (``tests/test_house.py`` fails on any such branch).
 
 The model of every family shares the hierarchical terms (:mod:`.terms`); which prior scales it then
 reads depends on the family and the design:
@@ -24,29 +28,31 @@ import numpy as np
 import pymc as pm
 
 from ..cells import Cells
-from ..study import FAMILIES, PRIOR_NAMES
-from . import gaussian
+from ..study import PRIOR_NAMES
+from . import families, gaussian
 from .families import FAMILY_BUILDERS, build_family
-from .families import pointwise_loglik as _records_loglik
+from .family import FAMILIES, FAMILY_RECORDS, Family, family_record
 from .gaussian import build_gaussian
 from .terms import ModelSpec, coords_of, model_spec
 
-__all__ = ["FAMILY_PRIORS", "model_priors", "study_priors", "NATURAL_MEASURES", "build_model", "pointwise_loglik"]
+__all__ = [
+    "Family",
+    "FAMILIES",
+    "FAMILY_RECORDS",
+    "family_record",
+    "FAMILY_PRIORS",
+    "model_priors",
+    "study_priors",
+    "NATURAL_MEASURES",
+    "build_model",
+    "data_arrays",
+    "pointwise_loglik",
+]
 
-#: Priors of each family beyond the shared ones (see the module docstring).
-FAMILY_PRIORS = {"gaussian": ("residual",), "binomial": (), "poisson": (), "negbinomial": ("dispersion",)}
-#: What each family reports on the natural scale (summary.json ``effect_natural``).
-NATURAL_MEASURES = {
-    "gaussian": ("the ATT in outcome units, or the percent change exp(ATT) - 1 for a log outcome",),
-    "binomial": ("risk difference, percentage points", "risk ratio"),
-    "poisson": (
-        "rate ratio",
-        "rate difference per 1,000 units of exposure",
-        "events averted per 1,000 units of exposure",
-        "events averted in the treated cells (total)",
-    ),
-}
-NATURAL_MEASURES["negbinomial"] = NATURAL_MEASURES["poisson"]
+#: Priors of each family beyond the shared ones (see the module docstring), read off the records.
+FAMILY_PRIORS = {n: f.extra_priors for n, f in FAMILY_RECORDS.items()}
+#: What each family reports on the natural scale (summary.json ``effect_natural``), read off the records.
+NATURAL_MEASURES = {n: f.natural_measures for n, f in FAMILY_RECORDS.items()}
 _SHARED = ("intercept", "baseline_spread", "period", "gap_noise", "effect")
 
 
@@ -57,9 +63,7 @@ def model_priors(
 
     ``drift``: the model has pooled linear gap drifts; ``residual=False``: a Gaussian model without a
     separate residual sd (cells of one row)."""
-    if family not in FAMILIES:
-        raise ValueError(f"unknown family '{family}'; choose one of {list(FAMILIES)}")
-    have = set(_SHARED) | set(FAMILY_PRIORS[family])
+    have = set(_SHARED) | set(family_record(family).extra_priors)
     if not residual:
         have.discard("residual")
     if drift:
@@ -100,7 +104,7 @@ def build_model(
         if spec.effects == "att"
         else {"effects": "event_time", "event_times": spec.event_times, "event_pooled": spec.event_pooled}
     )
-    if family == "gaussian":
+    if family_record(family).cell_model:
         return build_gaussian(
             cells, scales, coords_of(cells, spec.event_times), gap=spec.gap, residual=spec.residual, **terms
         ), spec
@@ -120,6 +124,15 @@ def pointwise_loglik(fit) -> np.ndarray:
     """Log-likelihood of each jurisdiction-period for every draw: (S, J, T). Gaussian: the shock and gap
     noise integrated out (:func:`bayesdid.model.gaussian.pointwise_loglik`); other families: given the
     latent fields (:func:`bayesdid.model.families.pointwise_loglik`)."""
-    if fit.spec.family == "gaussian":
+    if family_record(fit.spec.family).cell_model:
         return gaussian.pointwise_loglik(fit)
-    return _records_loglik(fit)
+    return families.pointwise_loglik(fit)
+
+
+def data_arrays(cells: Cells, family: str) -> dict[str, np.ndarray]:
+    """The data arrays the model of ``family`` reads beyond the design: the cells' moment sums for the cell
+    model (:func:`bayesdid.model.gaussian.cell_arrays`), the records otherwise
+    (:func:`bayesdid.model.families.data_arrays`)."""
+    if family_record(family).cell_model:
+        return gaussian.cell_arrays(cells)
+    return families.data_arrays(cells, family)

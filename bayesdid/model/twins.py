@@ -12,11 +12,13 @@ from __future__ import annotations
 
 import numpy as np
 
+from .families import gap_noise_draws as gap_path_draws
 from .families import replicate_gap_path
-from .gaussian import residual_draws
+from .family import family_record
+from .gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
 from .terms import mean_from_draws
 
-__all__ = ["replicate_gaps"]
+__all__ = ["replicate_gaps", "gap_noise_draws"]
 
 
 def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
@@ -25,7 +27,7 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
     Gaussian: as in the module docstring. Other families: on the link scale, records replicated from
     the family itself (:func:`bayesdid.model.families.replicate_gap_path`).
     """
-    if fit.spec.family != "gaussian":
+    if not family_record(fit.spec.family).cell_model:
         return replicate_gap_path(fit, j, periods, rng)
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
@@ -57,3 +59,43 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
         return observed, expected, y_q - y_r
     expected = m[:, j, q, periods]
     return mean[j, q, periods], expected, expected + e + eps_q
+
+
+def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
+    """Draws of the gap noise e[j,t] from its conditional posterior: shape (S, J, T).
+
+    The cell model integrates e out; it is drawn back given the two cell means of each
+    jurisdiction-period (formulas in :mod:`bayesdid.checks.comparison`). Families with latent
+    fields keep e in the posterior; its draws are used as they are (their period means are in the
+    baselines)."""
+    if not family_record(fit.spec.family).cell_model:
+        return gap_path_draws(fit)
+    cells = fit.cells
+    arr = cell_arrays(cells)
+    m = mean_from_draws(fit)
+    sigma = residual_draws(fit)
+    sg2 = fit.draws("sigma_gap")[:, None, None] ** 2
+    q = cells.target
+    dq = arr["ybar_q"][None] - m[:, :, q, :]
+    C = sigma[:, q][:, None, None] ** 2 * arr["inv_n_q"][None]
+    if cells.design == "DDD":
+        r = cells.reference
+        s2 = fit.draws("sigma_shock")[:, None, None] ** 2
+        A = sigma[:, r][:, None, None] ** 2 * arr["inv_n_r"][None] + s2
+        dr = arr["ybar_r"][None] - m[:, :, r, :]
+        k = arr["p_r"][None] * s2 / A
+    else:
+        s2 = np.zeros_like(sg2)
+        dr = np.zeros_like(dq)
+        k = np.zeros_like(dq)
+    V = C + s2 + sg2 - k * s2
+    if getattr(fit.spec, "gap", "independent") == "persistent":
+        # AR(1) gap noise: draw each jurisdiction's whole path jointly (forward filter, backward sampling)
+        o = arr["p_q"][None] * arr["w"][None] + 0.0 * dq
+        return ar1_smoothing_draws(
+            dq - k * dr, C + (s2 - k * s2), o, sg2, fit.draws("rho")[:, None, None], rng.standard_normal(dq.shape)
+        )
+    pq = arr["p_q"][None]
+    mean = pq * sg2 * (dq - k * dr) / V
+    var = np.maximum(sg2 - pq * sg2 * sg2 / V, 0.0)
+    return mean + np.sqrt(var) * rng.standard_normal(mean.shape)

@@ -75,11 +75,8 @@ def _is_percent(summary) -> bool:
 
 def _model_scale(run: RunFolder) -> str:
     m = run.summary.get("model") or {}
-    fam = m.get("family", "gaussian")
-    if fam == "binomial":
-        return "log odds"
-    if fam in ("poisson", "negbinomial"):
-        return "log rate"
+    if run.family.link_label:
+        return run.family.link_label
     return "log outcome" if m.get("log_outcome") else "outcome units"
 
 

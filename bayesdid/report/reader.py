@@ -28,6 +28,7 @@ from ..contracts import (
     check_columns,
 )
 from ..errors import ReportError
+from ..model.family import FAMILIES, FAMILY_RECORDS
 
 __all__ = ["RunFolder", "FIT_COMMAND", "CHECKS_COMMAND", "SWEEP_COMMAND"]
 
@@ -89,6 +90,11 @@ class RunFolder:
             if key not in self.summary:
                 raise ReportError(f"'{sp}' lacks the '{key}' entry a fit writes; {fix}")
         s = self.summary
+        fam = (s.get("model") or {}).get("family", "gaussian")
+        if fam not in FAMILY_RECORDS:
+            raise ReportError(f"'{sp}' names family '{fam}', not one of {list(FAMILIES)}; {fix}")
+        #: the fitted family's record (:mod:`bayesdid.model.family`): scales, measures, captions
+        self.family = FAMILY_RECORDS[fam]
         self.effect = _typed(EffectSummary, s["effect"], f"{sp}: 'effect'", fix)
         self.effect_percent = (
             _typed(EffectSummary, s["effect_percent"], f"{sp}: 'effect_percent'", fix)

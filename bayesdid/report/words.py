@@ -13,6 +13,8 @@ Three readings of one result, chosen by :func:`evidence`:
 
 from __future__ import annotations
 
+from ..model.family import family_record
+
 __all__ = ["headline", "headline_of", "names", "evidence", "count_words", "check_flags"]
 
 _NUMBER_WORDS = {
@@ -63,7 +65,7 @@ def evidence(summary: dict) -> str:
 
 def _natural(summary: dict, kind: str) -> dict | None:
     """The ``effect_natural`` entry whose measure names ``kind`` ("ratio" or "difference")."""
-    if (summary.get("model") or {}).get("family", "gaussian") == "gaussian":
+    if family_record((summary.get("model") or {}).get("family", "gaussian")).cell_model:
         return None
     for e in summary.get("effect_natural") or []:
         if kind in str(e.get("measure", "")):

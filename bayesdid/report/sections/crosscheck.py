@@ -25,16 +25,6 @@ _LS_LABELS = [
 ]
 
 
-#: family -> (natural measure of the posterior on the least-squares scale, factor from the least-squares
-#: estimate to that measure, axis label). Least squares on cells of a binomial or count outcome
-#: regresses the cells' proportions or rates (weighted by trials or exposure): a risk or rate difference.
-_LS_SCALES = {
-    "binomial": ("risk difference, percentage points", 100.0, "risk difference (percentage points)"),
-    "poisson": ("rate difference per 1,000 units of exposure", 1000.0, "rate difference per 1,000 units of exposure"),
-}
-_LS_SCALES["negbinomial"] = _LS_SCALES["poisson"]
-
-
 def _crosscheck_section(run: RunFolder) -> str:
     s = run.summary
     ls = s.get("least_squares") or {}
@@ -43,11 +33,13 @@ def _crosscheck_section(run: RunFolder) -> str:
         return f"<p>The least-squares cross-check does not apply to this study: {esc(why)}</p>"
     if "estimate" not in ls:
         return _absent("the least-squares cross-check (summary.json has no least_squares estimate).", FIT_COMMAND)
-    fam = (s.get("model") or {}).get("family", "gaussian")
+    # Least squares on cells of a binomial or count outcome regresses the cells' proportions or rates
+    # (weighted by trials or exposure): a risk or rate difference, the record's ``difference_scale``
+    rec = run.family
     e = run.effect
     f = 1.0
-    if fam in _LS_SCALES:
-        measure, f, axis = _LS_SCALES[fam]
+    if rec.difference_scale is not None:
+        measure, f, axis = rec.difference_scale
         nat = next((n for n in run.natural if n.measure == measure), None)
         if nat is None:
             return (
@@ -58,9 +50,8 @@ def _crosscheck_section(run: RunFolder) -> str:
         e = nat
         scale_note = (
             f"Both on one scale, the {axis}: the least-squares regression on the cells' "
-            f"{'proportions' if fam == 'binomial' else 'rates'} (weighted by their "
-            f"{'trials' if fam == 'binomial' else 'exposure'}) estimates a "
-            f"{'risk' if fam == 'binomial' else 'rate'} difference, multiplied here by {f:g}; the "
+            f"{rec.cell_quantity} (weighted by their {rec.size_role}) estimates a "
+            f"{measure.split()[0]} difference, multiplied here by {f:g}; the "
             "posterior's is the difference of its counterfactual predictions over the treated cells, "
             "with and without the policy."
         )

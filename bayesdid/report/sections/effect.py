@@ -26,7 +26,7 @@ def _effect_section(run: RunFolder) -> str:
         )
         unit = nm["unit"] or "outcome units"
         xlabel = f"change in {nm['outcome']} (%), {who}" if pct else f"change in {nm['outcome']} ({unit}), {who}"
-        if (s.get("model") or {}).get("family", "gaussian") != "gaussian":  # the ATT is on the link scale
+        if run.family.ratio_scale:  # the ATT is on the link scale
             xlabel = f"effect on {nm['outcome']}, {_model_scale(run)} scale (log of the ratio), {who}"
         out.append(
             _img(
@@ -147,12 +147,32 @@ def _effect_section(run: RunFolder) -> str:
                 nrows,
             )
         )
-        out.append(
-            '<p class="caption">From counterfactual predictions over the treated cells, with and without '
-            "the policy, averaged with the cells' own trials or exposure.</p>"
-        )
+        out.append(f'<p class="caption">{esc(run.family.natural_caption)}</p>')
+        why = _two_probabilities(run, e, nat)
+        if why:
+            out.append(f"<p>{esc(why)}</p>")
     out.extend(_persistence_words(s))
     return "\n".join(out)
+
+
+def _two_probabilities(run: RunFolder, e, nat) -> str:
+    """One plain sentence on why the model-scale and natural-scale probabilities of an increase differ
+    (binomial and count families; only when they differ as shown, to a tenth of a percent)."""
+    ratio = next((n for n in nat if n.is_ratio), None)
+    if not run.family.ratio_scale or ratio is None or e.prob_gt_0 is None:
+        return ""
+    model_p, natural_p = e.prob_gt_0, ratio.prob_above_no_effect()
+    if natural_p is None or f"{model_p:.1%}" == f"{natural_p:.1%}":
+        return ""
+    size = run.family.size_role
+    return (
+        f"The probability of an increase is {model_p:.1%} on the model scale and {natural_p:.1%} for the "
+        f"{ratio.measure} because the two average differently: the model-scale effect averages each adopting "
+        f"jurisdiction's {run.family.link_label} difference, while the {ratio.measure} divides the treated "
+        f"cells' predicted outcome with the policy by that without it, summed over the cells by their "
+        f"{size}, so cells with more {size} and higher {run.family.cell_quantity} count more; both are "
+        "right for their own question."
+    )
 
 
 def _persistence_words(s: dict) -> list[str]:
