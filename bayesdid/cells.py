@@ -461,7 +461,9 @@ def _gap_of(study: Study, cells: Cells):
     from .model.structure import resolve_gap
 
     asked = study.model.gap_over_time
-    return resolve_gap(cells, asked, study.model.gap_drift, warn=False)  # warned when the model is fitted (run.analyse)
+    return resolve_gap(
+        cells, asked, study.model.gap_drift, scale=study.model.gap_scale, warn=False
+    )  # warned when the model is fitted (run.analyse)
 
 
 def collapse(study: Study, frame: pd.DataFrame) -> Cells:

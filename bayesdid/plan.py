@@ -92,6 +92,7 @@ DEFAULT_NOISE = {
     "period": 0.1,  # sd of the common period effects
     "group_period": 0.05,  # sd of the target group's own period effects (DDD)
     "rho": 0.0,  # AR(1) correlation of the gap noise over periods within a jurisdiction
+    "omega": 0.0,  # sd of the log gap-noise scales across jurisdictions (0: one scale for all)
 }
 NOISE_MEANING = {
     "gap": "sd of the structural gap noise of each jurisdiction-period (the target group's; what the effect "
@@ -102,6 +103,7 @@ NOISE_MEANING = {
     "period": "sd of the common period effects",
     "group_period": "sd of the target group's own period effects (DDD only)",
     "rho": "correlation of the gap noise from one period to the next within a jurisdiction (AR(1))",
+    "omega": "sd of the log of the jurisdictions' gap-noise scales around log gap (0: one scale for all)",
 }
 #: The inner fits' sampler: one chain (both cores go to two data sets at once), 300 draws after 200
 #: tuning steps. Measured on the demo layout: median bulk ESS of the ATT 283, and the expected net
@@ -653,7 +655,7 @@ def noise_from_run(run: Any, base_dir: Path, *, design: str, log_outcome: bool, 
     """Noise scales from the posterior of a run folder written by ``bayesdid fit`` (key ``noise.run``).
 
     Reads ``sigma_gap``, ``sigma_shock`` (DDD), ``sigma`` (per group) and ``sigma_baseline`` draws, and
-    ``rho`` when the model has it; the spread of the period effects of each draw gives the period
+    ``rho`` and ``omega`` (the spread of the jurisdictions' log gap-noise scales) when the model has them; the spread of the period effects of each draw gives the period
     scales. Refuses a folder of another design (DDD vs DiD), outcome scale or family.
     """
     import xarray as xr
@@ -730,6 +732,8 @@ def _noise_draws(post, design: str, rho_given: bool, key: str, what: str) -> tup
         draws["group_period"] = flat("group_period_effect").std(axis=1, ddof=1)
     if "rho" in post and not rho_given:
         draws["rho"] = flat("rho")
+    if "omega" in post:  # per-jurisdiction gap-noise scales: new jurisdictions draw theirs from the pooled law
+        draws["omega"] = flat("omega")
     if "residual" in draws and draws["residual"].shape[1] == 1:
         draws["residual"] = np.repeat(draws["residual"], 2, axis=1)
     loc = (0.0, 0.0)
@@ -855,7 +859,8 @@ def simulate_noise(frame: Layout, scales: dict, location: tuple, rng: np.random.
 
     Model of DESIGN.md, cell c = (j, g, t) with n rows each:
     mean = b[j,g] + a[t] + s[j,t] (DDD) + h[t] + e[j,t] (target group), b ~ N(location[g], baseline^2),
-    e[j, .] a stationary AR(1) with correlation rho and marginal sd gap; the cell mean of n rows is
+    e[j, .] a stationary AR(1) with correlation rho and marginal sd gap_j = gap exp(omega z_j), z_j ~ N(0, 1)
+    (gap itself when omega = 0, with no draw of z); the cell mean of n rows is
     Normal(mean, residual_g^2 / n) and the within sum of squares residual_g^2 chi^2(n - 1), independent
     (exact sufficient statistics of n Normal rows).
     """
@@ -873,6 +878,9 @@ def simulate_noise(frame: Layout, scales: dict, location: tuple, rng: np.random.
         mean += (scales["shock"] * rng.standard_normal((J, T)))[:, None, :]
         mean[:, tg, :] += scales["group_period"] * rng.standard_normal(T)[None, :]
     rho, sd = scales["rho"], scales["gap"]
+    omega = float(scales.get("omega", 0.0))
+    if omega > 0:  # each jurisdiction's own scale (the fitted model's pooled law); drawn only then
+        sd = sd * np.exp(omega * rng.standard_normal(J))
     z = rng.standard_normal((J, T))
     e = np.empty((J, T))
     e[:, 0] = sd * z[:, 0]
@@ -1313,7 +1321,8 @@ def normal_assurance(plan: Plan, layout: Layout, effect: float) -> dict:
     the variance components and uses weakly informative priors, so its assurance is slightly below
     this when the comparisons are few; with independent noise and many comparison jurisdictions the
     two agree within Monte Carlo error (tests/test_plan.py). Not given (None, with the reason) for
-    staggered starts, noise from a run folder, AR(1) noise (rho != 0), or a DDD with unequal residual sds
+    staggered starts, noise from a run folder, AR(1) noise (rho != 0), gap-noise scales that differ
+    across jurisdictions (omega != 0), or a DDD with unequal residual sds
     (the group sums then carry information about the gaps).
     """
     from scipy import stats
@@ -1326,6 +1335,8 @@ def normal_assurance(plan: Plan, layout: Layout, effect: float) -> dict:
         why = "the noise is drawn from a posterior, not stated"
     elif s["rho"] != 0:
         why = "the gap noise is persistent (rho != 0)"
+    elif s.get("omega", 0.0) != 0:
+        why = "the jurisdictions' gap-noise scales differ (omega != 0)"
     elif layout.design == "DDD" and s["residual"][0] != s["residual"][1]:
         why = "the two groups' residual sds differ"
     if why:

@@ -121,6 +121,9 @@ class Analysis:
         pers = persistence_summary(self.fit)
         if pers is not None:
             out["persistence"] = pers
+        gsc = gap_scale_summary(self.fit)
+        if gsc is not None:
+            out["gap_scales"] = gsc
         for k in ("effect_percent", "effect_natural"):  # after the rest, as summary.json has always had them
             if k in e:
                 out[k] = e[k]
@@ -155,6 +158,65 @@ def persistence_summary(fit) -> dict | None:
         "prior": f"(rho + 1)/2 ~ Beta({RHO_PRIOR['a']:g}, {RHO_PRIOR['b']:g})",
         "sentence": f"Correlation of the gap noise from one period to the next: {mean:.2f} "
         f"(95% interval {lo:.2f} to {hi:.2f}); {what}.",
+    }
+
+
+def gap_scale_summary(fit, noisiest: int = 3) -> dict | None:
+    """omega's posterior, each jurisdiction's gap-noise scale relative to the typical one, the noisiest
+    jurisdictions and one plain sentence (None when one scale is shared)."""
+    if getattr(fit.spec, "gap_scale", "shared") != "per_jurisdiction":
+        return None
+    from .model.structure import OMEGA_SCALE
+
+    omega = fit.draws("omega")
+    sg = fit.draws("sigma_gap")
+    sj = fit.draws("sigma_gap_j")  # (S, J)
+    rel = sj / sg[:, None]  # each jurisdiction's scale over the typical (median) one
+    lo, hi = (float(v) for v in np.quantile(omega, [0.025, 0.975]))
+    # typical factor between two jurisdictions' scales: exp(omega * median |z_1 - z_2|), median |N(0, 2)|
+    pair = 0.6744897501960817 * np.sqrt(2.0)
+    factor = float(np.median(np.exp(omega * pair)))
+    f_lo, f_hi = (float(np.exp(v * pair)) for v in (lo, hi))
+    names = list(fit.cells.jurisdictions)
+    med_rel = np.median(rel, axis=0)
+    order = np.argsort(-med_rel, kind="stable")
+    top = [
+        {
+            "jurisdiction": str(names[i]),
+            "relative_scale": float(med_rel[i]),
+            "adopter": bool(i in set(fit.cells.adopters)),
+        }
+        for i in order[:noisiest]
+    ]
+    adopters = [
+        {
+            "jurisdiction": str(names[i]),
+            "relative_scale": float(med_rel[i]),
+            "eti95": [float(v) for v in np.quantile(rel[:, i], [0.025, 0.975])],
+        }
+        for i in fit.cells.adopters
+    ]
+    if f_hi < 1.25:
+        what = "the jurisdictions' gap noise is about equally large; the answer is close to the shared-scale model's"
+    elif f_lo > 1.25:
+        what = (
+            "the jurisdictions' gap noise clearly differs in size, and each adopter's effect is judged "
+            "against its own noise"
+        )
+    else:
+        what = (
+            "the data leave open how much the jurisdictions' gap noise differs; the effect's interval allows for both"
+        )
+    noisy = ", ".join(f"{t['jurisdiction']} ({t['relative_scale']:.2f} times)" for t in top)
+    return {
+        "omega": {"mean": float(omega.mean()), "sd": float(omega.std()), "eti95": [lo, hi]},
+        "prior": f"omega ~ HalfNormal({OMEGA_SCALE:g}); log sigma_gap_j = log sigma_gap + omega z_j, z_j ~ Normal(0, 1)",
+        "typical_factor": {"median": factor, "eti95": [f_lo, f_hi]},
+        "noisiest": top,
+        "adopters": adopters,
+        "relative_scale": {str(names[i]): float(med_rel[i]) for i in range(len(names))},
+        "sentence": f"Jurisdictions' gap noise differs by a typical factor of {factor:.2f} between two of them "
+        f"(95% interval {f_lo:.2f} to {f_hi:.2f}); {what}. Noisiest: {noisy}, relative to the typical jurisdiction.",
     }
 
 
@@ -278,10 +340,11 @@ def analyse(
     for msg in cells.extra.get("warnings", []):
         notes.append(msg)
     gs = gap_structure(cells)
-    if gs.fallback:
-        notes.append(gs.fallback)
-        say("WARNING: " + gs.fallback)
-        warnings.warn(gs.fallback, PersistenceFallbackWarning, stacklevel=2)
+    for why in (gs.fallback, gs.scale_fallback):
+        if why:
+            notes.append(why)
+            say("WARNING: " + why)
+            warnings.warn(why, PersistenceFallbackWarning, stacklevel=2)
     if family_record(fit.spec.family).cell_model and not fit.spec.residual:
         notes.append("No separate residual sd: " + residual_rule(cells)["reason"])
     if cells.extra.get("fallback"):

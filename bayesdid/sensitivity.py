@@ -16,8 +16,11 @@ Reading (Kallioinen et al. 2023, section 2.4):
 Which priors are power-scaled: the priors with a user-settable scale (the ``prior_<name>`` data
 containers): ``mu_group``, ``sigma_baseline``, ``period_raw``, ``group_period_raw``, ``tau``,
 ``sigma_tau``, ``sigma``, ``sigma_gap``, ``sigma_shock``. The standard-normal latent deviations of the
-non-centred terms (``z_baseline``, ``z_tau``) and the centred baselines are the hierarchical level, not
+non-centred terms (``z_baseline``, ``z_tau``, ``z_gap_scale``) and the centred baselines are the hierarchical level, not
 a prior the analyst chose; Kallioinen et al. (2023, section 2.3) recommend leaving such terms out.
+The fixed priors of the gap noise's structure, rho's Beta and omega's HalfNormal
+(:mod:`bayesdid.model.structure`), are scaled with the joint prior; their own sensitivity is not
+reported (they have no user-settable scale).
 
 The log prior is evaluated in numpy from the posterior draws (the same densities as
 :mod:`bayesdid.model.terms`), so it needs no PyMC model and works for a cached compiled model.
@@ -73,7 +76,7 @@ _MEANING = {
     "att": "the headline ATT, the adopters' effects weighted by their treated rows (model scale)",
     "tau": "the average effect of the policy (model scale)",
     "sigma_tau": "spread of the effect across adopters",
-    "sigma_gap": "structural noise of the group gap per jurisdiction-period",
+    "sigma_gap": "structural noise of the group gap per jurisdiction-period (the typical jurisdiction's scale)",
     "sigma_shock": "spread of jurisdiction-period shocks shared by groups",
     "sigma": "residual sd of each group",
     "sigma_baseline": "spread of jurisdiction-group baselines",
@@ -107,6 +110,11 @@ def log_prior_dataset(fit) -> xr.Dataset:
 
         lp = stats.beta.logpdf((post["rho"].to_numpy() + 1.0) / 2.0, RHO_PRIOR["a"], RHO_PRIOR["b"])
         out["rho"] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
+    if "omega" in post:  # per-jurisdiction gap-noise scales: omega ~ HalfNormal(OMEGA_SCALE)
+        from .model.structure import omega_prior_logpdf
+
+        lp = omega_prior_logpdf(post["omega"].to_numpy())
+        out["omega"] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
     return xr.Dataset(out)
 
 

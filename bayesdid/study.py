@@ -182,6 +182,8 @@ class ModelOptions:
     missing: str = "error"  # or "drop"
     #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
     gap_over_time: str = "persistent"
+    #: Gap-noise scale across jurisdictions: "per_jurisdiction" (pooled, the default) or "shared"
+    gap_scale: str = "per_jurisdiction"
     #: Pooled jurisdiction-specific linear drifts of the gap (Gaussian; see bayesdid.model.terms)
     gap_drift: bool = False
 
@@ -401,7 +403,7 @@ STUDY_KEYS.update(
         "": ("title",),
         "data": tuple(sorted(_DATA_KEYS)),
         "policy": ("adopters", "target_group"),
-        "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_drift"),
+        "model": ("family", "log_outcome", "covariates", "missing", "gap_over_time", "gap_scale", "gap_drift"),
         "priors": tuple(PRIOR_NAMES),
         "sampler": ("chains", "draws", "tune", "seed"),
         "decision": ("threshold", "level"),
@@ -500,6 +502,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
         gap_over_time=m.get("gap_over_time", "persistent"),
+        gap_scale=m.get("gap_scale", "per_jurisdiction"),
         gap_drift=_get_bool(m, "gap_drift", "model", False),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))
@@ -607,6 +610,14 @@ def _validated(study: Study) -> Study:
             study.model.gap_over_time,
             "'persistent' or 'independent'",
             "'persistent' lets the gap noise follow an AR(1) over periods; 'independent' does not.",
+        )
+    if study.model.gap_scale not in ("per_jurisdiction", "shared"):
+        raise _where(
+            "model.gap_scale",
+            study.model.gap_scale,
+            "'per_jurisdiction' or 'shared'",
+            "'per_jurisdiction' gives each jurisdiction its own gap-noise scale, pooled across jurisdictions; "
+            "'shared' gives all one scale.",
         )
     if study.model.log_outcome and not rec.allows("log_outcome"):
         raise _where(
@@ -834,6 +845,7 @@ def make_study(
     covariates=None,
     missing="error",
     gap_over_time=None,
+    gap_scale=None,
     exposure=None,
     trials=None,
     unit=None,
@@ -897,6 +909,7 @@ def make_study(
                 covariates=covariates,
                 missing=missing,
                 gap_over_time=gap_over_time,
+                gap_scale=gap_scale,
             ).items()
             if v is not None
         },

@@ -17,6 +17,7 @@ from bayesdid import make_study
 from bayesdid.cells import collapse
 from bayesdid.model import families, gaussian
 from bayesdid.model.registry import build_model, pointwise_loglik
+from bayesdid.model.structure import gap_scale_draws
 from bayesdid.model.terms import model_spec, resolve_scales
 from bayesdid.simulate import Scenario, simulate
 from bayesdid.simulate_families import CountScenario, simulate_family
@@ -249,6 +250,7 @@ def _fake_fit(model, cells, family, rng):
             "phi",
             "sigma",
             "sigma_gap",
+            "sigma_gap_j",
             "sigma_shock",
             "rho",
             "z_gap_innovation",
@@ -284,7 +286,8 @@ def _fake_fit(model, cells, family, rng):
 def test_numpy_twin_matches_pytensor_graph(family, gap, gap_centred, monkeypatch):
     """The model's observed-variable log density (PyTensor) equals the numpy twin used for draws; with
     persistent gap noise the graph's gap deviations also equal the numpy AR(1) twin
-    (:func:`families.ar1_gap_deviations`) of the point's rho, sigma_gap and innovations."""
+    (:func:`families.ar1_gap_deviations`) of the point's rho, each jurisdiction's sigma_gap_j and
+    innovations."""
     rng = np.random.default_rng(21)
     if gap_centred and family == "gaussian":
         pytest.skip("the gaussian family has no latent gap field")
@@ -309,7 +312,7 @@ def test_numpy_twin_matches_pytensor_graph(family, gap, gap_centred, monkeypatch
     assert ll.shape == (1, cells.shape[0], cells.shape[2])
     assert ll.sum() == pytest.approx(logp, rel=1e-9)
     if gap == "persistent":
-        sg, rho, gap_ = fake.draws("sigma_gap"), fake.draws("rho"), fake.draws("gap")
+        sg, rho, gap_ = gap_scale_draws(fake), fake.draws("rho"), fake.draws("gap")  # sg: (S, J)
         if gap_centred:
             path = fake.draws("gap_path")
             np.testing.assert_allclose(gap_, path - path.mean(axis=-1, keepdims=True), rtol=1e-12, atol=1e-14)
@@ -399,9 +402,10 @@ def test_rho_zero_equals_the_independent_field_log_density(gap_centred, monkeypa
     cells = collapse(_study(frame, truth, "poisson", "C(sex) + C(risk)", exposure="exposure"), frame)
     scales = {k: v["scale"] for k, v in resolve_scales(cells, PriorScales()).items()}
     J, _, T = cells.shape
-    cells.extra["gap"] = GapStructure(over_time="independent", requested="independent")
+    one = {"scale": "shared", "scale_requested": "shared"}  # one scale: this test is about rho
+    cells.extra["gap"] = GapStructure(over_time="independent", requested="independent", **one)
     ind, _ = build_model(cells, scales, "poisson")
-    cells.extra["gap"] = GapStructure()
+    cells.extra["gap"] = GapStructure(**one)
     per, spec = build_model(cells, scales, "poisson")
     assert spec.gap == "persistent"
     rng = np.random.default_rng(5)

@@ -61,8 +61,9 @@ def _cells(rows, J, G, T, weight=None, start=None):
 
 def _row_level(rows, m, sig, s_sd, sg, rho, G, weight):
     """Row-level log density: per jurisdiction, the rows are one multivariate normal with
-    cov = sigma_g^2 I + s_sd[j]^2 [same period] + sg^2 rho^|t - t'| [both target group]
-    (scipy.stats.multivariate_normal; the model of DESIGN.md with rho over periods)."""
+    cov = sigma_g^2 I + s_sd[j]^2 [same period] + sg_j^2 rho^|t - t'| [both target group]
+    (scipy.stats.multivariate_normal; the model of DESIGN.md with rho over periods). ``sg`` is one
+    scale or one per jurisdiction (J,)."""
     total = 0.0
     tgt = G - 1
     for j in sorted({r[0] for r in rows}):
@@ -77,17 +78,21 @@ def _row_level(rows, m, sig, s_sd, sg, rho, G, weight):
         if G == 2:
             cov = cov + s_sd[j] ** 2 * (t[:, None] == t[None, :])
         both = (g[:, None] == tgt) & (g[None, :] == tgt)
-        cov = cov + sg**2 * rho ** np.abs(t[:, None] - t[None, :]) * both
+        sg_j = float(np.ravel(sg)[j]) if np.ndim(sg) else sg
+        cov = cov + sg_j**2 * rho ** np.abs(t[:, None] - t[None, :]) * both
         total += stats.multivariate_normal(mu, cov).logpdf(y)
     return total
 
 
+@pytest.mark.parametrize("scale", ["shared", "per_jurisdiction"])
 @pytest.mark.parametrize("G", [2, 1])
 @pytest.mark.parametrize("rho", [0.7, -0.4, 0.0])
-def test_ar1_cell_likelihood_equals_row_level_mvn(G, rho):
+def test_ar1_cell_likelihood_equals_row_level_mvn(G, rho, scale):
     """Exact collapse + Kalman filter == scipy.stats.multivariate_normal on the rows, to 1e-8,
     with an empty target cell, an empty reference cell, an empty whole jurisdiction-period and a
-    zero-weight jurisdiction-period (all drop out)."""
+    zero-weight jurisdiction-period (all drop out); with one gap-noise scale, or each jurisdiction's
+    own (a (J, 1) column, as the model passes sigma_gap_j). rho = 0 checks the independent form's
+    :func:`jt_loglik` too."""
     rng = np.random.default_rng(7 + G)
     J, T = 3, 6
     empty = {(0, G - 1, 2), (1, 0, 4), (2, 0, 1), (2, G - 1, 1)}
@@ -99,7 +104,7 @@ def test_ar1_cell_likelihood_equals_row_level_mvn(G, rho):
     m = rng.normal(0.0, 0.5, (J, G, T))
     sig = np.array([0.9, 1.3])[:G] if G == 2 else np.array([1.1])
     s_sd = np.array([0.4, 0.25, 0.6])  # the adopter's shock has its own sd in the model
-    sg = 0.5
+    sg = 0.5 if scale == "shared" else np.array([[0.5], [0.2], [1.4]])
     d = cell_arrays(cells)
     tq = G - 1
     if G == 2:
@@ -109,6 +114,12 @@ def test_ar1_cell_likelihood_equals_row_level_mvn(G, rho):
     got = jt_loglik_ar1(d, m_q=m[:, tq, :], sigma_q=sig[tq], sigma_gap=sg, rho=rho, xp=NP, **kw).sum()
     ref = _row_level(rows, m, sig, s_sd, sg, rho, G, weight)
     assert got == pytest.approx(ref, abs=1e-8, rel=0)
+    if rho == 0.0:
+        indep = jt_loglik(d, m_q=m[:, tq, :], sigma_q=sig[tq], sigma_gap=sg, xp=NP, **kw).sum()
+        assert indep == pytest.approx(ref, abs=1e-8, rel=0)
+    if scale == "per_jurisdiction":  # the scales matter: the shared one gives another density
+        other = _row_level(rows, m, sig, s_sd, 0.5, rho, G, weight)
+        assert abs(other - ref) > 1e-3
 
 
 @pytest.mark.parametrize("G", [2, 1])
@@ -309,8 +320,10 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
     # Independent gap noise: the construction's arithmetic (effect 0.7) holds for it. With the default
     # AR(1) noise a steady post-policy departure with near-noiseless comparisons is read as a
     # persistent (rho near 1) gap path and the effect shrinks toward 0.13; the bound's own arithmetic,
-    # which is what this test checks, does not depend on which noise produced the draws.
-    st = st.replace(model={"gap_over_time": "independent"})
+    # which is what this test checks, does not depend on which noise produced the draws. One shared
+    # gap-noise scale likewise: the adopter alone carries the injected wiggle and departure, which
+    # its own pooled scale would read as noise (widening the effect's interval, not the bound).
+    st = st.replace(model={"gap_over_time": "independent", "gap_scale": "shared"})
     cells = collapse(st, frame)
     an = analyse(st, cells=cells, full_cross_check=False)
     tb = an.trends
@@ -402,6 +415,7 @@ def _graph_point_fit(model, cells, rng):
             "tau_adopter",
             "sigma",
             "sigma_gap",
+            "sigma_gap_j",
             "sigma_shock",
             "rho",
             "gap_drift",
@@ -512,7 +526,8 @@ def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
     M x 0.2 x 3.5 reaches it at M = 1 by construction (the same arithmetic as the gaussian test
     above; the interval's own half-width moves the breakdown a little below 1). M = 0 is the main
     fit's interval exactly; ``bayesdid trends`` on the run folder the fit writes gives the same M.
-    Independent gap noise, as in the gaussian test: the bound's arithmetic is what is checked."""
+    Independent gap noise and one shared scale, as in the gaussian test: the bound's arithmetic is
+    what is checked."""
     import json
 
     import pandas as pd
@@ -556,7 +571,7 @@ def test_trends_breakdown_on_the_link_scale_for_counts(tmp_path):
         tune=400,
         chains=2,
         seed=4,
-    ).replace(model={"gap_over_time": "independent"})
+    ).replace(model={"gap_over_time": "independent", "gap_scale": "shared"})
     cells = collapse(st, frame)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

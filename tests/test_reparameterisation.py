@@ -114,7 +114,7 @@ def test_prior_draws_match_the_textbook_prior(three_adopters):
 def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
     """Poisson model: b[j,g] + s[j,t] (+ e[j,t] on the target group) from PyMC's prior draws, whitened
     with each draw's textbook covariance (b ~ N(mu, sigma_b^2) per group, s ~ N(0, sigma_shock^2) and
-    e ~ N(0, sigma_gap^2) iid over periods), must be iid standard normal (KS and correlations, scipy)."""
+    e ~ N(0, sigma_gap_j^2) iid over periods, j's own scale), must be iid standard normal (KS and correlations, scipy)."""
     from bayesdid import make_study
     from bayesdid.cells import collapse
     from bayesdid.simulate_families import CountScenario, simulate_family
@@ -139,7 +139,7 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
     )
     cells = collapse(study, frame)
     model, spec = build_model(cells, default_scales(cells), "poisson")
-    names = ["baseline", "gap", "mu_group", "sigma_baseline", "sigma_gap"] + (
+    names = ["baseline", "gap", "mu_group", "sigma_baseline", "sigma_gap", "sigma_gap_j"] + (
         ["shock", "sigma_shock"] if G == 2 else []
     )
     n = 3000
@@ -151,7 +151,7 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
     q = cells.target
     z_all = []
     for i in range(n):
-        sb, se = get["sigma_baseline"][i], get["sigma_gap"][i]
+        sb, se = get["sigma_baseline"][i], get["sigma_gap_j"][i, j]  # jurisdiction j's own gap scale
         ss = get["sigma_shock"][i] if G == 2 else 0.0
         xq = get["baseline"][i, j, q] + get["gap"][i, j] - get["mu_group"][i, q]
         if G == 2:

@@ -66,7 +66,8 @@ def _mean_and_cov(cells, S, L):
             for h in range(G):
                 C[g * T : (g + 1) * T, h * T : (h + 1) * T] += np.diag(np.full(T, sd_shock[j] ** 2))
         tq = slice(q * T, (q + 1) * T)
-        C[tq, tq] += L["sigma_gap"] ** 2 * ar  # the gap noise: target side only
+        sg = L["sigma_gap_j"][j] if "sigma_gap_j" in L else L["sigma_gap"]  # the jurisdiction's own scale
+        C[tq, tq] += sg**2 * ar  # the gap noise: target side only
         out.append((m0[j].ravel(), C))
     return out
 
@@ -110,6 +111,8 @@ def _model_loglik(cells, S, L, built: dict):
     }
     if "rho" in L:
         vals["rho_unit"] = (L["rho"] + 1.0) / 2.0
+    if "omega" in L:
+        vals.update(omega=L["omega"], z_gap_scale=L["z_gap_scale"])
     if G == 2:
         vals.update(group_period_raw=Q.T @ L["group_period_effect"], sigma_shock=L["sigma_shock"])
     b, R = L["baseline"], level_gap_rotation(G)
@@ -186,7 +189,8 @@ def test_prior_sampler_marginals_equal_pm_draw_of_the_model(ddd):
     L = {}
     _, cells = sbc._prior_cells(template, prior, rng, L)
     model, _ = build_model(cells, prior["scales"])
-    names = ["tau", "sigma_gap", "rho", "sigma_shock", "sigma_baseline", "mu_group", "sigma", "period_effect"]
+    names = ["tau", "sigma_gap", "rho", "omega", "sigma_gap_j", "sigma_shock", "sigma_baseline", "mu_group", "sigma"]
+    names += ["period_effect"]
     names += ["group_period_effect", "baseline"]
     N = 3000
     theirs = dict(zip(names, pm.draw([model[n] for n in names], draws=N, random_seed=1)))

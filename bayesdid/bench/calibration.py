@@ -77,7 +77,7 @@ def bench_calibration(
         line[f"{m}_width_95_median"] = w.get("median")
     line["posterior_bias"] = cov["posterior"].get("bias", {}).get("mean")
     line["ls_bias"] = cov["cr1"].get("bias", {}).get("mean")
-    for name in ("tau", "sigma_gap", "rho"):
+    for name in ("tau", "sigma_gap", "rho", "omega"):
         line[f"sbc_{name}_p"] = s["sbc"].get(name, {}).get("p_value")
     line["wall_s"] = s["timing"]["wall_s"]
     return line

@@ -2,7 +2,8 @@
 
 The row model is the DESIGN.md model written the direct way: every row is Normal(eta + s[j,t] +
 e[j,t] * 1[target], sigma[g]) with the jurisdiction-period shock s and the gap noise e as latent
-non-centred fields. The cell model is bayesdid's: the same likelihood on per-cell sufficient
+non-centred fields; e has the structure the cell model fits (AR(1) over periods by default, each
+jurisdiction's own pooled scale by default, :mod:`bayesdid.model.structure`). The cell model is bayesdid's: the same likelihood on per-cell sufficient
 statistics with s and e integrated out exactly. Both have the same posterior for tau; the
 benchmark measures bulk ESS of the ATT per second of sampling, with the same sampler settings,
 and how the cell model's sampling time and the collapse scale with the number of rows.
@@ -19,6 +20,8 @@ import numpy as np
 from ..cells import collapse_frame
 from ..data import check_roles
 from ..effects import att_weights
+from ..model.families import PT, ar1_factor
+from ..model.structure import RHO_PRIOR, gap_scale_terms, gap_structure
 from ..model.terms import coords_of, hierarchical_mean, resolve_scales
 from ..sample import compile_exact, fit_cells
 from ..simulate import Scenario, simulate
@@ -67,14 +70,21 @@ def _row_model(cells, frame, scales):
     with pm.Model(coords=coords_of(cells)) as model:
         m, S = hierarchical_mean(cells, scales)
         sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",))
-        sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
+        gs = gap_structure(cells)
+        _, sg_j = gap_scale_terms(S, gs.scale)
+        sigma_gap = sg_j[:, None] if gs.scale == "per_jurisdiction" else sg_j
         sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
         ia = S["is_adopter"][:, None]
         shock_sd = ia * S["period"] + (1.0 - ia) * sigma_shock
         z_s = pm.Normal("z_shock", 0.0, 1.0, dims=("jurisdiction", "period"))
         z_e = pm.Normal("z_gap", 0.0, 1.0, dims=("jurisdiction", "period"))
         s = shock_sd * z_s
-        e = sigma_gap * z_e
+        if gs.over_time == "persistent":  # as the families' non-centred AR(1) paths: e = sigma_gap L(rho) z
+            u = pm.Beta("rho_unit", RHO_PRIOR["a"], RHO_PRIOR["b"])
+            rho = pm.Deterministic("rho", 2.0 * u - 1.0)
+            e = sigma_gap * (z_e[:, None, :] * ar1_factor(rho, T, PT)[None, :, :]).sum(axis=-1)
+        else:
+            e = sigma_gap * z_e
         eta = m[j, g, t] + s[j, t] + e[j, t] * (g == cells.target)
         pm.Normal("y", eta, sigma[g], observed=y)
     return model

@@ -43,7 +43,7 @@ def _draw_prior(
     else:
         sigma_tau, tau_a = None, np.array([tau])
     m += np.tensordot(tau_a, _treat_by_adopter(cells), axes=1)
-    from ..model.structure import RHO_PRIOR, gap_structure, residual_rule
+    from ..model.structure import OMEGA_SCALE, RHO_PRIOR, gap_structure, residual_rule
 
     sigma = hn(S["residual"], G) if residual_rule(cells)["separate"] else np.zeros(G)
     sigma_gap = hn(S["gap_noise"])
@@ -53,7 +53,13 @@ def _draw_prior(
         rho = 2.0 * rng.beta(RHO_PRIOR["a"], RHO_PRIOR["b"]) - 1.0
         for t in range(1, T):  # stationary AR(1), marginal sd sigma_gap
             e[:, t] = rho * e[:, t - 1] + np.sqrt(1.0 - rho * rho) * e[:, t]
-    m[:, cells.target, :] += sigma_gap * e
+    omega = None
+    gap_j = sigma_gap  # each jurisdiction's gap-noise scale, (J, 1), or the shared one
+    if gap_structure(cells).scale == "per_jurisdiction":  # as gap_scale_terms: non-centred log-normal
+        omega = hn(OMEGA_SCALE)
+        z_scale = rng.standard_normal(J)
+        gap_j = sigma_gap * np.exp(omega * z_scale)[:, None]
+    m[:, cells.target, :] += gap_j * e
     if G == 2:
         sigma_shock = hn(S["shock_spread"])
         sd_j = np.where(is_adopter, S["period"], sigma_shock)
@@ -62,10 +68,14 @@ def _draw_prior(
     truth = {"tau": float(tau), "sigma_gap": float(sigma_gap)}
     if rho is not None:
         truth["rho"] = float(rho)
+    if omega is not None:
+        truth["omega"] = float(omega)
     if latent is not None:
         latent.update(truth)
         latent.update(mu_group=mu, sigma_baseline=float(sigma_b), baseline=b, period_effect=a, tau_adopter=tau_a)
-        latent.update(sigma=sigma, gap_noise=sigma_gap * e, sigma_tau=sigma_tau)
+        latent.update(sigma=sigma, gap_noise=gap_j * e, sigma_tau=sigma_tau)
+        if omega is not None:
+            latent.update(sigma_gap_j=np.ravel(gap_j), z_gap_scale=z_scale)
         if G == 2:
             latent.update(group_period_effect=h, sigma_shock=float(sigma_shock), shock=shock)
     return truth, m, np.broadcast_to(sigma[None, :, None], (J, G, T))

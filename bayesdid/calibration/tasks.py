@@ -13,7 +13,7 @@ SBC_DRAWS = 99
 #: Equal-width bins of the SBC chi-square test (SBC_DRAWS + 1 = 100 rank values, 10 per bin).
 SBC_BINS = 10
 #: Parameters whose SBC ranks are tested (rho only when the model has persistent gap noise).
-SBC_PARAMETERS = ("tau", "sigma_gap", "rho")
+SBC_PARAMETERS = ("tau", "sigma_gap", "rho", "omega")
 #: Methods compared in the coverage study.
 METHODS = ("posterior", "cr1", "wild", "permutation")
 

@@ -7,6 +7,9 @@ target q) of each jurisdiction-period:
     k = s2 / A,  A = sigma_r^2 / n_r + s2,  C = sigma_q^2 / n_q + s2 + sigma_gap^2,  V = C - k s2
     e | y ~ N( sigma_gap^2 (dq - k dr) / V ,  sigma_gap^2 - sigma_gap^4 / V )
 
+(sigma_gap: jurisdiction j's own scale sigma_gap_j when the model has one, see
+:func:`bayesdid.model.structure.gap_scale_draws`)
+
 with s2 = sigma_shock^2, dr = ybar_r - m_r, dq = ybar_q - m_q (a DiD has no reference cell: k = 0,
 s2 = 0; an empty target cell leaves e at its prior). Binomial and count models keep e as a latent
 field in the posterior; its draws are used as they are. Because b[j,g] is constant and h[g,t] common, the

@@ -9,7 +9,7 @@ Replicated data, per posterior draw (numpy; the Gaussian model integrates the sh
 noise e out, so they are drawn back here), for adopter j and pre-period t:
 
     y_rep[j,r,t] = m[j,r,t] + s + eps_r,            s ~ N(0, sigma_shock^2), eps_r ~ N(0, sigma_r^2 / n_r)
-    y_rep[j,q,t] = m[j,q,t] + s + e + eps_q,        e ~ N(0, sigma_gap^2),   eps_q ~ N(0, sigma_q^2 / n_q)
+    y_rep[j,q,t] = m[j,q,t] + s + e + eps_q,        e ~ N(0, sigma_gap_j^2), eps_q ~ N(0, sigma_q^2 / n_q)
 
 (with persistent gap noise, e is drawn as the fitted AR(1) path over the pre-periods, correlation
 rho per period apart)    gap_rep[j,t] = y_rep[j,q,t] - y_rep[j,r,t]

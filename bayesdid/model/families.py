@@ -14,6 +14,10 @@ noise ``e`` cannot be integrated out in closed form; they stay latent fields,
     e[j,t] ~ Normal(0, sigma_gap^2)       (gap_over_time = "independent"), or, by default, a
                                            stationary AR(1) within each jurisdiction (below).
 
+With ``gap_scale = "per_jurisdiction"`` (the default) sigma_gap is jurisdiction j's own pooled scale
+sigma_gap_j (:mod:`bayesdid.model.structure`) in every formula below: the fields are per jurisdiction,
+so each row of them simply takes its own scale.
+
 Each field's mean over periods enters the likelihood only beside the baseline, so it is integrated
 into the baselines exactly (they become the identified levels b + mean_t s (+ mean_t e on the target
 group)) and the fields keep their zero-sum deviations; each part is centred or non-centred by a
@@ -53,7 +57,7 @@ from scipy import special
 
 from ..cells import Cells
 from . import binomial, counts
-from .structure import RHO_PRIOR
+from .structure import RHO_PRIOR, gap_scale_draws, gap_scale_terms
 from .terms import (  # noqa: F401 (fields_centred, CENTRE_MARGIN: kept importable here)
     CENTRE_MARGIN,
     design_data,
@@ -158,12 +162,13 @@ def ar1_mean_given_deviations(z, e, sigma_gap, rho, xp=NP):
 def ar1_gap_deviations(sigma_gap, rho, z):
     """numpy: zero-sum deviations over periods of AR(1) paths ``sigma_gap L(rho) z``.
 
-    ``sigma_gap`` and ``rho`` (S,), ``z`` (S, ..., T): returns (S, ..., T)."""
+    ``rho`` (S,), ``sigma_gap`` (S,) or matching z's leading axes (e.g. (S, J), each jurisdiction's
+    own scale), ``z`` (S, ..., T): returns (S, ..., T)."""
     sg, rho = np.asarray(sigma_gap, dtype=float), np.asarray(rho, dtype=float)
     L = ar1_factor(rho, z.shape[-1])  # (S, T, T)
     extra = z.ndim - 2
     L = L.reshape(L.shape[:1] + (1,) * extra + L.shape[1:])
-    e = sg.reshape(sg.shape + (1,) * (extra + 1)) * (z[..., None, :] * L).sum(axis=-1)
+    e = sg.reshape(sg.shape + (1,) * (z.ndim - sg.ndim)) * (z[..., None, :] * L).sum(axis=-1)
     return e - e.mean(axis=-1, keepdims=True)
 
 
@@ -245,12 +250,20 @@ def _ar1_path_logp(value, sigma_gap, rho):
 
 
 def build_family(
-    cells: Cells, scales: dict[str, float], coords: dict, family: str, *, gap: str = "independent", **terms
+    cells: Cells,
+    scales: dict[str, float],
+    coords: dict,
+    family: str,
+    *,
+    gap: str = "independent",
+    gap_scale: str = "shared",
+    **terms,
 ) -> pm.Model:
     """The PyMC model of a non-Gaussian ``family`` on the records of ``cells``.
 
     ``gap`` is ``"persistent"`` (AR(1) gap noise over periods, module docstring; ``rho = 2 u - 1``,
-    ``u ~ Beta(prior_rho_a, prior_rho_b)`` as in the Gaussian family) or ``"independent"``.
+    ``u ~ Beta(prior_rho_a, prior_rho_b)`` as in the Gaussian family) or ``"independent"``;
+    ``gap_scale="per_jurisdiction"``: each jurisdiction's own pooled gap-noise scale ``sigma_gap_j``.
     ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean` (``effects="event_time"`` with its
     event times: one effect per event time, for the event-time check)."""
     J, G, T = cells.shape
@@ -278,9 +291,12 @@ def build_family(
             # periods, s_dev = Q u with u ~ N(0, v_s I) (Q orthonormal, zero-sum), the exact law of
             # s - mean(s). Without this the mean of a field and the baseline form a ridge that only the
             # priors close. "baseline" then reports these identified levels.
-            sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
+            _, sg_j = gap_scale_terms(S, gap_scale)
+            per_j = gap_scale == "per_jurisdiction"
+            # sigma_gap: (J, 1) per jurisdiction against (J, T) paths, or the shared scalar
+            sigma_gap = sg_j[:, None] if per_j else sg_j
             v_b = scale_j[:, 0] ** 2
-            fields["sigma_gap"] = sigma_gap
+            fields["sigma_gap"] = sg_j  # (J,) or scalar: what deviations() takes
             if persistent:
                 # the AR(1) path and the conditional law of its mean given its deviations (docstring)
                 u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))
@@ -298,10 +314,10 @@ def build_family(
                 else:
                     zz = pm.Normal("z_gap_innovation", 0.0, 1.0, shape=(J, T))
                     path = sigma_gap * (zz[:, None, :] * ar1_factor(rho, T, PT)[None, :, :]).sum(axis=-1)
-                shift, v_e = ar1_mean_given_deviations(zz, path, sigma_gap, rho, PT)
+                shift, v_e = ar1_mean_given_deviations(zz, path, sg_j, rho, PT)
                 fields["gap_deviations"] = path - path.mean(axis=1, keepdims=True)
             else:
-                shift, v_e = 0.0, sigma_gap**2 / T
+                shift, v_e = 0.0, sg_j**2 / T
             if ddd:
                 sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
                 # As in the Gaussian family: adopters' own shocks are identified by their reference
@@ -428,7 +444,7 @@ def replicate_gap_path(fit, j: int, periods: np.ndarray, rng: np.random.Generato
 
     The twin of the Gaussian replication in :mod:`bayesdid.checks.pretrend` for the families whose
     shock and gap noise stay latent. Per posterior draw: fresh gap-noise deviations ``e = Q u``,
-    ``u ~ N(0, sigma_gap^2 I)`` (the model's own law of the zero-sum deviations; the mean is in the
+    ``u ~ N(0, sigma_gap_j^2 I)`` (jurisdiction j's scale; the model's own law of the zero-sum deviations; the mean is in the
     baselines; persistent gap noise: fresh AR(1) paths of each draw's rho and sigma_gap with their
     mean over periods removed, :func:`ar1_gap_deviations`), the shock and covariate terms as drawn,
     then every record of the cells is replicated from the family (binomial successes of its trials;
@@ -461,11 +477,12 @@ def replicate_gap_path(fit, j: int, periods: np.ndarray, rng: np.random.Generato
         eta0 = eta0 + fit.draws("shock")[:, j, :][:, rt[idx]]
     if d["rec_x"].shape[1]:
         eta0 = eta0 + fit.draws("theta") @ d["rec_x"][idx].T
+    sg = gap_scale_draws(fit)[:, j]  # jurisdiction j's own scale
     if getattr(fit.spec, "gap", "independent") == "persistent":
-        # fresh AR(1) paths of the fitted rho and sigma_gap, their mean removed (it is in the levels)
-        e = ar1_gap_deviations(fit.draws("sigma_gap"), fit.draws("rho"), rng.standard_normal((S, T)))
+        # fresh AR(1) paths of the fitted rho and sigma_gap_j, their mean removed (it is in the levels)
+        e = ar1_gap_deviations(sg, fit.draws("rho"), rng.standard_normal((S, T)))
     else:
-        u = fit.draws("sigma_gap")[:, None] * rng.standard_normal((S, T - 1))
+        u = sg[:, None] * rng.standard_normal((S, T - 1))
         e = u @ zero_sum_basis(T).T  # (S, T)
     eta = eta0 + e[:, rt[idx]] * tgt
     inv = NP.expit if family == "binomial" else np.exp

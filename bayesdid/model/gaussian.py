@@ -251,16 +251,25 @@ def n_covariates(cells: Cells) -> int:
 
 
 def build_gaussian(
-    cells: Cells, scales: dict[str, float], coords: dict, *, gap: str = "independent", residual: bool = True, **terms
+    cells: Cells,
+    scales: dict[str, float],
+    coords: dict,
+    *,
+    gap: str = "independent",
+    gap_scale: str = "shared",
+    residual: bool = True,
+    **terms,
 ) -> pm.Model:
     """The Gaussian model; ``terms`` go to :func:`~bayesdid.model.terms.hierarchical_mean`.
 
     ``gap`` is ``"persistent"`` (AR(1) gap noise over periods, :func:`jt_loglik_ar1`, with
     ``rho = 2 u - 1``, ``u ~ Beta(prior_rho_a, prior_rho_b)``) or ``"independent"`` (:func:`jt_loglik`);
-    see :mod:`bayesdid.model.structure`. ``residual=False`` leaves out the residual sd (cells of one
+    see :mod:`bayesdid.model.structure`. ``gap_scale="per_jurisdiction"`` gives each jurisdiction its
+    own pooled gap-noise scale (``sigma_gap_j``, passed to the density as a (J, 1) column that broadcasts
+    over periods). ``residual=False`` leaves out the residual sd (cells of one
     row: :func:`~bayesdid.model.structure.residual_rule`).
     """
-    from .structure import RHO_PRIOR
+    from .structure import RHO_PRIOR, gap_scale_terms
 
     J, G, T = cells.shape
     arr = cell_arrays(cells)
@@ -278,7 +287,8 @@ def build_gaussian(
         cov_data = {k: pm.Data(k, arr[k]) for k in COV_KEYS} if K else {}
         obs = pm.Data("ybar_q", arr["ybar_q"], dims=dims)
         sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",)) if residual else pt.zeros((G,))
-        sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
+        _, sigma_gap_j = gap_scale_terms(S, gap_scale)
+        sigma_gap = sigma_gap_j[:, None] if gap_scale == "per_jurisdiction" else sigma_gap_j
         if gap == "persistent":
             u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))
             extra.append(pm.Deterministic("rho", 2.0 * u - 1.0))
@@ -337,11 +347,12 @@ def residual_draws(fit) -> np.ndarray:
     """Draws of the residual sd per group, (S, G); zeros when the model has none (residual_rule)."""
     if getattr(fit.spec, "residual", True):
         return fit.draws("sigma")
-    return np.zeros((fit.draws("sigma_gap").shape[0], fit.cells.shape[1]))
+    return np.zeros((fit.draws("sigma_gap").shape[0], fit.cells.shape[1]))  # S from sigma_gap: always drawn
 
 
 def pointwise_loglik(fit, m: np.ndarray | None = None) -> np.ndarray:
     """Log-likelihood of each jurisdiction-period for every draw: shape (S, J, T)."""
+    from .structure import gap_scale_draws
     from .terms import mean_from_draws
 
     cells = fit.cells
@@ -349,7 +360,7 @@ def pointwise_loglik(fit, m: np.ndarray | None = None) -> np.ndarray:
     arr = cell_arrays(cells)
     sigma = residual_draws(fit)  # (S, G)
     S = sigma.shape[0]
-    sg = fit.draws("sigma_gap")[:, None, None]
+    sg = gap_scale_draws(fit)[:, :, None]  # (S, J, 1): each jurisdiction's scale
     if cells.design == "DDD":
         r = cells.reference
         m_r, sig_r = m[:, :, r, :], sigma[:, r][:, None, None]

@@ -106,7 +106,13 @@ def build_model(
     )
     if family_record(family).cell_model:
         return build_gaussian(
-            cells, scales, coords_of(cells, spec.event_times), gap=spec.gap, residual=spec.residual, **terms
+            cells,
+            scales,
+            coords_of(cells, spec.event_times),
+            gap=spec.gap,
+            gap_scale=spec.gap_scale,
+            residual=spec.residual,
+            **terms,
         ), spec
     if family in FAMILY_BUILDERS:
         return build_family(
@@ -115,6 +121,7 @@ def build_model(
             coords_of(cells, spec.event_times),
             family,
             gap=spec.gap,
+            gap_scale=spec.gap_scale,
             **{k: v for k, v in terms.items() if k != "drift"},
         ), spec
     raise NotImplementedError(f"family '{family}' is not built yet")

@@ -100,6 +100,9 @@ class ModelSpec:
     #: The gap noise over periods as fitted, "persistent" (AR(1)) or "independent"; see
     #: :mod:`bayesdid.model.structure`.
     gap: str = "independent"
+    #: The gap-noise scale across jurisdictions as fitted, "per_jurisdiction" (pooled, sigma_gap_j) or
+    #: "shared" (one sigma_gap); see :mod:`bayesdid.model.structure`.
+    gap_scale: str = "shared"
     #: Gaussian: a separate residual sd (False when the cells cannot identify it, see
     #: :func:`bayesdid.model.structure.residual_rule`).
     residual: bool = True
@@ -457,6 +460,7 @@ def model_spec(
     cov = cells.extra.get("covariates")
     fields = ()
     gap = gap_structure(cells).over_time
+    gap_scale = gap_structure(cells).scale
     residual = residual_rule(cells)["separate"] if family == "gaussian" else True
     drift = bool(gap_structure(cells).drift) and family == "gaussian" and effects == "att"
     if family != "gaussian":
@@ -476,6 +480,7 @@ def model_spec(
             event_times=ks,
             event_pooled=bool(event_pooled),
             gap=gap,
+            gap_scale=gap_scale,
             residual=residual,
             K=0 if cov is None else len(cov["names"]),
         )
@@ -489,6 +494,7 @@ def model_spec(
         centred=baseline_centred(cells),
         fields=fields,
         gap=gap,
+        gap_scale=gap_scale,
         residual=residual,
         drift=drift,
         K=0 if cov is None else len(cov["names"]),

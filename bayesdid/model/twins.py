@@ -16,6 +16,7 @@ from .families import gap_noise_draws as gap_path_draws
 from .families import replicate_gap_path
 from .family import family_record
 from .gaussian import ar1_smoothing_draws, cell_arrays, residual_draws
+from .structure import gap_scale_draws
 from .terms import mean_from_draws
 
 __all__ = ["replicate_gaps", "gap_noise_draws"]
@@ -32,7 +33,7 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
     cells = fit.cells
     m = mean_from_draws(fit)  # (S, J, G, T)
     sigma = residual_draws(fit)  # (S, G)
-    sg = fit.draws("sigma_gap")
+    sg = gap_scale_draws(fit)[:, j]  # jurisdiction j's own gap-noise scale (S,)
     S = sigma.shape[0]
     q = cells.target
     n_q = cells.n[j, q, periods]
@@ -40,7 +41,7 @@ def replicate_gaps(fit, j: int, periods: np.ndarray, rng: np.random.Generator):
     e = sg[:, None] * rng.standard_normal((S, len(periods)))
     if getattr(fit.spec, "gap", "independent") == "persistent":
         # AR(1) gap noise (bayesdid.model.structure): the same normals, chained over the periods
-        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap
+        # with correlation rho^(gap in periods) and the marginal sd kept at sigma_gap_j
         rho = fit.draws("rho")
         z = e.copy()
         for i in range(1, len(periods)):
@@ -74,7 +75,7 @@ def gap_noise_draws(fit, rng: np.random.Generator) -> np.ndarray:
     arr = cell_arrays(cells)
     m = mean_from_draws(fit)
     sigma = residual_draws(fit)
-    sg2 = fit.draws("sigma_gap")[:, None, None] ** 2
+    sg2 = gap_scale_draws(fit)[:, :, None] ** 2  # (S, J, 1): each jurisdiction's own scale
     q = cells.target
     dq = arr["ybar_q"][None] - m[:, :, q, :]
     C = sigma[:, q][:, None, None] ** 2 * arr["inv_n_q"][None]

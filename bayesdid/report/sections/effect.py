@@ -188,6 +188,25 @@ def _persistence_words(s: dict) -> list[str]:
         out.append(f"<p>{esc(g.get('meaning', ''))}.</p>")
     if g.get("fallback"):
         out.append(f'<p class="caution">{esc(g["fallback"])}</p>')
+    out.append("<h3>Size of the gap noise across jurisdictions</h3>")
+    sc = s.get("gap_scales")
+    if isinstance(sc, dict) and sc.get("sentence"):
+        out.append(f"<p>{esc(sc['sentence'])} Prior: {esc(sc.get('prior', ''))}.</p>")
+        ads = sc.get("adopters") or []
+        if ads:
+            out.append(
+                "<p>Adopters' own gap-noise scale relative to the typical jurisdiction: "
+                + "; ".join(
+                    f"{esc(a['jurisdiction'])} {a['relative_scale']:.2f} "
+                    f"(95% interval {a['eti95'][0]:.2f} to {a['eti95'][1]:.2f})"
+                    for a in ads
+                )
+                + ".</p>"
+            )
+    else:
+        out.append("<p>One gap-noise scale is shared by all jurisdictions.</p>")
+    if g.get("scale_fallback"):
+        out.append(f'<p class="caution">{esc(g["scale_fallback"])}</p>')
     res = (s.get("model") or {}).get("residual_sd")
     if isinstance(res, dict) and not res.get("separate", True):
         out.append(f"<p>No separate residual sd: {esc(res.get('reason', ''))}</p>")
