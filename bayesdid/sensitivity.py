@@ -22,8 +22,9 @@ The fixed priors of the gap noise's structure, rho's Beta and omega's HalfNormal
 (:mod:`bayesdid.model.structure`), are scaled with the joint prior; their own sensitivity is not
 reported (they have no user-settable scale).
 
-The log prior is evaluated in numpy from the posterior draws (the same densities as
-:mod:`bayesdid.model.terms`), so it needs no PyMC model and works for a cached compiled model.
+The log prior is evaluated in numpy from the posterior draws by the model's twin
+:func:`bayesdid.model.twins.log_prior` (tested against the model's own logp), so it needs no PyMC
+model and works for a cached compiled model.
 
 References
 ----------
@@ -37,7 +38,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import xarray as xr
-from scipy import stats
 
 __all__ = [
     "log_prior_dataset",
@@ -59,19 +59,6 @@ FEW_ADOPTERS = 3
 #: Parameters whose sensitivity is reported: the effect and the variance parameters.
 CHECKED_PARAMETERS = ("tau", "sigma_tau", "sigma_gap", "sigma_shock", "sigma", "sigma_baseline")
 
-#: Posterior variable -> (prior family, name of its scale, location) as built in bayesdid.model.
-_PRIORS = {
-    "mu_group": ("normal", "intercept", "outcome_location"),
-    "sigma_baseline": ("halfnormal", "baseline_spread", None),
-    "period_raw": ("normal", "period", None),
-    "group_period_raw": ("normal", "group_period", None),
-    "tau": ("normal", "effect", None),
-    "sigma_tau": ("halfnormal", "adopter_spread", None),
-    "sigma": ("halfnormal", "residual", None),
-    "sigma_gap": ("halfnormal", "gap_noise", None),
-    "sigma_shock": ("halfnormal", "shock_spread", None),
-}
-
 _MEANING = {
     "att": "the headline ATT, the adopters' effects weighted by their treated rows (model scale)",
     "tau": "the average effect of the policy (model scale)",
@@ -84,38 +71,19 @@ _MEANING = {
 
 
 def log_prior_dataset(fit) -> xr.Dataset:
-    """Log prior density of each power-scaled prior at every draw, dims (chain, draw, ...).
+    """Log prior density of each power-scaled prior at every draw, dims (chain, draw).
 
     ``log p(theta) = sum_k log p_k(theta_k)`` with p_k Normal(loc, scale) or HalfNormal(scale) as in
-    :mod:`bayesdid.model.terms`; one variable per parameter (summed over its own dims).
+    :mod:`bayesdid.model.terms`; one variable per parameter (summed over its own dims). The densities are
+    the model's numpy twin :func:`bayesdid.model.twins.log_prior` (tested against the model's logp).
     """
+    from .model.twins import POWER_SCALED_PRIORS, log_prior
+
     post = fit.posterior
-    out = {}
-    for name, (kind, scale_name, loc_name) in _PRIORS.items():
-        if name not in post:
-            continue
-        da = post[name]
-        scale = float(fit.scales[scale_name])
-        x = da.to_numpy()
-        if kind == "normal":
-            loc = float(fit.cells.outcome_mean) if loc_name == "outcome_location" else 0.0
-            lp = stats.norm.logpdf(x, loc, scale)
-        else:
-            lp = stats.halfnorm.logpdf(x, scale=scale)
-        extra = tuple(range(2, lp.ndim))
-        lp = lp.sum(axis=extra) if extra else lp
-        out[name] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
-    if "rho" in post:  # persistent gap noise: (rho + 1)/2 ~ Beta(a, b), see bayesdid.model.structure
-        from .model.structure import RHO_PRIOR
-
-        lp = stats.beta.logpdf((post["rho"].to_numpy() + 1.0) / 2.0, RHO_PRIOR["a"], RHO_PRIOR["b"])
-        out["rho"] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
-    if "omega" in post:  # per-jurisdiction gap-noise scales: omega ~ HalfNormal(OMEGA_SCALE)
-        from .model.structure import omega_prior_logpdf
-
-        lp = omega_prior_logpdf(post["omega"].to_numpy())
-        out["omega"] = xr.DataArray(lp, dims=("chain", "draw"), coords={"chain": post["chain"], "draw": post["draw"]})
-    return xr.Dataset(out)
+    names = [n for n in (*POWER_SCALED_PRIORS, "rho", "omega") if n in post]
+    lp = log_prior({n: post[n].to_numpy() for n in names}, fit.scales, float(fit.cells.outcome_mean))
+    coords = {"chain": post["chain"], "draw": post["draw"]}
+    return xr.Dataset({n: xr.DataArray(v, dims=("chain", "draw"), coords=coords) for n, v in lp.items()})
 
 
 def log_likelihood_dataset(fit) -> xr.Dataset:

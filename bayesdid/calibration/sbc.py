@@ -6,79 +6,11 @@ import dataclasses
 
 import numpy as np
 
+# the prior sampler is the model's numpy twin (model/twins.py; tested in tests/test_sbc_prior.py)
+from ..model.twins import draw_prior as _draw_prior
+from ..model.twins import treat_by_adopter as _treat_by_adopter  # noqa: F401 - the tests' name
 from .scenarios import _cells_of, _frame_of, _scenario
 from .tasks import SBC_DRAWS, SBC_PARAMETERS, RepTask, _settings
-
-
-def _draw_prior(
-    cells, prior: dict, rng: np.random.Generator, latent: dict | None = None
-) -> tuple[dict, np.ndarray, np.ndarray]:
-    """Parameters from the model's prior and the (J, G, T) cell means and row sds they imply.
-
-    Mirrors :func:`bayesdid.model.terms.hierarchical_mean` and the Gaussian family term by term.
-    ``latent``, when given, receives every drawn quantity under the model's variable names (and the
-    shock ``s`` and gap noise ``e``, which the Gaussian model integrates out), for tests.
-    """
-    from ..model.terms import zero_sum_basis
-
-    S = prior["scales"]
-    J, G, T = cells.shape
-    is_adopter = cells.start < T
-    hn = lambda s, size=None: np.abs(rng.normal(0.0, s, size))  # noqa: E731 - HalfNormal(s)
-    mu = rng.normal(prior["location"], S["intercept"], G)
-    sigma_b = hn(S["baseline_spread"])
-    scale_j = np.where(is_adopter, S["intercept"], sigma_b)
-    b = mu[None, :] + scale_j[:, None] * rng.standard_normal((J, G))
-    Q = zero_sum_basis(T)
-    a = Q @ rng.normal(0.0, S["period"], T - 1)
-    m = b[:, :, None] + a[None, None, :]
-    if G == 2:
-        h = Q @ rng.normal(0.0, S["group_period"], T - 1)
-        m[:, cells.target, :] += h[None, :]
-    tau = rng.normal(0.0, S["effect"])
-    A = int(is_adopter.sum())
-    if A > 1:
-        sigma_tau = hn(S["adopter_spread"])
-        tau_a = tau + sigma_tau * rng.standard_normal(A)
-    else:
-        sigma_tau, tau_a = None, np.array([tau])
-    m += np.tensordot(tau_a, _treat_by_adopter(cells), axes=1)
-    from ..model.structure import OMEGA_SCALE, RHO_PRIOR, gap_structure, residual_rule
-
-    sigma = hn(S["residual"], G) if residual_rule(cells)["separate"] else np.zeros(G)
-    sigma_gap = hn(S["gap_noise"])
-    e = rng.standard_normal((J, T))
-    rho = None
-    if gap_structure(cells).over_time == "persistent":
-        rho = 2.0 * rng.beta(RHO_PRIOR["a"], RHO_PRIOR["b"]) - 1.0
-        for t in range(1, T):  # stationary AR(1), marginal sd sigma_gap
-            e[:, t] = rho * e[:, t - 1] + np.sqrt(1.0 - rho * rho) * e[:, t]
-    omega = None
-    gap_j = sigma_gap  # each jurisdiction's gap-noise scale, (J, 1), or the shared one
-    if gap_structure(cells).scale == "per_jurisdiction":  # as gap_scale_terms: non-centred log-normal
-        omega = hn(OMEGA_SCALE)
-        z_scale = rng.standard_normal(J)
-        gap_j = sigma_gap * np.exp(omega * z_scale)[:, None]
-    m[:, cells.target, :] += gap_j * e
-    if G == 2:
-        sigma_shock = hn(S["shock_spread"])
-        sd_j = np.where(is_adopter, S["period"], sigma_shock)
-        shock = sd_j[:, None] * rng.standard_normal((J, T))
-        m += shock[:, None, :]
-    truth = {"tau": float(tau), "sigma_gap": float(sigma_gap)}
-    if rho is not None:
-        truth["rho"] = float(rho)
-    if omega is not None:
-        truth["omega"] = float(omega)
-    if latent is not None:
-        latent.update(truth)
-        latent.update(mu_group=mu, sigma_baseline=float(sigma_b), baseline=b, period_effect=a, tau_adopter=tau_a)
-        latent.update(sigma=sigma, gap_noise=gap_j * e, sigma_tau=sigma_tau)
-        if omega is not None:
-            latent.update(sigma_gap_j=np.ravel(gap_j), z_gap_scale=z_scale)
-        if G == 2:
-            latent.update(group_period_effect=h, sigma_shock=float(sigma_shock), shock=shock)
-    return truth, m, np.broadcast_to(sigma[None, :, None], (J, G, T))
 
 
 def _prior_cells(template, prior: dict, rng: np.random.Generator, latent: dict | None = None):
@@ -100,12 +32,6 @@ def _prior_cells(template, prior: dict, rng: np.random.Generator, latent: dict |
         outcome_sd=prior["sd"],
     )
     return truth, cells
-
-
-def _treat_by_adopter(cells) -> np.ndarray:
-    from ..model.terms import design_data
-
-    return design_data(cells)["treat_by_adopter"]
 
 
 def _sbc_rep(task: RepTask) -> dict:
