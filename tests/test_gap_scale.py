@@ -201,7 +201,7 @@ def test_omega_zero_is_the_shared_scale_model(tmp_path, family):
     ref = _likelihood_at(sh, point)
     J = per_cells.shape[0]
     pp = dict(point)
-    pp["z_gap_scale"] = rng.normal(0, 1, J)
+    pp["z_gap_scale"] = rng.normal(0, 1, J - 1)  # zero-sum: J - 1 free normals
     pp["omega_log__"] = np.array(-np.inf)  # omega = exp(-inf) = 0
     assert _likelihood_at(per, pp) == pytest.approx(ref, rel=1e-12, abs=1e-9)
     pp["omega_log__"] = np.array(np.log(0.5))
