@@ -216,8 +216,6 @@ def gap_scale_terms(S: dict, scale: str = "per_jurisdiction", J: int = 0):
     import pymc as pm
     import pytensor.tensor as pt
 
-    from .terms import small_matmul, zero_sum_basis
-
     sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
     if scale != "per_jurisdiction":
         return sigma_gap, sigma_gap
@@ -281,3 +279,28 @@ def residual_rule(cells) -> dict:
             "means alone)."
         )
     return out
+
+
+def zero_sum_basis(T: int) -> np.ndarray:
+    """Orthonormal (T, T-1) basis of the vectors that sum to zero.
+
+    Period effects are h = Q r with r ~ Normal(0, s^2 I), so h ~ Normal(0, s^2 (I - 11'/T)): an
+    exchangeable prior over periods, identified against the baselines (which then carry the mean
+    level over time) without the ridge that pinning one period to zero creates.
+    """
+    M = np.eye(T) - 1.0 / T
+    u, _, _ = np.linalg.svd(M)
+    return u[:, : T - 1]
+
+
+def small_matmul(x, M: np.ndarray):
+    """``x @ M`` for a small constant matrix ``M``, as a broadcast product and sum.
+
+    Written without a BLAS call: BLAS kernels may round differently with the memory alignment of
+    their operands, which differs between processes, and sampling amplifies a last-bit difference
+    into different draws; the sweep and calibration promise the same draws for the same seed in any
+    worker.
+    """
+    import pytensor.tensor as pt
+
+    return (x[..., :, None] * pt.as_tensor(np.asarray(M, dtype=float))).sum(axis=-2)

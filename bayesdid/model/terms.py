@@ -25,7 +25,7 @@ import pytensor.tensor as pt
 
 from ..cells import Cells
 from ..study import PRIOR_NAMES, PriorScales
-from .structure import gap_structure, residual_rule
+from .structure import gap_structure, residual_rule, small_matmul, zero_sum_basis  # noqa: F401 - also terms' names
 
 __all__ = [
     "default_scales",
@@ -159,18 +159,6 @@ def event_time_data(cells: Cells, event_times: tuple) -> np.ndarray:
     return out
 
 
-def zero_sum_basis(T: int) -> np.ndarray:
-    """Orthonormal (T, T-1) basis of the vectors that sum to zero.
-
-    Period effects are h = Q r with r ~ Normal(0, s^2 I), so h ~ Normal(0, s^2 (I - 11'/T)): an
-    exchangeable prior over periods, identified against the baselines (which then carry the mean
-    level over time) without the ridge that pinning one period to zero creates.
-    """
-    M = np.eye(T) - 1.0 / T
-    u, _, _ = np.linalg.svd(M)
-    return u[:, : T - 1]
-
-
 def baseline_centred(cells: Cells) -> bool:
     """Choose the parameterisation of the baselines b[j,g] from how much the data say about them.
 
@@ -190,17 +178,6 @@ def baseline_centred(cells: Cells) -> bool:
     if not np.isfinite(between) or not np.isfinite(within) or within <= 0:
         return True
     return bool(T * between / within > 2.0)
-
-
-def small_matmul(x, M: np.ndarray):
-    """``x @ M`` for a small constant matrix ``M``, as a broadcast product and sum.
-
-    Written without a BLAS call: BLAS kernels may round differently with the memory alignment of
-    their operands, which differs between processes, and sampling amplifies a last-bit difference
-    into different draws; the sweep and calibration promise the same draws for the same seed in any
-    worker.
-    """
-    return (x[..., :, None] * pt.as_tensor(np.asarray(M, dtype=float))).sum(axis=-2)
 
 
 def level_gap_rotation(G: int) -> np.ndarray | None:
