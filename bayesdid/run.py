@@ -206,7 +206,8 @@ def gap_scale_summary(fit, noisiest: int = 3) -> dict | None:
     noisy = ", ".join(f"{t['jurisdiction']} ({t['relative_scale']:.2f} times)" for t in top)
     return {
         "omega": {"mean": float(omega.mean()), "sd": float(omega.std()), "eti95": [lo, hi]},
-        "prior": f"omega ~ HalfNormal({OMEGA_SCALE:g}); log sigma_gap_j = log sigma_gap + omega z_j, z_j ~ Normal(0, 1)",
+        "prior": f"omega ~ HalfNormal({OMEGA_SCALE:g}); log sigma_gap_j = log sigma_gap + omega z_j, z zero-sum "
+        "standard normal over jurisdictions",
         "typical_factor": {"median": factor, "eti95": [f_lo, f_hi]},
         "noisiest": top,
         "adopters": adopters,

@@ -101,10 +101,12 @@ def test_gap_scale_draws_reads_the_fitted_structure():
 
 
 def test_sbc_prior_draws_omega_and_the_per_jurisdiction_scales_as_the_model():
-    """The SBC simulator's gap noise has, per jurisdiction, sd sigma_gap exp(omega z_j): over many prior
-    draws the log of a jurisdiction's empirical gap sd minus log sigma_gap has variance omega^2-weighted
-    as E[omega^2] = OMEGA_SCALE^2 (half-normal second moment), plus the sampling error of the sd of T
-    normals (about 1 / (2 (T - 1)) on the log scale; common practice). Shared: no omega drawn."""
+    """The SBC simulator's gap noise has, per jurisdiction, sd sigma_gap exp(omega z_j) with z zero-sum
+    over jurisdictions: over many prior draws the log of a jurisdiction's empirical gap sd minus log
+    sigma_gap has mean 0 within each draw up to sampling error and variance E[omega^2] (J - 1) / J =
+    OMEGA_SCALE^2 (J - 1) / J (half-normal second moment, zero-sum variance), plus the sampling error
+    of the sd of T normals (about 1 / (2 (T - 1)) on the log scale; common practice). Shared: no
+    omega drawn."""
     from bayesdid.calibration.sbc import _draw_prior
     from bayesdid.cells import Cells
 
@@ -133,11 +135,13 @@ def test_sbc_prior_draws_omega_and_the_per_jurisdiction_scales_as_the_model():
     for _ in range(600):
         truth, m, _ = _draw_prior(cells, prior, rng)
         e = m[:, 0, :] - m[:, 0, :].mean(axis=1, keepdims=True)
-        devs.append(np.log(e.std(axis=1, ddof=1) / truth["sigma_gap"]))
+        d = np.log(e.std(axis=1, ddof=1) / truth["sigma_gap"])
+        assert abs(d.mean()) < 5 * np.sqrt(1.0 / (2 * (T - 1)) / J)  # zero-sum: geometric mean is sigma_gap
+        devs.append(d)
         omegas.append(truth["omega"])
     devs = np.concatenate(devs)
     assert np.mean(omegas) == pytest.approx(OMEGA_SCALE * np.sqrt(2 / np.pi), rel=0.1)  # HalfNormal mean
-    expected = OMEGA_SCALE**2 + 1.0 / (2 * (T - 1))
+    expected = OMEGA_SCALE**2 * (J - 1) / J + 1.0 / (2 * (T - 1))  # zero-sum z: variance (J - 1) / J
     # the sample variance of 2,400 values (jurisdictions within a draw share omega: about 600 independent draws)
     assert devs.var() == pytest.approx(expected, rel=0.25)
     shared = dataclasses.replace(base, extra={"gap": resolve_gap(base, "independent", scale="shared", warn=False)})
@@ -197,7 +201,7 @@ def test_omega_zero_is_the_shared_scale_model(tmp_path, family):
     ref = _likelihood_at(sh, point)
     J = per_cells.shape[0]
     pp = dict(point)
-    pp["z_gap_scale"] = rng.normal(0, 1, J)
+    pp["z_gap_scale"] = rng.normal(0, 1, J - 1)  # zero-sum: J - 1 free normals
     pp["omega_log__"] = np.array(-np.inf)  # omega = exp(-inf) = 0
     assert _likelihood_at(per, pp) == pytest.approx(ref, rel=1e-12, abs=1e-9)
     pp["omega_log__"] = np.array(np.log(0.5))

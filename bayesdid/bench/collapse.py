@@ -71,7 +71,7 @@ def _row_model(cells, frame, scales):
         m, S = hierarchical_mean(cells, scales)
         sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",))
         gs = gap_structure(cells)
-        _, sg_j = gap_scale_terms(S, gs.scale)
+        _, sg_j = gap_scale_terms(S, gs.scale, J)
         sigma_gap = sg_j[:, None] if gs.scale == "per_jurisdiction" else sg_j
         sigma_shock = pm.HalfNormal("sigma_shock", S["shock_spread"])
         ia = S["is_adopter"][:, None]

@@ -55,10 +55,10 @@ def _draw_prior(
             e[:, t] = rho * e[:, t - 1] + np.sqrt(1.0 - rho * rho) * e[:, t]
     omega = None
     gap_j = sigma_gap  # each jurisdiction's gap-noise scale, (J, 1), or the shared one
-    if gap_structure(cells).scale == "per_jurisdiction":  # as gap_scale_terms: non-centred log-normal
+    if gap_structure(cells).scale == "per_jurisdiction":  # as gap_scale_terms: non-centred, zero-sum log-normal
         omega = hn(OMEGA_SCALE)
-        z_scale = rng.standard_normal(J)
-        gap_j = sigma_gap * np.exp(omega * z_scale)[:, None]
+        z_scale = rng.standard_normal(J - 1)  # zero-sum over jurisdictions, as the model's z_gap_scale
+        gap_j = sigma_gap * np.exp(omega * (zero_sum_basis(J) @ z_scale))[:, None]
     m[:, cells.target, :] += gap_j * e
     if G == 2:
         sigma_shock = hn(S["shock_spread"])

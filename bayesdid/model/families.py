@@ -291,7 +291,7 @@ def build_family(
             # periods, s_dev = Q u with u ~ N(0, v_s I) (Q orthonormal, zero-sum), the exact law of
             # s - mean(s). Without this the mean of a field and the baseline form a ridge that only the
             # priors close. "baseline" then reports these identified levels.
-            _, sg_j = gap_scale_terms(S, gap_scale)
+            _, sg_j = gap_scale_terms(S, gap_scale, J)
             per_j = gap_scale == "per_jurisdiction"
             # sigma_gap: (J, 1) per jurisdiction against (J, T) paths, or the shared scalar
             sigma_gap = sg_j[:, None] if per_j else sg_j

@@ -287,7 +287,7 @@ def build_gaussian(
         cov_data = {k: pm.Data(k, arr[k]) for k in COV_KEYS} if K else {}
         obs = pm.Data("ybar_q", arr["ybar_q"], dims=dims)
         sigma = pm.HalfNormal("sigma", S["residual"], dims=("group",)) if residual else pt.zeros((G,))
-        _, sigma_gap_j = gap_scale_terms(S, gap_scale)
+        _, sigma_gap_j = gap_scale_terms(S, gap_scale, J)
         sigma_gap = sigma_gap_j[:, None] if gap_scale == "per_jurisdiction" else sigma_gap_j
         if gap == "persistent":
             u = pm.Beta("rho_unit", pm.Data("prior_rho_a", RHO_PRIOR["a"]), pm.Data("prior_rho_b", RHO_PRIOR["b"]))

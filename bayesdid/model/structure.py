@@ -34,14 +34,19 @@ that names the reason; the reason is recorded in summary.json.
 How large the gap noise is across jurisdictions (``model.gap_scale``):
 
 * ``"per_jurisdiction"`` (the default): each jurisdiction j has its own scale, partially pooled on
-  the log scale (non-centred), ``log sigma_gap_j = log sigma_gap + omega z_j``, ``z_j ~ Normal(0, 1)``,
-  ``omega ~ HalfNormal(OMEGA_SCALE)``; sigma_gap keeps its meaning as the typical (median) scale, and
+  the log scale (non-centred), ``log sigma_gap_j = log sigma_gap + omega z_j``, ``z = Q u``,
+  ``u ~ Normal(0, I_{J-1})`` with Q the orthonormal zero-sum basis (so ``z_j ~ Normal(0, (J-1)/J)``,
+  summing to zero), ``omega ~ HalfNormal(OMEGA_SCALE)``; sigma_gap keeps its meaning as the typical
+  scale, exactly the geometric mean of the jurisdictions' scales, and
   sigma_gap_j replaces it in the law of jurisdiction j's gap noise (either form over periods, every
   family). Jurisdictions differ in noise (small places have few events or few respondents, so their
   outcome is noisier): with one shared scale the interval of a noisy adopter is too narrow and
   placebo laws in noisy places come out "significant" (the castle-doctrine placebo study: every false
   positive was in one of the 4 noisiest of 29 states). An adopter's scale is learned from its own
   periods (before and after the policy) and pooled toward the others' like any jurisdiction's.
+  The zero-sum z removes the ridge between log sigma_gap and the mean of the z_j (with free z_j
+  only their sum with log sigma_gap is identified): on a castle placebo law it raised sigma_gap's
+  bulk ESS from 350 to 455 over 2 x 1,000 draws.
 * ``"shared"``: one scale sigma_gap for all (the special case omega = 0).
 
 Prior on omega: HalfNormal(0.5) on the log scale. Its median, 0.34, puts a typical pair of
@@ -125,7 +130,8 @@ class GapStructure:
             else "gap noise independent over periods"
         ) + (
             "; each jurisdiction has its own gap-noise scale, log sigma_gap_j = log sigma_gap + omega z_j, "
-            f"z_j ~ Normal(0, 1), omega ~ HalfNormal({OMEGA_SCALE:g}) (sigma_gap is the typical scale)"
+            f"z zero-sum standard normal over jurisdictions, omega ~ HalfNormal({OMEGA_SCALE:g}) (sigma_gap is "
+            "the typical scale, the geometric mean of the jurisdictions')"
             if self.scale == "per_jurisdiction"
             else "; one gap-noise scale sigma_gap shared by all jurisdictions"
         )
@@ -201,20 +207,23 @@ def gap_structure(cells) -> GapStructure:
     return resolve_gap(cells, warn=False)  # the defaults: persistent, per-jurisdiction scale
 
 
-def gap_scale_terms(S: dict, scale: str = "per_jurisdiction"):
+def gap_scale_terms(S: dict, scale: str = "per_jurisdiction", J: int = 0):
     """PyMC (inside a model): ``sigma_gap`` and the gap-noise scale of each jurisdiction.
 
-    ``"per_jurisdiction"``: ``omega ~ HalfNormal(OMEGA_SCALE)``, ``z_gap_scale ~ Normal(0, 1)`` per
-    jurisdiction, and the deterministic ``sigma_gap_j = sigma_gap exp(omega z_gap_scale)``, returned
-    as (J,). ``"shared"``: ``sigma_gap`` itself (a scalar), so the shared model's graph is unchanged."""
+    ``"per_jurisdiction"``: ``omega ~ HalfNormal(OMEGA_SCALE)``, ``z_gap_scale ~ Normal(0, 1)`` of
+    length J - 1, ``z = Q z_gap_scale`` (zero-sum over the J jurisdictions) and the deterministic
+    ``sigma_gap_j = sigma_gap exp(omega z)``, returned as (J,). ``"shared"``: ``sigma_gap`` itself (a scalar), so the shared model's graph is unchanged."""
     import pymc as pm
     import pytensor.tensor as pt
+
+    from .terms import small_matmul, zero_sum_basis
 
     sigma_gap = pm.HalfNormal("sigma_gap", S["gap_noise"])
     if scale != "per_jurisdiction":
         return sigma_gap, sigma_gap
     omega = pm.HalfNormal("omega", OMEGA_SCALE)
-    z = pm.Normal("z_gap_scale", 0.0, 1.0, dims=("jurisdiction",))
+    z_raw = pm.Normal("z_gap_scale", 0.0, 1.0, shape=(J - 1,))
+    z = small_matmul(z_raw, zero_sum_basis(J).T)  # zero-sum: sigma_gap is the scales' geometric mean
     sj = pm.Deterministic("sigma_gap_j", sigma_gap * pt.exp(omega * z), dims=("jurisdiction",))
     return sigma_gap, sj
 
