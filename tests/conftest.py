@@ -34,14 +34,11 @@ warnings.filterwarnings("ignore", category=RuntimeWarning, module="arviz_stats")
 _SESSION_START = time.time()
 
 
-def sim_study(tmp_path_factory, sc: Scenario, data_seed: int, name: str, **kw):
-    """Simulate, write the table, return (study, cells, frame, truth)."""
-    frame, truth = simulate(sc, data_seed)
-    d = tmp_path_factory.mktemp(name)
-    path = d / "table.csv"
+def study_of(folder: Path, frame: pd.DataFrame, truth: dict, *, ddd: bool = True, **kw):
+    """Write ``frame`` as ``folder/table.csv`` and return the study over it (simulate()'s column names)."""
+    path = Path(folder) / "table.csv"
     frame.to_csv(path, index=False)
-    ddd = sc.groups == 2
-    study = make_study(
+    return make_study(
         table=path,
         outcome="y",
         jurisdiction="region",
@@ -51,6 +48,12 @@ def sim_study(tmp_path_factory, sc: Scenario, data_seed: int, name: str, **kw):
         adopters=truth["starts"],
         **kw,
     )
+
+
+def sim_study(tmp_path_factory, sc: Scenario, data_seed: int, name: str, **kw):
+    """Simulate, write the table, return (study, cells, frame, truth)."""
+    frame, truth = simulate(sc, data_seed)
+    study = study_of(tmp_path_factory.mktemp(name), frame, truth, ddd=sc.groups == 2, **kw)
     return study, collapse(study, frame), frame, truth
 
 

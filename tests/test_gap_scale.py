@@ -12,6 +12,7 @@ import warnings
 
 import numpy as np
 import pytest
+from conftest import study_of
 
 from bayesdid import make_study
 from bayesdid.cells import collapse
@@ -32,24 +33,9 @@ from bayesdid.study import PriorScales, SamplerSettings
 SCALE_RATIO, WIDTH_RATIO = 1.15, 1.1
 
 
-def _study(tmp_path, frame, truth, **kw):
-    path = tmp_path / "t.csv"
-    frame.to_csv(path, index=False)
-    return make_study(
-        table=path,
-        outcome="y",
-        jurisdiction="region",
-        period="period",
-        group="group",
-        target_group="target",
-        adopters=truth["starts"],
-        **kw,
-    )
-
-
 def test_switch_default_shared_and_bad_value(tmp_path):
     frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}), 1)
-    st = _study(tmp_path, frame, truth)
+    st = study_of(tmp_path, frame, truth)
     assert st.model.gap_scale == "per_jurisdiction"  # the default
     cells = collapse(st, frame)
     g = gap_structure(cells)
@@ -62,7 +48,7 @@ def test_switch_default_shared_and_bad_value(tmp_path):
     assert model_spec(sh).key() != model_spec(cells).key()  # two compiled structures
     with pytest.raises(StudyError, match="model.gap_scale.*'per_jurisdiction' or 'shared'"):
         st.replace(model={"gap_scale": "each"})
-    st2 = _study(tmp_path, frame, truth, gap_scale="shared")
+    st2 = study_of(tmp_path, frame, truth, gap_scale="shared")
     assert st2.model.gap_scale == "shared"
 
 
@@ -70,7 +56,7 @@ def test_switch_default_shared_and_bad_value(tmp_path):
 def test_fallback_to_the_shared_scale_names_the_reason(tmp_path, J, T, why):
     assert MIN_SCALE_JURISDICTIONS == 5
     frame, truth = simulate(Scenario(jurisdictions=J, periods=T, starts={0: T - 1}), 2)
-    st = _study(tmp_path, frame, truth)
+    st = study_of(tmp_path, frame, truth)
     with warnings.catch_warnings():
         warnings.simplefilter("error", PersistenceFallbackWarning)
         c = collapse(st, frame)  # warned when the model is fitted, not at the collapse
@@ -171,7 +157,7 @@ def test_omega_zero_is_the_shared_scale_model(tmp_path, family):
     rng = np.random.default_rng(4)
     if family == "gaussian":
         frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}, rows_per_cell=4), 3)
-        st = _study(tmp_path, frame, truth)
+        st = study_of(tmp_path, frame, truth)
     else:
         from bayesdid.simulate_families import CountScenario, simulate_family
 

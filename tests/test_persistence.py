@@ -7,7 +7,7 @@ import warnings
 
 import numpy as np
 import pytest
-from conftest import sim_study
+from conftest import sim_study, study_of
 from scipy import stats
 
 from bayesdid import make_study
@@ -151,24 +151,9 @@ def test_rho_zero_is_the_independent_model_bit_for_bit(G):
     assert not np.allclose(jt_loglik_ar1(d, rho=np.full((S, 1, 1), 0.5), **kw).sum(), b.sum())
 
 
-def _study(tmp_path, frame, truth, **kw):
-    path = tmp_path / "t.csv"
-    frame.to_csv(path, index=False)
-    return make_study(
-        table=path,
-        outcome="y",
-        jurisdiction="region",
-        period="period",
-        group="group",
-        target_group="target",
-        adopters=truth["starts"],
-        **kw,
-    )
-
-
 def test_switch_and_fallback_recorded(tmp_path):
     frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}), 1)
-    st = _study(tmp_path, frame, truth)
+    st = study_of(tmp_path, frame, truth)
     assert st.model.gap_over_time == "persistent"  # on by default
     cells = collapse(st, frame)
     assert gap_structure(cells).over_time == "persistent"
@@ -179,7 +164,7 @@ def test_switch_and_fallback_recorded(tmp_path):
         st.replace(model={"gap_over_time": "ar1"})
     # two pre-policy periods: the persistent form cannot be learned -> independent, with a warning
     frame2, truth2 = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 2}), 1)
-    st2 = _study(tmp_path, frame2, truth2)
+    st2 = study_of(tmp_path, frame2, truth2)
     with warnings.catch_warnings():
         warnings.simplefilter("error", PersistenceFallbackWarning)
         c2 = collapse(st2, frame2)  # no warning at the boundary: a refused study must print only its error
@@ -365,7 +350,7 @@ def test_trends_breakdown_where_the_construction_puts_it(tmp_path_factory):
 
 def test_trend_multiples_refused_when_negative(tmp_path):
     frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}), 1)
-    st = _study(tmp_path, frame, truth)
+    st = study_of(tmp_path, frame, truth)
     assert st.trends.multiples == (0.0, 0.25, 0.5, 1.0, 1.5, 2.0)
     with pytest.raises(StudyError, match=r"trends.multiples.*zero or more"):
         st.replace(trends={"multiples": [0, 0.5, -1]})
