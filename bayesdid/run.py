@@ -161,6 +161,11 @@ def persistence_summary(fit) -> dict | None:
     }
 
 
+#: a jurisdiction is named among the noisiest only when its median scale is at least this many times the
+#: typical one (a 10% difference; below it the names would be noise of the ordering)
+STANDOUT_SCALE = 1.1
+
+
 def gap_scale_summary(fit, noisiest: int = 3) -> dict | None:
     """omega's posterior, each jurisdiction's gap-noise scale relative to the typical one, the noisiest
     jurisdictions and one plain sentence (None when one scale is shared)."""
@@ -207,7 +212,15 @@ def gap_scale_summary(fit, noisiest: int = 3) -> dict | None:
         what = (
             "the data leave open how much the jurisdictions' gap noise differs; the effect's interval allows for both"
         )
-    noisy = ", ".join(f"{t['jurisdiction']} ({t['relative_scale']:.2f} times)" for t in top)
+    standout = [t for t in top if t["relative_scale"] >= STANDOUT_SCALE]
+    if standout:
+        noisy = ", ".join(f"{t['jurisdiction']} ({t['relative_scale']:.2f} times)" for t in standout)
+        noisy = f"Noisiest: {noisy}, relative to the typical jurisdiction."
+    else:  # listing names at 1.01 times the typical scale would suggest a difference the fit does not show
+        noisy = (
+            f"No jurisdiction stands out: each one's scale is within {STANDOUT_SCALE - 1:.0%} of the typical "
+            "one's (posterior medians)."
+        )
     return {
         "omega": {"mean": float(omega.mean()), "sd": float(omega.std()), "eti95": [lo, hi]},
         "prior": f"omega ~ HalfNormal({OMEGA_SCALE:g}); log sigma_gap_j = log sigma_gap + omega z_j, z zero-sum "
@@ -217,7 +230,7 @@ def gap_scale_summary(fit, noisiest: int = 3) -> dict | None:
         "adopters": adopters,
         "relative_scale": {str(names[i]): float(med_rel[i]) for i in range(len(names))},
         "sentence": f"Jurisdictions' gap noise differs by a typical factor of {factor:.2f} between two of them "
-        f"(95% interval {f_lo:.2f} to {f_hi:.2f}); {what}. Noisiest: {noisy}, relative to the typical jurisdiction.",
+        f"(95% interval {f_lo:.2f} to {f_hi:.2f}); {what}. {noisy}",
     }
 
 

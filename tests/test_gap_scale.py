@@ -256,3 +256,28 @@ def test_noisy_jurisdictions_get_larger_scales_and_a_noisy_adopter_a_wider_inter
     print(f"scale ratio noisy/quiet {ratio:.3f}; width per-jurisdiction {width(per):.4f}, shared {width(shared):.4f}")
     assert ratio > SCALE_RATIO
     assert width(per) > WIDTH_RATIO * width(shared)
+
+
+def test_noisiest_named_only_when_they_stand_out():
+    """The summary names the noisiest jurisdictions only when a median scale is >= STANDOUT_SCALE times the
+    typical one; near-equal scales (as on the copay_cap demo, 1.01 times) give a sentence that says so."""
+    from types import SimpleNamespace
+
+    from bayesdid.run import STANDOUT_SCALE
+
+    rng = np.random.default_rng(3)
+    S, J = 400, 5
+    sg = np.full(S, 0.2)
+    omega = np.abs(rng.normal(0.0, 0.3, S))
+
+    def fit_with(rel):
+        sj = sg[:, None] * np.asarray(rel)[None, :] * np.exp(0.01 * rng.standard_normal((S, J)))
+        draws = {"omega": omega, "sigma_gap": sg, "sigma_gap_j": sj}
+        cells = SimpleNamespace(jurisdictions=tuple(f"J{j}" for j in range(J)), adopters=[0], shape=(J, 1, 8))
+        return SimpleNamespace(spec=SimpleNamespace(gap_scale="per_jurisdiction"), draws=draws.get, cells=cells)
+
+    flat = gap_scale_summary(fit_with([1.0, 1.01, 0.99, 1.02, 0.98]))
+    assert "No jurisdiction stands out" in flat["sentence"] and "Noisiest" not in flat["sentence"]
+    assert len(flat["noisiest"]) == 3  # summary.json keeps the ranking either way
+    loud = gap_scale_summary(fit_with([1.0, 1.0, STANDOUT_SCALE + 0.3, 1.0, 1.0]))
+    assert "Noisiest: J2 (" in loud["sentence"] and "J0 (" not in loud["sentence"]
