@@ -182,8 +182,8 @@ class ModelOptions:
     missing: str = "error"  # or "drop"
     #: Gap noise over periods: "persistent" (AR(1), the default) or "independent"
     gap_over_time: str = "persistent"
-    #: Gap-noise scale across jurisdictions: "per_jurisdiction" (pooled, the default) or "shared"
-    gap_scale: str = "per_jurisdiction"
+    #: Gap-noise scale across jurisdictions: "per_jurisdiction" (pooled) or "shared" (the default)
+    gap_scale: str = "shared"
     #: Pooled jurisdiction-specific linear drifts of the gap (Gaussian; see bayesdid.model.terms)
     gap_drift: bool = False
 
@@ -502,7 +502,7 @@ def _parse(raw: Mapping[str, Any], base_dir: Path) -> Study:
         covariates=_get_str(m, "covariates", "model", required=False),
         missing=m.get("missing", "error"),
         gap_over_time=m.get("gap_over_time", "persistent"),
-        gap_scale=m.get("gap_scale", "per_jurisdiction"),
+        gap_scale=m.get("gap_scale", "shared"),
         gap_drift=_get_bool(m, "gap_drift", "model", False),
     )
     p = _section(raw, "priors", set(PRIOR_NAMES))

@@ -35,8 +35,9 @@ SCALE_RATIO, WIDTH_RATIO = 1.15, 1.1
 
 def test_switch_default_shared_and_bad_value(tmp_path):
     frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}), 1)
-    st = study_of(tmp_path, frame, truth)
-    assert st.model.gap_scale == "per_jurisdiction"  # the default
+    assert study_of(tmp_path, frame, truth).model.gap_scale == "shared"  # the default (README: why)
+    st = study_of(tmp_path, frame, truth, gap_scale="per_jurisdiction")
+    assert st.model.gap_scale == "per_jurisdiction"
     cells = collapse(st, frame)
     g = gap_structure(cells)
     assert (g.scale, g.scale_requested, g.scale_fallback) == ("per_jurisdiction", "per_jurisdiction", None)
@@ -56,7 +57,7 @@ def test_switch_default_shared_and_bad_value(tmp_path):
 def test_fallback_to_the_shared_scale_names_the_reason(tmp_path, J, T, why):
     assert MIN_SCALE_JURISDICTIONS == 5
     frame, truth = simulate(Scenario(jurisdictions=J, periods=T, starts={0: T - 1}), 2)
-    st = study_of(tmp_path, frame, truth)
+    st = study_of(tmp_path, frame, truth, gap_scale="per_jurisdiction")
     with warnings.catch_warnings():
         warnings.simplefilter("error", PersistenceFallbackWarning)
         c = collapse(st, frame)  # warned when the model is fitted, not at the collapse
@@ -66,7 +67,7 @@ def test_fallback_to_the_shared_scale_names_the_reason(tmp_path, J, T, why):
     assert g.to_dict()["scale_fallback"] == g.scale_fallback  # what summary.json records
     assert model_spec(c).gap_scale == "shared"
     with pytest.warns(PersistenceFallbackWarning, match=why):
-        resolve_gap(c)
+        resolve_gap(c, scale="per_jurisdiction")
     with warnings.catch_warnings():
         warnings.simplefilter("error", PersistenceFallbackWarning)
         assert resolve_gap(c, "independent", scale="shared").scale_fallback is None  # asked for: no warning
@@ -115,7 +116,9 @@ def test_sbc_prior_draws_omega_and_the_per_jurisdiction_scales_as_the_model():
     # only the gap noise: no baselines, periods, effect or residual noise in the way
     scales.update({"baseline_spread": 1e-12, "period": 1e-12, "effect": 1e-12, "residual": 1e-12, "intercept": 1e-12})
     prior = {"scales": scales, "location": 0.0, "sd": 1.0}
-    cells = dataclasses.replace(base, extra={"gap": resolve_gap(base, "independent", warn=False)})
+    cells = dataclasses.replace(
+        base, extra={"gap": resolve_gap(base, "independent", scale="per_jurisdiction", warn=False)}
+    )
     rng = np.random.default_rng(11)
     devs, omegas = [], []
     for _ in range(600):
@@ -157,7 +160,7 @@ def test_omega_zero_is_the_shared_scale_model(tmp_path, family):
     rng = np.random.default_rng(4)
     if family == "gaussian":
         frame, truth = simulate(Scenario(jurisdictions=6, periods=6, starts={0: 3}, rows_per_cell=4), 3)
-        st = study_of(tmp_path, frame, truth)
+        st = study_of(tmp_path, frame, truth, gap_scale="per_jurisdiction")
     else:
         from bayesdid.simulate_families import CountScenario, simulate_family
 
@@ -174,6 +177,7 @@ def test_omega_zero_is_the_shared_scale_model(tmp_path, family):
             adopters=truth["starts"],
             family="poisson",
             exposure="exposure",
+            gap_scale="per_jurisdiction",
         )
     per_cells = collapse(st, frame)
     sh_cells = collapse(st.replace(model={"gap_scale": "shared"}), frame)
@@ -232,6 +236,7 @@ def test_noisy_jurisdictions_get_larger_scales_and_a_noisy_adopter_a_wider_inter
         jurisdiction="region",
         period="period",
         adopters=truth["starts"],
+        gap_scale="per_jurisdiction",
     )
     cells = collapse(st, frame)
     assert cells.jurisdictions[cells.adopters[0]] == noisy[0]

@@ -136,6 +136,7 @@ def test_count_family_levels_and_fields_prior_is_the_textbook_one(design):
         adopters=truth["starts"],
         family="poisson",
         exposure="exposure",
+        gap_scale="per_jurisdiction",  # the general case: each jurisdiction's own scale
     )
     cells = collapse(study, frame)
     model, spec = build_model(cells, default_scales(cells), "poisson")

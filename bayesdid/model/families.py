@@ -14,7 +14,7 @@ noise ``e`` cannot be integrated out in closed form; they stay latent fields,
     e[j,t] ~ Normal(0, sigma_gap^2)       (gap_over_time = "independent"), or, by default, a
                                            stationary AR(1) within each jurisdiction (below).
 
-With ``gap_scale = "per_jurisdiction"`` (the default) sigma_gap is jurisdiction j's own pooled scale
+With ``gap_scale = "per_jurisdiction"`` (an option; the default is one shared scale) sigma_gap is jurisdiction j's own pooled scale
 sigma_gap_j (:mod:`bayesdid.model.structure`) in every formula below: the fields are per jurisdiction,
 so each row of them simply takes its own scale.
 

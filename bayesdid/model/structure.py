@@ -33,7 +33,7 @@ that names the reason; the reason is recorded in summary.json.
 
 How large the gap noise is across jurisdictions (``model.gap_scale``):
 
-* ``"per_jurisdiction"`` (the default): each jurisdiction j has its own scale, partially pooled on
+* ``"per_jurisdiction"`` (an option; ``"shared"``, one scale for all, is the default): each jurisdiction j has its own scale, partially pooled on
   the log scale (non-centred), ``log sigma_gap_j = log sigma_gap + omega z_j``, ``z = Q u``,
   ``u ~ Normal(0, I_{J-1})`` with Q the orthonormal zero-sum basis (so ``z_j ~ Normal(0, (J-1)/J)``,
   summing to zero), ``omega ~ HalfNormal(OMEGA_SCALE)``; sigma_gap keeps its meaning as the typical
@@ -117,8 +117,8 @@ class GapStructure:
     fallback: str | None = None
     drift: bool = False
     #: How large the gap noise is across jurisdictions as fitted: "per_jurisdiction" or "shared".
-    scale: str = "per_jurisdiction"
-    scale_requested: str = "per_jurisdiction"
+    scale: str = "shared"
+    scale_requested: str = "shared"
     scale_fallback: str | None = None
 
     def to_dict(self) -> dict:
@@ -173,7 +173,7 @@ def resolve_gap(
     requested: str = "persistent",
     drift: bool = False,
     *,
-    scale: str = "per_jurisdiction",
+    scale: str = "shared",
     warn: bool = True,
 ) -> GapStructure:
     """The structure fitted for ``requested``: the persistent form falls back to the independent one
@@ -207,7 +207,7 @@ def gap_structure(cells) -> GapStructure:
     return resolve_gap(cells, warn=False)  # the defaults: persistent, per-jurisdiction scale
 
 
-def gap_scale_terms(S: dict, scale: str = "per_jurisdiction", J: int = 0):
+def gap_scale_terms(S: dict, scale: str = "shared", J: int = 0):
     """PyMC (inside a model): ``sigma_gap`` and the gap-noise scale of each jurisdiction.
 
     ``"per_jurisdiction"``: ``omega ~ HalfNormal(OMEGA_SCALE)``, ``z_gap_scale ~ Normal(0, 1)`` of
