@@ -228,16 +228,7 @@ def test_noisy_jurisdictions_get_larger_scales_and_a_noisy_adopter_a_wider_inter
     extra = {(j, t): float(rng.normal(0.0, np.sqrt(3.0) * 0.1)) for j in noisy for t in frame["period"].unique()}
     key = list(zip(frame["region"], frame["period"]))
     frame = frame.assign(y=frame["y"] + np.array([extra.get(k, 0.0) for k in key]))
-    path = tmp_path_factory.mktemp("noisy") / "t.csv"
-    frame.to_csv(path, index=False)
-    st = make_study(
-        table=path,
-        outcome="y",
-        jurisdiction="region",
-        period="period",
-        adopters=truth["starts"],
-        gap_scale="per_jurisdiction",
-    )
+    st = study_of(tmp_path_factory.mktemp("noisy"), frame, truth, ddd=False, gap_scale="per_jurisdiction")
     cells = collapse(st, frame)
     assert cells.jurisdictions[cells.adopters[0]] == noisy[0]
     st_sh = st.replace(model={"gap_scale": "shared"})
